@@ -1,0 +1,126 @@
+"""The mesh meshcheck works on: points in metres and blocks of cells.
+
+Normalised once when read (dtypes, units, node order) and frozen afterwards.
+Cells are numbered globally by concatenating the blocks in order; that
+0-based number is the "cell id" every report uses.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import cached_property
+
+import numpy as np
+
+from .cells import CELL_TYPES, CellType
+
+__all__ = ["CellBlock", "Mesh"]
+
+
+@dataclass(frozen=True)
+class CellBlock:
+    """Cells of one type.
+
+    type : meshio cell type name (a key of ``cells.CELL_TYPES``).
+    cells : (m, n_nodes) int64 node indices, meshio/VTK node order.
+    region : (m,) int64 region tag per cell (0 when the file has none).
+    """
+
+    type: str
+    cells: np.ndarray
+    region: np.ndarray
+
+    def __post_init__(self):
+        cells = np.ascontiguousarray(self.cells, dtype=np.int64)
+        region = np.ascontiguousarray(self.region, dtype=np.int64).reshape(-1)
+        object.__setattr__(self, "cells", cells)
+        object.__setattr__(self, "region", region)
+        if cells.ndim != 2 or cells.shape[1] != CELL_TYPES[self.type].n_nodes:
+            raise ValueError(f"{self.type} block must have shape (m, {CELL_TYPES[self.type].n_nodes})")
+        if region.shape[0] != cells.shape[0]:
+            raise ValueError("region tags must align with cells")
+
+    @property
+    def info(self) -> CellType:
+        return CELL_TYPES[self.type]
+
+    def __len__(self) -> int:
+        return self.cells.shape[0]
+
+
+@dataclass(frozen=True)
+class Mesh:
+    """A volume (or 2D) mesh in SI units.
+
+    points : (n, 3) float64 coordinates in metres (z = 0 for 2D meshes).
+    blocks : cell blocks of the model's dimension only (no boundary cells).
+    region_names : region tag -> name, for the tags that have one.
+    dim : 3 for a volume mesh, 2 for a plane model.
+    source : the file it came from (for messages), or "" when built in memory.
+    unit : the length unit of the file ("m", "mm", ...); points are already in metres.
+    """
+
+    points: np.ndarray
+    blocks: tuple[CellBlock, ...]
+    region_names: dict[int, str] = field(default_factory=dict)
+    dim: int = 3
+    source: str = ""
+    unit: str = "m"
+
+    def __post_init__(self):
+        pts = np.ascontiguousarray(self.points, dtype=np.float64)
+        if pts.ndim != 2 or pts.shape[1] not in (2, 3):
+            raise ValueError("points must have shape (n, 3)")
+        if pts.shape[1] == 2:
+            pts = np.column_stack([pts, np.zeros(len(pts))])
+        pts.setflags(write=False)
+        object.__setattr__(self, "points", pts)
+        object.__setattr__(self, "blocks", tuple(self.blocks))
+
+    # ---- sizes and global numbering -------------------------------------
+    @property
+    def n_points(self) -> int:
+        return self.points.shape[0]
+
+    @cached_property
+    def block_offsets(self) -> np.ndarray:
+        """(n_blocks + 1,) int64: global id of the first cell of each block."""
+        return np.concatenate([[0], np.cumsum([len(b) for b in self.blocks])]).astype(np.int64)
+
+    @property
+    def n_cells(self) -> int:
+        return int(self.block_offsets[-1])
+
+    @cached_property
+    def region(self) -> np.ndarray:
+        """(n_cells,) int64 region tag of every cell."""
+        if not self.blocks:
+            return np.zeros(0, np.int64)
+        return np.concatenate([b.region for b in self.blocks])
+
+    def locate(self, cell_ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Block index and row within the block of global cell ids."""
+        ids = np.asarray(cell_ids, dtype=np.int64)
+        blk = np.searchsorted(self.block_offsets, ids, side="right") - 1
+        return blk, ids - self.block_offsets[blk]
+
+    def cell_type_of(self, cell_id: int) -> str:
+        blk, _ = self.locate(np.array([cell_id]))
+        return self.blocks[int(blk[0])].type
+
+    def region_name(self, tag: int) -> str:
+        return self.region_names.get(int(tag), f"region {int(tag)}")
+
+    @cached_property
+    def centroids(self) -> np.ndarray:
+        """(n_cells, 3) float64 mean of the corner nodes of each cell, metres."""
+        out = [self.points[b.cells[:, :b.info.n_corners]].mean(axis=1) for b in self.blocks]
+        return np.concatenate(out) if out else np.zeros((0, 3))
+
+    @cached_property
+    def bounding_box(self) -> np.ndarray:
+        """(2, 3) float64 min and max corner of the used points, metres."""
+        used = np.zeros(self.n_points, dtype=bool)
+        for b in self.blocks:
+            used[b.cells] = True
+        pts = self.points[used] if used.any() else self.points
+        return np.array([pts.min(axis=0), pts.max(axis=0)])
