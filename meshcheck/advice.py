@@ -1,0 +1,278 @@
+"""Order and frequency advice from the 1D dispersion model, edge by edge.
+
+For every edge (length h, propagation distance L, sound speed c) and every
+order p the model of :mod:`meshcheck.dispersion` gives the largest usable
+k*h; the edge's highest usable frequency is f = c * (kh)_max / (2 pi h).
+A cell is usable up to the lowest limit of its edges; a region and the mesh
+up to the lowest limit of their cells.  A sweep is advised by binning these
+limits (sorted once per order), so its cost does not grow with the number of
+frequencies.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import sparse
+from scipy.sparse.csgraph import connected_components
+
+from .cost import condensed_dofs, lagrange_dofs, variable_order_dofs
+from .dispersion import usable_kh
+from .errors import SettingsError
+from .mesh import Mesh
+from .topology import Topology
+
+__all__ = ["AdviceSettings", "Advice", "Cluster", "Sweep", "advise", "sweep", "clusters"]
+
+TWO_PI = 2.0 * np.pi
+
+
+@dataclass(frozen=True)
+class AdviceSettings:
+    """What the solver can do and how accurate it must be.
+
+    target : relative L2 error allowed for a propagating wave (0.01 = 1 %).
+    max_order : highest polynomial order of a variable-order (p-FEM) solver.
+    order : fixed order of the solver (e.g. 1 linear, 2 quadratic); None = variable.
+    distance : propagation distance L in metres; None = the bounding-box diagonal
+        of the connected fluid domain each cell belongs to.
+    coarsen_factor : cells that could be at least this many times larger are
+        reported as coarsening candidates.
+    """
+
+    target: float = 0.01
+    max_order: int = 8
+    order: int | None = None
+    distance: float | None = None
+    coarsen_factor: float = 2.0
+
+    def __post_init__(self):
+        if not 0 < self.target < 1:
+            raise SettingsError(f"accuracy target {self.target} must lie between 0 and 1 "
+                                "(e.g. 0.01 for 1 %)")
+        if not 1 <= self.max_order <= 16:
+            raise SettingsError(f"maximum order {self.max_order} must be between 1 and 16")
+        if self.order is not None and not 1 <= self.order <= self.max_order:
+            raise SettingsError(f"fixed order {self.order} must be between 1 and the "
+                                f"maximum order {self.max_order}")
+        if self.distance is not None and not self.distance > 0:
+            raise SettingsError(f"propagation distance {self.distance} m must be positive")
+        if not self.coarsen_factor > 1:
+            raise SettingsError("coarsening factor must be greater than 1")
+
+    @property
+    def allowed_order(self) -> int:
+        """The order the mesh must carry the upper frequency with."""
+        return self.order if self.order is not None else self.max_order
+
+    @property
+    def mode(self) -> str:
+        return "fixed" if self.order is not None else "variable"
+
+
+@dataclass(frozen=True)
+class Advice:
+    """Frequency limits per order and the advice at the upper frequency.
+
+    cell_limit : (n_cells, pmax) float64 highest usable frequency per cell and
+        order p = 1..pmax (non-decreasing in p), Hz.
+    cell_size : (n_cells,) longest edge of each cell, m.
+    cell_distance : (n_cells,) propagation distance L used, m.
+    cell_speed : (n_cells,) sound speed, m/s.
+    edge_limit : (n_e,) highest usable frequency of each edge at the allowed order, Hz.
+    edge_order : (n_e,) lowest order meeting the target at ``fmax`` (pmax+1 = none).
+    cell_order : (n_cells,) lowest order meeting the target at ``fmax`` (pmax+1 = none).
+    target_size : (n_cells,) largest edge length meeting the target at ``fmax``
+        with the allowed order, m.
+    refine, coarsen : (n_cells,) bool.
+    signed_off : highest frequency every cell carries at the allowed order, Hz.
+    """
+
+    settings: AdviceSettings
+    fmax: float
+    cell_limit: np.ndarray
+    cell_size: np.ndarray
+    cell_distance: np.ndarray
+    cell_speed: np.ndarray
+    edge_limit: np.ndarray
+    edge_order: np.ndarray
+    cell_order: np.ndarray
+    target_size: np.ndarray
+    refine: np.ndarray
+    coarsen: np.ndarray
+
+    @property
+    def pmax(self) -> int:
+        return self.cell_limit.shape[1]
+
+    @property
+    def mesh_limit(self) -> np.ndarray:
+        """(pmax,) highest usable frequency of the whole mesh per order, Hz."""
+        return self.cell_limit.min(axis=0) if len(self.cell_limit) else np.zeros(self.pmax)
+
+    @property
+    def signed_off(self) -> float:
+        return float(self.mesh_limit[self.settings.allowed_order - 1])
+
+    def region_limit(self, region: np.ndarray) -> dict[int, np.ndarray]:
+        """Region tag -> (pmax,) highest usable frequency per order, Hz."""
+        out = {}
+        for tag in np.unique(region):
+            out[int(tag)] = self.cell_limit[region == tag].min(axis=0)
+        return out
+
+    @property
+    def coarsen_ratio(self) -> np.ndarray:
+        """(n_cells,) target size / current longest edge (above 1: could be coarser)."""
+        return self.target_size / self.cell_size
+
+
+def _edge_values(topo: Topology, cell_values: np.ndarray, reduce) -> np.ndarray:
+    if len(cell_values) and np.all(cell_values == cell_values[0]):
+        return np.full(len(topo.edges), cell_values[0])
+    return topo.edges.from_cells(cell_values, reduce)
+
+
+def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
+           settings: AdviceSettings = AdviceSettings(), pmax: int = 12) -> Advice:
+    """Frequency limits per edge, cell and order, and the advice at ``fmax`` (Hz).
+
+    cell_speed : (n_cells,) sound speed of the medium of every cell, m/s.
+    pmax : highest order tabulated (at least ``settings.max_order``).
+    """
+    if not fmax > 0:
+        raise SettingsError(f"upper frequency {fmax} Hz must be positive")
+    pmax = max(pmax, settings.max_order)
+    table = usable_kh(settings.target, pmax)
+    cell_speed = np.asarray(cell_speed, dtype=float)
+    if settings.distance is not None:
+        cell_L = np.full(mesh.n_cells, float(settings.distance))
+    else:
+        cell_L = topo.cell_extent()
+    h = topo.edges.length
+    edge_c = _edge_values(topo, cell_speed, np.minimum)
+    edge_L = _edge_values(topo, cell_L, np.maximum)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(h > 0, edge_L / h, np.inf)
+    n_cells = mesh.n_cells
+    cell_limit = np.empty((n_cells, pmax))
+    edge_order = np.full(len(h), pmax + 1, dtype=np.int64)
+    P = settings.allowed_order
+    edge_limit = None
+    for p in range(1, pmax + 1):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            f_e = np.where(h > 0, edge_c * table.max_kh(p, ratio) / (TWO_PI * h), 0.0)
+        f_e = np.where(np.isfinite(f_e), f_e, 0.0)
+        edge_order[(edge_order > pmax) & (f_e >= fmax)] = p
+        if p == P:
+            edge_limit = f_e
+        cell_limit[:, p - 1] = topo.edges.per_cell(f_e, np.minimum)
+    np.maximum.accumulate(cell_limit, axis=1, out=cell_limit)
+    cell_order = 1 + np.count_nonzero(cell_limit < fmax, axis=1)
+    cell_size = topo.edges.per_cell(h, np.maximum)
+    k = TWO_PI * fmax / cell_speed
+    target_size = table.max_size(P, k, cell_L)
+    refine = cell_limit[:, P - 1] < fmax
+    with np.errstate(divide="ignore", invalid="ignore"):
+        coarsen = target_size >= settings.coarsen_factor * cell_size
+    return Advice(settings, float(fmax), cell_limit, cell_size, cell_L, cell_speed,
+                  edge_limit, edge_order, cell_order, target_size, refine, coarsen)
+
+
+@dataclass(frozen=True)
+class Sweep:
+    """Advice over a list of frequencies.
+
+    frequencies : (n_f,) Hz.
+    order_counts : (n_f, pmax + 1) cells needing order p = 1..pmax, last column
+        = cells that no order up to pmax carries.
+    ready : (n_f,) bool, every cell carries the frequency at the allowed order.
+    dofs : (n_f,) int64 unknowns: variable order -> condensed hierarchical count
+        with advised orders; fixed order -> Lagrange count of that order.
+    condensed_fixed : condensed hierarchical count at the fixed order (fixed mode).
+    """
+
+    frequencies: np.ndarray
+    order_counts: np.ndarray
+    ready: np.ndarray
+    dofs: np.ndarray
+    condensed_fixed: int | None = None
+
+
+def sweep(mesh: Mesh, topo: Topology, advice: Advice, frequencies: np.ndarray) -> Sweep:
+    """Order histogram, readiness and unknowns per frequency (binning, no loop over f)."""
+    f = np.asarray(frequencies, dtype=float)
+    s = advice.settings
+    pmax = advice.pmax
+    n = advice.cell_limit.shape[0]
+    # above[p] = number of cells whose limit at order p+1 is below f
+    above = np.stack([np.searchsorted(np.sort(advice.cell_limit[:, p]), f, side="left")
+                      for p in range(pmax)], axis=1)
+    counts = np.empty((len(f), pmax + 1), dtype=np.int64)
+    counts[:, 0] = n - above[:, 0]
+    counts[:, 1:pmax] = above[:, :-1] - above[:, 1:]
+    counts[:, pmax] = above[:, -1]
+    ready = above[:, s.allowed_order - 1] == 0
+    if s.order is None:
+        dofs = variable_order_dofs(mesh, topo, advice.cell_limit, f, s.max_order)
+        return Sweep(f, counts, ready, dofs)
+    dofs = np.full(len(f), lagrange_dofs(mesh, topo, s.order), dtype=np.int64)
+    return Sweep(f, counts, ready, dofs, condensed_dofs(mesh, topo, s.order))
+
+
+@dataclass(frozen=True)
+class Cluster:
+    """A connected group of flagged cells.
+
+    cells : number of cells; volume : m^3; centroid, lo, hi : (3,) metres;
+    size : longest edge in the group, m; target : smallest target size, m;
+    factor : target / size (below 1 refine, above 1 coarsen); ids : some cell ids;
+    regions : region tags touched.
+    """
+
+    cells: int
+    volume: float
+    centroid: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    size: float
+    target: float
+    factor: float
+    ids: np.ndarray
+    regions: tuple[int, ...]
+
+
+def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
+             limit: int = 50, max_ids: int = 10) -> list[Cluster]:
+    """Group flagged cells into face-connected clusters, largest first (at most ``limit``)."""
+    ids = np.flatnonzero(mask)
+    if not len(ids):
+        return []
+    n = mesh.n_cells
+    if mesh.dim == 3:
+        inner = topo.faces.count >= 2
+        a, b = topo.faces.cells[inner, 0], topo.faces.cells[inner, 1]
+    else:
+        inc = topo.edges.incidence
+        st = topo.edges.incidence_starts
+        first = np.repeat(inc[st], np.diff(np.append(st, len(inc))))
+        a, b = first, inc
+    keep = mask[a] & mask[b]
+    g = sparse.coo_matrix((np.ones(keep.sum(), np.int8), (a[keep], b[keep])), shape=(n, n))
+    _, label = connected_components(g, directed=False)
+    lab = label[ids]
+    uniq, inv, cnt = np.unique(lab, return_inverse=True, return_counts=True)
+    vol = np.bincount(inv, weights=np.abs(topo.cell_volume[ids]))
+    cen = mesh.centroids[ids]
+    out = []
+    for j in np.argsort(-cnt)[:limit]:
+        sel = ids[inv == j]
+        size = float(advice.cell_size[sel].max())
+        target = float(advice.target_size[sel].min())
+        x = cen[inv == j]
+        w = np.abs(topo.cell_volume[sel])
+        c = (x * w[:, None]).sum(0) / w.sum() if w.sum() > 0 else x.mean(0)
+        out.append(Cluster(int(cnt[j]), float(vol[j]), c, x.min(0), x.max(0), size, target,
+                           target / size if size > 0 else np.inf, sel[:max_ids],
+                           tuple(int(t) for t in np.unique(mesh.region[sel]))))
+    return out

@@ -1,0 +1,251 @@
+"""Command-line interface: a thin typer layer over :mod:`meshcheck.pipeline`.
+
+Exit codes: 0 the mesh is ready up to the requested upper frequency,
+1 findings (not ready, or blocking defects), 2 unusable input or usage error.
+"""
+from __future__ import annotations
+
+import sys
+from enum import Enum
+from pathlib import Path
+from typing import List, Optional
+
+import click
+import numpy as np
+import typer
+from rich.console import Console
+from rich.markup import escape
+from rich.panel import Panel
+from rich.table import Table
+
+from .errors import MeshcheckError
+
+app = typer.Typer(add_completion=False, no_args_is_help=True,
+                  help="Audit a fluid-domain mesh for frequency-domain (Helmholtz) acoustics.")
+SAMPLES = Path(__file__).resolve().parent.parent / "sample_meshes"
+DEMO = {"mesh": "enclosure.msh", "units": "m", "fmin": 50.0, "fmax": 2000.0, "bands": "third-octave",
+        "target": 0.01, "max_order": 8}
+
+
+class Bands(str, Enum):
+    octave = "octave"
+    third = "third-octave"
+
+
+class Unit(str, Enum):
+    m = "m"
+    cm = "cm"
+    mm = "mm"
+    inch = "in"
+
+
+def _frequencies(fmin, fmax, step, bands, freqs) -> np.ndarray:
+    from .acoustics import band_centres, linear_range
+    from .errors import SettingsError
+
+    if freqs:
+        try:
+            out = np.array([float(x) for s in freqs for x in s.replace(";", ",").split(",") if x.strip()])
+        except ValueError:
+            raise SettingsError(f"--freqs {' '.join(freqs)}: give numbers in Hz separated by commas") from None
+        return out
+    if fmax is None:
+        raise SettingsError("give the upper frequency with --fmax (Hz), or a list with --freqs")
+    if bands is not None:
+        return band_centres(fmin if fmin else fmax, fmax, 1 if bands == Bands.octave else 3)
+    if step is not None:
+        return linear_range(fmin if fmin else step, fmax, step)
+    if fmin is not None:
+        return linear_range(fmin, fmax, (fmax - fmin) / 20 if fmax > fmin else 1.0)
+    return np.array([fmax])
+
+
+def _parse_region_speeds(items: list[str]) -> dict:
+    from .errors import SettingsError
+
+    out = {}
+    for item in items or []:
+        name, sep, value = item.rpartition("=")
+        try:
+            out[name.strip()] = float(value)
+        except ValueError:
+            name = ""
+        if not sep or not name.strip():
+            raise SettingsError(f"--region-speed '{item}': write REGION=SPEED, e.g. water=1481")
+    return out
+
+
+def _print_summary(console: Console, res, files: dict | None, data: dict) -> None:
+    from .report import CAUTION, _fmt_hz
+
+    v, asm = data["verdict"], data["assumptions"]
+    unit = data["input"]["unit"]
+    mode = (f"fixed order p = {asm['fixed_order']}" if asm["solver_mode"] == "fixed"
+            else f"variable order up to p = {asm['max_order']}")
+    style = {"ready": "bold green", "limited": "bold yellow", "blocked": "bold red"}[v["state"]]
+    if v["state"] == "blocked":
+        head = (f"BLOCKED - blocking defects; no frequency signed off "
+                f"(model limit once mended: {_fmt_hz(v['model_limit_hz'])} Hz)")
+    else:
+        head = (f"{v['state'].upper()} - signed off up to {_fmt_hz(v['signed_off_hz'])} Hz "
+                f"(requested {_fmt_hz(v['upper_frequency_hz'])} Hz)")
+    body = (f"[{style}]{head}[/]\n{mode}, target {asm['target_relative_error']:.3g} relative error, "
+            f"c = {asm['sound_speed_m_s']:.1f} m/s, unit {unit}, L = "
+            f"{asm['propagation_distance_rule']}")
+    console.print(Panel(body, title=f"meshcheck audit: {escape(Path(res.mesh.source).name)}"))
+    lc = v.get("limiting_cell")
+    if lc and v["state"] != "ready":
+        console.print(f"Limited by cell {lc['cell']} in {escape(lc['region_name'])} (longest edge "
+                      f"{lc['largest_edge']:.4g} {unit}) at "
+                      f"({', '.join(f'{x:.4g}' for x in lc['centroid'])}) {unit}")
+    t = Table(title="Highest usable frequency per order (Hz)", show_lines=False)
+    t.add_column("region")
+    orders = list(data["limits_hz"]["mesh"])
+    for p in orders:
+        t.add_column(f"p={p}", justify="right")
+    t.add_row("whole mesh", *(_fmt_hz(data["limits_hz"]["mesh"][p]) for p in orders))
+    for r in data["input"]["regions"]:
+        t.add_row(escape(r["name"]), *(_fmt_hz(r["limit_hz_per_order"][p]) for p in orders))
+    console.print(t)
+    for f in data["findings"]:
+        colour = {"blocking": "red", "warning": "yellow"}.get(f["severity"], "dim")
+        ids = ", ".join(str(i) for i in f["ids"][:8])
+        console.print(f"[{colour}]{f['severity']}[/]: {escape(f['message'])}: {f['count']} "
+                      f"({f['id_kind']} ids {ids}{'...' if f['count'] > 8 else ''})")
+    q = data["quality"]
+    bad = {k: x["out_of_range"] for k, x in q.items() if x["out_of_range"]}
+    if bad:
+        console.print("quality outside acceptable range: " +
+                      ", ".join(f"{k} {n}" for k, n in bad.items()))
+    sw = data["sweep"]
+    nf = len(sw["frequencies_hz"])
+    n_ready = sum(sw["ready"])
+    console.print(f"sweep: {nf} frequencies, {n_ready} carried at the allowed order; unknowns "
+                  f"{sw['dofs'][0]:,} .. {sw['dofs'][-1]:,} ({sw['dofs_kind']})")
+    console.print(f"refine: {sum(c['cells'] for c in data['refine'])} cells in "
+                  f"{len(data['refine'])} groups; could be coarser (x"
+                  f"{res.settings.advice.coarsen_factor:g} or more): "
+                  f"{sum(c['cells'] for c in data['coarsen'])} cells")
+    if files:
+        for kind, p in files.items():
+            console.print(f"wrote {kind}: {escape(str(p))}")
+    console.print(f"[dim]{CAUTION}[/]")
+
+
+class _Quiet:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+    def update(self, *args, **kwargs):
+        pass
+
+
+def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, max_order,
+         speed, temperature, region_speed, distance, out: Optional[Path], quiet: bool) -> int:
+    from .advice import AdviceSettings
+    from .pipeline import AuditSettings, audit
+    from .reading import read_mesh
+    from .report import to_dict, write_json, write_markdown, write_vtu
+    from .units import UNIT_FACTORS
+
+    console = Console(stderr=False, highlight=False, soft_wrap=True)
+    f = _frequencies(fmin, fmax, step, bands, freqs)
+    region_speeds = _parse_region_speeds(region_speed)
+    with console.status("reading", spinner="line") if not quiet else _Quiet() as status:
+        mesh = read_mesh(mesh_path, units.value if units is not None else None)
+        dist = None if distance is None else distance * UNIT_FACTORS[mesh.unit]
+        adv = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist)
+        settings = AuditSettings(frequencies=tuple(f), advice=adv, temperature=temperature,
+                                 speed=speed, region_speeds=region_speeds)
+        res = audit(mesh, settings, progress=lambda s: status.update(f"{s} ..."))
+    data = to_dict(res)
+    files = None
+    if out is not None:
+        out.mkdir(parents=True, exist_ok=True)
+        stem = mesh_path.stem
+        files = {"json": write_json(res, out / f"{stem}.audit.json", data),
+                 "markdown": write_markdown(res, out / f"{stem}.audit.md", data),
+                 "vtu": write_vtu(res, out / f"{stem}.audit.vtu")}
+    if not quiet:
+        _print_summary(console, res, files, data)
+    return 0 if res.ready else 1
+
+
+MESH_ARG = typer.Argument(..., help="Volume mesh file (.msh, .vtu, .vtk, .bdf/.nas, .inp, ...).",
+                          exists=False, dir_okay=False)
+
+
+@app.command()
+def audit(
+    mesh: Path = MESH_ARG,
+    units: Optional[Unit] = typer.Option(None, "--units", "-u", help="Length unit of the file; "
+                                         "required when the domain size leaves it ambiguous."),
+    fmax: Optional[float] = typer.Option(None, help="Upper frequency of the sweep, Hz."),
+    fmin: Optional[float] = typer.Option(None, help="Lower frequency, Hz."),
+    step: Optional[float] = typer.Option(None, help="Linear step from fmin to fmax, Hz."),
+    bands: Optional[Bands] = typer.Option(None, help="Band centres from fmin to fmax (ISO 266)."),
+    freqs: Optional[List[str]] = typer.Option(None, help="Explicit frequencies, Hz, comma separated."),
+    target: float = typer.Option(0.01, help="Allowed relative error (0.01 = 1 %)."),
+    order: Optional[int] = typer.Option(None, help="Fixed element order of the solver (1, 2, ...)."),
+    max_order: int = typer.Option(8, help="Highest order of a variable-order solver."),
+    speed: Optional[float] = typer.Option(None, help="Sound speed, m/s (default: air)."),
+    temperature: float = typer.Option(20.0, help="Air temperature, deg C."),
+    region_speed: Optional[List[str]] = typer.Option(None, help="REGION=SPEED in m/s, repeatable."),
+    distance: Optional[float] = typer.Option(None, help="Propagation distance L in the mesh's unit "
+                                             "(default: diagonal of each fluid part)."),
+    out: Optional[Path] = typer.Option(None, help="Folder for the JSON, Markdown and VTU reports "
+                                       "(default: <mesh name>-audit next to the working folder)."),
+    quiet: bool = typer.Option(False, help="No terminal summary (exit code only)."),
+    debug: bool = typer.Option(False, help="Show tracebacks."),
+):
+    """Audit MESH: validity, quality, usable frequency per order, refine/coarsen advice."""
+    out = out if out is not None else Path.cwd() / f"{mesh.stem}-audit"
+    raise typer.Exit(_run(mesh, units, fmin, fmax, step, bands, freqs, target, order, max_order,
+                          speed, temperature, region_speed, distance, out, quiet))
+
+
+@app.command()
+def demo(out: Path = typer.Option(Path("meshcheck-demo"), help="Folder for the reports."),
+         quiet: bool = typer.Option(False, help="No terminal summary."),
+         debug: bool = typer.Option(False, help="Show tracebacks.")):
+    """Audit the bundled enclosure mesh (third-octave bands 50 Hz - 2 kHz, 1 %, p <= 8)."""
+    mesh = SAMPLES / DEMO["mesh"]
+    code = _run(mesh, Unit(DEMO["units"]), DEMO["fmin"], DEMO["fmax"], None, Bands.third, None,
+                DEMO["target"], None, DEMO["max_order"], None, 20.0, None, None, out, quiet)
+    raise typer.Exit(code)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point; returns the exit code (tests call it in-process)."""
+    args = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in args
+    err = Console(stderr=True, highlight=False, soft_wrap=True)
+    try:
+        rc = app(args=args, prog_name="meshcheck", standalone_mode=False)
+        return rc if isinstance(rc, int) else 0
+    except typer.Exit as exc:
+        return exc.exit_code
+    except click.exceptions.Exit as exc:
+        return exc.exit_code
+    except click.ClickException as exc:
+        err.print(f"meshcheck: {escape(exc.format_message())}")
+        return 2
+    except click.exceptions.Abort:
+        return 2
+    except MeshcheckError as exc:
+        if debug:
+            raise
+        err.print(f"meshcheck: error: {escape(str(exc))}")
+        return 2
+    except (OSError, MemoryError) as exc:
+        if debug:
+            raise
+        err.print(f"meshcheck: error: {escape(str(exc))}")
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,470 @@
+"""1D Helmholtz discrete dispersion and the error model behind the advice.
+
+Everything is a function of the dimensionless wavenumber ``t = k*h`` (k the
+wavenumber in rad/m, h the element size in m) and the polynomial order p.
+
+Discrete dispersion
+-------------------
+On a uniform 1D mesh of elements of order p, assemble the element matrices of
+``-u'' - k^2 u`` on the reference element [0, 1] (h = 1),
+``D(t) = K - t^2 M``, eliminate the p - 1 interior (bubble) unknowns
+(static condensation) to a 2x2 matrix S, and put the Bloch wave
+``u_j = exp(i k_h j h)`` through the assembled chain
+``S01 u_{j-1} + 2 S00 u_j + S01 u_{j+1} = 0``::
+
+    cos(k_h h) = R(t) = -S00 / S01
+
+(Ihlenburg & Babuska, Comput. Math. Appl. 30 (1995); SIAM J. Numer. Anal. 34
+(1997); Ainsworth, SIAM J. Numer. Anal. 42(2) (2004) 553-575, doi:10.1137/
+S0036142903423460).  R does not depend on the basis.
+
+Reference element and basis (hierarchical, integrated Legendre / Lobatto)::
+
+    xi in [0, 1],   x = 2 xi - 1 in [-1, 1]
+    N0 = 1 - xi,  N1 = xi                        (vertex functions)
+    phi_n = (P_n(x) - P_{n-2}(x)) / sqrt(2(2n-1)),   n = 2..p   (bubbles)
+
+Since ``phi_n' = sqrt((2n-1)/2) P_{n-1}(x)``, Legendre orthogonality gives the
+stiffness matrix exactly: ``K_vv = [[1, -1], [-1, 1]]``, ``K_vb = 0``,
+``K_bb = 2 I``.  The consistent mass M is integrated with p + 1 Gauss-Legendre
+points (exact for degree 2p).
+
+Interior resonances.  ``D_bb(t)`` is singular where t^2 equals an eigenvalue
+mu_i of the bubble problem ``K_bb v = mu M_bb v`` (the element clamped at
+both ends).  With the M-orthonormal eigenvectors V,
+``S = D_vv - t^4 sum_i (M_vb v_i)(M_vb v_i)^T / (mu_i - t^2)``.  The pole is
+removable in R (each mode is symmetric or antisymmetric, so R -> +-1 there).
+R is evaluated after multiplying S00 and S01 by ``(mu_j - t^2)`` for the
+nearest eigenvalue mu_j, so it is finite and correct at and near every
+resonance; no NaN is produced there.  ``R = +-inf`` only where S01 itself
+vanishes (a genuine pole of R: infinite attenuation), NaN only for NaN input.
+The differences ``1 - R`` and ``1 + R`` are formed from the condensed
+quantities directly (no cancellation), so k_h h is accurate down to t ~ 1e-8.
+
+Physical branch
+---------------
+``k_h h`` is taken on the branch closest to t: ``2 pi m +- arccos(R)`` in
+pass bands; in stop bands (|R| > 1, Thompson & Pinsky, Comput. Mech. 13
+(1994)) ``m pi + i acosh|R|`` with m even for R > 1, odd for R < -1, nearest
+to t / pi.  The imaginary part (attenuation per element) counts as error.
+
+Error model
+-----------
+* Best approximation of ``exp(i k x)`` on one element by degree-p polynomials,
+  relative L2: with a = t / 2, the plane-wave (Rayleigh) expansion
+  ``exp(i a x) = sum_n (2n+1) i^n j_n(a) P_n(x)`` (Abramowitz & Stegun 10.1.47;
+  DLMF 10.60.7) and Legendre orthogonality give
+  ``e_best = sqrt(sum_{n>p} (2n+1) j_n(a)^2)``.
+* Phase error carried over a propagation distance L: RMS over x in [0, L] of
+  ``|1 - exp(i (k_h - k) x)|`` with complex k_h (closed form below).
+* ``predicted_error = e_best + e_phase``: the structure
+  ``C1 (kh/2p)^p + C2 kL (kh/2p)^(2p)`` of the pollution estimate
+  (Ihlenburg & Babuska 1997).  Assumptions: a single plane wave along a row
+  of equal elements, no boundary reflections, the error of the two parts
+  adds, direction effects in 2D/3D are not included.
+
+Units: t, k_h h and kL are dimensionless (radians); errors are relative.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import lru_cache
+
+import numpy as np
+import scipy.linalg
+from numpy.polynomial import legendre as _leg
+from scipy.special import spherical_jn
+
+from .errors import MeshcheckError, SettingsError
+
+__all__ = [
+    "P_MAX",
+    "cos_kh",
+    "discrete_kh",
+    "phase_error",
+    "best_approximation_error",
+    "phase_rms_error",
+    "predicted_error",
+    "elements_per_wavelength",
+    "element_matrices",
+    "UsableKh",
+    "usable_kh",
+]
+
+P_MAX = 32
+"""Highest polynomial order supported."""
+
+_CHUNK = 1 << 15  # t values per block in the batched evaluations
+_TAIL_TERMS = 40  # terms of the Legendre tail in best_approximation_error
+_TWO_PI = 2.0 * np.pi
+
+
+# ---------------------------------------------------------------- validation
+def _order(p) -> int:
+    if isinstance(p, bool) or not isinstance(p, (int, np.integer)):
+        raise SettingsError(f"polynomial order must be an integer, got {p!r}")
+    p = int(p)
+    if not 1 <= p <= P_MAX:
+        raise SettingsError(f"polynomial order {p} is outside 1..{P_MAX}")
+    return p
+
+
+def _kh(t) -> np.ndarray:
+    t = np.asarray(t, dtype=np.float64)
+    if np.any(t < 0) or np.any(np.isinf(t)):
+        raise SettingsError("kh must be finite and >= 0")
+    return t
+
+
+# ---------------------------------------------------------- element matrices
+@lru_cache(maxsize=None)
+def element_matrices(p: int) -> tuple[np.ndarray, np.ndarray]:
+    """Stiffness K and consistent mass M of order p on [0, 1] (h = 1).
+
+    Hierarchical basis, dof order [N0, N1, phi_2, ..., phi_p] (see the module
+    docstring).  Returns two read-only (p+1, p+1) float64 arrays.
+    """
+    p = _order(p)
+    x, w = _leg.leggauss(p + 1)  # exact for degree 2p + 1 on [-1, 1]
+    xi = 0.5 * (x + 1.0)
+    phi = np.empty((p + 1, x.size))
+    phi[0], phi[1] = 1.0 - xi, xi
+    for n in range(2, p + 1):
+        c = np.zeros(n + 1)
+        c[n], c[n - 2] = 1.0, -1.0
+        phi[n] = _leg.legval(x, c) / np.sqrt(2.0 * (2 * n - 1))
+    M = (phi * (0.5 * w)) @ phi.T  # d xi = dx / 2
+    M = 0.5 * (M + M.T)
+    K = np.zeros((p + 1, p + 1))
+    K[:2, :2] = [[1.0, -1.0], [-1.0, 1.0]]
+    K[2:, 2:] = 2.0 * np.eye(p - 1)
+    K.setflags(write=False)
+    M.setflags(write=False)
+    return K, M
+
+
+@lru_cache(maxsize=None)
+def _condensed(p: int):
+    """Modal data of the static condensation.
+
+    Returns (m00, m01, mu, b0, b1): vertex masses M00, M01; the (p-1,)
+    eigenvalues mu of ``K_bb v = mu M_bb v``; the couplings ``b0 = M_0b V``,
+    ``b1 = M_1b V`` with V M-orthonormal.
+    """
+    K, M = element_matrices(p)
+    if p == 1:
+        z = np.zeros(0)
+        return M[0, 0], M[0, 1], z, z, z
+    mu, V = scipy.linalg.eigh(K[2:, 2:], M[2:, 2:])
+    return M[0, 0], M[0, 1], mu, M[0, 2:] @ V, M[1, 2:] @ V
+
+
+def _parts(t: np.ndarray, p: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(R, 1 - R, 1 + R) for float64 t >= 0 of any shape."""
+    m00, m01, mu, b0, b1 = _condensed(p)
+    flat = t.reshape(-1)
+    R = np.empty_like(flat)
+    q = np.empty_like(flat)
+    g = np.empty_like(flat)
+    B = np.stack([b0 * b0, b0 * b1, b0 * (b0 + b1), b0 * (b1 - b0)], axis=1)  # (p-1, 4)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        for a in range(0, flat.size, _CHUNK):
+            s = flat[a:a + _CHUNK] ** 2
+            if mu.size:
+                dist = mu[None, :] - s[:, None]
+                rows = np.arange(s.size)
+                j = np.argmin(np.abs(dist), axis=1)
+                dj = dist[rows, j]
+                wts = dj[:, None] / dist
+                wts[rows, j] = 1.0
+                sums = (wts @ B) * (s * s)[:, None]
+            else:
+                dj = np.ones_like(s)
+                sums = np.zeros((s.size, 4))
+            num = dj * (1.0 - s * m00) - sums[:, 0]  # K00 = 1
+            den = dj * (-1.0 - s * m01) - sums[:, 1]  # K01 = -1
+            plus = -dj * s * (m00 + m01) - sums[:, 2]  # num + den (K00 + K01 = 0)
+            minus = dj * (-2.0 - s * (m01 - m00)) - sums[:, 3]  # den - num
+            R[a:a + _CHUNK] = -num / den
+            q[a:a + _CHUNK] = plus / den
+            g[a:a + _CHUNK] = minus / den
+    return R.reshape(t.shape), q.reshape(t.shape), g.reshape(t.shape)
+
+
+# ------------------------------------------------------------------- public
+def cos_kh(t, p: int) -> np.ndarray:
+    """Discrete dispersion relation ``cos(k_h h)`` of order-p elements.
+
+    t : array_like, kh >= 0 (dimensionless).  p : order, 1..P_MAX.
+    Returns float64 array of t's shape.  Finite at interior resonances
+    (removable singularity, see module docstring); +-inf only at a pole of
+    R (S01 = 0), NaN only for NaN input.
+    """
+    return _parts(_kh(t), _order(p))[0]
+
+
+def discrete_kh(t, p: int) -> np.ndarray:
+    """Discrete wavenumber ``k_h h`` on the physical branch, complex128.
+
+    Pass band: the value of ``2 pi m +- arccos(R)`` closest to t.  Stop band
+    (|R| > 1): ``m pi + i acosh|R|``, m of the parity of sign(R), nearest to
+    t / pi; the imaginary part (>= 0) is the attenuation per element.
+    """
+    t = _kh(t)
+    R, q, g = _parts(t, _order(p))
+    out = np.full(t.shape, np.nan + 0j)
+    with np.errstate(invalid="ignore", over="ignore"):
+        pas = (q >= 0) & (g >= 0)
+        # arccos(R) without cancellation near R = +-1
+        theta = np.where(R >= 0, 2.0 * np.arcsin(np.sqrt(np.clip(q, 0, 2) / 2)),
+                         np.pi - 2.0 * np.arcsin(np.sqrt(np.clip(g, 0, 2) / 2)))
+        best = None
+        for c in (theta, -theta):
+            cand = _TWO_PI * np.round((t - c) / _TWO_PI) + c
+            best = cand if best is None else np.where(np.abs(cand - t) < np.abs(best - t), cand, best)
+        out[pas] = best[pas]
+        hi = q < 0  # R > 1
+        lo = g < 0  # R < -1
+        x = -np.where(hi, q, g)
+        att = np.log1p(x + np.sqrt(x * x + 2.0 * x))  # acosh(1 + x)
+        m_even = 2.0 * np.round(t / _TWO_PI)
+        m_odd = 2.0 * np.round((t / np.pi - 1.0) / 2.0) + 1.0
+        re = np.pi * np.where(hi, m_even, m_odd)
+        stop = hi | lo
+        out.real[stop] = re[stop]
+        out.imag[stop] = att[stop]
+    return out
+
+
+def phase_error(t, p: int) -> np.ndarray:
+    """Relative phase error ``|k_h - k| / k = |k_h h - t| / t``, float64.
+
+    Attenuation (Im k_h h) counts as error.  0 at t = 0 (the limit).
+    """
+    t = _kh(t)
+    d = np.abs(discrete_kh(t, p) - t)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(t > 0, d / np.where(t > 0, t, 1.0), 0.0)
+
+
+def best_approximation_error(t, p: int) -> np.ndarray:
+    """Relative L2 error of the best degree-p approximation of exp(i k x) on one element.
+
+    ``sqrt(sum_{n>p} (2n+1) j_n(t/2)^2)`` (plane-wave expansion, A&S 10.1.47 /
+    DLMF 10.60.7).  The tail is summed directly (40 terms); where the tail
+    exceeds 1e-3 it is taken as ``1 - head`` (no cancellation there, and
+    exact for any t by ``sum_n (2n+1) j_n^2 = 1``, DLMF 10.60.12).
+    float64 array of t's shape.
+    """
+    t = _kh(t)
+    p = _order(p)
+    a = 0.5 * t.reshape(-1)
+    out = np.empty_like(a)
+    n_head = np.arange(p + 1)
+    n_tail = np.arange(p + 1, p + 1 + _TAIL_TERMS)
+    for s in range(0, a.size, _CHUNK):
+        x = a[s:s + _CHUNK, None]
+        head = ((2 * n_head + 1) * spherical_jn(n_head, x) ** 2).sum(axis=1)
+        tail = ((2 * n_tail + 1) * spherical_jn(n_tail, x) ** 2).sum(axis=1)
+        rest = 1.0 - head
+        out[s:s + _CHUNK] = np.sqrt(np.clip(np.where(rest > 1e-3, rest, tail), 0.0, 1.0))
+    return out.reshape(t.shape)
+
+
+def _mean_abs2(z: np.ndarray) -> np.ndarray:
+    """``int_0^1 |1 - exp(i z u)|^2 du`` for complex z with Im z >= 0.
+
+    Closed form ``1 - 2 Re E(iz) + E(-2 Im z)`` with ``E(v) = (e^v - 1)/v``;
+    for |z| < 0.5 the series ``sum_{n>=2} [(-2b)^n - 2 Re (iz)^n] / (n+1)!``
+    (b = Im z), which has no cancellation.  Infinite Im z gives 1.
+    """
+    z = np.asarray(z, dtype=np.complex128)
+    out = np.empty(z.shape)
+    b = z.imag
+    small = np.abs(z) < 0.5
+    inf = np.isinf(b)
+    big = ~small & ~inf
+    # series
+    zs, bs = z[small], b[small]
+    iz = 1j * zs
+    pw_b = -2.0 * bs
+    term_b = pw_b * pw_b
+    term_z = iz * iz
+    acc = np.zeros(zs.shape)
+    fact = 6.0  # (n + 1)! for n = 2
+    for n in range(2, 24):
+        acc += (term_b - 2.0 * term_z.real) / fact
+        term_b = term_b * pw_b
+        term_z = term_z * iz
+        fact *= n + 2
+    out[small] = acc
+    # closed form
+    zb, bb = z[big], b[big]
+    e_iz = np.expm1(1j * zb) / (1j * zb)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        e_b = np.where(bb > 0, -np.expm1(-2.0 * bb) / np.where(bb > 0, 2.0 * bb, 1.0), 1.0)
+    out[big] = 1.0 - 2.0 * e_iz.real + e_b
+    out[inf] = 1.0
+    out[np.isnan(z.real) | np.isnan(b)] = np.nan
+    return np.clip(out, 0.0, None)
+
+
+def phase_rms_error(t, p: int, kL) -> np.ndarray:
+    """RMS over x in [0, L] of ``|1 - exp(i (k_h - k) x)|`` (relative), float64.
+
+    t = kh, kL = k*L (broadcast together).  With z = (k_h h - kh) L / h and
+    b = Im z: ``mean = 1 - 2 Re[(e^{iz} - 1)/(iz)] + (1 - e^{-2b})/(2b)``.
+    """
+    t = _kh(t)
+    kL = np.asarray(kL, dtype=np.float64)
+    if np.any(kL < 0):
+        raise SettingsError("kL must be >= 0")
+    t, kL = np.broadcast_arrays(t, kL)
+    dk = discrete_kh(t, p) - t
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.where(t > 0, kL / np.where(t > 0, t, 1.0), 0.0)  # L / h
+        z = np.where(ratio > 0, dk * ratio, 0.0)
+        z = np.where(np.isinf(dk.imag) & (ratio > 0), complex(0, np.inf), z)
+    return np.sqrt(_mean_abs2(z))
+
+
+def predicted_error(t, p: int, kL) -> np.ndarray:
+    """Predicted relative L2 error of a plane wave over a distance L, float64.
+
+    ``best_approximation_error(t, p) + phase_rms_error(t, p, kL)``; t = kh,
+    kL = k*L, broadcast together.  See the module docstring for the model.
+    """
+    t = _kh(t)
+    return best_approximation_error(t, p) + phase_rms_error(t, p, kL)
+
+
+def elements_per_wavelength(t) -> np.ndarray:
+    """Elements per wavelength ``2 pi / (kh)`` (float64, inf at t = 0)."""
+    t = _kh(t)
+    with np.errstate(divide="ignore"):
+        return _TWO_PI / t
+
+
+# ----------------------------------------------------------- usable-kh table
+_R_MAX = 1.0e7
+_N_R = 400
+_N_T = 600
+_T_LO = 1.0e-5  # scan starts at t_best * _T_LO
+_BISECT = 16  # halvings of a grid step (ratio 1.0194 -> < 1e-6 relative)
+
+
+@dataclass(frozen=True)
+class UsableKh:
+    """Largest usable kh per order and L/h ratio for one accuracy target.
+
+    target : relative L2 error target tau (float, 0 < tau < 1).
+    pmax : highest order in the table.
+    log_r : (n_r,) float64, ln(L/h) on a uniform grid from 0 (r = 1) to ln 1e7.
+    t_max : (pmax, n_r) float64; ``t_max[p-1, i]`` is the largest t with
+        ``predicted_error(t', p, t' * r_i) <= tau`` for all t' <= t
+        (first crossing, conservative to ~1e-6 relative).
+    """
+
+    target: float
+    pmax: int
+    log_r: np.ndarray = field(repr=False)
+    t_max: np.ndarray = field(repr=False)
+
+    def _row(self, p) -> np.ndarray:
+        p = _order(p)
+        if p > self.pmax:
+            raise SettingsError(f"order {p} is above the table's pmax {self.pmax}")
+        return self.t_max[p - 1]
+
+    def max_kh(self, p: int, ratio) -> np.ndarray:
+        """Largest usable kh for order p at ratio = L/h (array_like, > 0).
+
+        Linear interpolation of t_max in ln r (error < 3e-5 relative).
+        Ratios below 1 are treated as 1 (conservative: the phase error of one
+        element is included at least); ratios above r_max = 1e7 as r_max
+        (optimistic by at most (r / r_max)^(1/(2p+1)); no 3D mesh has 1e7
+        elements along one line).  NaN gives NaN.  float64, ratio's shape.
+        """
+        row = self._row(p)
+        ratio = np.asarray(ratio, dtype=np.float64)
+        if np.any(ratio <= 0):
+            raise SettingsError("L/h ratios must be > 0")
+        return np.interp(np.log(ratio), self.log_r, row)
+
+    def max_size(self, p: int, k, L) -> np.ndarray:
+        """Largest element size h (m) meeting the target for order p.
+
+        k : wavenumber (rad/m), L : propagation distance (m); array_like > 0,
+        broadcast together.  Solves ``k L = u(r) = r t_max(r)`` for r = L/h
+        (u increases with r) by interpolation of ln r in ln u; h = L / r.
+        When kL <= t_max(1) one element suffices and h = L; beyond r_max the
+        last grid segment is extrapolated in log-log.  float64.
+        """
+        row = self._row(p)
+        k, L = np.broadcast_arrays(np.asarray(k, np.float64), np.asarray(L, np.float64))
+        if np.any(k <= 0) or np.any(L <= 0):
+            raise SettingsError("k and L must be > 0")
+        log_u = self.log_r + np.log(row)
+        x = np.log(k * L)
+        log_r = np.interp(x, log_u, self.log_r, left=0.0)
+        slope = (self.log_r[-1] - self.log_r[-2]) / (log_u[-1] - log_u[-2])
+        log_r = np.where(x > log_u[-1], self.log_r[-1] + slope * (x - log_u[-1]), log_r)
+        return L * np.exp(-log_r)
+
+
+def usable_kh(target: float, pmax: int = 12) -> UsableKh:
+    """Build (cached) the usable-kh table for a relative L2 error target.
+
+    target : 0 < target < 1.  pmax : 1..P_MAX.
+    """
+    target = float(target)
+    if not 0.0 < target < 1.0:
+        raise SettingsError(f"error target must be in (0, 1), got {target}")
+    return _build_usable(target, _order(pmax))
+
+
+def _t_best(tau: float, p: int) -> float:
+    """Smallest t > 0 with best_approximation_error(t, p) >= tau (bisection)."""
+    lo, hi = 0.0, 1.0
+    while best_approximation_error(hi, p) < tau:
+        lo, hi = hi, 2.0 * hi
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        if best_approximation_error(mid, p) < tau:
+            lo = mid
+        else:
+            hi = mid
+    return hi
+
+
+@lru_cache(maxsize=16)
+def _build_usable(tau: float, pmax: int) -> UsableKh:
+    log_r = np.linspace(0.0, np.log(_R_MAX), _N_R)
+    r = np.exp(log_r)
+    t_max = np.empty((pmax, _N_R))
+    for p in range(1, pmax + 1):
+        t_hi = _t_best(tau, p) * (1.0 + 1e-9)
+        t = np.geomspace(t_hi * _T_LO, t_hi, _N_T)
+        best = best_approximation_error(t, p)
+        dk = discrete_kh(t, p) - t
+        err = best[None, :] + np.sqrt(_mean_abs2(dk[None, :] * r[:, None]))  # (n_r, n_t)
+        over = err > tau
+        if np.any(over[:, 0]):
+            raise MeshcheckError(f"usable-kh scan for p={p}, target {tau} starts above the target")
+        if not np.all(over[:, -1]):
+            raise MeshcheckError(f"usable-kh scan for p={p}, target {tau} ends below the target")
+        i = np.argmax(over, axis=1)  # first grid point above the target
+        lo, hi = t[i - 1], t[i]
+        for _ in range(_BISECT):
+            mid = np.sqrt(lo * hi)
+            e = predicted_error(mid, p, mid * r)
+            ok = e <= tau
+            lo = np.where(ok, mid, lo)
+            hi = np.where(ok, hi, mid)
+        t_max[p - 1] = lo
+    log_u = log_r[None, :] + np.log(t_max)
+    if not np.all(np.diff(log_u, axis=1) > 0):
+        raise MeshcheckError("internal: r * t_max(r) is not increasing; max_size cannot be inverted")
+    log_r.setflags(write=False)
+    t_max.setflags(write=False)
+    return UsableKh(target=tau, pmax=pmax, log_r=log_r, t_max=t_max)

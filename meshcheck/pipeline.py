@@ -1,0 +1,162 @@
+"""The audit: read -> topology -> validity -> quality -> advice -> sweep.
+
+A notebook calls :func:`audit_file` (or :func:`audit` on a Mesh it already
+holds) and gets an :class:`AuditResult`; the CLI is a thin layer over this.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from .acoustics import air_speed
+from .advice import Advice, AdviceSettings, Cluster, Sweep, advise, clusters, sweep
+from .errors import SettingsError
+from .mesh import Mesh
+from .quality import CellQuality, QualityLimits, mesh_quality, out_of_range
+from .reading import read_mesh
+from .topology import Topology, build_topology
+from .validity import BLOCKING, Finding, ValiditySettings, check_validity, min_scaled_jacobian
+
+__all__ = ["AuditSettings", "AuditResult", "audit", "audit_file", "cell_speeds"]
+
+
+@dataclass(frozen=True)
+class AuditSettings:
+    """Everything an audit depends on, in SI units.
+
+    frequencies : sweep frequencies, Hz (sorted, the last is the upper frequency).
+    advice : accuracy target, solver order mode, propagation distance.
+    temperature : air temperature, deg C (sets the default sound speed).
+    speed : sound speed for every region, m/s (overrides the temperature).
+    region_speeds : region tag or name -> sound speed, m/s (overrides ``speed``).
+    quality : acceptable ranges of the quality metrics.
+    validity : thresholds of the validity checks.
+    """
+
+    frequencies: tuple[float, ...]
+    advice: AdviceSettings = AdviceSettings()
+    temperature: float = 20.0
+    speed: float | None = None
+    region_speeds: dict = field(default_factory=dict)
+    quality: QualityLimits = QualityLimits()
+    validity: ValiditySettings = ValiditySettings()
+
+    def __post_init__(self):
+        f = np.sort(np.asarray(self.frequencies, dtype=float).ravel())
+        if not len(f) or not np.all(np.isfinite(f)) or f[0] <= 0:
+            raise SettingsError("give at least one positive frequency (e.g. --fmax 1000)")
+        object.__setattr__(self, "frequencies", tuple(float(x) for x in np.unique(f)))
+        if self.speed is not None and not self.speed > 0:
+            raise SettingsError(f"sound speed {self.speed} m/s must be positive")
+        for k, v in self.region_speeds.items():
+            if not float(v) > 0:
+                raise SettingsError(f"sound speed {v} m/s of region {k} must be positive")
+
+    @property
+    def fmax(self) -> float:
+        return self.frequencies[-1]
+
+    @property
+    def default_speed(self) -> float:
+        return self.speed if self.speed is not None else air_speed(self.temperature)
+
+
+def cell_speeds(mesh: Mesh, settings: AuditSettings) -> np.ndarray:
+    """(n_cells,) sound speed of every cell, m/s."""
+    c = np.full(mesh.n_cells, settings.default_speed)
+    by_name = {v.lower(): k for k, v in mesh.region_names.items()}
+    tags = set(np.unique(mesh.region).tolist())
+    for key, value in settings.region_speeds.items():
+        tag = key
+        if isinstance(key, str):
+            tag = int(key) if key.lstrip("-").isdigit() else by_name.get(key.lower())
+        if tag is None or tag not in tags:
+            known = ", ".join(sorted(f"{t} ({mesh.region_name(t)})" for t in tags))
+            raise SettingsError(f"{mesh.source}: no region '{key}' in the mesh; regions: {known}")
+        c[mesh.region == tag] = float(value)
+    return c
+
+
+@dataclass(frozen=True)
+class AuditResult:
+    """Everything the audit measured and advises.
+
+    blocking : True when a validity finding makes any solve on the mesh wrong.
+    ready : no blocking finding and every cell carries the upper frequency at the
+        allowed order.
+    timings : stage -> seconds.
+    """
+
+    mesh: Mesh
+    settings: AuditSettings
+    topology: Topology
+    min_scaled_jacobian: np.ndarray
+    findings: list[Finding]
+    quality: CellQuality
+    quality_flags: dict[str, np.ndarray]
+    advice: Advice
+    sweep: Sweep
+    refine_clusters: list[Cluster]
+    coarsen_clusters: list[Cluster]
+    timings: dict[str, float]
+
+    @property
+    def blocking(self) -> bool:
+        return any(f.severity == BLOCKING for f in self.findings)
+
+    @property
+    def signed_off(self) -> float:
+        """Highest frequency the mesh carries at the allowed order, Hz (0 if blocked)."""
+        return 0.0 if self.blocking else self.advice.signed_off
+
+    @property
+    def ready(self) -> bool:
+        return (not self.blocking) and self.advice.signed_off >= self.settings.fmax
+
+
+def audit(mesh: Mesh, settings: AuditSettings,
+          progress: Callable[[str], None] | None = None) -> AuditResult:
+    """Audit a mesh already in memory (SI units)."""
+    say = progress or (lambda stage: None)
+    t: dict[str, float] = {}
+
+    def stage(name):
+        say(name)
+        t[name] = time.perf_counter()
+
+    def done(name):
+        t[name] = time.perf_counter() - t[name]
+
+    stage("topology"); topo = build_topology(mesh); done("topology")
+    stage("validity")
+    sj = min_scaled_jacobian(mesh)
+    findings = check_validity(mesh, topo, sj, settings.validity)
+    done("validity")
+    stage("quality")
+    q = mesh_quality(mesh)
+    flags = out_of_range(q, mesh, settings.quality)
+    done("quality")
+    stage("advice")
+    adv = advise(mesh, topo, cell_speeds(mesh, settings), settings.fmax, settings.advice)
+    sw = sweep(mesh, topo, adv, np.asarray(settings.frequencies))
+    ref = clusters(mesh, topo, adv, adv.refine)
+    coa = clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)
+    done("advice")
+    return AuditResult(mesh, settings, topo, sj, findings, q, flags, adv, sw, ref, coa, t)
+
+
+def audit_file(path: str | Path, settings: AuditSettings, units: str | None = None,
+               progress: Callable[[str], None] | None = None) -> AuditResult:
+    """Read a mesh file and audit it; ``units`` as in :func:`meshcheck.reading.read_mesh`."""
+    if progress:
+        progress("read")
+    t0 = time.perf_counter()
+    mesh = read_mesh(path, units)
+    t_read = time.perf_counter() - t0
+    res = audit(mesh, settings, progress)
+    res.timings["read"] = t_read
+    return res

@@ -1,0 +1,322 @@
+"""Audit reports: a JSON document (schema in docs/report-schema.md), a
+Markdown report and a VTU file with per-cell results.
+
+Everything is built from an :class:`~meshcheck.audit.AuditResult`; lengths
+are given in the user's unit at this edge (``*_m`` keys are metres).
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .acoustics import nominal_frequency
+from .pipeline import AuditResult
+from .units import UNIT_FACTORS
+
+__all__ = ["SCHEMA", "SCHEMA_VERSION", "CAUTION", "to_dict", "write_json", "write_markdown",
+           "write_vtu", "write_all", "state", "METRIC_BAD"]
+
+SCHEMA = "meshcheck-audit"
+SCHEMA_VERSION = 1
+CAUTION = ("This is engineering advice from a 1D dispersion model applied edge by edge; "
+           "confirm it with a convergence check (solve again on a refined mesh or at a higher "
+           "order) before relying on the results. It does not replace the analyst's judgement.")
+MODEL = ("Exact 1D discrete dispersion relation of order-p elements (Ihlenburg & Babuska "
+         "1995/1997; Ainsworth 2004) plus the best-approximation error, applied to every edge "
+         "with a plane wave carried over the propagation distance L; a cell takes the limit "
+         "of its worst edge.")
+#: direction in which a quality metric gets worse
+METRIC_BAD = {"edge_ratio": "high", "aspect_ratio": "high", "radius_ratio": "high",
+              "scaled_jacobian": "low", "min_dihedral": "low", "max_dihedral": "high",
+              "skew": "high", "min_angle": "low"}
+
+
+def state(res: AuditResult) -> str:
+    """"blocked" (blocking defects), "ready" (carries the upper frequency) or "limited"."""
+    if res.blocking:
+        return "blocked"
+    return "ready" if res.ready else "limited"
+
+
+def _f(x) -> float | None:
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+def _sha256(path: str) -> str | None:
+    p = Path(path)
+    if not p.is_file():
+        return None
+    h = hashlib.sha256()
+    with open(p, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _cluster(c, scale: float) -> dict:
+    return {"cells": c.cells, "volume_m3": c.volume, "centroid": (c.centroid / scale).tolist(),
+            "box_min": (c.lo / scale).tolist(), "box_max": (c.hi / scale).tolist(),
+            "largest_edge": c.size / scale, "target_size": c.target / scale,
+            "factor": _f(c.factor), "regions": list(c.regions), "some_cell_ids": c.ids.tolist()}
+
+
+def _quality(res: AuditResult, scale: float, n_worst: int = 10) -> dict:
+    out = {}
+    lim = res.settings.quality
+    for name, values in res.quality.metrics.items():
+        ok = np.isfinite(values)
+        if not ok.any():
+            continue
+        v = values[ok]
+        ids = np.flatnonzero(ok)
+        bad = METRIC_BAD.get(name, "high")
+        worst = ids[np.argsort(v)[:n_worst]] if bad == "low" else ids[np.argsort(-v)[:n_worst]]
+        flags = res.quality_flags.get(name, np.zeros(len(values), bool))
+        out[name] = {
+            "cells": int(ok.sum()), "min": float(v.min()), "p05": float(np.percentile(v, 5)),
+            "median": float(np.median(v)), "p95": float(np.percentile(v, 95)),
+            "max": float(v.max()), "out_of_range": int(flags.sum()), "worse_when": bad,
+            "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
+            "worst": [{"cell": int(i), "value": float(values[i]),
+                       "type": res.mesh.cell_type_of(int(i)),
+                       "region": int(res.mesh.region[i]),
+                       "centroid": (res.mesh.centroids[i] / scale).tolist()} for i in worst],
+        }
+    return out
+
+
+def to_dict(res: AuditResult) -> dict:
+    """The JSON report as plain Python data."""
+    m, s, a, sw, topo = res.mesh, res.settings, res.advice, res.sweep, res.topology
+    scale = UNIT_FACTORS.get(m.unit, 1.0)
+    pmax = a.pmax
+    orders = list(range(1, pmax + 1))
+    region_lim = a.region_limit(m.region)
+    speeds = {int(t): float(a.cell_speed[m.region == t][0]) for t in region_lim}
+    regions = []
+    for tag, lim in region_lim.items():
+        sel = m.region == tag
+        regions.append({"tag": tag, "name": m.region_name(tag), "cells": int(sel.sum()),
+                        "volume_m3": float(np.abs(topo.cell_volume[sel]).sum()),
+                        "sound_speed_m_s": speeds[tag],
+                        "limit_hz_per_order": {str(p): _f(lim[p - 1]) for p in orders}})
+    counts = {b.type: len(b) for b in m.blocks}
+    P = s.advice.allowed_order
+    limiting = None
+    if len(a.cell_limit):
+        worst = int(np.argmin(a.cell_limit[:, P - 1]))
+        limiting = {"cell": worst, "region": int(m.region[worst]),
+                    "region_name": m.region_name(m.region[worst]),
+                    "largest_edge": float(a.cell_size[worst] / scale),
+                    "centroid": (m.centroids[worst] / scale).tolist()}
+    freq = np.asarray(sw.frequencies)
+    return {
+        "schema": SCHEMA, "schema_version": SCHEMA_VERSION, "meshcheck_version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "input": {"file": m.source, "sha256": _sha256(m.source), "unit": m.unit,
+                  "dimension": m.dim, "points": m.n_points, "cells": counts,
+                  "bounding_box": (m.bounding_box / scale).tolist(), "regions": regions},
+        "assumptions": {
+            "sound_speed_m_s": s.default_speed, "temperature_c": s.temperature,
+            "region_speeds_m_s": {str(k): float(v) for k, v in s.region_speeds.items()},
+            "target_relative_error": s.advice.target, "solver_mode": s.advice.mode,
+            "fixed_order": s.advice.order, "max_order": s.advice.max_order,
+            "propagation_distance_m": (s.advice.distance if s.advice.distance is not None
+                                       else [float(x) for x in topo.component_extent]),
+            "propagation_distance_rule": ("given" if s.advice.distance is not None else
+                                          "bounding-box diagonal of each connected fluid part"),
+            "length_unit": m.unit, "model": MODEL, "caution": CAUTION},
+        "verdict": {"state": state(res), "ready": res.ready, "blocking": res.blocking,
+                    "upper_frequency_hz": s.fmax, "signed_off_hz": res.signed_off,
+                    "model_limit_hz": a.signed_off, "allowed_order": P,
+                    "limiting_cell": limiting},
+        "limits_hz": {"mesh": {str(p): _f(a.mesh_limit[p - 1]) for p in orders}},
+        "findings": [{"code": f.code, "severity": f.severity, "message": f.message,
+                      "count": f.count, "id_kind": f.id_kind, "ids": f.ids.tolist(),
+                      "locations": (f.locations / scale).tolist()} for f in res.findings],
+        "quality": _quality(res, scale),
+        "sweep": {"frequencies_hz": freq.tolist(),
+                  "ready": sw.ready.tolist(),
+                  "order_counts": sw.order_counts.tolist(),
+                  "order_columns": orders + ["beyond"],
+                  "dofs": sw.dofs.tolist(),
+                  "dofs_kind": ("hierarchical, interiors condensed, maximum rule"
+                                if s.advice.order is None else f"Lagrange order {s.advice.order}"),
+                  "condensed_fixed_dofs": sw.condensed_fixed},
+        "refine": [_cluster(c, scale) for c in res.refine_clusters],
+        "coarsen": [_cluster(c, scale) for c in res.coarsen_clusters],
+        "topology": {"edges": len(topo.edges), "faces": len(topo.faces),
+                     "boundary_faces": int(topo.faces.boundary.sum()),
+                     "components": [{"volume_m3": float(v), "extent_m": float(e)} for v, e in
+                                    zip(topo.component_volume, topo.component_extent)],
+                     "edge_length_min": float(np.nanmin(topo.edges.length) / scale),
+                     "edge_length_max": float(np.nanmax(topo.edges.length) / scale)},
+        "timings_s": {k: round(v, 4) for k, v in res.timings.items()},
+    }
+
+
+def write_json(res: AuditResult, path: str | Path, data: dict | None = None) -> Path:
+    path = Path(path)
+    path.write_text(json.dumps(data or to_dict(res), indent=1, allow_nan=False))
+    return path
+
+
+def _fmt_hz(x) -> str:
+    if x is None or not np.isfinite(x):
+        return "-"
+    return f"{x:,.0f}" if x >= 100 else f"{x:.3g}"
+
+
+def _md_escape(text: str) -> str:
+    out = str(text)
+    for ch in "\\`*_{}[]<>()#+!|":
+        out = out.replace(ch, "\\" + ch)
+    return out
+
+
+def write_markdown(res: AuditResult, path: str | Path, data: dict | None = None,
+                   max_rows: int = 40) -> Path:
+    d = data or to_dict(res)
+    v, asm = d["verdict"], d["assumptions"]
+    unit = d["input"]["unit"]
+    mode = (f"fixed order p = {asm['fixed_order']}" if asm["solver_mode"] == "fixed"
+            else f"variable order up to p = {asm['max_order']}")
+    L = []
+    L.append(f"# Mesh audit: {_md_escape(Path(d['input']['file']).name)}\n")
+    L.append("## Verdict\n")
+    word = {"ready": "READY", "limited": "LIMITED", "blocked": "BLOCKED"}[v["state"]]
+    if v["state"] == "blocked":
+        L.append(f"**{word}**: the mesh has blocking defects (below); no frequency is signed off. "
+                 f"Once they are mended the model would allow up to {_fmt_hz(v['model_limit_hz'])} Hz.\n")
+    else:
+        L.append(f"**{word}**: signed off up to **{_fmt_hz(v['signed_off_hz'])} Hz** with {mode} "
+                 f"for a {asm['target_relative_error']:.3g} relative error target "
+                 f"(requested upper frequency {_fmt_hz(v['upper_frequency_hz'])} Hz).\n")
+    L.append(f"Assumptions: sound speed {asm['sound_speed_m_s']:.1f} m/s "
+             f"(air at {asm['temperature_c']:g} deg C unless overridden), length unit "
+             f"{unit}, propagation distance {asm['propagation_distance_rule']}.\n")
+    L.append(f"> {CAUTION}\n")
+    lc = v.get("limiting_cell")
+    if lc:
+        L.append(f"Limiting cell: {lc['cell']} in region {_md_escape(lc['region_name'])}, "
+                 f"longest edge {lc['largest_edge']:.4g} {unit}, at "
+                 f"({', '.join(f'{x:.4g}' for x in lc['centroid'])}) {unit}.\n")
+    L.append("## Highest usable frequency per order (Hz)\n")
+    orders = list(d["limits_hz"]["mesh"])
+    L.append("| region | " + " | ".join(f"p={p}" for p in orders) + " |")
+    L.append("|---|" + "---|" * len(orders))
+    L.append("| whole mesh | " + " | ".join(_fmt_hz(d["limits_hz"]["mesh"][p]) for p in orders) + " |")
+    for r in d["input"]["regions"]:
+        L.append(f"| {_md_escape(r['name'])} | " +
+                 " | ".join(_fmt_hz(r["limit_hz_per_order"][p]) for p in orders) + " |")
+    L.append("")
+    L.append("## Findings\n")
+    if not d["findings"]:
+        L.append("No validity findings.\n")
+    for f in d["findings"]:
+        ids = ", ".join(str(i) for i in f["ids"][:10])
+        loc = f["locations"][0] if f["locations"] else None
+        where = f" first at ({', '.join(f'{x:.4g}' for x in loc)}) {unit}" if loc else ""
+        L.append(f"- **{f['severity']}** {_md_escape(f['message'])}: {f['count']} "
+                 f"({f['id_kind']} ids {ids}){where}")
+    L.append("")
+    L.append("## Advice per frequency\n")
+    sw = d["sweep"]
+    cols = sw["order_columns"]
+    L.append("| f (Hz) | ready | unknowns | " + " | ".join(f"p={c}" if c != "beyond" else ">pmax"
+                                                           for c in cols) + " |")
+    L.append("|---|---|---|" + "---|" * len(cols))
+    n = len(sw["frequencies_hz"])
+    rows = range(n) if n <= max_rows else np.unique(np.linspace(0, n - 1, max_rows).astype(int))
+    for i in rows:
+        L.append(f"| {_fmt_hz(sw['frequencies_hz'][i])} | {'yes' if sw['ready'][i] else 'no'} | "
+                 f"{sw['dofs'][i]:,} | " + " | ".join(str(c) for c in sw["order_counts"][i]) + " |")
+    if n > max_rows:
+        L.append(f"\n({max_rows} of {n} frequencies shown; all are in the JSON report.)")
+    L.append("")
+    for key, title, what in (("refine", "Regions to refine",
+                              "need more than the allowed order at the upper frequency"),
+                             ("coarsen", "Regions that could be coarser",
+                              "could be coarsened and still meet the target")):
+        L.append(f"## {title}\n")
+        items = d[key]
+        if not items:
+            L.append(f"No cells {what}.\n")
+            continue
+        L.append(f"Cells that {what}; target size is the largest edge length meeting the target "
+                 f"at {_fmt_hz(v['upper_frequency_hz'])} Hz ({unit}).\n")
+        L.append(f"| cells | centroid ({unit}) | longest edge | target size | factor | cell ids |")
+        L.append("|---|---|---|---|---|---|")
+        for c in items[:20]:
+            L.append(f"| {c['cells']} | {', '.join(f'{x:.4g}' for x in c['centroid'])} | "
+                     f"{c['largest_edge']:.4g} | {c['target_size']:.4g} | {c['factor']:.3g} | "
+                     f"{', '.join(str(i) for i in c['some_cell_ids'][:5])} |")
+        L.append("")
+    L.append("## Quality\n")
+    L.append("| metric | cells | min | median | max | out of range | acceptable |")
+    L.append("|---|---|---|---|---|---|---|")
+    for name, q in d["quality"].items():
+        L.append(f"| {name} | {q['cells']} | {q['min']:.4g} | {q['median']:.4g} | {q['max']:.4g} | "
+                 f"{q['out_of_range']} | {_md_escape(q['acceptable'] or '')} |")
+    L.append("")
+    L.append("## Method and assumptions\n")
+    L.append(f"- Model: {MODEL}")
+    L.append(f"- Target: relative L2 error {asm['target_relative_error']:.3g}; mode: {mode}.")
+    L.append(f"- Sound speed: {asm['sound_speed_m_s']:.2f} m/s; per-region overrides: "
+             f"{asm['region_speeds_m_s'] or 'none'}.")
+    L.append(f"- Unknowns: {sw['dofs_kind']}.")
+    L.append(f"- {CAUTION}")
+    path = Path(path)
+    path.write_text("\n".join(L) + "\n")
+    return path
+
+
+def write_vtu(res: AuditResult, path: str | Path) -> Path:
+    """VTU with per-cell results; coordinates and lengths in the mesh's own unit."""
+    import meshio
+
+    m, a = res.mesh, res.advice
+    scale = UNIT_FACTORS.get(m.unit, 1.0)
+    offs = m.block_offsets
+    cells = [(b.type, b.cells) for b in m.blocks]
+
+    def split(arr):
+        return [np.ascontiguousarray(arr[offs[i]:offs[i + 1]]) for i in range(len(m.blocks))]
+
+    data = {"region": split(m.region), "min_scaled_jacobian": split(res.min_scaled_jacobian),
+            "order_needed": split(a.cell_order), "refine": split(a.refine.astype(np.int8)),
+            "coarsen": split(a.coarsen.astype(np.int8)),
+            "largest_edge": split(a.cell_size / scale),
+            "target_size": split(a.target_size / scale),
+            "coarsen_ratio": split(a.coarsen_ratio)}
+    for p in range(1, a.pmax + 1):
+        data[f"limit_hz_p{p}"] = split(a.cell_limit[:, p - 1])
+    for name, values in res.quality.metrics.items():
+        data[f"quality_{name}"] = split(values)
+    out = meshio.Mesh(m.points / scale, cells, cell_data=data)
+    path = Path(path)
+    meshio.write(path, out, file_format="vtu", binary=True)
+    return path
+
+
+def write_all(res: AuditResult, folder: str | Path, stem: str | None = None) -> dict[str, Path]:
+    """Write JSON, Markdown and VTU into ``folder``; returns kind -> path."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    stem = stem or (Path(res.mesh.source).stem or "mesh")
+    data = to_dict(res)
+    src = Path(res.mesh.source).resolve() if res.mesh.source else None
+    out = {"json": folder / f"{stem}.audit.json", "markdown": folder / f"{stem}.audit.md",
+           "vtu": folder / f"{stem}.audit.vtu"}
+    if src is not None and any(p.resolve() == src for p in out.values()):
+        raise ValueError("refusing to overwrite the input mesh")
+    write_json(res, out["json"], data)
+    write_markdown(res, out["markdown"], data)
+    write_vtu(res, out["vtu"])
+    return out

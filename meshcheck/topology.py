@@ -1,0 +1,393 @@
+"""Mesh topology, vectorised: unique edges and faces, boundary, components.
+
+Edges and faces are found by sorting integer keys built from their sorted
+node numbers (no hashing, no Python loop over cells).  Edge lengths of
+quadratic cells are the arc lengths of the parabola through the mid-node.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import sparse
+from scipy.sparse.csgraph import connected_components
+from scipy.spatial import cKDTree
+
+from .mesh import Mesh
+
+__all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
+           "build_topology", "edge_lengths"]
+
+# 6-point Gauss-Legendre rule on [0, 1] for the arc length of a quadratic edge
+_GL_X, _GL_WT = np.polynomial.legendre.leggauss(6)
+_GL_S, _GL_W = 0.5 + 0.5 * _GL_X, 0.5 * _GL_WT
+
+
+def _group_sorted(keys: tuple[np.ndarray, ...]):
+    """Sort rows given as key columns (last key primary, like np.lexsort).
+
+    Returns (order, starts, inverse): ``order`` sorts the rows, ``starts``
+    indexes the first sorted row of every group of equal rows, ``inverse``
+    maps every row to its group number.
+    """
+    order = np.lexsort(keys) if len(keys) > 1 else np.argsort(keys[0], kind="stable")
+    n = order.shape[0]
+    new = np.ones(n, dtype=bool)
+    if n:
+        diff = np.zeros(n - 1, dtype=bool)
+        for k in keys:
+            ks = k[order]
+            diff |= ks[1:] != ks[:-1]
+        new[1:] = diff
+    group_of_sorted = np.cumsum(new) - 1
+    inverse = np.empty(n, dtype=np.int64)
+    inverse[order] = group_of_sorted
+    return order, np.flatnonzero(new), inverse
+
+
+def edge_lengths(points: np.ndarray, a: np.ndarray, b: np.ndarray,
+                 mid: np.ndarray | None = None) -> np.ndarray:
+    """Length of straight edges a-b, or arc length of the parabola a-mid-b.
+
+    points : (n, 3) float64, metres; a, b, mid : (k,) int64 (mid -1 = straight).
+    Returns (k,) float64 metres.
+    """
+    pa, pb = points[a], points[b]
+    length = np.linalg.norm(pb - pa, axis=1)
+    if mid is not None and (mid >= 0).any():
+        q = np.flatnonzero(mid >= 0)
+        xa, xb, xm = pa[q], pb[q], points[mid[q]]
+        # x(s) = xa (1-s)(1-2s) + 4 xm s(1-s) + xb s(2s-1); x'(s) below
+        arc = np.zeros(len(q))
+        for s, w in zip(_GL_S, _GL_W):
+            d = xa * (4 * s - 3) + xm * (4 - 8 * s) + xb * (4 * s - 1)
+            arc += w * np.linalg.norm(d, axis=1)
+        length[q] = arc
+    return length
+
+
+@dataclass(frozen=True)
+class Edges:
+    """Unique edges of a mesh.
+
+    nodes : (n_e, 2) int64 corner nodes (smaller first).
+    mid : (n_e,) int64 mid-node of quadratic edges, -1 for straight ones.
+    length : (n_e,) float64 metres (arc length for quadratic edges).
+    cell_edges : per block, (m, n_local_edges) int64 unique-edge id of each local edge.
+    incidence : (sum m * n_local_edges,) int64 global cell id of every local edge,
+        sorted by unique edge; ``incidence_starts[e]`` is where edge e begins.
+    """
+
+    nodes: np.ndarray
+    mid: np.ndarray
+    length: np.ndarray
+    cell_edges: tuple[np.ndarray, ...]
+    incidence: np.ndarray = None
+    incidence_starts: np.ndarray = None
+
+    def __len__(self) -> int:
+        return self.nodes.shape[0]
+
+    def per_cell(self, values: np.ndarray, reduce=np.minimum) -> np.ndarray:
+        """Reduce an edge quantity over the edges of every cell -> (n_cells,) (global order)."""
+        out = [reduce.reduce(values[ce], axis=1) for ce in self.cell_edges]
+        return np.concatenate(out) if out else np.zeros(0, values.dtype)
+
+    def from_cells(self, cell_values: np.ndarray, reduce=np.minimum) -> np.ndarray:
+        """Reduce a cell quantity over the cells sharing each edge -> (n_e,)."""
+        return reduce.reduceat(cell_values[self.incidence], self.incidence_starts)
+
+    def per_cell_table(self, values: np.ndarray, reduce=np.minimum) -> np.ndarray:
+        """Like :meth:`per_cell` for (n_e, k) tables -> (n_cells, k)."""
+        out = [reduce.reduce(values[ce], axis=1) for ce in self.cell_edges]
+        return np.concatenate(out) if out else np.zeros((0,) + values.shape[1:], values.dtype)
+
+
+def build_edges(mesh: Mesh) -> Edges:
+    """Unique edges of all cells with their lengths (vectorised sort of node-pair keys)."""
+    n = np.int64(mesh.n_points + 1)
+    keys, mids, sizes, owners = [], [], [], []
+    for bi, b in enumerate(mesh.blocks):
+        e = b.info.edges
+        a = b.cells[:, e[:, 0]]
+        c = b.cells[:, e[:, 1]]
+        lo, hi = np.minimum(a, c), np.maximum(a, c)
+        keys.append((lo * n + hi).ravel())
+        if b.info.quadratic:
+            mids.append(b.cells[:, e[:, 2]].ravel())
+        else:
+            mids.append(np.full(a.size, -1, np.int64))
+        sizes.append(a.shape)
+        owners.append(np.repeat(np.arange(len(b), dtype=np.int64) + mesh.block_offsets[bi],
+                                e.shape[0]))
+    if not keys:
+        z = np.zeros(0, np.int64)
+        return Edges(np.zeros((0, 2), np.int64), z, np.zeros(0), ())
+    key = np.concatenate(keys)
+    mid = np.concatenate(mids)
+    order, starts, inverse = _group_sorted((key,))
+    first = order[starts]
+    ukey = key[first]
+    nodes = np.column_stack([ukey // n, ukey % n])
+    umid = mid[first]
+    length = edge_lengths(mesh.points, nodes[:, 0], nodes[:, 1], umid)
+    cell_edges, pos = [], 0
+    for shape in sizes:
+        size = shape[0] * shape[1]
+        cell_edges.append(inverse[pos:pos + size].reshape(shape))
+        pos += size
+    incidence = np.concatenate(owners)[order]
+    return Edges(nodes, umid, length, tuple(cell_edges), incidence, starts)
+
+
+@dataclass(frozen=True)
+class Faces:
+    """Unique faces (triangles and quadrilaterals) of a volume mesh.
+
+    nodes : (n_f, 4) int64 corners in the outward orientation of ``cells[:, 0]``
+        (-1 in the last column for triangles).
+    cells : (n_f, 2) int64 global ids of the cells on each side (-1 for none).
+    count : (n_f,) int64 number of cells sharing the face (1 boundary, 2 interior,
+        more = non-manifold).
+    """
+
+    nodes: np.ndarray
+    cells: np.ndarray
+    count: np.ndarray
+
+    @property
+    def boundary(self) -> np.ndarray:
+        return self.count == 1
+
+    def __len__(self) -> int:
+        return self.nodes.shape[0]
+
+
+def _local_faces(mesh: Mesh):
+    """Yield (global cell ids, (m*f, 4) face corners) per block and face size."""
+    for bi, b in enumerate(mesh.blocks):
+        faces = b.info.faces if b.info.dim == 3 else ()
+        for size in (3, 4):
+            sel = [f for f in faces if len(f) == size]
+            if not sel:
+                continue
+            idx = np.array(sel, dtype=np.int64)
+            corners = b.cells[:, idx]  # (m, f, size)
+            m, f = corners.shape[:2]
+            corners = corners.reshape(m * f, size)
+            if size == 3:
+                corners = np.column_stack([corners, np.full(m * f, -1, np.int64)])
+            cid = np.repeat(np.arange(m, dtype=np.int64) + mesh.block_offsets[bi], f)
+            yield cid, corners
+
+
+def build_faces(mesh: Mesh) -> Faces:
+    """Unique faces of a volume mesh with the cells on each side."""
+    parts = list(_local_faces(mesh))
+    if not parts:
+        z = np.zeros(0, np.int64)
+        return Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), z)
+    cid = np.concatenate([p[0] for p in parts])
+    corners = np.concatenate([p[1] for p in parts])
+    s = np.sort(corners, axis=1)  # -1 (triangle pad) sorts first
+    n = np.int64(mesh.n_points + 1)
+    k_hi = (s[:, 1] * n + s[:, 2])
+    k_lo = (s[:, 0] + 1) * n + s[:, 3]
+    order, starts, inverse = _group_sorted((k_lo, k_hi))
+    count = np.diff(np.append(starts, len(order)))
+    first = order[starts]
+    cells = np.full((len(starts), 2), -1, np.int64)
+    cells[:, 0] = cid[first]
+    two = count >= 2
+    cells[two, 1] = cid[order[starts[two] + 1]]
+    return Faces(corners[first], cells, count.astype(np.int64))
+
+
+def cell_volumes(mesh: Mesh) -> np.ndarray:
+    """(n_cells,) signed volume (3D, m^3) or area (2D, m^2) from the corner nodes.
+
+    3D: divergence theorem over the outward faces, quadrilaterals split into
+    four triangles about their mean point (exact for planar faces).
+    """
+    out = []
+    P = mesh.points
+    for b in mesh.blocks:
+        corners = b.cells[:, :b.info.n_corners]
+        if b.info.dim == 2:
+            x = P[corners][:, :, :2]
+            xs = np.roll(x, -1, axis=1)
+            out.append(0.5 * np.sum(x[..., 0] * xs[..., 1] - xs[..., 0] * x[..., 1], axis=1))
+            continue
+        vol = np.zeros(len(b))
+        for f in b.info.faces:
+            pts = P[b.cells[:, list(f)]]
+            if len(f) == 3:
+                vol += np.einsum("ij,ij->i", pts[:, 0], np.cross(pts[:, 1], pts[:, 2]))
+            else:
+                c = pts.mean(axis=1)
+                for i in range(4):
+                    vol += np.einsum("ij,ij->i", c, np.cross(pts[:, i], pts[:, (i + 1) % 4]))
+        out.append(vol / 6.0)
+    return np.concatenate(out) if out else np.zeros(0)
+
+
+@dataclass(frozen=True)
+class Topology:
+    """Everything meshcheck derives from connectivity.
+
+    edges, faces : see :class:`Edges`, :class:`Faces` (faces empty for 2D models).
+    component : (n_cells,) int64 connected component of each cell (through shared
+        faces in 3D, shared edges in 2D).
+    component_volume : (n_comp,) float64 m^3 (m^2 in 2D).
+    component_extent : (n_comp,) float64 bounding-box diagonal, metres.
+    cell_volume : (n_cells,) float64 signed volume from the corners.
+    unused_nodes : node ids referenced by no cell.
+    duplicate_nodes : (k, 2) int64 pairs of used nodes closer than ``rel_tol`` times
+        the shorter of their shortest incident edges.
+    duplicate_cells : (k, 2) int64 pairs of cells with the same corner set.
+    crack_faces : ids of boundary faces that coincide with another boundary face
+        once duplicate nodes are merged (unmerged interfaces).
+    nonmanifold_faces : ids of faces shared by more than two cells.
+    """
+
+    edges: Edges
+    faces: Faces
+    component: np.ndarray
+    component_volume: np.ndarray
+    component_extent: np.ndarray
+    cell_volume: np.ndarray
+    unused_nodes: np.ndarray
+    duplicate_nodes: np.ndarray
+    duplicate_cells: np.ndarray
+    crack_faces: np.ndarray
+    nonmanifold_faces: np.ndarray
+
+    @property
+    def n_components(self) -> int:
+        return len(self.component_volume)
+
+    def cell_extent(self) -> np.ndarray:
+        """(n_cells,) extent (bbox diagonal, m) of the component of each cell."""
+        return self.component_extent[self.component]
+
+
+def _components(mesh: Mesh, faces: Faces, edges: Edges) -> tuple[int, np.ndarray]:
+    n = mesh.n_cells
+    if mesh.dim == 3:
+        inner = faces.count >= 2
+        a, b = faces.cells[inner, 0], faces.cells[inner, 1]
+    else:
+        # 2D: cells sharing an edge; pair each cell edge with the first cell having it
+        ids = np.concatenate([np.repeat(np.arange(len(bl)) + mesh.block_offsets[i],
+                                        ce.shape[1]) for i, (bl, ce) in
+                              enumerate(zip(mesh.blocks, edges.cell_edges))])
+        eid = np.concatenate([ce.ravel() for ce in edges.cell_edges])
+        first = np.full(len(edges), -1, np.int64)
+        first[eid[::-1]] = ids[::-1]
+        a, b = ids, first[eid]
+    g = sparse.coo_matrix((np.ones(len(a), np.int8), (a, b)), shape=(n, n)).tocsr()
+    return connected_components(g, directed=False)
+
+
+def _per_label_bbox(points: np.ndarray, mesh: Mesh, label: np.ndarray, n_label: int):
+    lo = np.full((n_label, 3), np.inf)
+    hi = np.full((n_label, 3), -np.inf)
+    for i, b in enumerate(mesh.blocks):
+        x = points[b.cells[:, :b.info.n_corners]]
+        lab = label[mesh.block_offsets[i]:mesh.block_offsets[i + 1]]
+        order = np.argsort(lab, kind="stable")
+        ls = lab[order]
+        starts = np.flatnonzero(np.r_[True, ls[1:] != ls[:-1]]) if len(ls) else np.zeros(0, int)
+        if len(starts):
+            lo[ls[starts]] = np.minimum(lo[ls[starts]],
+                                        np.minimum.reduceat(np.nanmin(x, axis=1)[order], starts))
+            hi[ls[starts]] = np.maximum(hi[ls[starts]],
+                                        np.maximum.reduceat(np.nanmax(x, axis=1)[order], starts))
+    return lo, hi
+
+
+def _duplicate_nodes(points, used, edges: Edges, rel_tol: float) -> np.ndarray:
+    """Pairs of used nodes closer than rel_tol x their shortest incident edge."""
+    if len(edges) == 0:
+        return np.zeros((0, 2), np.int64)
+    hmin = np.full(len(points), np.inf)
+    finite_len = np.where(np.isfinite(edges.length), edges.length, np.inf)
+    np.minimum.at(hmin, edges.nodes[:, 0], finite_len)
+    np.minimum.at(hmin, edges.nodes[:, 1], finite_len)
+    ids = np.flatnonzero(used & np.isfinite(points).all(axis=1))
+    if len(ids) < 2:
+        return np.zeros((0, 2), np.int64)
+    h = hmin[ids]
+    h_fin = h[np.isfinite(h)]
+    if not len(h_fin):
+        return np.zeros((0, 2), np.int64)
+    radius = rel_tol * float(h_fin.max())
+    tree = cKDTree(points[ids])
+    pairs = tree.query_pairs(radius, output_type="ndarray")
+    if not len(pairs):
+        return np.zeros((0, 2), np.int64)
+    d = np.linalg.norm(points[ids[pairs[:, 0]]] - points[ids[pairs[:, 1]]], axis=1)
+    keep = d <= rel_tol * np.minimum(h[pairs[:, 0]], h[pairs[:, 1]])
+    out = np.sort(ids[pairs[keep]], axis=1)
+    return out[np.lexsort((out[:, 1], out[:, 0]))]
+
+
+def _duplicate_cells(mesh: Mesh) -> np.ndarray:
+    """(k, 2) pairs (first cell, repeat) of cells of one block with the same corners."""
+    out = []
+    for i, b in enumerate(mesh.blocks):
+        s = np.sort(b.cells[:, :b.info.n_corners], axis=1)
+        if len(s) < 2:
+            continue
+        order, starts, inverse = _group_sorted(tuple(s[:, k] for k in range(s.shape[1] - 1, -1, -1)))
+        group_sorted = inverse[order]
+        repeat = np.ones(len(order), bool)
+        repeat[starts] = False
+        first = order[starts[group_sorted[repeat]]]
+        out.append(np.column_stack([first, order[repeat]]) + mesh.block_offsets[i])
+    return np.concatenate(out).astype(np.int64) if out else np.zeros((0, 2), np.int64)
+
+
+def _cracks(mesh: Mesh, faces: Faces, dup_pairs: np.ndarray) -> np.ndarray:
+    """Boundary faces that coincide with other boundary faces once duplicates merge."""
+    if not len(dup_pairs) or not len(faces):
+        return np.zeros(0, np.int64)
+    n = mesh.n_points
+    g = sparse.coo_matrix((np.ones(len(dup_pairs)), (dup_pairs[:, 0], dup_pairs[:, 1])),
+                          shape=(n, n))
+    _, rep = connected_components(g, directed=False)
+    bnd = np.flatnonzero(faces.boundary)
+    fn = faces.nodes[bnd]
+    r = np.where(fn >= 0, rep[np.maximum(fn, 0)], -1)
+    s = np.sort(r, axis=1)
+    nn = np.int64(n + 1)
+    order, starts, inverse = _group_sorted(((s[:, 0] + 1) * nn + s[:, 3], s[:, 1] * nn + s[:, 2]))
+    count = np.diff(np.append(starts, len(order)))
+    return np.sort(bnd[count[inverse] > 1])
+
+
+def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
+    """Derive edges, faces, components and connectivity defects of a mesh.
+
+    rel_tol : two used nodes closer than rel_tol times the shorter of their
+        shortest incident edges are duplicates (default 1e-6).
+    """
+    edges = build_edges(mesh)
+    faces = build_faces(mesh) if mesh.dim == 3 else Faces(
+        np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), np.zeros(0, np.int64))
+    n_comp, comp = _components(mesh, faces, edges)
+    comp = comp.astype(np.int64)
+    vol = cell_volumes(mesh)
+    comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
+    lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
+    extent = np.linalg.norm(hi - lo, axis=1)
+    used = np.zeros(mesh.n_points, bool)
+    for b in mesh.blocks:
+        used[b.cells] = True
+    dup = _duplicate_nodes(mesh.points, used, edges, rel_tol)
+    cracks = _cracks(mesh, faces, dup) if mesh.dim == 3 else np.zeros(0, np.int64)
+    return Topology(
+        edges=edges, faces=faces, component=comp, component_volume=comp_vol,
+        component_extent=extent, cell_volume=vol, unused_nodes=np.flatnonzero(~used),
+        duplicate_nodes=dup, duplicate_cells=_duplicate_cells(mesh), crack_faces=cracks,
+        nonmanifold_faces=np.flatnonzero(faces.count > 2))
