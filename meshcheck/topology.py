@@ -18,8 +18,8 @@ from .mesh import Mesh
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
            "build_topology", "edge_lengths"]
 
-# 6-point Gauss-Legendre rule on [0, 1] for the arc length of a quadratic edge
-_GL_X, _GL_WT = np.polynomial.legendre.leggauss(6)
+# 12-point Gauss-Legendre rule on [0, 1] for the arc length of a quadratic edge
+_GL_X, _GL_WT = np.polynomial.legendre.leggauss(12)
 _GL_S, _GL_W = 0.5 + 0.5 * _GL_X, 0.5 * _GL_WT
 
 
