@@ -47,8 +47,8 @@ class AdviceSettings:
     coarsen_factor: float = 2.0
 
     def __post_init__(self):
-        if not 0 < self.target < 1:
-            raise SettingsError(f"accuracy target {self.target} must lie between 0 and 1 "
+        if not 1e-8 <= self.target <= 0.5:
+            raise SettingsError(f"accuracy target {self.target} must lie between 1e-8 and 0.5 "
                                 "(e.g. 0.01 for 1 %)")
         if not 1 <= self.max_order <= 16:
             raise SettingsError(f"maximum order {self.max_order} must be between 1 and 16")
@@ -152,8 +152,9 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     h = topo.edges.length
     edge_c = _edge_values(topo, cell_speed, np.minimum)
     edge_L = _edge_values(topo, cell_L, np.maximum)
+    good = np.isfinite(h) & (h > 0) & np.isfinite(edge_L) & np.isfinite(edge_c)
     with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.where(h > 0, edge_L / h, np.inf)
+        ratio = np.where(good, edge_L / np.where(good, h, 1.0), 1.0)
     n_cells = mesh.n_cells
     cell_limit = np.empty((n_cells, pmax))
     edge_order = np.full(len(h), pmax + 1, dtype=np.int64)
@@ -161,8 +162,7 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     edge_limit = None
     for p in range(1, pmax + 1):
         with np.errstate(divide="ignore", invalid="ignore"):
-            f_e = np.where(h > 0, edge_c * table.max_kh(p, ratio) / (TWO_PI * h), 0.0)
-        f_e = np.where(np.isfinite(f_e), f_e, 0.0)
+            f_e = np.where(good, edge_c * table.max_kh(p, ratio) / (TWO_PI * h), 0.0)
         edge_order[(edge_order > pmax) & (f_e >= fmax)] = p
         if p == P:
             edge_limit = f_e

@@ -10,9 +10,9 @@ from enum import Enum
 from pathlib import Path
 from typing import List, Optional
 
-import click
 import numpy as np
 import typer
+from typer.exceptions import TyperException
 from rich.console import Console
 from rich.markup import escape
 from rich.panel import Panel
@@ -98,14 +98,16 @@ def _print_summary(console: Console, res, files: dict | None, data: dict) -> Non
         console.print(f"Limited by cell {lc['cell']} in {escape(lc['region_name'])} (longest edge "
                       f"{lc['largest_edge']:.4g} {unit}) at "
                       f"({', '.join(f'{x:.4g}' for x in lc['centroid'])}) {unit}")
-    t = Table(title="Highest usable frequency per order (Hz)", show_lines=False)
-    t.add_column("region")
-    orders = list(data["limits_hz"]["mesh"])
-    for p in orders:
-        t.add_column(f"p={p}", justify="right")
-    t.add_row("whole mesh", *(_fmt_hz(data["limits_hz"]["mesh"][p]) for p in orders))
-    for r in data["input"]["regions"]:
-        t.add_row(escape(r["name"]), *(_fmt_hz(r["limit_hz_per_order"][p]) for p in orders))
+    t = Table(title="Highest usable frequency per order (Hz)")
+    t.add_column("order", justify="right")
+    t.add_column("whole mesh", justify="right")
+    regions = data["input"]["regions"]
+    for r in regions:
+        t.add_column(escape(r["name"]), justify="right")
+    top = asm["fixed_order"] or asm["max_order"]
+    for p in [str(q) for q in range(1, top + 1)]:
+        t.add_row(f"p={p}", _fmt_hz(data["limits_hz"]["mesh"][p]),
+                  *(_fmt_hz(r["limit_hz_per_order"][p]) for r in regions))
     console.print(t)
     for f in data["findings"]:
         colour = {"blocking": "red", "warning": "yellow"}.get(f["severity"], "dim")
@@ -151,7 +153,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     from .report import to_dict, write_json, write_markdown, write_vtu
     from .units import UNIT_FACTORS
 
-    console = Console(stderr=False, highlight=False, soft_wrap=True)
+    console = Console(highlight=False)
     f = _frequencies(fmin, fmax, step, bands, freqs)
     region_speeds = _parse_region_speeds(region_speed)
     with console.status("reading", spinner="line") if not quiet else _Quiet() as status:
@@ -228,12 +230,11 @@ def main(argv: list[str] | None = None) -> int:
         return rc if isinstance(rc, int) else 0
     except typer.Exit as exc:
         return exc.exit_code
-    except click.exceptions.Exit as exc:
-        return exc.exit_code
-    except click.ClickException as exc:
-        err.print(f"meshcheck: {escape(exc.format_message())}")
+    except typer.Abort:
         return 2
-    except click.exceptions.Abort:
+    except TyperException as exc:  # usage errors (bad option, missing argument)
+        msg = exc.format_message() if hasattr(exc, "format_message") else str(exc)
+        err.print(f"meshcheck: usage error: {escape(msg)} (see meshcheck --help)")
         return 2
     except MeshcheckError as exc:
         if debug:

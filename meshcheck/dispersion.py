@@ -360,8 +360,10 @@ def elements_per_wavelength(t) -> np.ndarray:
 
 # ----------------------------------------------------------- usable-kh table
 _R_MAX = 1.0e7
+_PMAX_TABLE = 16
 _N_R = 400
-_N_T = 400  # scan points between the pollution estimate and t_best
+_SCAN_STEP = 0.01  # relative step of the first-crossing scan in t
+_WINDOW = 8  # scan columns checked exactly at a time
 _BISECT_REL = 1e-7  # final bracket width, relative
 
 
@@ -445,17 +447,23 @@ class UsableKh:
 def usable_kh(target: float, pmax: int = 12) -> UsableKh:
     """Build (cached) the usable-kh table for a relative L2 error target.
 
-    target : 0 < target < 1.  pmax : 1..P_MAX.
+    target : 1e-4 <= target <= 0.5 (relative L2 error).  pmax : 1..16.
+    Limits: k_h h carries float64 noise ~1e-16 / |kh - m pi| near multiples
+    of pi; below 1e-4 (or above order 16) that noise can exceed the phase
+    error allowed over 1e7 elements and fake a crossing.  Raises SettingsError.
     """
     target = float(target)
-    if not 0.0 < target < 1.0:
-        raise SettingsError(f"error target must be in (0, 1), got {target}")
-    return _build_usable(target, _order(pmax))
+    if not 1e-4 <= target <= 0.5:
+        raise SettingsError(f"error target must be in [1e-4, 0.5], got {target}")
+    pmax = _order(pmax)
+    if pmax > _PMAX_TABLE:
+        raise SettingsError(f"usable-kh tables go up to order {_PMAX_TABLE}, got {pmax}")
+    return _build_usable(target, pmax)
 
 
 def _t_best(tau: float, p: int) -> float:
     """Smallest t with best_approximation_error(t, p) >= tau (multisection), float."""
-    t = np.geomspace(1e-4, 8.0 * (p + 2), 64)
+    t = np.geomspace(1e-6, 8.0 * (p + 2), 64)
     while True:
         above = best_approximation_error(t, p) >= tau
         i = int(np.argmax(above))
@@ -476,32 +484,79 @@ def _pollution_kh(tau: float, p: int, r: float) -> float:
     return float((np.sqrt(3.0) * tau / (c * r)) ** (1.0 / (2 * p + 1)))
 
 
+def _first_over(best, dk, r, tau, cols):
+    """Exact test ``predicted_error > tau`` at grid columns cols (n_r, w)."""
+    z = dk[cols] * r[:, None]
+    return best[cols] + np.sqrt(_mean_abs2(z)) > tau
+
+
+def _crossing(p: int, tau: float, r: np.ndarray, lo, hi, e_lo, e_hi) -> np.ndarray:
+    """Refine e(t) = predicted_error(t, p, t r) = tau inside [lo, hi] per r.
+
+    Illinois (modified regula falsi) on ln e against ln t, keeping a bracket
+    with e(lo) <= tau < e(hi); returns lo once hi / lo - 1 < _BISECT_REL.
+    """
+    x0, x1 = np.log(lo), np.log(hi)
+    f0, f1 = np.log(e_lo / tau), np.log(e_hi / tau)
+    side = np.zeros(r.size, np.int8)
+    tol = np.log1p(_BISECT_REL)
+    for it in range(100):
+        act = np.nonzero(x1 - x0 > tol)[0]
+        if act.size == 0:
+            return np.exp(x0)
+        a0, a1, g0, g1 = x0[act], x1[act], f0[act], f1[act]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x = a1 - g1 * (a1 - a0) / (g1 - g0)
+        if it % 8 == 7:  # a plain bisection step now and then guarantees progress
+            x = 0.5 * (a0 + a1)
+        x = np.where(np.isfinite(x), x, 0.5 * (a0 + a1))
+        x = np.clip(x, a0 + 0.4 * tol, a1 - 0.4 * tol)  # step at least tol/2.5 (as in Brent)
+        tx = np.exp(x)
+        f = np.log(predicted_error(tx, p, tx * r[act]) / tau)
+        ok = f <= 0
+        s = side[act]
+        # Illinois: halve the value kept on the side that did not move twice in a row
+        f1[act] = np.where(ok & (s == -1), 0.5 * g1, np.where(ok, g1, f))
+        f0[act] = np.where(~ok & (s == 1), 0.5 * g0, np.where(ok, f, g0))
+        x0[act] = np.where(ok, x, a0)
+        x1[act] = np.where(ok, a1, x)
+        side[act] = np.where(ok, -1, 1)
+    raise MeshcheckError(f"internal: usable-kh refinement for p={p} did not converge")
+
+
 @lru_cache(maxsize=16)
 def _build_usable(tau: float, pmax: int) -> UsableKh:
     log_r = np.linspace(0.0, np.log(_R_MAX), _N_R)
     r = np.exp(log_r)
     t_max = np.empty((pmax, _N_R))
     for p in range(1, pmax + 1):
-        t_hi = _t_best(tau, p)
+        t_hi = _t_best(tau, p)  # best-approximation error alone reaches tau
         t_lo = min(0.25 * _pollution_kh(tau, p, r[-1]), 0.1 * t_hi)
         for _ in range(8):  # the scan must start below the target for every r
-            t = np.geomspace(t_lo, t_hi, _N_T)
+            n_t = int(np.ceil(np.log(t_hi / t_lo) / np.log1p(_SCAN_STEP))) + 1
+            t = np.geomspace(t_lo, t_hi, n_t)
             best = best_approximation_error(t, p)
             dk = discrete_kh(t, p) - t
-            over = best[None, :] + np.sqrt(_mean_abs2(dk[None, :] * r[:, None])) > tau  # (n_r, n_t)
-            if not np.any(over[:, 0]):
+            # rigorous upper bound sqrt(mean) <= |z| / sqrt(3): no crossing before it exceeds tau
+            bound = best[None, :] + np.abs(dk)[None, :] * r[:, None] / np.sqrt(3.0) > tau
+            start = np.argmax(bound, axis=1)  # the last column is always above
+            first = np.full(_N_R, -1)
+            while np.any(first < 0):
+                todo = np.nonzero(first < 0)[0]
+                cols = np.minimum(start[todo, None] + np.arange(_WINDOW), n_t - 1)
+                over = _first_over(best, dk, r[todo], tau, cols)
+                hit = over.any(axis=1)
+                first[todo[hit]] = cols[hit, np.argmax(over[hit], axis=1)]
+                start[todo] += _WINDOW
+            if np.all(first > 0):
                 break
             t_lo *= 0.01
         else:
             raise MeshcheckError(f"internal: usable-kh scan for p={p}, target {tau} starts above the target")
-        i = np.argmax(over, axis=1)  # first grid point above the target (t_hi is above it)
-        lo, hi = t[i - 1], t[i]
-        while np.any(hi > lo * (1.0 + _BISECT_REL)):
-            mid = np.sqrt(lo * hi)
-            ok = predicted_error(mid, p, mid * r) <= tau
-            lo = np.where(ok, mid, lo)
-            hi = np.where(ok, hi, mid)
-        t_max[p - 1] = lo
+        lo, hi = t[first - 1], t[first]
+        e = best[np.stack([first - 1, first])] + np.sqrt(
+            _mean_abs2(dk[np.stack([first - 1, first])] * r[None, :]))
+        t_max[p - 1] = _crossing(p, tau, r, lo, hi, e[0], e[1])
     log_r.setflags(write=False)
     t_max.setflags(write=False)
     return UsableKh(target=tau, pmax=pmax, log_r=log_r, t_max=t_max)

@@ -1,0 +1,109 @@
+"""Advice against the 1D model solved independently, closed-form scalings and monotonicity."""
+import meshio
+import numpy as np
+import pytest
+from scipy.optimize import brentq
+
+from meshcheck.advice import AdviceSettings
+from meshcheck.dispersion import predicted_error
+from meshcheck.pipeline import AuditSettings, audit
+from meshcheck.reading import read_mesh
+from meshes import hex_box, tet_box
+
+C = 343.0
+
+
+def _first_crossing(p, r, tau):
+    """Largest kh of the 1D model (first crossing of the target), by scan + brentq."""
+    t = np.linspace(1e-3, 4 * p + 8, 40000)
+    err = predicted_error(t, p, t * r) - tau
+    i = int(np.argmax(err > 0))
+    return brentq(lambda x: float(predicted_error(x, p, x * r) - tau), t[i - 1], t[i])
+
+
+@pytest.mark.parametrize("p", [1, 2, 4, 8])
+@pytest.mark.parametrize("target", [0.01, 0.05])
+def test_uniform_grid_limit_is_the_1d_model(p, target):
+    # structured hex grid of size h: every edge has length h, L = box diagonal, so the
+    # highest usable frequency is f = c * (kh)_max / (2 pi h) of the 1D model
+    n, size = 6, (1.2, 0.6, 0.6)
+    mesh = hex_box((n, 3, 3), size=size)
+    h = 0.2
+    L = np.linalg.norm(size)
+    res = audit(mesh, AuditSettings((100.0,), AdviceSettings(target=target, max_order=8),
+                                    speed=C))
+    expected = C * _first_crossing(p, L / h, target) / (2 * np.pi * h)
+    assert res.advice.mesh_limit[p - 1] == pytest.approx(expected, rel=2e-3)
+
+
+def test_limits_monotone_in_order_and_advice_in_frequency():
+    mesh = tet_box((4, 3, 3), size=(1.0, 0.7, 0.7))
+    f = np.linspace(50, 3000, 60)
+    res = audit(mesh, AuditSettings(tuple(f), AdviceSettings(max_order=8), speed=C))
+    assert np.all(np.diff(res.advice.cell_limit, axis=1) >= 0)
+    counts = res.sweep.order_counts
+    # number of cells needing more than order p never decreases with frequency
+    above = counts[:, ::-1].cumsum(axis=1)[:, ::-1]
+    assert np.all(np.diff(above, axis=0) >= 0)
+    assert np.all(np.diff(res.sweep.dofs) >= 0)
+    assert counts.sum(axis=1).tolist() == [mesh.n_cells] * len(f)
+
+
+def test_same_mesh_in_millimetres_gives_same_limits(tmp_path):
+    m = tet_box((3, 2, 2), size=(0.9, 0.6, 0.6))
+    cells = [("tetra", m.blocks[0].cells)]
+    meshio.write(tmp_path / "m.vtu", meshio.Mesh(m.points, cells))
+    meshio.write(tmp_path / "mm.vtu", meshio.Mesh(m.points * 1000.0, cells))
+    s = AuditSettings((500.0,), AdviceSettings(order=2))
+    a = audit(read_mesh(tmp_path / "m.vtu", "m"), s)
+    b = audit(read_mesh(tmp_path / "mm.vtu", "mm"), s)
+    assert np.allclose(a.advice.cell_limit, b.advice.cell_limit, rtol=1e-12)
+
+
+def test_limits_scale_with_sound_speed():
+    # closed form: at fixed kh and L/h, f = c kh / (2 pi h) is proportional to c
+    mesh = tet_box((3, 3, 3))
+    air = audit(mesh, AuditSettings((100.0,), speed=343.0))
+    water = audit(mesh, AuditSettings((100.0,), speed=1481.0))
+    assert np.allclose(water.advice.mesh_limit / air.advice.mesh_limit, 1481.0 / 343.0)
+
+
+def test_region_speed_override_by_name():
+    mesh = tet_box((2, 2, 2))
+    res = audit(mesh, AuditSettings((100.0,), speed=343.0, region_speeds={"air": 686.0}))
+    assert np.allclose(res.advice.cell_speed, 686.0)
+
+
+@pytest.mark.parametrize("p", [1, 2])
+def test_target_size_is_the_size_that_passes(p):
+    # a uniform hex grid with edges at the advised target size carries fmax, one a bit
+    # coarser does not
+    f = 400.0
+    probe = audit(hex_box((2, 2, 2)), AuditSettings((f,), AdviceSettings(order=p), speed=C,
+                                                      ))
+    # the target depends on L; build meshes of the same extent L (1 m cube)
+    h = float(probe.advice.target_size[0])
+    n_ok = int(np.ceil(1.0 / h))
+    ok = audit(hex_box((n_ok,) * 3), AuditSettings((f,), AdviceSettings(order=p), speed=C))
+    assert ok.ready
+    n_bad = max(1, int(np.floor(1.0 / h * 0.9)))
+    bad = audit(hex_box((n_bad,) * 3), AuditSettings((f,), AdviceSettings(order=p), speed=C))
+    assert not bad.ready
+    assert bad.advice.refine.all()
+
+
+def test_fixed_order_refine_region_is_the_coarse_part():
+    # two blocks glued conformingly: fine (h = 0.05) and coarse (h = 0.25) in x
+    xs = np.concatenate([np.linspace(0, 0.5, 11), np.linspace(0.5, 1.5, 5)[1:]])
+    ys = np.linspace(0, 0.1, 3)
+    X, Y, Z = np.meshgrid(xs, ys, ys, indexing="ij")
+    pts = np.column_stack([X.ravel(), Y.ravel(), Z.ravel()])
+    from meshes import grid_hexes
+    from meshcheck.mesh import CellBlock, Mesh
+    hexes = grid_hexes((len(xs) - 1, 2, 2))
+    mesh = Mesh(pts, (CellBlock("hexahedron", hexes, np.ones(len(hexes))),))
+    res = audit(mesh, AuditSettings((600.0,), AdviceSettings(order=2), speed=C))
+    centre_x = mesh.centroids[:, 0]
+    assert res.advice.refine[centre_x > 0.5].all()
+    assert not res.advice.refine[centre_x < 0.5].any()
+    assert len(res.refine_clusters) == 1 and res.refine_clusters[0].cells == 4 * 4
