@@ -353,6 +353,27 @@ def _sample(cell_type, where):
     return sample_points(cell_type, where) if isinstance(where, str) else _as_ref(where)
 
 
+def _gathered(points, cells, d):
+    """(n_nodes, d, m) float64 nodal coordinates, component-major (one gather)."""
+    pts_t = np.ascontiguousarray(np.asarray(points, dtype=np.float64)[:, :d].T)   # (d, n)
+    idx = np.ascontiguousarray(np.asarray(cells).T)                               # (n_nodes, m)
+    X = np.empty((idx.shape[0], d, idx.shape[1]))
+    for c in range(d):
+        X[:, c, :] = pts_t[c][idx]
+    return X
+
+
+def _per_point(points, cells, cell_type, where):
+    """Yield the Jacobians ``J[i, j, m] = dx_i/dr_j`` at one sample point after the
+    other: (d, d, m), memory m * d * d per step.  Plain einsum (no BLAS threads)."""
+    info = _info(cell_type)
+    d = info.dim
+    X = _gathered(points, cells, d)
+    dN = shape_gradients(cell_type, _sample(cell_type, where))[:, :, :d]   # (q, n, d)
+    for g in dN:
+        yield np.einsum("nim,nj->ijm", X, g)
+
+
 def jacobian_matrices(points: np.ndarray, cells: np.ndarray, cell_type: str,
                       where="corners") -> np.ndarray:
     """Jacobian matrices ``J[m, q, i, j] = dx_i / dr_j``.
@@ -363,24 +384,20 @@ def jacobian_matrices(points: np.ndarray, cells: np.ndarray, cell_type: str,
     Returns (m, q, d, d) float64 with d = 3 (3D) or 2 (2D types, xy plane).
     Memory is m * q * d * d doubles: chunk large inputs.
     """
-    info = _info(cell_type)
-    d = info.dim
-    cells = np.asarray(cells)
-    X = np.asarray(points, dtype=np.float64)[cells][:, :, :d]     # (m, n, d)
-    dN = shape_gradients(cell_type, _sample(cell_type, where))[:, :, :d]   # (q, n, d)
-    m, n = cells.shape
-    q = dN.shape[0]
-    # one matrix product: (m*d, n) @ (n, q*d)
-    J = X.transpose(0, 2, 1).reshape(m * d, n) @ dN.transpose(1, 0, 2).reshape(n, q * d)
-    return J.reshape(m, d, q, d).transpose(0, 2, 1, 3)
+    d = _info(cell_type).dim
+    Js = [J for J in _per_point(points, cells, cell_type, where)]
+    if not Js:
+        return np.zeros((len(cells), 0, d, d))
+    return np.stack(Js).transpose(3, 0, 1, 2)
 
 
 def _det(J: np.ndarray) -> np.ndarray:
-    if J.shape[-1] == 2:
-        return J[..., 0, 0] * J[..., 1, 1] - J[..., 0, 1] * J[..., 1, 0]
-    return (J[..., 0, 0] * (J[..., 1, 1] * J[..., 2, 2] - J[..., 1, 2] * J[..., 2, 1])
-            - J[..., 0, 1] * (J[..., 1, 0] * J[..., 2, 2] - J[..., 1, 2] * J[..., 2, 0])
-            + J[..., 0, 2] * (J[..., 1, 0] * J[..., 2, 1] - J[..., 1, 1] * J[..., 2, 0]))
+    """Determinant of (d, d, ...) stacked matrices."""
+    if J.shape[0] == 2:
+        return J[0, 0] * J[1, 1] - J[0, 1] * J[1, 0]
+    return (J[0, 0] * (J[1, 1] * J[2, 2] - J[1, 2] * J[2, 1])
+            - J[0, 1] * (J[1, 0] * J[2, 2] - J[1, 2] * J[2, 0])
+            + J[0, 2] * (J[1, 0] * J[2, 1] - J[1, 1] * J[2, 0]))
 
 
 def jacobian_determinants(points: np.ndarray, cells: np.ndarray, cell_type: str,
@@ -391,7 +408,9 @@ def jacobian_determinants(points: np.ndarray, cells: np.ndarray, cell_type: str,
     Positive for a cell ordered like its VTK reference cell; negative where
     the map folds over (inverted).
     """
-    return _det(jacobian_matrices(points, cells, cell_type, where))
+    cols = [_det(J) for J in _per_point(points, cells, cell_type, where)]
+    m = len(cells)
+    return np.stack(cols, axis=1) if cols else np.zeros((m, 0))
 
 
 def scaled_jacobian_min(points: np.ndarray, cells: np.ndarray, cell_type: str,
@@ -403,9 +422,11 @@ def scaled_jacobian_min(points: np.ndarray, cells: np.ndarray, cell_type: str,
     A sample point with a zero-length column gives 0 (degenerate).
     Returns (m,) float64.
     """
-    J = jacobian_matrices(points, cells, cell_type, where)
-    det = _det(J)
-    norms = np.prod(np.sqrt(np.einsum("mqij,mqij->mqj", J, J)), axis=-1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        sj = np.where(norms > 0.0, det / np.where(norms > 0.0, norms, 1.0), 0.0)
-    return sj.min(axis=1) if sj.shape[1] else np.full(len(sj), np.nan)
+    out = np.full(len(cells), np.inf)
+    for J in _per_point(points, cells, cell_type, where):
+        det = _det(J)
+        norms = np.sqrt(np.prod(np.einsum("ijm,ijm->jm", J, J), axis=0))   # product of column norms
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sj = np.where(norms > 0.0, det / np.where(norms > 0.0, norms, 1.0), 0.0)
+        np.minimum(out, sj, out=out)
+    return out

@@ -66,9 +66,9 @@ Degenerate cells (a zero edge, face or volume) give ``inf`` for the ratios and
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
-from typing import Mapping
 
 import numpy as np
 
@@ -338,14 +338,20 @@ def block_quality(points: np.ndarray, cells: np.ndarray, cell_type: str) -> dict
     Returns {metric: (m,) float64}, NaN where a metric is undefined for the
     type.  The corner coordinates are gathered once and shared by all metrics.
     """
-    info = CELL_TYPES[cell_type] if cell_type in CELL_TYPES else None
-    if info is None:
-        raise ValueError(f"unsupported cell type {cell_type!r}")
-    fam = family_of(cell_type)
+    return _block_quality(_points_t(points), cells, cell_type)
+
+
+def _points_t(points) -> np.ndarray:
+    """(3, n) float64 component-major copy of the points."""
+    return np.ascontiguousarray(np.asarray(points, dtype=np.float64).T)
+
+
+def _block_quality(pts_t: np.ndarray, cells: np.ndarray, cell_type: str) -> dict[str, np.ndarray]:
+    fam = family_of(cell_type)                   # ValueError if unsupported
+    info = CELL_TYPES[cell_type]
     cells = np.asarray(cells)
     m = cells.shape[0]
     d = info.dim
-    pts_t = np.ascontiguousarray(np.asarray(points, dtype=np.float64)[:, :d].T)   # (d, n)
     idx = np.ascontiguousarray(cells[:, : info.n_corners].T)                      # (nc, m)
     X = np.empty((info.n_corners, d, m))                                          # the one gather
     for c in range(d):
@@ -404,10 +410,11 @@ def mesh_quality(mesh: Mesh, chunk_size: int = 200_000) -> CellQuality:
     n = mesh.n_cells
     out = {k: np.full(n, np.nan) for k in METRICS}
     offsets = mesh.block_offsets
+    pts_t = _points_t(mesh.points)
     for blk, off in zip(mesh.blocks, offsets[:-1]):
         for start in range(0, len(blk), chunk_size):
             stop = min(start + chunk_size, len(blk))
-            q = block_quality(mesh.points, blk.cells[start:stop], blk.type)
+            q = _block_quality(pts_t, blk.cells[start:stop], blk.type)
             for k in METRICS:
                 out[k][off + start: off + stop] = q[k]
     for v in out.values():
