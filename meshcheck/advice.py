@@ -133,6 +133,42 @@ def _edge_values(topo: Topology, cell_values: np.ndarray, reduce) -> np.ndarray:
     return topo.edges.from_cells(cell_values, reduce)
 
 
+def _governing_edges(topo: Topology, h, edge_c, edge_L):
+    """Per cell, the edge whose limit is the cell's limit at every order, and the cells
+    for which that shortcut does not hold and the minimum is taken edge by edge.
+
+    With one speed and one distance on all edges of a cell, an edge's limit
+    f = c (kh)_max(L/h) / (2 pi h) decreases with h, so the longest edge governs
+    at every order.  Cells whose edges differ in c or L are listed as exact.
+    """
+    govs, exact = [], []
+    uniform = (np.ptp(edge_c) == 0 if len(edge_c) else True) and \
+        (np.ptp(edge_L) == 0 if len(edge_L) else True)
+    start = 0
+    for ce in topo.edges.cell_edges:
+        hl = h[ce]
+        govs.append(ce[np.arange(len(ce)), np.argmax(hl, axis=1)])
+        if not uniform:
+            cl, ll = edge_c[ce], edge_L[ce]
+            odd = (cl.min(1) != cl.max(1)) | (ll.min(1) != ll.max(1)) | ~np.isfinite(hl).all(1)
+            exact.append(np.flatnonzero(odd) + start)
+        start += len(ce)
+    gov = np.concatenate(govs) if govs else np.zeros(0, np.int64)
+    ex = np.concatenate(exact) if exact else np.zeros(0, np.int64)
+    return gov, ex
+
+
+def _min_over_cell_edges(topo: Topology, values, cells) -> np.ndarray:
+    """Minimum of an edge quantity over the edges of the given global cells."""
+    out = np.empty(len(cells))
+    offs = np.concatenate([[0], np.cumsum([len(ce) for ce in topo.edges.cell_edges])])
+    for b, ce in enumerate(topo.edges.cell_edges):
+        sel = (cells >= offs[b]) & (cells < offs[b + 1])
+        if sel.any():
+            out[sel] = values[ce[cells[sel] - offs[b]]].min(axis=1)
+    return out
+
+
 def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
            settings: AdviceSettings = AdviceSettings(), pmax: int = 12) -> Advice:
     """Frequency limits per edge, cell and order, and the advice at ``fmax`` (Hz).
@@ -160,13 +196,16 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     edge_order = np.full(len(h), pmax + 1, dtype=np.int64)
     P = settings.allowed_order
     edge_limit = None
+    gov, exact = _governing_edges(topo, h, edge_c, edge_L)
     for p in range(1, pmax + 1):
         with np.errstate(divide="ignore", invalid="ignore"):
             f_e = np.where(good, edge_c * table.max_kh(p, ratio) / (TWO_PI * h), 0.0)
         edge_order[(edge_order > pmax) & (f_e >= fmax)] = p
         if p == P:
             edge_limit = f_e
-        cell_limit[:, p - 1] = topo.edges.per_cell(f_e, np.minimum)
+        cell_limit[:, p - 1] = f_e[gov]
+        if len(exact):
+            cell_limit[exact, p - 1] = _min_over_cell_edges(topo, f_e, exact)
     np.maximum.accumulate(cell_limit, axis=1, out=cell_limit)
     cell_order = 1 + np.count_nonzero(cell_limit < fmax, axis=1)
     cell_size = topo.edges.per_cell(h, np.maximum)
@@ -255,23 +294,27 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
     else:
         inc = topo.edges.incidence
         st = topo.edges.incidence_starts
-        first = np.repeat(inc[st], np.diff(np.append(st, len(inc))))
-        a, b = first, inc
+        a, b = np.repeat(inc[st], np.diff(np.append(st, len(inc)))), inc
     keep = mask[a] & mask[b]
-    g = sparse.coo_matrix((np.ones(keep.sum(), np.int8), (a[keep], b[keep])), shape=(n, n))
-    _, label = connected_components(g, directed=False)
-    lab = label[ids]
-    uniq, inv, cnt = np.unique(lab, return_inverse=True, return_counts=True)
-    vol = np.bincount(inv, weights=np.abs(topo.cell_volume[ids]))
+    local = np.full(n, -1, np.int64)
+    local[ids] = np.arange(len(ids))
+    g = sparse.coo_matrix((np.ones(int(keep.sum()), np.int8), (local[a[keep]], local[b[keep]])),
+                          shape=(len(ids), len(ids)))
+    n_lab, lab = connected_components(g, directed=False)
+    cnt = np.bincount(lab, minlength=n_lab)
+    w = np.abs(topo.cell_volume[ids])
+    vol = np.bincount(lab, weights=w, minlength=n_lab)
+    order = np.argsort(lab, kind="stable")
+    starts = np.concatenate([[0], np.cumsum(cnt)])
     cen = mesh.centroids[ids]
     out = []
-    for j in np.argsort(-cnt)[:limit]:
-        sel = ids[inv == j]
+    for j in np.argsort(-cnt, kind="stable")[:limit]:
+        pos = order[starts[j]:starts[j + 1]]
+        sel = ids[pos]
         size = float(advice.cell_size[sel].max())
         target = float(advice.target_size[sel].min())
-        x = cen[inv == j]
-        w = np.abs(topo.cell_volume[sel])
-        c = (x * w[:, None]).sum(0) / w.sum() if w.sum() > 0 else x.mean(0)
+        x = cen[pos]
+        c = (x * w[pos, None]).sum(0) / vol[j] if vol[j] > 0 else x.mean(0)
         out.append(Cluster(int(cnt[j]), float(vol[j]), c, x.min(0), x.max(0), size, target,
                            target / size if size > 0 else np.inf, sel[:max_ids],
                            tuple(int(t) for t in np.unique(mesh.region[sel]))))

@@ -123,4 +123,5 @@ class Mesh:
         for b in self.blocks:
             used[b.cells] = True
         pts = self.points[used] if used.any() else self.points
-        return np.array([pts.min(axis=0), pts.max(axis=0)])
+        with np.errstate(invalid="ignore"):
+            return np.array([np.nanmin(pts, axis=0), np.nanmax(pts, axis=0)])

@@ -23,14 +23,36 @@ _GL_X, _GL_WT = np.polynomial.legendre.leggauss(12)
 _GL_S, _GL_W = 0.5 + 0.5 * _GL_X, 0.5 * _GL_WT
 
 
-def _group_sorted(keys: tuple[np.ndarray, ...]):
+def _argsort_key(key: np.ndarray, key_max: int) -> np.ndarray:
+    """Permutation sorting an int64 key array (keys in [0, key_max]).
+
+    When the key and the row number fit together in 63 bits they are packed
+    into one int64 and sorted with ``np.sort`` (SIMD, several times faster
+    than ``np.argsort``); otherwise ``np.argsort``.  Equal keys keep their
+    row order in both paths.
+    """
+    n = key.shape[0]
+    pos_bits = max(int(n - 1).bit_length(), 1)
+    if int(key_max).bit_length() + pos_bits <= 63:
+        packed = np.sort((key << pos_bits) | np.arange(n, dtype=np.int64))
+        return packed & ((1 << pos_bits) - 1)
+    return np.argsort(key, kind="stable")
+
+
+def _group_sorted(keys: tuple[np.ndarray, ...], key_max: int | None = None):
     """Sort rows given as key columns (last key primary, like np.lexsort).
 
     Returns (order, starts, inverse): ``order`` sorts the rows, ``starts``
     indexes the first sorted row of every group of equal rows, ``inverse``
-    maps every row to its group number.
+    maps every row to its group number.  A single key with a known maximum
+    takes the packed fast path of :func:`_argsort_key`.
     """
-    order = np.lexsort(keys) if len(keys) > 1 else np.argsort(keys[0], kind="stable")
+    if len(keys) == 1 and key_max is not None:
+        order = _argsort_key(keys[0], key_max)
+    elif len(keys) == 1:
+        order = np.argsort(keys[0], kind="stable")
+    else:
+        order = np.lexsort(keys)
     n = order.shape[0]
     new = np.ones(n, dtype=bool)
     if n:
@@ -125,7 +147,7 @@ def build_edges(mesh: Mesh) -> Edges:
         return Edges(np.zeros((0, 2), np.int64), z, np.zeros(0), ())
     key = np.concatenate(keys)
     mid = np.concatenate(mids)
-    order, starts, inverse = _group_sorted((key,))
+    order, starts, inverse = _group_sorted((key,), int(n) * int(n))
     first = order[starts]
     ukey = key[first]
     nodes = np.column_stack([ukey // n, ukey % n])
@@ -191,9 +213,14 @@ def build_faces(mesh: Mesh) -> Faces:
     corners = np.concatenate([p[1] for p in parts])
     s = np.sort(corners, axis=1)  # -1 (triangle pad) sorts first
     n = np.int64(mesh.n_points + 1)
-    k_hi = (s[:, 1] * n + s[:, 2])
-    k_lo = (s[:, 0] + 1) * n + s[:, 3]
-    order, starts, inverse = _group_sorted((k_lo, k_hi))
+    if not (s[:, 0] >= 0).any() and 3 * int(n).bit_length() <= 62:
+        # tetrahedra and wedges/pyramids' triangles only: one packed key
+        key = (s[:, 1] * n + s[:, 2]) * n + s[:, 3]
+        order, starts, inverse = _group_sorted((key,), int(n) ** 3)
+    else:
+        k_hi = (s[:, 1] * n + s[:, 2])
+        k_lo = (s[:, 0] + 1) * n + s[:, 3]
+        order, starts, inverse = _group_sorted((k_lo, k_hi))
     count = np.diff(np.append(starts, len(order)))
     first = order[starts]
     cells = np.full((len(starts), 2), -1, np.int64)
@@ -217,6 +244,11 @@ def cell_volumes(mesh: Mesh) -> np.ndarray:
             x = P[corners][:, :, :2]
             xs = np.roll(x, -1, axis=1)
             out.append(0.5 * np.sum(x[..., 0] * xs[..., 1] - xs[..., 0] * x[..., 1], axis=1))
+            continue
+        if b.info.linear == "tetra":
+            x = P[corners]
+            d = x[:, 1:] - x[:, :1]
+            out.append(np.einsum("ij,ij->i", d[:, 0], np.cross(d[:, 1], d[:, 2])) / 6.0)
             continue
         vol = np.zeros(len(b))
         for f in b.info.faces:
@@ -290,6 +322,9 @@ def _components(mesh: Mesh, faces: Faces, edges: Edges) -> tuple[int, np.ndarray
 
 
 def _per_label_bbox(points: np.ndarray, mesh: Mesh, label: np.ndarray, n_label: int):
+    if n_label == 1:
+        bb = mesh.bounding_box
+        return bb[:1].copy(), bb[1:].copy()
     lo = np.full((n_label, 3), np.inf)
     hi = np.full((n_label, 3), -np.inf)
     for i, b in enumerate(mesh.blocks):
@@ -332,19 +367,37 @@ def _duplicate_nodes(points, used, edges: Edges, rel_tol: float) -> np.ndarray:
     return out[np.lexsort((out[:, 1], out[:, 0]))]
 
 
+_HASH_MULT = np.array([0x9E3779B97F4A7C15, 0xC2B2AE3D27D4EB4F, 0x165667B19E3779F9,
+                       0xD6E8FEB86659FD93, 0xFF51AFD7ED558CCD, 0xC4CEB9FE1A85EC53,
+                       0x94D049BB133111EB, 0xBF58476D1CE4E5B9], dtype=np.uint64)
+
+
 def _duplicate_cells(mesh: Mesh) -> np.ndarray:
-    """(k, 2) pairs (first cell, repeat) of cells of one block with the same corners."""
+    """(k, 2) pairs (first cell, repeat) of cells of one block with the same corners.
+
+    Candidates come from a 64-bit multiplicative hash of the sorted corners
+    (one fast ``np.sort``); only cells whose hash repeats are compared exactly.
+    """
     out = []
     for i, b in enumerate(mesh.blocks):
         s = np.sort(b.cells[:, :b.info.n_corners], axis=1)
         if len(s) < 2:
             continue
-        order, starts, inverse = _group_sorted(tuple(s[:, k] for k in range(s.shape[1] - 1, -1, -1)))
+        with np.errstate(over="ignore"):
+            h = (s.astype(np.uint64) * _HASH_MULT[:s.shape[1]]).sum(axis=1, dtype=np.uint64)
+            h ^= h >> np.uint64(29)
+        hs = np.sort(h)
+        rep = hs[1:][hs[1:] == hs[:-1]]
+        if not len(rep):
+            continue
+        cand = np.flatnonzero(np.isin(h, rep))
+        sc = s[cand]
+        order, starts, inverse = _group_sorted(tuple(sc[:, k] for k in range(sc.shape[1] - 1, -1, -1)))
         group_sorted = inverse[order]
         repeat = np.ones(len(order), bool)
         repeat[starts] = False
-        first = order[starts[group_sorted[repeat]]]
-        out.append(np.column_stack([first, order[repeat]]) + mesh.block_offsets[i])
+        first = cand[order[starts[group_sorted[repeat]]]]
+        out.append(np.column_stack([first, cand[order[repeat]]]) + mesh.block_offsets[i])
     return np.concatenate(out).astype(np.int64) if out else np.zeros((0, 2), np.int64)
 
 

@@ -107,3 +107,30 @@ def test_fixed_order_refine_region_is_the_coarse_part():
     assert res.advice.refine[centre_x > 0.5].all()
     assert not res.advice.refine[centre_x < 0.5].any()
     assert len(res.refine_clusters) == 1 and res.refine_clusters[0].cells == 4 * 4
+
+
+def test_cell_limit_is_min_over_its_edges_with_two_media():
+    # the longest-edge shortcut must equal the edge-by-edge minimum, also at an interface of
+    # two media where an edge takes the lower speed of its cells
+    from meshcheck.dispersion import usable_kh
+    from meshcheck.mesh import CellBlock, Mesh
+    from meshcheck.topology import build_topology
+    rng = np.random.default_rng(1)
+    base = tet_box((4, 3, 3), size=(1.0, 0.8, 0.6))
+    pts = base.points + rng.uniform(-0.02, 0.02, base.points.shape)
+    cells = base.blocks[0].cells
+    region = np.where(base.centroids[:, 0] < 0.5, 1, 2)
+    mesh = Mesh(pts, (CellBlock("tetra", cells, region),), {1: "air", 2: "water"})
+    res = audit(mesh, AuditSettings((300.0,), AdviceSettings(max_order=8),
+                                    region_speeds={"air": 343.0, "water": 1481.0}))
+    topo = build_topology(mesh)
+    c_cell = np.where(region == 1, 343.0, 1481.0)
+    L = topo.cell_extent()
+    edge_c = topo.edges.from_cells(c_cell, np.minimum)
+    edge_L = topo.edges.from_cells(L, np.maximum)
+    h = topo.edges.length
+    table = usable_kh(0.01, 12)
+    brute = np.stack([[(edge_c * table.max_kh(q, edge_L / h) / (2 * np.pi * h))[e].min()
+                       for e in topo.edges.cell_edges[0]] for q in range(1, 9)], axis=1)
+    brute = np.maximum.accumulate(brute, axis=1)  # the advisor's limits never drop with p
+    assert np.allclose(res.advice.cell_limit[:, :8], brute, rtol=1e-12)
