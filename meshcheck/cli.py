@@ -6,6 +6,7 @@ Exit codes: 0 the mesh is ready up to the requested upper frequency,
 from __future__ import annotations
 
 import sys
+from contextlib import contextmanager
 from enum import Enum
 from pathlib import Path
 from typing import List, Optional
@@ -16,6 +17,7 @@ from typer.exceptions import TyperException
 from rich.console import Console
 from rich.markup import escape
 from rich.panel import Panel
+from rich.progress import BarColumn, Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
 from .errors import MeshcheckError
@@ -134,20 +136,33 @@ def _print_summary(console: Console, res, files: dict | None, data: dict) -> Non
     console.print(f"[dim]{CAUTION}[/]")
 
 
-class _Quiet:
-    def __enter__(self):
-        return self
+_STAGES = ("reading", "topology", "validity", "quality", "advice", "reports")
 
-    def __exit__(self, *exc):
-        return False
 
-    def update(self, *args, **kwargs):
-        pass
+@contextmanager
+def _stages(quiet: bool):
+    """A rich progress bar over the audit stages (on stderr); silent when quiet."""
+    if quiet:
+        yield lambda name: None
+        return
+    progress = Progress(SpinnerColumn(), TextColumn("{task.description:<10}"), BarColumn(),
+                        TimeElapsedColumn(), console=Console(stderr=True), transient=True)
+    with progress:
+        task = progress.add_task("reading", total=len(_STAGES))
+        done = set()
+
+        def step(name: str) -> None:
+            if name in _STAGES and name not in done:
+                done.add(name)
+                progress.update(task, description=name, completed=len(done) - 1)
+        yield step
 
 
 def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, max_order,
-         speed, temperature, region_speed, distance, out: Optional[Path], quiet: bool) -> int:
+         speed, temperature, region_speed, distance, out: Optional[Path], quiet: bool,
+         job: Optional[Path] = None) -> int:
     from .advice import AdviceSettings
+    from .job import load_job
     from .pipeline import AuditSettings, audit
     from .reading import read_mesh
     from .report import to_dict, write_json, write_markdown, write_vtu
@@ -156,21 +171,33 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     console = Console(highlight=False)
     f = _frequencies(fmin, fmax, step, bands, freqs)
     region_speeds = _parse_region_speeds(region_speed)
-    with console.status("reading", spinner="line") if not quiet else _Quiet() as status:
+    job_spec = load_job(job) if job is not None else None
+    if job_spec is not None and temperature is not None:
+        job_spec = job_spec.with_temperature(temperature)  # the command line wins
+    temperature = 20.0 if temperature is None else temperature
+    with _stages(quiet) as step:
+        step("reading")
         mesh = read_mesh(mesh_path, units.value if units is not None else None)
         dist = None if distance is None else distance * UNIT_FACTORS[mesh.unit]
         adv = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist)
         settings = AuditSettings(frequencies=tuple(f), advice=adv, temperature=temperature,
-                                 speed=speed, region_speeds=region_speeds)
-        res = audit(mesh, settings, progress=lambda s: status.update(f"{s} ..."))
-    data = to_dict(res)
-    files = None
-    if out is not None:
-        out.mkdir(parents=True, exist_ok=True)
-        stem = mesh_path.stem
-        files = {"json": write_json(res, out / f"{stem}.audit.json", data),
-                 "markdown": write_markdown(res, out / f"{stem}.audit.md", data),
-                 "vtu": write_vtu(res, out / f"{stem}.audit.vtu")}
+                                 speed=speed, region_speeds=region_speeds, job=job_spec)
+        res = audit(mesh, settings, progress=step)
+        step("reports")
+        data = to_dict(res)
+        files = None
+        if out is not None:
+            out.mkdir(parents=True, exist_ok=True)
+            stem = mesh_path.stem
+            files = {"json": write_json(res, out / f"{stem}.audit.json", data),
+                     "markdown": write_markdown(res, out / f"{stem}.audit.md", data),
+                     "vtu": write_vtu(res, out / f"{stem}.audit.vtu")}
+            try:  # figures need matplotlib; without it the other reports still stand
+                from .html_report import write_html
+                files["html"] = write_html(res, out / f"{stem}.audit.html", data)
+            except ImportError as exc:
+                if not quiet:
+                    console.print(f"note: HTML report skipped: {escape(str(exc))}")
     if not quiet:
         _print_summary(console, res, files, data)
     return 0 if res.ready else 1
@@ -194,19 +221,23 @@ def audit(
     order: Optional[int] = typer.Option(None, help="Fixed element order of the solver (1, 2, ...)."),
     max_order: int = typer.Option(8, help="Highest order of a variable-order solver."),
     speed: Optional[float] = typer.Option(None, help="Sound speed, m/s (default: air)."),
-    temperature: float = typer.Option(20.0, help="Air temperature, deg C."),
+    temperature: Optional[float] = typer.Option(None, help="Air temperature, deg C (default 20; "
+                                                "overrides the job file's air media)."),
     region_speed: Optional[List[str]] = typer.Option(None, help="REGION=SPEED in m/s, repeatable."),
     distance: Optional[float] = typer.Option(None, help="Propagation distance L in the mesh's unit "
                                              "(default: diagonal of each fluid part)."),
     out: Optional[Path] = typer.Option(None, help="Folder for the JSON, Markdown and VTU reports "
                                        "(default: <mesh name>-audit next to the working folder)."),
+    job: Optional[Path] = typer.Option(None, "--job", help="TOML job file: per-region media, "
+                                       "mean flow, losses and roles (the options above override "
+                                       "it).", dir_okay=False),
     quiet: bool = typer.Option(False, help="No terminal summary (exit code only)."),
     debug: bool = typer.Option(False, help="Show tracebacks."),
 ):
     """Audit MESH: validity, quality, usable frequency per order, refine/coarsen advice."""
     out = out if out is not None else Path.cwd() / f"{mesh.stem}-audit"
     raise typer.Exit(_run(mesh, units, fmin, fmax, step, bands, freqs, target, order, max_order,
-                          speed, temperature, region_speed, distance, out, quiet))
+                          speed, temperature, region_speed, distance, out, quiet, job))
 
 
 @app.command()

@@ -15,8 +15,8 @@ On a uniform 1D mesh of elements of order p, assemble the element matrices of
     cos(k_h h) = R(t) = -S00 / S01
 
 (Ihlenburg & Babuska, Comput. Math. Appl. 30 (1995); SIAM J. Numer. Anal. 34
-(1997); Ainsworth, SIAM J. Numer. Anal. 42(2) (2004) 553-575, doi:10.1137/
-S0036142903423460).  R does not depend on the basis.
+(1997); Ainsworth, SIAM J. Numer. Anal. 42(2) (2004) 553-575).  R does not
+depend on the basis.
 
 Reference element and basis (hierarchical, integrated Legendre / Lobatto)::
 
@@ -29,17 +29,21 @@ stiffness matrix exactly: ``K_vv = [[1, -1], [-1, 1]]``, ``K_vb = 0``,
 ``K_bb = 2 I``.  The consistent mass M is integrated with p + 1 Gauss-Legendre
 points (exact for degree 2p).
 
-Interior resonances.  ``D_bb(t)`` is singular where t^2 equals an eigenvalue
-mu_i of the bubble problem ``K_bb v = mu M_bb v`` (the element clamped at
-both ends).  With the M-orthonormal eigenvectors V,
-``S = D_vv - t^4 sum_i (M_vb v_i)(M_vb v_i)^T / (mu_i - t^2)``.  The pole is
-removable in R (each mode is symmetric or antisymmetric, so R -> +-1 there).
-R is evaluated after multiplying S00 and S01 by ``(mu_j - t^2)`` for the
-nearest eigenvalue mu_j, so it is finite and correct at and near every
-resonance; no NaN is produced there.  ``R = +-inf`` only where S01 itself
-vanishes (a genuine pole of R: infinite attenuation), NaN only for NaN input.
-The differences ``1 - R`` and ``1 + R`` are formed from the condensed
-quantities directly (no cancellation), so k_h h is accurate down to t ~ 1e-8.
+Evaluation.  The bubble block ``D_bb(t)`` is singular where t^2 equals an
+eigenvalue mu_i of the element clamped at both ends; R has a removable
+singularity there (R = +-1).  R is evaluated from the modal form of the
+condensation, ``S = D_vv - t^4 sum_i (M_vb v_i)(M_vb v_i)^T / (mu_i - t^2)``
+(V the M-orthonormal eigenvectors), with S00 and S01 multiplied by
+``(mu_j - t^2)`` of the nearest eigenvalue, so it is finite and correct at
+and near every resonance: no NaN there.  ``R = +-inf`` only where S01 = 0 (a
+genuine pole of R, deep in a stop band); NaN only for NaN input.  1 - R is
+formed without cancellation, so k_h h keeps ~1e-16 relative accuracy as
+t -> 0.  Next to the band edges at kh > 1 (R -> +-1, where arccos is
+ill-conditioned) the equivalent factored form is used: with A = S00 - S01,
+B = S00 + S01, ``A / B = det(K_a - t^2 M_a) / det(K_p - t^2 M_p)`` for the
+antiperiodic (u1 = -u0) and periodic (u1 = u0) one-element cells, whose
+eigenvalues are the band edges; 1 +- R is then a product over those
+eigenvalues and keeps its relative accuracy up to the edge.
 
 Physical branch
 ---------------
@@ -47,6 +51,10 @@ Physical branch
 pass bands; in stop bands (|R| > 1, Thompson & Pinsky, Comput. Mech. 13
 (1994)) ``m pi + i acosh|R|`` with m even for R > 1, odd for R < -1, nearest
 to t / pi.  The imaginary part (attenuation per element) counts as error.
+This nearest branch is the most favourable reading; it differs from the
+energy-carrying (extended-zone) branch only just past a multiple of pi
+before a stop band opens (p = 1 on (pi, sqrt 12), p = 2 on (pi, sqrt 10),
+< 1e-3 wide for p >= 4), and there by at most twice the lag.
 
 Error model
 -----------
@@ -67,13 +75,14 @@ Units: t, k_h h and kL are dimensionless (radians); errors are relative.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
 import math
+from dataclasses import dataclass, field
 from functools import lru_cache
 
 import numpy as np
 import scipy.linalg
 from numpy.polynomial import legendre as _leg
+from scipy.interpolate import CubicSpline
 from scipy.special import spherical_jn
 
 from .errors import MeshcheckError, SettingsError
@@ -88,6 +97,7 @@ __all__ = [
     "predicted_error",
     "elements_per_wavelength",
     "element_matrices",
+    "stop_bands",
     "UsableKh",
     "usable_kh",
 ]
@@ -145,12 +155,47 @@ def element_matrices(p: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 @lru_cache(maxsize=None)
+def _cell_spectra(p: int) -> tuple[float, np.ndarray, np.ndarray]:
+    """Eigenvalues of the periodic and antiperiodic one-element cells.
+
+    Returns (c, sa, sp): ``c = det M_a / det M_p``; sa (p,) the eigenvalues
+    t^2 of the antiperiodic cell (u1 = -u0, where R = -1); sp (p,) those of
+    the periodic cell (u1 = u0, where R = +1), sp[0] = 0 exactly (constant
+    mode).  All ascending, float64, read-only.
+    """
+    K, M = element_matrices(p)
+    out = []
+    for sign in (-1.0, 1.0):  # antiperiodic, periodic: vertex function N0 + sign N1
+        P = np.zeros((p + 1, p))
+        P[0, 0], P[1, 0] = 1.0, sign
+        P[2:, 1:] = np.eye(p - 1)
+        Kc, Mc = P.T @ K @ P, P.T @ M @ P
+        if sign > 0:  # Kc = diag(0, 2I): drop the exact zero via the mass Schur complement
+            Kd = np.diag(Kc)[1:]
+            Ms = Mc[1:, 1:] - np.outer(Mc[1:, 0], Mc[0, 1:]) / Mc[0, 0]
+        else:  # Kc = diag(4, 2I)
+            Kd, Ms = np.diag(Kc), Mc
+        # K diagonal: the eigenvalues 1/s of Kd^-1/2 M Kd^-1/2 have small relative
+        # error for the low (largest 1/s) edges, those next to multiples of pi
+        scale = 1.0 / np.sqrt(Kd)
+        inv = np.linalg.eigvalsh(Ms * scale[:, None] * scale[None, :]) if Kd.size else np.zeros(0)
+        lam = np.sort(1.0 / inv)
+        if sign > 0:
+            lam = np.concatenate([[0.0], lam])
+        out.append((np.linalg.slogdet(Mc)[1], lam))
+    (ld_a, sa), (ld_p, sp) = out
+    sa.setflags(write=False)
+    sp.setflags(write=False)
+    return float(np.exp(ld_a - ld_p)), sa, sp
+
+
+@lru_cache(maxsize=None)
 def _condensed(p: int):
     """Modal data of the static condensation.
 
     Returns (m00, m01, mu, b0, b1): vertex masses M00, M01; the (p-1,)
-    eigenvalues mu of ``K_bb v = mu M_bb v``; the couplings ``b0 = M_0b V``,
-    ``b1 = M_1b V`` with V M-orthonormal.
+    eigenvalues mu of ``K_bb v = mu M_bb v`` (element clamped at both ends);
+    the couplings ``b0 = M_0b V``, ``b1 = M_1b V`` with V M-orthonormal.
     """
     K, M = element_matrices(p)
     if p == 1:
@@ -160,36 +205,102 @@ def _condensed(p: int):
     return M[0, 0], M[0, 1], mu, M[0, 2:] @ V, M[1, 2:] @ V
 
 
-def _parts(t: np.ndarray, p: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(R, 1 - R, 1 + R) for float64 t >= 0 of any shape."""
+def _modal_parts(s: np.ndarray, p: int):
+    """(R, 1 - R, 1 + R) at s = t^2 (1D) by modal static condensation.
+
+    ``S = D_vv - s^2 sum_i (M_vb v_i)(M_vb v_i)^T / (mu_i - s)`` (K_vb = 0);
+    S00 and S01 are multiplied by (mu_j - s) of the nearest mu_j, which
+    removes the pole, and 1 - R = (S00 + S01)/S01 is formed without
+    cancellation (K00 + K01 = 0): accurate as t -> 0.
+    """
     m00, m01, mu, b0, b1 = _condensed(p)
+    if mu.size:
+        B = np.stack([b0 * b0, b0 * b1, b0 * (b0 + b1), b0 * (b1 - b0)], axis=1)  # (p-1, 4)
+        dist = mu[None, :] - s[:, None]
+        rows = np.arange(s.size)
+        j = np.argmin(np.abs(dist), axis=1)
+        dj = dist[rows, j]
+        wts = dj[:, None] / dist
+        wts[rows, j] = 1.0
+        sums = (wts @ B) * (s * s)[:, None]
+    else:
+        dj = np.ones_like(s)
+        sums = np.zeros((s.size, 4))
+    num = dj * (1.0 - s * m00) - sums[:, 0]  # S00 (K00 = 1)
+    den = dj * (-1.0 - s * m01) - sums[:, 1]  # S01 (K01 = -1)
+    plus = -dj * s * (m00 + m01) - sums[:, 2]  # S00 + S01
+    minus = dj * (-2.0 - s * (m01 - m00)) - sums[:, 3]  # S01 - S00
+    return -num / den, plus / den, minus / den
+
+
+def _cell_parts(s: np.ndarray, p: int):
+    """(R, 1 - R, 1 + R) at s = t^2 (1D) from the cell spectra.
+
+    With A = S00 - S01 and B = S00 + S01 (antiperiodic and periodic condensed
+    stiffness), the Schur-determinant identity gives
+    ``A / B = det(K_a - s M_a) / det(K_p - s M_p) = c prod(sa - s) / prod(sp - s)``
+    (the bubble determinant cancels) and ``R = -(A + B)/(B - A)``,
+    ``1 + R = -2A/(B - A)``, ``1 - R = 2B/(B - A)``: each of 1 +- R keeps full
+    relative accuracy next to its band edges.  Factors are scaled by
+    1/(sa_k + s) (the same for A and B) against overflow.
+    """
+    c, sa, sp = _cell_spectra(p)
+    w = sa + s[:, None]
+    A = c * np.prod((sa - s[:, None]) / w, axis=1)
+    B = np.prod((sp - s[:, None]) / w, axis=1)
+    den = B - A
+    return -(A + B) / den, 2.0 * B / den, -2.0 * A / den
+
+
+_EDGE_ZONE = 2e-3  # |1 -+ R| below which, for kh > 1, the cell-spectrum form is used
+
+
+def _parts(t: np.ndarray, p: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(R, 1 - R, 1 + R) for float64 t >= 0 of any shape.
+
+    Modal condensation everywhere (best as t -> 0) except next to the band
+    edges at kh > 1 (|1 -+ R| < 2e-3), where the cell-spectrum form is used:
+    there arccos is ill-conditioned and only the factored form keeps the
+    distance to the edge.  The two agree to ~1e-13 relative.
+    """
     flat = t.reshape(-1)
     R = np.empty_like(flat)
     q = np.empty_like(flat)
     g = np.empty_like(flat)
-    B = np.stack([b0 * b0, b0 * b1, b0 * (b0 + b1), b0 * (b1 - b0)], axis=1)  # (p-1, 4)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        for a in range(0, flat.size, _CHUNK):
-            s = flat[a:a + _CHUNK] ** 2
-            if mu.size:
-                dist = mu[None, :] - s[:, None]
-                rows = np.arange(s.size)
-                j = np.argmin(np.abs(dist), axis=1)
-                dj = dist[rows, j]
-                wts = dj[:, None] / dist
-                wts[rows, j] = 1.0
-                sums = (wts @ B) * (s * s)[:, None]
-            else:
-                dj = np.ones_like(s)
-                sums = np.zeros((s.size, 4))
-            num = dj * (1.0 - s * m00) - sums[:, 0]  # K00 = 1
-            den = dj * (-1.0 - s * m01) - sums[:, 1]  # K01 = -1
-            plus = -dj * s * (m00 + m01) - sums[:, 2]  # num + den (K00 + K01 = 0)
-            minus = dj * (-2.0 - s * (m01 - m00)) - sums[:, 3]  # den - num
-            R[a:a + _CHUNK] = -num / den
-            q[a:a + _CHUNK] = plus / den
-            g[a:a + _CHUNK] = minus / den
+        for i in range(0, flat.size, _CHUNK):
+            tt = flat[i:i + _CHUNK]
+            s = tt * tt
+            r, a, b = _modal_parts(s, p)
+            near = (tt > 1.0) & ~((a >= _EDGE_ZONE) & (b >= _EDGE_ZONE))
+            if np.any(near):
+                r[near], a[near], b[near] = _cell_parts(s[near], p)
+            R[i:i + _CHUNK], q[i:i + _CHUNK], g[i:i + _CHUNK] = r, a, b
     return R.reshape(t.shape), q.reshape(t.shape), g.reshape(t.shape)
+
+
+def stop_bands(p: int) -> np.ndarray:
+    """Stop bands of order p: (n, 2) float64 intervals of kh where |R| > 1.
+
+    Band edges are the square roots of the periodic and antiperiodic cell
+    eigenvalues; an interval between consecutive edges is a stop band when
+    |R| > 1 at its middle.  The last band is open: its end is inf.
+    """
+    p = _order(p)
+    return _stop_bands(p)
+
+
+@lru_cache(maxsize=None)
+def _stop_bands(p: int) -> np.ndarray:
+    _, sa, sp = _cell_spectra(p)
+    edges = np.sqrt(np.sort(np.concatenate([sa, sp])))
+    hi = np.append(edges[1:], np.inf)
+    mid = np.where(np.isinf(hi), 2.0 * edges + 1.0, 0.5 * (edges + hi))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        stop = np.abs(_cell_parts(mid * mid, p)[0]) > 1.0
+    out = np.column_stack([edges[stop], hi[stop]])
+    out.setflags(write=False)
+    return out
 
 
 # ------------------------------------------------------------------- public
@@ -254,7 +365,7 @@ def best_approximation_error(t, p: int) -> np.ndarray:
     ``sqrt(sum_{n>p} (2n+1) j_n(t/2)^2)`` (plane-wave expansion, A&S 10.1.47 /
     DLMF 10.60.7).  The tail is summed directly (up to 40 terms, fewer when
     they decay fast); where it exceeds 1e-3 it is taken as ``1 - head``
-    instead (no cancellation there; ``sum_n (2n+1) j_n^2 = 1``, DLMF 10.60.12).
+    instead (no cancellation there; ``sum_n (2n+1) j_n^2 = 1``, DLMF section 10.60).
     float64 array of t's shape.
     """
     t = _kh(t)
@@ -371,7 +482,7 @@ _BISECT_REL = 1e-7  # final bracket width, relative
 class UsableKh:
     """Largest usable kh per order and L/h ratio for one accuracy target.
 
-    target : relative L2 error target tau (float, 0 < tau < 1).
+    target : relative L2 error target tau (float, 1e-4..0.5).
     pmax : highest order in the table.
     log_r : (n_r,) float64, ln(L/h) on a uniform grid from 0 (r = 1) to ln 1e7.
     t_max : (pmax, n_r) float64; ``t_max[p-1, i]`` is the largest t with
@@ -404,9 +515,10 @@ class UsableKh:
         that is <= 0 or NaN.
         """
         row = self._row(p)
-        u = np.log(np.asarray(ratio, dtype=np.float64))
-        if not np.all(u > -np.inf):  # False for ratio <= 0 (-inf or NaN log)
+        u = np.array(ratio, dtype=np.float64)  # a copy, worked in place
+        if not np.all(u > 0):  # also False for NaN
             raise SettingsError("L/h ratios must be > 0")
+        np.log(u, out=u)
         n = self.log_r.size
         u *= (n - 1) / self.log_r[-1]
         np.clip(u, 0.0, n - 1, out=u)
@@ -437,10 +549,9 @@ class UsableKh:
         n = log_u.size
         b = np.clip(np.searchsorted(run, x, side="left"), 1, n - 1)
         u0, u1 = log_u[b - 1], log_u[b]
-        frac = np.clip((x - u0) / (u1 - u0), None, 1.0)
-        frac = np.where(b == n - 1, np.maximum(frac, 0.0), frac)  # extrapolate past r_max
+        frac = (x - u0) / (u1 - u0)  # in (0, 1] except below r = 1 and past r_max
         log_r = self.log_r[b - 1] + frac * (self.log_r[b] - self.log_r[b - 1])
-        log_r = np.maximum(log_r, 0.0)
+        log_r = np.maximum(log_r, 0.0)  # kL <= t_max(1): h = L
         return L * np.exp(-log_r)
 
 
@@ -448,9 +559,9 @@ def usable_kh(target: float, pmax: int = 12) -> UsableKh:
     """Build (cached) the usable-kh table for a relative L2 error target.
 
     target : 1e-4 <= target <= 0.5 (relative L2 error).  pmax : 1..16.
-    Limits: k_h h carries float64 noise ~1e-16 / |kh - m pi| near multiples
-    of pi; below 1e-4 (or above order 16) that noise can exceed the phase
-    error allowed over 1e7 elements and fake a crossing.  Raises SettingsError.
+    Limits: k_h h carries float64 noise up to ~1e-13 (orders >= 12); below
+    1e-4 (or above order 16) that noise can approach the phase error allowed
+    over 1e7 elements and fake a crossing.  Raises SettingsError.
     """
     target = float(target)
     if not 1e-4 <= target <= 0.5:
@@ -462,16 +573,36 @@ def usable_kh(target: float, pmax: int = 12) -> UsableKh:
 
 
 def _t_best(tau: float, p: int) -> float:
-    """Smallest t with best_approximation_error(t, p) >= tau (multisection), float."""
+    """A t, at most 1e-3 above the first, with best_approximation_error(t, p) >= tau.
+
+    The end of the first-crossing scan (the total error is above tau there).
+    """
     t = np.geomspace(1e-6, 8.0 * (p + 2), 64)
     while True:
         above = best_approximation_error(t, p) >= tau
         i = int(np.argmax(above))
         if not above[i]:
             raise MeshcheckError(f"internal: best-approximation error of order {p} never reaches {tau}")
-        if i == 0 or t[i] - t[i - 1] <= 1e-10 * t[i]:
+        if i == 0 or t[i] - t[i - 1] <= 1e-3 * t[i]:
             return float(t[i])
         t = np.linspace(t[i - 1], t[i], 64)
+
+
+def _gap_samples(p: int, lo: float, hi: float) -> np.ndarray:
+    """Extra scan points across each stop band [a, b] in [lo, hi] and after it.
+
+    A thin stop band (near multiples of pi for p >= 3) raises the error over
+    its width and a few widths beyond (nearest branch); the 1 % scan grid would
+    step over it.  24 points in [a, b], 24 in [b, b + 8 (b - a)].
+    """
+    bands = _stop_bands(p)
+    bands = bands[np.isfinite(bands[:, 1]) & (bands[:, 1] > lo) & (bands[:, 0] < hi)]
+    if not bands.size:
+        return np.zeros(0)
+    a, b = bands[:, :1], bands[:, 1:]
+    u = np.linspace(0.0, 1.0, 24)[None, :]
+    pts = np.concatenate([(a + u * (b - a)).ravel(), (b + 8.0 * u * (b - a)).ravel()])
+    return pts[(pts > lo) & (pts < hi)]
 
 
 def _pollution_kh(tau: float, p: int, r: float) -> float:
@@ -490,9 +621,10 @@ def _first_over(best, dk, r, tau, cols):
     return best[cols] + np.sqrt(_mean_abs2(z)) > tau
 
 
-def _crossing(p: int, tau: float, r: np.ndarray, lo, hi, e_lo, e_hi) -> np.ndarray:
-    """Refine e(t) = predicted_error(t, p, t r) = tau inside [lo, hi] per r.
+def _crossing(p: int, tau: float, r: np.ndarray, lo, hi, e_lo, e_hi, best) -> np.ndarray:
+    """Refine e(t) = best(t) + phase_rms_error(t, p, t r) = tau inside [lo, hi] per r.
 
+    best : callable, the best-approximation error (a spline, see _build_usable).
     Illinois (modified regula falsi) on ln e against ln t, keeping a bracket
     with e(lo) <= tau < e(hi); returns lo once hi / lo - 1 < _BISECT_REL.
     """
@@ -512,7 +644,7 @@ def _crossing(p: int, tau: float, r: np.ndarray, lo, hi, e_lo, e_hi) -> np.ndarr
         x = np.where(np.isfinite(x), x, 0.5 * (a0 + a1))
         x = np.clip(x, a0 + 0.4 * tol, a1 - 0.4 * tol)  # step at least tol/2.5 (as in Brent)
         tx = np.exp(x)
-        f = np.log(predicted_error(tx, p, tx * r[act]) / tau)
+        f = np.log((best(tx) + phase_rms_error(tx, p, tx * r[act])) / tau)
         ok = f <= 0
         s = side[act]
         # Illinois: halve the value kept on the side that did not move twice in a row
@@ -534,7 +666,8 @@ def _build_usable(tau: float, pmax: int) -> UsableKh:
         t_lo = min(0.25 * _pollution_kh(tau, p, r[-1]), 0.1 * t_hi)
         for _ in range(8):  # the scan must start below the target for every r
             n_t = int(np.ceil(np.log(t_hi / t_lo) / np.log1p(_SCAN_STEP))) + 1
-            t = np.geomspace(t_lo, t_hi, n_t)
+            t = np.union1d(np.geomspace(t_lo, t_hi, n_t), _gap_samples(p, t_lo, t_hi))
+            n_t = t.size
             best = best_approximation_error(t, p)
             dk = discrete_kh(t, p) - t
             # rigorous upper bound sqrt(mean) <= |z| / sqrt(3): no crossing before it exceeds tau
@@ -556,7 +689,19 @@ def _build_usable(tau: float, pmax: int) -> UsableKh:
         lo, hi = t[first - 1], t[first]
         e = best[np.stack([first - 1, first])] + np.sqrt(
             _mean_abs2(dk[np.stack([first - 1, first])] * r[None, :]))
-        t_max[p - 1] = _crossing(p, tau, r, lo, hi, e[0], e[1])
+        # the best-approximation error (costly: spherical Bessel functions) is smooth
+        # in ln-ln; a cubic spline through the scan grid (1e-8 relative) serves the
+        # refinement, and the result is checked with the exact error below
+        spline = CubicSpline(np.log(t), np.log(np.maximum(best, 1e-300)))
+        tm = _crossing(p, tau, r, lo, hi, e[0], e[1], lambda x: np.exp(spline(np.log(x))))
+        for _ in range(50):
+            bad = np.nonzero(predicted_error(tm, p, tm * r) > tau)[0]
+            if bad.size == 0:
+                break
+            tm[bad] *= 1.0 - _BISECT_REL
+        else:
+            raise MeshcheckError(f"internal: usable-kh check for p={p} failed")
+        t_max[p - 1] = tm
     log_r.setflags(write=False)
     t_max.setflags(write=False)
     return UsableKh(target=tau, pmax=pmax, log_r=log_r, t_max=t_max)

@@ -14,14 +14,19 @@ import numpy as np
 
 from .acoustics import air_speed
 from .advice import Advice, AdviceSettings, Cluster, Sweep, advise, clusters, sweep
+from .curvature import CurvedBoundary, QuadraticGeometry, check_curvature, quadratic_geometry
+from .directional import DirectionalOrders, directional_orders
 from .errors import SettingsError
+from .gradation import SizeJumps, size_jumps
+from .job import Job, Media, resolve_media
+from .layers import LayerCheck, check_layer
 from .mesh import Mesh
 from .quality import CellQuality, QualityLimits, mesh_quality, out_of_range
 from .reading import read_mesh
 from .topology import Topology, build_topology
 from .validity import BLOCKING, Finding, ValiditySettings, check_validity, min_scaled_jacobian
 
-__all__ = ["AuditSettings", "AuditResult", "audit", "audit_file", "cell_speeds"]
+__all__ = ["AuditSettings", "AuditResult", "audit", "audit_file", "cell_speeds", "media_of"]
 
 
 @dataclass(frozen=True)
@@ -35,6 +40,8 @@ class AuditSettings:
     region_speeds : region tag or name -> sound speed, m/s (overrides ``speed``).
     quality : acceptable ranges of the quality metrics.
     validity : thresholds of the validity checks.
+    job : optional job file (per-region media, mean flow, roles, check thresholds);
+        ``temperature``, ``speed`` and ``region_speeds`` override it.
     """
 
     frequencies: tuple[float, ...]
@@ -44,6 +51,7 @@ class AuditSettings:
     region_speeds: dict = field(default_factory=dict)
     quality: QualityLimits = QualityLimits()
     validity: ValiditySettings = ValiditySettings()
+    job: Job | None = None
 
     def __post_init__(self):
         f = np.sort(np.asarray(self.frequencies, dtype=float).ravel())
@@ -67,6 +75,8 @@ class AuditSettings:
 
 def cell_speeds(mesh: Mesh, settings: AuditSettings) -> np.ndarray:
     """(n_cells,) sound speed of every cell, m/s."""
+    if settings.job is not None:
+        return media_of(mesh, settings).cell_speed
     c = np.full(mesh.n_cells, settings.default_speed)
     by_name = {v.lower(): k for k, v in mesh.region_names.items()}
     tags = set(np.unique(mesh.region).tolist())
@@ -81,6 +91,12 @@ def cell_speeds(mesh: Mesh, settings: AuditSettings) -> np.ndarray:
     return c
 
 
+def media_of(mesh: Mesh, settings: AuditSettings) -> Media:
+    """Media of every region: the job (if any) with the settings' overrides applied."""
+    return resolve_media(mesh, settings.job, settings.temperature, settings.speed,
+                         settings.region_speeds)
+
+
 @dataclass(frozen=True)
 class AuditResult:
     """Everything the audit measured and advises.
@@ -89,6 +105,11 @@ class AuditResult:
     ready : no blocking finding and every cell carries the upper frequency at the
         allowed order.
     timings : stage -> seconds.
+    media : per-region media, flow and roles (:mod:`meshcheck.job`).
+    gradation, curvature, quadratic, layers, directional : results of the geometry
+        checks (:mod:`meshcheck.gradation`, :mod:`meshcheck.curvature`,
+        :mod:`meshcheck.layers`, :mod:`meshcheck.directional`); None or empty when
+        not applicable (e.g. curvature and layers on 2D meshes).
     """
 
     mesh: Mesh
@@ -103,6 +124,12 @@ class AuditResult:
     refine_clusters: list[Cluster]
     coarsen_clusters: list[Cluster]
     timings: dict[str, float]
+    media: Media | None = None
+    gradation: SizeJumps | None = None
+    curvature: CurvedBoundary | None = None
+    quadratic: QuadraticGeometry | None = None
+    layers: tuple[LayerCheck, ...] = ()
+    directional: DirectionalOrders | None = None
 
     @property
     def blocking(self) -> bool:
@@ -131,7 +158,9 @@ def audit(mesh: Mesh, settings: AuditSettings,
     def done(name):
         t[name] = time.perf_counter() - t[name]
 
-    stage("topology"); topo = build_topology(mesh); done("topology")
+    stage("topology")
+    topo = build_topology(mesh)
+    done("topology")
     stage("validity")
     sj = min_scaled_jacobian(mesh)
     findings = check_validity(mesh, topo, sj, settings.validity)
@@ -141,12 +170,69 @@ def audit(mesh: Mesh, settings: AuditSettings,
     flags = out_of_range(q, mesh, settings.quality)
     done("quality")
     stage("advice")
-    adv = advise(mesh, topo, cell_speeds(mesh, settings), settings.fmax, settings.advice)
+    media = media_of(mesh, settings)
+    adv = advise(mesh, topo, cell_speeds(mesh, settings), settings.fmax, settings.advice,
+                 cell_mach=media.cell_mach if media.has_flow else None)
     sw = sweep(mesh, topo, adv, np.asarray(settings.frequencies))
     ref = clusters(mesh, topo, adv, adv.refine)
     coa = clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)
     done("advice")
-    return AuditResult(mesh, settings, topo, sj, findings, q, flags, adv, sw, ref, coa, t)
+    stage("geometry")
+    extra = _geometry_checks(mesh, topo, media, adv, settings)
+    findings = findings + extra.pop("findings")
+    done("geometry")
+    return AuditResult(mesh, settings, topo, sj, findings, q, flags, adv, sw, ref, coa, t,
+                       media=media, **extra)
+
+
+def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
+                     settings: AuditSettings) -> dict:
+    """Gradation, curved boundaries, quadratic cells, absorbing layers, directional
+    orders, and the findings they raise (warnings and notes, never blocking)."""
+    from .validity import NOTE, WARNING
+
+    chk = media.checks
+    n = chk.max_listed
+    out: list[Finding] = []
+    grad = size_jumps(mesh, topo, chk.gradation_ratio, n)
+    if grad.count:
+        out.append(Finding("size_jumps", WARNING, f"neighbouring cells whose sizes differ by more "
+                           f"than x{grad.ratio:g} (largest x{grad.max_ratio:.3g})", grad.count,
+                           grad.pairs[:, 1], "cell", grad.locations))
+    curv = check_curvature(mesh, topo, media.cell_speed, settings.fmax, settings.advice.target,
+                           chk.feature_angle, n)
+    if curv is not None and curv.misfit.any():
+        out.append(Finding("curved_boundary_straight_faces", WARNING,
+                           f"straight-sided boundary faces depart from the curved surface by more "
+                           f"than the accuracy target allows at {settings.fmax:g} Hz (quadratic "
+                           f"geometry would do for {int(curv.needs_quadratic.sum())})",
+                           int(curv.misfit.sum()), curv.listed_cells, "cell",
+                           curv.listed_locations))
+    if curv is not None and curv.needs_refinement.any():
+        out.append(Finding("curved_boundary_refine", WARNING,
+                           "boundary faces too large for the surface curvature even with "
+                           "quadratic geometry", int(curv.needs_refinement.sum()),
+                           curv.listed_cells, "cell", curv.listed_locations))
+    quad = quadratic_geometry(mesh, chk.jacobian_ratio_min, max_listed=n)
+    if quad is not None and quad.low:
+        out.append(Finding("quadratic_jacobian_variation", WARNING,
+                           f"quadratic cells whose det J varies by more than min/max "
+                           f"{quad.threshold:g} (strongly curved or misplaced mid-nodes)",
+                           quad.low, quad.listed, "cell", quad.listed_locations))
+    layers = []
+    if mesh.dim == 3:
+        layer_tags = {r.tag for r in media.layers()}
+        for r in media.layers():
+            lc = check_layer(mesh, topo, r.tag, r.effective_speed, settings.frequencies[0],
+                             r.surrounds, layer_tags, chk.layer_min_wavelengths,
+                             chk.layer_max_wavelengths, chk.layer_min_cells)
+            layers.append(lc)
+            for sev, code, text in lc.messages:
+                out.append(Finding(code, WARNING if sev == "warning" else NOTE, text, 1,
+                                   np.zeros(0, np.int64), "cell", np.zeros((0, 3))))
+    dirs = directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
+    return {"findings": out, "gradation": grad, "curvature": curv, "quadratic": quad,
+            "layers": tuple(layers), "directional": dirs}
 
 
 def audit_file(path: str | Path, settings: AuditSettings, units: str | None = None,
