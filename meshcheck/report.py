@@ -16,6 +16,7 @@ import numpy as np
 from . import __version__
 from .acoustics import nominal_frequency
 from .pipeline import AuditResult
+from . import vtkxml
 from .units import UNIT_FACTORS
 
 __all__ = ["SCHEMA", "SCHEMA_VERSION", "CAUTION", "to_dict", "write_json", "write_markdown",
@@ -158,7 +159,85 @@ def to_dict(res: AuditResult) -> dict:
                      "edge_length_min": float(np.nanmin(topo.edges.length) / scale),
                      "edge_length_max": float(np.nanmax(topo.edges.length) / scale)},
         "timings_s": {k: round(v, 4) for k, v in res.timings.items()},
+        **_physics_sections(res, scale),
     }
+
+
+def _physics_sections(res: AuditResult, scale: float) -> dict:
+    """Media, mean flow, losses, gradation, curvature, quadratic cells, absorbing layers
+    and directional orders (sections absent from results made without them are null)."""
+    def loc(x):
+        return (np.asarray(x) / scale).tolist()
+
+    out: dict = {"media": None, "gradation": None, "curvature": None, "quadratic_cells": None,
+                 "absorbing_layers": [], "directional_orders": None}
+    media = getattr(res, "media", None)
+    if media is not None:
+        out["media"] = [{
+            "tag": r.tag, "name": r.name, "role": r.role, "surrounds": r.surrounds,
+            "speed_m_s": [r.speed.real, r.speed.imag], "effective_speed_m_s": r.effective_speed,
+            "density_kg_m3": r.density, "attenuation_db_per_wavelength": r.attenuation_db,
+            "flow_m_s": list(r.flow), "mach": list(r.mach), "mach_number": r.mach_number,
+            "flow_limit_factor_along": 1.0 - r.mach_number,
+            "flow_limit_factor_across": float(np.sqrt(1.0 - r.mach_number ** 2)),
+            "source": r.source} for r in media.regions.values()]
+    g = getattr(res, "gradation", None)
+    if g is not None:
+        out["gradation"] = {
+            "ratio": g.ratio, "count": g.count, "max_ratio": _f(g.max_ratio),
+            "size_measure": "mean edge length",
+            "worst": [{"cells": p.tolist(), "ratio": _f(r), "sizes": loc(sz), "location": loc(x)}
+                      for p, r, sz, x in zip(g.pairs, g.ratios, g.sizes, g.locations)]}
+    c = getattr(res, "curvature", None)
+    if c is not None:
+        out["curvature"] = {
+            "boundary_faces": c.n_faces, "smooth_patches": c.n_patches,
+            "feature_edges": c.feature_edges, "min_radius": _f(c.min_radius / scale),
+            "straight_faces_off_surface": int(c.misfit.sum()),
+            "quadratic_geometry_would_do": int(c.needs_quadratic.sum()),
+            "too_large_even_quadratic": int(c.needs_refinement.sum()),
+            "curved_quadratic_faces": int(c.curved.sum()),
+            "midnode_over_chord_height": c.midnode_on_surface,
+            "criterion": "chord height <= target / (2k) at the upper frequency",
+            "worst": [{"face": int(f), "cell": int(ce), "location": loc(x),
+                       "gap_over_tolerance": _f(r), "max_straight_size": _f(hl / scale),
+                       "max_quadratic_size": _f(hq / scale)}
+                      for f, ce, x, r, hl, hq in zip(c.listed, c.listed_cells, c.listed_locations,
+                                                     c.listed_ratio, c.listed_straight_size,
+                                                     c.listed_quadratic_size)]}
+    q = getattr(res, "quadratic", None)
+    if q is not None:
+        out["quadratic_cells"] = {
+            "cells": q.n_cells, "midnode_deviation_max": _f(q.midnode_deviation.max()),
+            "midnode_deviation_median": _f(np.median(q.midnode_deviation)),
+            "jacobian_ratio_min": _f(q.jacobian_ratio.min()),
+            "jacobian_ratio_median": _f(np.median(q.jacobian_ratio)),
+            "threshold": q.threshold, "below_threshold": q.low,
+            "worst": [{"cell": int(i), "location": loc(x)}
+                      for i, x in zip(q.listed, q.listed_locations)]}
+    for lc in getattr(res, "layers", ()):
+        out["absorbing_layers"].append({
+            "tag": lc.tag, "name": lc.name, "surrounds": list(lc.surrounds),
+            "wavelength_m": lc.wavelength,
+            "thickness_m": dict(zip(("min", "median", "max"), map(_f, lc.thickness))),
+            "thickness_wavelengths": dict(zip(("min", "median", "max"),
+                                              map(_f, lc.thickness_wavelengths))),
+            "cells_across": dict(zip(("min", "median"), map(_f, lc.cells_across))),
+            "interface_faces": lc.interface_faces, "nonconforming_faces": lc.nonconforming_faces,
+            "outer_faces": lc.outer_faces, "lateral_faces": lc.lateral_faces,
+            "conforming": lc.conforming,
+            "messages": [{"severity": a, "code": b, "message": m} for a, b, m in lc.messages]})
+    d = getattr(res, "directional", None)
+    if d is not None:
+        out["directional_orders"] = {
+            "anisotropic_cells": d.anisotropic_cells,
+            "dofs_directional": d.dofs_directional, "dofs_isotropic": d.dofs_isotropic,
+            "saving": d.saving, "total_directional": d.total_directional,
+            "total_isotropic": d.total_isotropic, "saving_total": d.saving_total,
+            "max_order": res.settings.advice.max_order,
+            "basis": "hierarchical, maximum rule, orders needed at the upper frequency; "
+                     "dofs without and total with cell interiors"}
+    return out
 
 
 def write_json(res: AuditResult, path: str | Path, data: dict | None = None) -> Path:
@@ -279,30 +358,26 @@ def write_markdown(res: AuditResult, path: str | Path, data: dict | None = None,
 
 def write_vtu(res: AuditResult, path: str | Path) -> Path:
     """VTU with per-cell results; coordinates and lengths in the mesh's own unit."""
-    import meshio
-
     m, a = res.mesh, res.advice
     scale = UNIT_FACTORS.get(m.unit, 1.0)
-    offs = m.block_offsets
     cells = [(b.type, b.cells) for b in m.blocks]
 
-    def split(arr):
-        return [np.ascontiguousarray(arr[offs[i]:offs[i + 1]]) for i in range(len(m.blocks))]
-
-    data = {"region": split(m.region), "min_scaled_jacobian": split(res.min_scaled_jacobian),
-            "order_needed": split(a.cell_order), "refine": split(a.refine.astype(np.int8)),
-            "coarsen": split(a.coarsen.astype(np.int8)),
-            "largest_edge": split(a.cell_size / scale),
-            "target_size": split(a.target_size / scale),
-            "coarsen_ratio": split(a.coarsen_ratio)}
-    for p in range(1, a.pmax + 1):
-        data[f"limit_hz_p{p}"] = split(a.cell_limit[:, p - 1])
+    f32 = np.float32
+    data = {"region": m.region.astype(np.int32),
+            "min_scaled_jacobian": res.min_scaled_jacobian.astype(f32),
+            "order_needed": a.cell_order.astype(np.int8),
+            "refine": a.refine.astype(np.int8),
+            "coarsen": a.coarsen.astype(np.int8),
+            "largest_edge": (a.cell_size / scale).astype(f32),
+            "target_size": (a.target_size / scale).astype(f32),
+            "coarsen_ratio": a.coarsen_ratio.astype(f32)}
+    top = res.settings.advice.max_order
+    for p in range(1, top + 1):
+        data[f"limit_hz_p{p}"] = a.cell_limit[:, p - 1].astype(f32)
     for name, values in res.quality.metrics.items():
-        data[f"quality_{name}"] = split(values)
-    out = meshio.Mesh(m.points / scale, cells, cell_data=data)
-    path = Path(path)
-    meshio.write(path, out, file_format="vtu", binary=True)
-    return path
+        if np.isfinite(values).any():
+            data[f"quality_{name}"] = values.astype(f32)
+    return vtkxml.write_vtu(path, m.points / scale, cells, cell_data=data)
 
 
 def write_all(res: AuditResult, folder: str | Path, stem: str | None = None) -> dict[str, Path]:

@@ -1,0 +1,54 @@
+"""Our VTU writer read back by meshio and by VTK's own XML reader."""
+import meshio
+import numpy as np
+import pytest
+
+from meshcheck.vtkxml import write_vtu
+from meshes import hex_box, tet10_box, tet_box
+
+
+@pytest.mark.parametrize("make", [tet_box, hex_box, tet10_box], ids=["tet", "hex", "tet10"])
+def test_round_trip_meshio(tmp_path, make):
+    mesh = make((2, 2, 2))
+    b = mesh.blocks[0]
+    rng = np.random.default_rng(0)
+    data = {"f32": rng.random(len(b)).astype(np.float32), "i8": np.arange(len(b)) % 7,
+            "flag": (np.arange(len(b)) % 2).astype(np.int8), "vec": rng.random((len(b), 3))}
+    path = write_vtu(tmp_path / "x.vtu", mesh.points, [(b.type, b.cells)], cell_data=data,
+                     point_data={"p": np.arange(mesh.n_points, dtype=np.float64)})
+    back = meshio.read(path)
+    assert np.array_equal(back.points, mesh.points)
+    assert back.cells[0].type == b.type and np.array_equal(back.cells[0].data, b.cells)
+    for k, v in data.items():
+        assert np.array_equal(back.cell_data[k][0], v)
+    assert np.array_equal(back.point_data["p"], np.arange(mesh.n_points))
+
+
+def test_vtk_reader_reads_it(tmp_path):
+    vtk = pytest.importorskip("vtk")
+    mesh = tet_box((3, 3, 3))
+    b = mesh.blocks[0]
+    big = np.arange(len(b), dtype=np.float64)
+    path = write_vtu(tmp_path / "x.vtu", mesh.points, [(b.type, b.cells)],
+                     cell_data={"id": big, "name with <&>": big})
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    grid = r.GetOutput()
+    assert grid.GetNumberOfCells() == len(b) and grid.GetNumberOfPoints() == mesh.n_points
+    from vtk.util.numpy_support import vtk_to_numpy
+    assert np.array_equal(vtk_to_numpy(grid.GetCellData().GetArray("id")), big)
+    assert grid.GetCellData().GetArray("name with <&>") is not None
+    assert grid.GetCellType(0) == 10
+
+
+def test_multi_block_compression(tmp_path):
+    # arrays larger than one compressed block (4 MiB)
+    n = 700_000
+    pts = np.random.default_rng(1).random((n, 3))
+    cells = np.arange(n - n % 4).reshape(-1, 4)
+    path = write_vtu(tmp_path / "big.vtu", pts, [("tetra", cells)],
+                     cell_data={"v": np.arange(len(cells), dtype=np.float64)})
+    back = meshio.read(path)
+    assert np.array_equal(back.points, pts)
+    assert np.array_equal(back.cells[0].data, cells)
