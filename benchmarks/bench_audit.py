@@ -1,0 +1,159 @@
+"""Time and memory of a full audit against references measured in the same run.
+
+Usage::
+
+    python benchmarks/bench_audit.py [--cells 1e6] [--kind tet|tet10|hex] [--dir DIR]
+
+Prints, for one reference mesh (generated with benchmarks/make_reference_meshes.py
+when missing, binary MSH 4.1):
+
+* ``meshio.read`` of the file alone, in a fresh process (reference 1);
+* VTK's quality filter (vtkMeshQuality: aspect ratio, scaled Jacobian, minimum
+  angle) on the same cells, excluding the building of the VTK grid (reference 2);
+* the full ``meshcheck audit`` (read, validity, quality, edges, advice for a
+  200-frequency sweep, JSON + Markdown + VTU written) in a fresh process: wall
+  time and peak resident memory;
+* the analysis time after reading (stage timings from the JSON report);
+* a 1000-frequency sweep against a 10-frequency one (advice + sweep only).
+
+and the ratios the performance targets are stated in (docs/performance.md).
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+
+
+def _child(code: str) -> tuple[float, float, str]:
+    """Run python code in a fresh process; (wall s, peak MiB of that child, stdout)."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    t0 = time.perf_counter()
+    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True)
+    dt = time.perf_counter() - t0
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    return dt, max(peak, before) / 1024.0, out.stdout
+
+
+def _peak_of(cmd: list[str]) -> tuple[float, float, int]:
+    """Wall time, peak MiB (via /usr/bin/time-free wait4) and exit code of a command."""
+    import os
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    _, status, usage = os.wait4(proc.pid, 0)
+    dt = time.perf_counter() - t0
+    return dt, usage.ru_maxrss / 1024.0, os.waitstatus_to_exitcode(status)
+
+
+def ensure_mesh(folder: Path, cells: float, kind: str) -> Path:
+    tag = f"{cells:.0e}".replace("+0", "").replace("+", "")
+    name = {"tet": f"box_cylinder_tet4_{tag}.msh", "tet10": f"box_cylinder_tet10_{tag}.msh",
+            "hex": f"hex_distorted_{tag}.msh"}[kind]
+    path = folder / name
+    if not path.is_file():
+        args = [sys.executable, str(HERE / "make_reference_meshes.py"), str(folder),
+                "--cells", f"{cells:g}"]
+        args += {"tet": [], "tet10": ["--order", "2"], "hex": ["--hex"]}[kind]
+        subprocess.run(args, check=True)
+    return path
+
+
+VTK_CODE = """
+import time, meshio, numpy as np, vtk
+from vtk.util.numpy_support import numpy_to_vtk, numpy_to_vtkIdTypeArray
+m = meshio.read({path!r})
+blk = [b for b in m.cells if b.type in ('tetra', 'hexahedron', 'tetra10')][0]
+n, k = blk.data.shape
+vtype = {{'tetra': 10, 'hexahedron': 12, 'tetra10': 24}}[blk.type]
+pts = vtk.vtkPoints(); pts.SetData(numpy_to_vtk(np.ascontiguousarray(m.points), deep=True))
+conn = np.hstack([np.full((n, 1), k), blk.data]).astype(np.int64).ravel()
+ca = vtk.vtkCellArray(); ca.SetCells(n, numpy_to_vtkIdTypeArray(conn, deep=True))
+g = vtk.vtkUnstructuredGrid(); g.SetPoints(pts); g.SetCells(vtype, ca)
+t0 = time.perf_counter()
+for measure in ('AspectRatio', 'ScaledJacobian', 'MinAngle'):
+    q = vtk.vtkMeshQuality(); q.SetInputData(g)
+    for fam in ('Tet', 'Hex'):
+        getattr(q, f'Set{{fam}}QualityMeasureTo{{measure}}', lambda: None)()
+    q.Update()
+print(time.perf_counter() - t0)
+"""
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--cells", type=float, default=1e6)
+    ap.add_argument("--kind", choices=("tet", "tet10", "hex"), default="tet")
+    ap.add_argument("--dir", type=Path, default=Path(tempfile.gettempdir()) / "meshcheck-bench")
+    ap.add_argument("--no-vtk", action="store_true", help="skip the VTK reference")
+    args = ap.parse_args(argv)
+    args.dir.mkdir(parents=True, exist_ok=True)
+    path = ensure_mesh(args.dir, args.cells, args.kind)
+    rows = []
+
+    t_read, _, _ = _child(f"import meshio; meshio.read({str(path)!r})")
+    rows.append(("meshio.read, fresh process (ref 1)", t_read, None))
+    t_vtk = None
+    if not args.no_vtk:
+        try:
+            _, _, out = _child(VTK_CODE.format(path=str(path)))
+            t_vtk = float(out.strip().splitlines()[-1])
+            rows.append(("VTK quality, 3 metrics (ref 2)", t_vtk, None))
+        except subprocess.CalledProcessError as exc:
+            print("VTK reference failed:", exc.stderr.strip().splitlines()[-1:], file=sys.stderr)
+
+    with tempfile.TemporaryDirectory() as tmp:
+        cmd = [sys.executable, "-m", "meshcheck.cli", "audit", str(path), "--units", "m",
+               "--fmin", "50", "--fmax", "2000", "--step", f"{1950 / 199:.6f}", "--quiet",
+               "--out", tmp]
+        t_audit, peak, code = _peak_of(cmd)
+        if code not in (0, 1):
+            raise SystemExit(f"audit failed with exit code {code}")
+        report = json.loads(next(Path(tmp).glob("*.audit.json")).read_text())
+    timings = report["timings_s"]
+    analysis = sum(v for k, v in timings.items() if k != "read")
+    rows.append(("meshcheck audit, 200 frequencies, reports", t_audit, peak))
+    rows.append(("  of which analysis after reading", analysis, None))
+
+    sweep_code = f"""
+import time, numpy as np
+from meshcheck.reading import read_mesh
+from meshcheck.topology import build_topology
+from meshcheck.advice import advise, sweep, AdviceSettings
+m = read_mesh({str(path)!r}, 'm'); topo = build_topology(m)
+c = np.full(m.n_cells, 343.2)
+for n in (10, 1000, 10, 1000):
+    t0 = time.perf_counter()
+    a = advise(m, topo, c, 2000.0, AdviceSettings())
+    sweep(m, topo, a, np.linspace(50, 2000, n))
+    print(n, time.perf_counter() - t0)
+"""
+    _, _, out = _child(sweep_code)
+    times = {}
+    for line in out.strip().splitlines():
+        n, t = line.split()
+        times.setdefault(int(n), []).append(float(t))
+    t10, t1000 = min(times[10]), min(times[1000])
+
+    n_cells = sum(report["input"]["cells"].values())
+    print(f"mesh: {path.name}, {n_cells:,} cells, {report['input']['points']:,} points")
+    print(f"{'what':45s} {'time s':>8s} {'peak MiB':>9s}")
+    for name, t, mem in rows:
+        print(f"{name:45s} {t:8.2f} {'' if mem is None else f'{mem:9.0f}'}")
+    print(f"stage timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in timings.items()))
+    print(f"ratio audit / meshio.read:            {t_audit / t_read:6.2f}   (target <= 6)")
+    if t_vtk:
+        print(f"ratio audit / VTK quality (3 metrics): {t_audit / t_vtk:6.2f}   (target <= 1)")
+    print(f"ratio sweep 1000 / 10 frequencies:    {t1000 / t10:6.2f}   (target <= 1.2)")
+    print(f"peak memory of the audit:             {peak:6.0f} MiB")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
