@@ -86,6 +86,8 @@ class Advice:
         with the allowed order, m.
     refine, coarsen : (n_cells,) bool.
     signed_off : highest frequency every cell carries at the allowed order, Hz.
+    edge_flow_factor : (n_e,) worst-case mean-flow factor on each edge's wavenumber
+        (>= 1), or None without flow.
     """
 
     settings: AdviceSettings
@@ -100,6 +102,7 @@ class Advice:
     target_size: np.ndarray
     refine: np.ndarray
     coarsen: np.ndarray
+    edge_flow_factor: np.ndarray | None = None
 
     @property
     def pmax(self) -> int:
@@ -170,11 +173,15 @@ def _min_over_cell_edges(topo: Topology, values, cells) -> np.ndarray:
 
 
 def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
-           settings: AdviceSettings = AdviceSettings(), pmax: int = 12) -> Advice:
+           settings: AdviceSettings = AdviceSettings(), pmax: int = 12,
+           cell_mach: np.ndarray | None = None) -> Advice:
     """Frequency limits per edge, cell and order, and the advice at ``fmax`` (Hz).
 
     cell_speed : (n_cells,) sound speed of the medium of every cell, m/s.
     pmax : highest order tabulated (at least ``settings.max_order``).
+    cell_mach : optional (n_cells, 3) uniform mean-flow Mach vector of every cell; an
+        edge's wavenumber is multiplied by the worst-case projection factor of
+        :func:`meshcheck.flow.edge_flow_factor` (its speed divided by it).
     """
     if not fmax > 0:
         raise SettingsError(f"upper frequency {fmax} Hz must be positive")
@@ -187,6 +194,11 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
         cell_L = topo.cell_extent()
     h = topo.edges.length
     edge_c = _edge_values(topo, cell_speed, np.minimum)
+    flow = None
+    if cell_mach is not None and np.any(cell_mach):
+        from .flow import edge_flow_factor
+        flow = edge_flow_factor(mesh.points, topo.edges, cell_mach)
+        edge_c = edge_c / flow  # wavenumber k * phi on the edge = speed c / phi
     edge_L = _edge_values(topo, cell_L, np.maximum)
     good = np.isfinite(h) & (h > 0) & np.isfinite(edge_L) & np.isfinite(edge_c)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -210,12 +222,14 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     cell_order = 1 + np.count_nonzero(cell_limit < fmax, axis=1)
     cell_size = topo.edges.per_cell(h, np.maximum)
     k = TWO_PI * fmax / cell_speed
+    if flow is not None:
+        k = k * topo.edges.per_cell(flow, np.maximum)
     target_size = table.max_size(P, k, cell_L)
     refine = cell_limit[:, P - 1] < fmax
     with np.errstate(divide="ignore", invalid="ignore"):
         coarsen = target_size >= settings.coarsen_factor * cell_size
     return Advice(settings, float(fmax), cell_limit, cell_size, cell_L, cell_speed,
-                  edge_limit, edge_order, cell_order, target_size, refine, coarsen)
+                  edge_limit, edge_order, cell_order, target_size, refine, coarsen, flow)
 
 
 @dataclass(frozen=True)

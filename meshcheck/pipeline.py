@@ -170,8 +170,9 @@ def audit(mesh: Mesh, settings: AuditSettings,
     flags = out_of_range(q, mesh, settings.quality)
     done("quality")
     stage("advice")
+    speeds = cell_speeds(mesh, settings)
     media = media_of(mesh, settings)
-    adv = advise(mesh, topo, cell_speeds(mesh, settings), settings.fmax, settings.advice,
+    adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
                  cell_mach=media.cell_mach if media.has_flow else None)
     sw = sweep(mesh, topo, adv, np.asarray(settings.frequencies))
     ref = clusters(mesh, topo, adv, adv.refine)
@@ -227,9 +228,10 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
                              r.surrounds, layer_tags, chk.layer_min_wavelengths,
                              chk.layer_max_wavelengths, chk.layer_min_cells)
             layers.append(lc)
+            first = np.flatnonzero(mesh.region == r.tag)[:1]
             for sev, code, text in lc.messages:
                 out.append(Finding(code, WARNING if sev == "warning" else NOTE, text, 1,
-                                   np.zeros(0, np.int64), "cell", np.zeros((0, 3))))
+                                   first, "cell", mesh.centroids[first]))
     dirs = directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
     return {"findings": out, "gradation": grad, "curvature": curv, "quadratic": quad,
             "layers": tuple(layers), "directional": dirs}

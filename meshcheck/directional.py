@@ -1,0 +1,218 @@
+"""Directional (anisotropic) polynomial orders for hexahedra, prisms and quads.
+
+A tensor-product cell can carry a different order along each parametric
+direction: a hexahedron Q_{p_r, p_s, p_t}, a prism P_{p_tri} x P_{p_t}, a
+quadrilateral Q_{p_r, p_s}.  The order a direction needs is the highest order
+its edges need at the upper frequency (the advisor's ``edge_order``):
+
+    hexahedron (VTK)  r: edges 0-1, 3-2, 4-5, 7-6   s: 1-2, 0-3, 5-6, 4-7   t: 0-4, 1-5, 2-6, 3-7
+    wedge             triangle (r, s): the six edges of the two triangles    t: 0-3, 1-4, 2-5
+    quad              r: 0-1, 3-2   s: 1-2, 0-3
+
+Tetrahedra, pyramids and triangles keep one order (the highest of their edges).
+
+Unknowns of a hierarchical H1 space (e.g. Szabo & Babuska, "Finite Element
+Analysis", 1991; Solin, Segeth & Dolezel, "Higher-Order Finite Element
+Methods", 2004, ch. 2 and 3 on anisotropic orders), conforming by the maximum
+rule (an edge or face takes the highest order its cells give it in its own
+direction):  one per vertex; p - 1 per edge; a quadrilateral face spanned by
+directions of orders (p_a, p_b) (p_a - 1)(p_b - 1); a triangular face
+(p - 1)(p - 2)/2; interiors (not counted when condensed) hexahedron
+(p_r - 1)(p_s - 1)(p_t - 1), prism (p_tri - 1)(p_tri - 2)/2 (p_t - 1),
+quadrilateral (p_r - 1)(p_s - 1).  The isotropic count gives every cell its
+highest directional order in all directions.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .cells import CELL_TYPES
+from .cost import interior_dofs
+from .mesh import Mesh
+from .topology import Topology
+
+__all__ = ["DirectionalOrders", "direction_groups", "cell_direction_orders", "count_dofs",
+           "directional_orders"]
+
+#: linear type -> local edge indices of each parametric direction (r, s, t)
+_GROUPS = {
+    "hexahedron": ((0, 2, 4, 6), (1, 3, 5, 7), (8, 9, 10, 11)),
+    "wedge": ((0, 1, 2, 3, 4, 5), (0, 1, 2, 3, 4, 5), (6, 7, 8)),
+    "quad": ((0, 2), (1, 3)),
+}
+
+
+def direction_groups(cell_type: str) -> tuple[tuple[int, ...], ...]:
+    """Local edge indices of each parametric direction of a cell type (meshio name).
+
+    Hexahedra 3 groups, wedges 3 (the first two both the triangle edges), quads 2;
+    every other type one group with all its edges (isotropic).
+    """
+    info = CELL_TYPES[cell_type]
+    g = _GROUPS.get(info.linear)
+    return g if g is not None else (tuple(range(info.n_edges)),)
+
+
+def _edge_group(cell_type: str) -> np.ndarray:
+    """(n_local_edges,) direction column (0, 1, 2) of every local edge."""
+    info = CELL_TYPES[cell_type]
+    out = np.zeros(info.n_edges, np.int64)
+    groups = direction_groups(cell_type)
+    for j, g in enumerate(groups):
+        if info.linear == "wedge" and j == 1:
+            continue
+        out[list(g)] = j
+    return out
+
+
+def cell_direction_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
+                          max_order: int) -> np.ndarray:
+    """(n_cells, 3) int64 order per parametric direction r, s, t.
+
+    edge_order : (n_e,) order each edge needs (values above ``max_order`` are capped).
+    Wedges have equal r and s (the triangle order); isotropic types repeat their
+    one order; 2D cells have 0 in the t column.
+    """
+    eo = np.clip(np.asarray(edge_order, dtype=np.int64), 1, max_order)
+    out = []
+    for b, ce in zip(mesh.blocks, topo.edges.cell_edges):
+        groups = direction_groups(b.type)
+        cols = [eo[ce[:, list(g)]].max(axis=1) for g in groups]
+        if len(cols) == 1:
+            cols = cols * (3 if b.info.dim == 3 else 2)
+        if b.info.dim == 2:
+            cols = cols + [np.zeros(len(b), np.int64)]
+        out.append(np.column_stack(cols))
+    return np.concatenate(out) if out else np.zeros((0, 3), np.int64)
+
+
+def _local_faces(cell_type: str):
+    """Per local face: corners and, for quads, the direction column of sides 0 and 1."""
+    info = CELL_TYPES[cell_type]
+    edge_of = {}
+    for i, (a, b, _) in enumerate(info.edges):
+        edge_of[(int(a), int(b))] = edge_of[(int(b), int(a))] = i
+    grp = _edge_group(cell_type)
+    out = []
+    for f in info.faces:
+        sides = [edge_of[(f[i], f[(i + 1) % len(f)])] for i in range(len(f))]
+        out.append((f, sides, [int(grp[s]) for s in sides]))
+    return out
+
+
+def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray) -> tuple[int, int]:
+    """Unknowns of the conforming space with per-direction cell orders.
+
+    orders : (n_cells, 3) int orders per direction (see :func:`cell_direction_orders`).
+    Returns (condensed, total): vertices + edges + faces, and that plus the cell
+    interiors.  Maximum rule on shared edges and faces.
+    """
+    orders = np.asarray(orders, dtype=np.int64)
+    used = np.zeros(mesh.n_points, bool)
+    for b in mesh.blocks:
+        used[b.cells[:, :b.info.n_corners]] = True
+    edge_p = np.ones(len(topo.edges), np.int64)
+    interior = 0
+    fkeys_lo, fkeys_hi, fa, fb, ftri = [], [], [], [], []
+    n = np.int64(mesh.n_points + 1)
+    for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
+        o = orders[mesh.block_offsets[bi]:mesh.block_offsets[bi + 1]]
+        grp = _edge_group(b.type)
+        np.maximum.at(edge_p, ce.ravel(), o[:, grp].ravel())
+        lin = b.info.linear
+        if lin == "hexahedron":
+            q = o - 1
+            interior += int(np.sum(q[:, 0] * q[:, 1] * q[:, 2]))
+        elif lin == "wedge":
+            interior += int(np.sum((o[:, 0] - 1) * (o[:, 0] - 2) // 2 * (o[:, 2] - 1)))
+        elif lin == "quad":
+            interior += int(np.sum((o[:, 0] - 1) * (o[:, 1] - 1)))
+        else:
+            ps, counts = np.unique(o[:, 0], return_counts=True)
+            interior += int(sum(int(c) * interior_dofs(lin, int(p)) for p, c in zip(ps, counts)))
+        if b.info.dim != 3:
+            continue
+        for corners, sides, cols in _local_faces(b.type):
+            c = b.cells[:, list(corners)]
+            s = np.sort(c, axis=1)
+            if len(corners) == 3:
+                fkeys_lo.append(s[:, 0])
+                fkeys_hi.append(s[:, 1] * n + s[:, 2])
+                fa.append(o[:, cols[0]])
+                fb.append(np.zeros(len(b), np.int64))
+                ftri.append(np.ones(len(b), bool))
+            else:
+                fkeys_lo.append((s[:, 0] + 1) * n + s[:, 3])
+                fkeys_hi.append(s[:, 1] * n + s[:, 2])
+                e = ce[:, sides]
+                ox, oy = o[:, cols[0]], o[:, cols[1]]
+                x_first = np.minimum(e[:, 0], e[:, 2]) < np.minimum(e[:, 1], e[:, 3])
+                fa.append(np.where(x_first, ox, oy))
+                fb.append(np.where(x_first, oy, ox))
+                ftri.append(np.zeros(len(b), bool))
+    total_v = int(used.sum()) + int(np.sum(edge_p - 1))
+    faces = 0
+    if fkeys_lo:
+        tri = np.concatenate(ftri)
+        # triangle low keys s0 < n never equal a quadrilateral's (s0 + 1) n + s3 >= n
+        lo = np.concatenate(fkeys_lo)
+        hi = np.concatenate(fkeys_hi)
+        a, bb = np.concatenate(fa), np.concatenate(fb)
+        order = np.lexsort((hi, lo))
+        lo_s, hi_s = lo[order], hi[order]
+        new = np.ones(len(order), bool)
+        new[1:] = (lo_s[1:] != lo_s[:-1]) | (hi_s[1:] != hi_s[:-1])
+        starts = np.flatnonzero(new)
+        pa = np.maximum.reduceat(a[order], starts)
+        pb = np.maximum.reduceat(bb[order], starts)
+        is_tri = tri[order][starts]
+        faces = int(np.sum(np.where(is_tri, (pa - 1) * (pa - 2) // 2, (pa - 1) * (pb - 1))))
+    condensed = total_v + faces
+    return condensed, condensed + interior
+
+
+@dataclass(frozen=True)
+class DirectionalOrders:
+    """Orders per parametric direction at the upper frequency and what they save.
+
+    orders : (n_cells, 3) int64 (see :func:`cell_direction_orders`).
+    isotropic : (n_cells,) int64 highest order of each cell.
+    anisotropic_cells : cells whose directions need different orders.
+    dofs_directional, dofs_isotropic : condensed unknowns (vertices, edges, faces).
+    total_directional, total_isotropic : the same with cell interiors.
+    saving : 1 - dofs_directional / dofs_isotropic (condensed), and
+    saving_total likewise with interiors.
+    """
+
+    orders: np.ndarray
+    isotropic: np.ndarray
+    anisotropic_cells: int
+    dofs_directional: int
+    dofs_isotropic: int
+    total_directional: int
+    total_isotropic: int
+
+    @property
+    def saving(self) -> float:
+        return 1.0 - self.dofs_directional / self.dofs_isotropic if self.dofs_isotropic else 0.0
+
+    @property
+    def saving_total(self) -> float:
+        return 1.0 - self.total_directional / self.total_isotropic if self.total_isotropic else 0.0
+
+
+def directional_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
+                       max_order: int) -> DirectionalOrders:
+    """Directional orders from the order every edge needs, and the unknowns saved."""
+    o = cell_direction_orders(mesh, topo, edge_order, max_order)
+    iso = o.max(axis=1)
+    o_iso = np.where(o > 0, iso[:, None], 0)
+    dims = np.concatenate([np.full(len(b), b.info.dim) for b in mesh.blocks]) if mesh.blocks \
+        else np.zeros(0, int)
+    lowest = np.where(dims == 2, o[:, :2].min(axis=1), o.min(axis=1))
+    aniso = int(np.count_nonzero(lowest != iso))
+    cd, td = count_dofs(mesh, topo, o)
+    ci, ti = count_dofs(mesh, topo, o_iso)
+    return DirectionalOrders(o, iso, aniso, cd, ci, td, ti)

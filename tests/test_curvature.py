@@ -1,0 +1,195 @@
+"""Curved boundaries: principal curvatures of gmsh spheres and cylinders of known radius,
+chord heights against a brute-force distance to the sphere, Gauss-Bonnet against trimesh's
+angle defects, and the quadratic-cell Jacobian variation against a closed form."""
+import math
+
+import gmsh
+import numpy as np
+import pytest
+
+from meshcheck.curvature import (boundary_surface, check_curvature, chord_height,
+                                 enclosing_radius, quadratic_chord_height, quadratic_geometry,
+                                 surface_curvature)
+from meshcheck.jacobian import quadrature_rule
+from meshcheck.mesh import CellBlock, Mesh
+from meshcheck.topology import build_topology
+from meshes import tet10_box
+
+# gmsh tetra10 node order -> VTK/meshio (edges 1-3 and 2-3 swap places)
+GMSH_TET10 = [0, 1, 2, 3, 4, 5, 6, 7, 9, 8]
+
+
+def _gmsh(shape, R, h, order=1, length=2.0):
+    gmsh.initialize()
+    try:
+        gmsh.option.setNumber("General.Terminal", 0)
+        gmsh.model.add(shape)
+        if shape == "sphere":
+            gmsh.model.occ.addSphere(0, 0, 0, R)
+        else:
+            gmsh.model.occ.addCylinder(0, 0, 0, 0, 0, length, R)
+        gmsh.model.occ.synchronize()
+        gmsh.option.setNumber("Mesh.MeshSizeMin", h)
+        gmsh.option.setNumber("Mesh.MeshSizeMax", h)
+        gmsh.model.mesh.generate(3)
+        if order == 2:
+            gmsh.model.mesh.setOrder(2)
+        tags, xyz, _ = gmsh.model.mesh.getNodes()
+        _, nodes = gmsh.model.mesh.getElementsByType(4 if order == 1 else 11)
+    finally:
+        gmsh.finalize()
+    index = np.zeros(int(tags.max()) + 1, np.int64)
+    index[tags.astype(np.int64)] = np.arange(len(tags))
+    cells = index[nodes.astype(np.int64)].reshape(-1, 4 if order == 1 else 10)
+    if order == 2:
+        cells = cells[:, GMSH_TET10]
+    return Mesh(xyz.reshape(-1, 3), (CellBlock("tetra" if order == 1 else "tetra10", cells,
+                                               np.ones(len(cells))),))
+
+
+@pytest.fixture(scope="module")
+def sphere():
+    R = 0.5
+    mesh = _gmsh("sphere", R, 0.06)
+    topo = build_topology(mesh)
+    return R, mesh, topo
+
+
+@pytest.fixture(scope="module")
+def cylinder():
+    R = 0.3
+    mesh = _gmsh("cylinder", R, 0.05, length=1.0)
+    return R, mesh, build_topology(mesh)
+
+
+def test_sphere_principal_curvatures_are_one_over_r(sphere):
+    R, mesh, topo = sphere
+    c = surface_curvature(boundary_surface(mesh, topo))
+    assert c.n_patches == 1 and c.feature_edges == 0
+    # median within 3 %, 90 % of the triangles within 15 % (discretisation noise)
+    for k in (c.k1, c.k2):
+        assert np.median(k) * R == pytest.approx(1.0, abs=0.03)
+        assert np.mean(np.abs(k * R - 1) < 0.15) > 0.9
+
+
+def test_cylinder_principal_curvatures(cylinder):
+    R, mesh, topo = cylinder
+    surf = boundary_surface(mesh, topo)
+    c = surface_curvature(surf)
+    X = surf.points[surf.triangles]
+    n = np.cross(X[:, 1] - X[:, 0], X[:, 2] - X[:, 0])
+    side = np.abs(n[:, 2]) < 0.5 * np.linalg.norm(n, axis=1)
+    assert c.n_patches == 3                      # side and two caps, split at the 90 deg rims
+    assert np.median(c.k1[side]) * R == pytest.approx(1.0, abs=0.03)
+    assert np.mean(np.abs(c.k1[side] * R - 1) < 0.15) > 0.9
+    assert np.median(np.abs(c.k2[side])) * R < 0.03
+    assert np.max(c.kmax[~side]) * R < 1e-9      # flat caps
+
+
+def test_gauss_bonnet_against_trimesh_angle_defects(sphere):
+    # integral of k1 k2 over a closed genus-0 surface = 4 pi; trimesh's vertex defects sum
+    # to exactly that (Euler characteristic 2)
+    R, mesh, topo = sphere
+    surf = boundary_surface(mesh, topo)
+    c = surface_curvature(surf)
+    tm = surf.trimesh()
+    assert tm.vertex_defects.sum() == pytest.approx(4 * math.pi, rel=1e-9)
+    assert np.sum(c.k1 * c.k2 * c.area) == pytest.approx(tm.vertex_defects.sum(), rel=0.03)
+
+
+def test_chord_height_on_a_sphere_matches_brute_force(sphere):
+    # the largest radial gap between a flat triangle inscribed in a sphere and the sphere,
+    # sampled on a dense barycentric grid, against R - sqrt(R^2 - rho^2)
+    R, mesh, topo = sphere
+    surf = boundary_surface(mesh, topo)
+    X = surf.points[surf.triangles][:200]
+    g = np.linspace(0, 1, 61)
+    a, b = np.meshgrid(g, g, indexing="ij")
+    keep = a + b <= 1
+    w = np.column_stack([1 - a[keep] - b[keep], a[keep], b[keep]])     # (s, 3)
+    P = np.einsum("sk,tkd->tsd", w, X)
+    brute = (R - np.linalg.norm(P, axis=2)).max(axis=1)
+    formula = chord_height(enclosing_radius(X), 1.0 / R)
+    assert np.all(formula >= brute - 1e-12)
+    assert np.allclose(formula, brute, rtol=2e-3)
+
+
+@pytest.mark.parametrize("h_over_r", [0.05, 0.2, 0.5])
+def test_quadratic_chord_height_is_the_parabola_error(h_over_r):
+    # parabola through the ends and the midpoint of a circular arc of chord h: max gap
+    # h^4 / (512 R^3) to leading order (x^4 term of the circle's series)
+    R = 1.0
+    h = h_over_r * R
+    x = np.linspace(-h / 2, h / 2, 20001)
+    circle = R - np.sqrt(R * R - x * x)
+    y_end = R - math.sqrt(R * R - h * h / 4)
+    parabola = y_end * (x / (h / 2)) ** 2
+    brute = np.max(np.abs(circle - parabola))
+    # next-order terms are O((h/R)^2) relative
+    assert quadratic_chord_height(h / 2, 1 / R) == pytest.approx(brute, rel=0.25 * h_over_r ** 2
+                                                                 + 1e-3)
+
+
+def test_flagging_follows_the_tolerance(sphere):
+    R, mesh, topo = sphere
+    c = np.full(mesh.n_cells, 343.0)
+    tau = 0.01
+    low = check_curvature(mesh, topo, c, 50.0, tau)
+    assert not low.misfit.any()
+    # choose fmax so that the allowed gap tau / (2k) is the median gap
+    gap = np.median(low.chord_height)
+    f = tau * 343.0 / (2 * 2 * np.pi * gap)
+    mid = check_curvature(mesh, topo, c, f, tau)
+    k = 2 * np.pi * f / 343.0
+    assert np.allclose(mid.tolerance, tau / (2 * k))
+    assert np.array_equal(mid.misfit, mid.chord_height > mid.tolerance)
+    assert 0.4 < mid.misfit.mean() < 0.6 and mid.needs_quadratic.sum() == mid.misfit.sum()
+    # the advised straight size has exactly the allowed sagitta h^2/(8R) on the worst face
+    i = np.searchsorted(mid.face_ids, mid.listed[0])
+    h = mid.listed_straight_size[0]
+    assert h ** 2 * mid.kappa[i] / 8 == pytest.approx(mid.tolerance[i], rel=1e-12)
+    s_quad = quadratic_chord_height(mid.rho, mid.kappa)
+    f_high = tau * 343.0 / (2 * 2 * np.pi * np.median(s_quad))
+    high = check_curvature(mesh, topo, c, f_high, tau)
+    assert np.array_equal(high.needs_refinement, s_quad > high.tolerance)
+    assert 0.4 < high.needs_refinement.mean() < 0.6
+
+
+def test_quadratic_sphere_has_curved_faces_and_no_misfit():
+    R = 0.5
+    mesh = _gmsh("sphere", R, 0.15, order=2)
+    topo = build_topology(mesh)
+    c = np.full(mesh.n_cells, 343.0)
+    lin = check_curvature(mesh, topo, c, 100.0, 0.01)
+    assert lin.curved.mean() > 0.95
+    assert 0.6 < lin.midnode_on_surface < 1.2          # mid-nodes lie on the sphere
+    # at a frequency where straight faces would not do, quadratic geometry does
+    gap_straight = chord_height(lin.rho, lin.kappa)
+    f = 0.01 * 343.0 / (2 * 2 * np.pi * np.median(gap_straight))
+    res = check_curvature(mesh, topo, c, f, 0.01)
+    assert not res.misfit.any() and not res.needs_refinement.any()
+    quad = quadratic_geometry(mesh)
+    assert quad.n_cells == mesh.n_cells and quad.midnode_deviation.max() > 0
+
+
+def test_straight_tetra10_has_unit_jacobian_ratio():
+    q = quadratic_geometry(tet10_box((2, 2, 2)))
+    assert np.allclose(q.midnode_deviation, 0, atol=1e-15)
+    assert np.allclose(q.jacobian_ratio, 1.0, atol=1e-13) and q.low == 0
+
+
+@pytest.mark.parametrize("eps", [0.05, 0.1, 0.2])
+def test_moved_midnode_jacobian_variation_closed_form(eps):
+    # unit right tetrahedron, mid-node of edge 0-1 moved along the edge to x = 1/2 + eps:
+    # x = r + 4 eps L0 L1 (L0 = 1 - r - s - t, L1 = r), so det J = 1 + 4 eps (L0 - L1)
+    ref = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1],
+                    [.5, 0, 0], [.5, .5, 0], [0, .5, 0], [0, 0, .5], [.5, 0, .5], [0, .5, .5]])
+    pts = ref.copy()
+    pts[4, 0] += eps
+    mesh = Mesh(pts, (CellBlock("tetra10", np.arange(10)[None], np.ones(1)),))
+    q = quadratic_geometry(mesh, threshold=0.99)
+    r = quadrature_rule("tetra10")[0]
+    detj = 1 + 4 * eps * ((1 - r.sum(axis=1)) - r[:, 0])
+    assert q.midnode_deviation[0] == pytest.approx(eps)
+    assert q.jacobian_ratio[0] == pytest.approx(detj.min() / detj.max(), rel=1e-12)
+    assert q.low == 1 and q.listed.tolist() == [0]
