@@ -232,7 +232,9 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
             for sev, code, text in lc.messages:
                 out.append(Finding(code, WARNING if sev == "warning" else NOTE, text, 1,
                                    first, "cell", mesh.centroids[first]))
-    dirs = directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
+    tensor = any(b.info.linear in ("hexahedron", "wedge", "quad") for b in mesh.blocks)
+    dirs = (directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
+            if tensor else None)  # tets and triangles have no parametric directions
     return {"findings": out, "gradation": grad, "curvature": curv, "quadratic": quad,
             "layers": tuple(layers), "directional": dirs}
 
