@@ -1,218 +1,249 @@
-"""Read a supplied mesh into a :class:`~meshcheck.mesh.Mesh` (SI units).
+"""Read a supplied mesh into a :class:`~meshcheck.mesh.Mesh` (SI units), trustworthily.
 
-Reading goes through meshio's format readers, called directly so that their
-``sys.exit`` and raw exceptions are caught and re-raised as one
-:class:`~meshcheck.errors.MeshReadError` that names the file, the format and
-the problem.  The input file is opened read-only and never modified.
+1. :func:`~meshcheck.formats.sniff.sniff` tells the format from the content.
+2. A reader produces a :class:`~meshcheck.formats.raw.RawMesh`: meshcheck's own
+   for Nastran bulk data, Abaqus input and I-DEAS universal files; meshio's,
+   guarded, for gmsh, VTK and the HDF5/netCDF formats.
+3. Cross-checks: the counts of an independent pre-scan (element cards,
+   data lines, declared header counts) against what was read; the node count
+   of every cell against its type; node indices in range; region tags aligned
+   with cells; finite coordinates; a non-empty result.
+4. The length unit: given, stated by the file, or settled by the domain size
+   and material speeds of sound (:func:`meshcheck.units.decide_unit`).
+
+Every failure is one :class:`~meshcheck.errors.MeshReadError` (or
+UnitsError) naming the file, what is wrong, where, and what to do.  The
+input file is only ever opened for reading.
 """
 from __future__ import annotations
 
-import io
-import contextlib
+import struct
 from pathlib import Path
 
 import numpy as np
 
 from .cells import CELL_TYPES, SURFACE_TYPES, VOLUME_TYPES
-from .errors import MeshReadError, UnitsError
+from .errors import MeshcheckError, MeshReadError
+from .formats.ids import distinct
+from .formats.raw import RawBlock, RawMesh, clean_name
+from .formats.sniff import HEAD_BYTES, Sniffed, sniff
 from .mesh import CellBlock, Mesh
-from .units import UNIT_NAMES, guess_unit, unit_factor
+from .units import UNIT_NAMES, decide_unit, unit_factor
 
-__all__ = ["read_mesh", "mesh_from_meshio", "detect_format", "FORMATS"]
+__all__ = ["read_mesh", "read_raw", "mesh_from_raw", "mesh_from_meshio", "describe_units"]
 
-#: extension -> meshio reader name
-FORMATS: dict[str, str] = {
-    ".msh": "gmsh", ".vtu": "vtu", ".vtk": "vtk", ".bdf": "nastran", ".nas": "nastran",
-    ".fem": "nastran", ".dat": "nastran", ".inp": "abaqus", ".med": "med", ".e": "exodus",
-    ".exo": "exodus", ".ex2": "exodus", ".xdmf": "xdmf", ".mesh": "medit", ".cgns": "cgns",
-}
-_SURFACE_ONLY = {".stl": "STL", ".obj": "OBJ", ".ply": "PLY", ".off": "OFF"}
-
-#: cell-data keys that carry region tags, in order of preference
-_REGION_KEYS = ("gmsh:physical", "medit:ref", "nastran:ref", "CellEntityIds", "region",
-                "regions", "cell_tags", "material", "ele_tag", "flac3d:zone")
-
-_MAGIC = {b"PK\x03\x04": "a zip archive", b"\x89HDF": "HDF5", b"CDF\x01": "netCDF",
-          b"CDF\x02": "netCDF", b"\x1f\x8b": "a gzip archive"}
+#: sample of cells used to measure the typical edge length for unit messages
+_EDGE_SAMPLE = 20000
 
 
-def detect_format(path: Path, head: bytes) -> str:
-    """Return the meshio reader name for a file, checked against its first bytes."""
-    ext = path.suffix.lower()
-    if ext in _SURFACE_ONLY or head.lstrip().lower().startswith(b"solid"):
-        kind = _SURFACE_ONLY.get(ext, "STL")
-        raise MeshReadError(f"{path}: this is a {kind} surface file, not a volume mesh; "
-                            "mesh the fluid volume (tetrahedra or hexahedra) and audit that")
-    fmt = FORMATS.get(ext)
-    if fmt is None:
-        raise MeshReadError(f"{path}: unknown mesh format '{ext or path.name}'; "
-                            f"use one of {', '.join(sorted(FORMATS))}")
-    stripped = head.lstrip(b"\xef\xbb\xbf \t\r\n")
-    if not stripped:
-        raise MeshReadError(f"{path}: the file is empty; export the mesh again")
-    for magic, what in _MAGIC.items():
-        if head.startswith(magic) and fmt not in ("med", "exodus", "cgns", "xdmf"):
-            raise MeshReadError(f"{path}: the file is {what}, not a {fmt} mesh; "
-                                "unpack or export it to a mesh format first")
-    if fmt == "gmsh" and not stripped.startswith(b"$MeshFormat"):
-        raise MeshReadError(f"{path}: a .msh file must start with $MeshFormat; "
-                            "this is not a gmsh mesh (export it from gmsh again)")
-    if fmt == "vtu" and b"<VTKFile" not in head and not stripped.startswith(b"<?xml"):
-        raise MeshReadError(f"{path}: not a VTK XML (.vtu) file; export it again")
-    return fmt
+def read_raw(path: str | Path, allow_outside: bool = False) -> RawMesh:
+    """Sniff and read a mesh file as found (coordinates in the file's unit).
 
-
-def _call_reader(path: Path, fmt: str):
-    import meshio
-    from meshio._helpers import reader_map
-
-    sink = io.StringIO()
+    allow_outside : let INCLUDE statements name files outside the folder of ``path``.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise MeshReadError(f"{path}: no such file; check the path")
+    if not path.is_file():
+        raise MeshReadError(f"{path}: not a file (a folder?); give the mesh file itself")
     try:
-        with contextlib.redirect_stdout(sink), contextlib.redirect_stderr(sink):
-            return reader_map[fmt](str(path))
-    except ModuleNotFoundError as exc:
-        raise MeshReadError(f"{path}: reading {fmt} files needs the Python package "
-                            f"'{exc.name}'; install it (pip install {exc.name})") from None
-    except (SystemExit, KeyboardInterrupt) as exc:
-        if isinstance(exc, KeyboardInterrupt):
-            raise
-        detail = sink.getvalue().strip().splitlines()
-        raise MeshReadError(f"{path}: the {fmt} reader gave up"
-                            f"{': ' + detail[-1] if detail else ''}; check the file "
-                            "is complete and exported as " + fmt) from None
-    except (meshio.ReadError, Exception) as exc:  # noqa: BLE001 - every reader failure
-        what = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise MeshReadError(f"{path}: cannot be read as {fmt} ({type(exc).__name__}: "
-                            f"{what[:200]}); check the file is complete and not corrupted"
+        size = path.stat().st_size
+        with open(path, "rb") as fh:
+            head = fh.read(HEAD_BYTES)
+    except OSError as exc:
+        raise MeshReadError(f"{path}: cannot be opened ({exc.strerror}); check the permissions"
                             ) from None
+    kind = sniff(path, head, size)
+    try:
+        return _dispatch(path, kind, allow_outside)
+    except MeshcheckError:
+        raise
+    except MemoryError:
+        raise MeshReadError(f"{path}: not enough memory to read this {kind.detail} file") from None
+    except (ValueError, IndexError, KeyError, TypeError, OverflowError, UnicodeError,
+            struct.error, OSError, ZeroDivisionError, RecursionError) as exc:
+        what = clean_name(str(exc).splitlines()[0][:160]) if str(exc).strip() else ""
+        raise MeshReadError(f"{path}: cannot be read as {kind.detail} ({type(exc).__name__}"
+                            f"{': ' + what if what else ''}); the file is damaged or of a "
+                            "dialect this reader does not take - export it again") from None
 
 
-def read_mesh(path: str | Path, units: str | None = None) -> Mesh:
+def _dispatch(path: Path, kind: Sniffed, allow_outside: bool) -> RawMesh:
+    if kind.kind == "nastran":
+        from .formats.nastran import read_nastran
+        return read_nastran(path, allow_outside)
+    if kind.kind == "abaqus":
+        from .formats.abaqus import read_abaqus
+        return read_abaqus(path, allow_outside)
+    if kind.kind == "unv":
+        from .formats.unv import read_unv
+        return read_unv(path)
+    from .formats.via_meshio import read_via_meshio
+    return read_via_meshio(path, kind.kind, kind.detail)
+
+
+def read_mesh(path: str | Path, units: str | None = None, *, fmax_hint: float | None = None,
+              allow_outside: bool = False) -> Mesh:
     """Read a volume (or planar 2D) mesh file and return it in metres.
 
     Parameters
     ----------
-    path : mesh file (gmsh .msh, .vtu, .vtk, Nastran, Abaqus, ...).
-    units : length unit of the file ("m", "cm", "mm", "in"); when None it is
-        read off the domain size, and an ambiguous size raises UnitsError.
+    path : mesh file; the format is told from the content (gmsh .msh, .vtu,
+        .vtk, Nastran .bdf/.nas/.dat, Abaqus .inp, I-DEAS .unv, Exodus, MED, CGNS).
+    units : length unit of the file ("m", "cm", "mm", "in", "ft"); when None it
+        is taken from the file (I-DEAS dataset 164) or settled by the domain
+        size and material speeds of sound; an ambiguous case raises UnitsError.
+    fmax_hint : upper frequency of the study, Hz, only to word the UnitsError.
+    allow_outside : let INCLUDE statements reach outside the mesh's folder tree.
     """
-    path = Path(path)
-    if not path.is_file():
-        raise MeshReadError(f"{path}: no such file; check the path")
-    with open(path, "rb") as fh:
-        head = fh.read(512)
-    fmt = detect_format(path, head)
-    raw = _call_reader(path, fmt)
-    return mesh_from_meshio(raw, source=str(path), units=units)
+    raw = read_raw(path, allow_outside)
+    return mesh_from_raw(raw, source=str(path), units=units, fmax_hint=fmax_hint)
 
 
-def _region_tags(raw, index: int, n: int) -> np.ndarray:
-    for key in _REGION_KEYS:
-        data = raw.cell_data.get(key)
-        if data is not None and index < len(data):
-            tags = np.asarray(data[index]).reshape(-1)
-            if tags.shape[0] == n and np.issubdtype(tags.dtype, np.number):
-                return tags.astype(np.int64)
-    tags = np.zeros(n, np.int64)
-    # cell sets (Abaqus, VTU written by meshio) name regions by position
-    for k, (name, sets) in enumerate(sorted(raw.cell_sets.items())):
-        if index < len(sets) and sets[index] is not None and len(sets[index]):
-            tags[np.asarray(sets[index], dtype=np.int64)] = k + 1
-    return tags
+def _typical_edge(points: np.ndarray, blocks: list[RawBlock]) -> float:
+    """Median corner-edge length (file units) over a sample of cells."""
+    lengths = []
+    for b in blocks:
+        info = CELL_TYPES[b.type]
+        cells = b.cells[:: max(1, len(b.cells) // _EDGE_SAMPLE + 1)]
+        e = info.edges[:, :2]
+        d = points[cells[:, e[:, 0]]] - points[cells[:, e[:, 1]]]
+        lengths.append(np.linalg.norm(d, axis=-1).ravel())
+    if not lengths:
+        return 0.0
+    all_l = np.concatenate(lengths)
+    all_l = all_l[np.isfinite(all_l)]
+    return float(np.median(all_l)) if all_l.size else 0.0
 
 
-def _region_names(raw) -> dict[int, str]:
-    names: dict[int, str] = {}
-    for name, value in (raw.field_data or {}).items():
-        arr = np.asarray(value).reshape(-1)
-        if arr.size and np.issubdtype(arr.dtype, np.integer):
-            names[int(arr[0])] = str(name)
-    if not names and raw.cell_sets:
-        names = {k + 1: str(n) for k, n in enumerate(sorted(raw.cell_sets))}
-    return names
+def mesh_from_raw(raw: RawMesh, source: str = "", units: str | None = None,
+                  fmax_hint: float | None = None) -> Mesh:
+    """Cross-check a RawMesh, settle its unit and return the Mesh in metres.
 
-
-def mesh_from_meshio(raw, source: str = "", units: str | None = None) -> Mesh:
-    """Turn a ``meshio.Mesh`` into a meshcheck Mesh in metres.
-
-    Keeps the cells of the model's dimension only: volume cells when there are
-    any, else planar triangles/quads as a 2D model.  Raises MeshReadError for
-    an unusable mesh and UnitsError when the unit cannot be told.
+    Keeps the cells of the model's dimension only: volume cells when there
+    are any, else planar triangles/quads as a 2D model.
     """
     label = source or "<mesh>"
+    for what, expected, got in raw.counts:
+        if expected != got:
+            raise MeshReadError(f"{label}: {what}: {expected:,} expected from the pre-scan or "
+                                f"the file's own counts, {got:,} found; the file is inconsistent "
+                                "or laid out in a way that would be misread - export it again")
     points = np.asarray(raw.points, dtype=np.float64)
     if points.ndim != 2 or points.shape[0] == 0:
         raise MeshReadError(f"{label}: the file holds no nodes; export the mesh with its nodes")
-    if points.shape[1] == 2:
-        points = np.column_stack([points, np.zeros(len(points))])
-    types = [b.type for b in raw.cells]
-    unsupported = sorted({t for t in types if t not in CELL_TYPES and t not in
-                          ("vertex", "line", "line3", "line4")})
-    vol = [i for i, t in enumerate(types) if t in VOLUME_TYPES]
-    if not vol:
-        surf = [i for i, t in enumerate(types) if t in SURFACE_TYPES]
-        unsupported_vol = [t for t in unsupported if not t.startswith(("triangle", "quad"))]
-        if unsupported_vol:
-            raise MeshReadError(f"{label}: cell type(s) {', '.join(unsupported_vol)} are not "
-                                "supported; export linear or quadratic (serendipity) cells")
+    bad = ~np.isfinite(points).all(axis=1)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        nid = int(raw.point_ids[i]) if raw.point_ids is not None else i
+        raise MeshReadError(f"{label}: node {nid} has a non-finite coordinate "
+                            f"({', '.join(f'{x:g}' for x in points[i])}) and {int(bad.sum())} "
+                            "node(s) in all; the export is damaged - export the mesh again")
+    unknown = sorted({b.type for b in raw.blocks if b.type not in CELL_TYPES})
+    if unknown:
+        raise MeshReadError(f"{label}: cell type(s) {', '.join(unknown)} are not supported; "
+                            "export linear or quadratic (serendipity) tetrahedra, hexahedra, "
+                            "wedges or pyramids")
+    n = len(points)
+    for b in raw.blocks:
+        info = CELL_TYPES[b.type]
+        if b.cells.ndim != 2 or b.cells.shape[1] != info.n_nodes:
+            raise MeshReadError(f"{label}: {b.type} cells with {b.cells.shape[-1]} nodes "
+                                f"(expected {info.n_nodes}); the file is truncated or "
+                                "inconsistent - export it again")
+        if len(b.region) != len(b.cells):
+            raise MeshReadError(f"{label}: {len(b.region)} region tags for {len(b.cells)} "
+                                f"{b.type} cells; the file's region data are inconsistent")
+        if b.cells.size and (b.cells.min() < 0 or b.cells.max() >= n):
+            bad_index = int(b.cells.max()) if b.cells.max() >= n else int(b.cells.min())
+            raise MeshReadError(f"{label}: {b.type} cells refer to nodes that do not exist "
+                                f"(index {bad_index} "
+                                f"of {n} nodes); the file is truncated or inconsistent")
+    vol = [b for b in raw.blocks if b.type in VOLUME_TYPES and len(b.cells)]
+    if vol:
+        keep, dim = vol, 3
+    else:
+        surf = [b for b in raw.blocks if b.type in SURFACE_TYPES and len(b.cells)]
         if not surf:
+            found = sorted({b.type for b in raw.blocks if len(b.cells)} | set(raw.ignored))
             raise MeshReadError(f"{label}: the mesh has no volume cells (found: "
-                                f"{', '.join(sorted(set(types))) or 'none'}); a volume mesh "
-                                "of the fluid domain is needed")
-        used = np.unique(np.concatenate([raw.cells[i].data[:, :3].ravel() for i in surf]))
-        used = used[(used >= 0) & (used < len(points))]
+                                f"{', '.join(found) or 'none'}); a volume mesh of the fluid "
+                                "domain is needed")
+        used = np.unique(np.concatenate([b.cells.ravel() for b in surf]))
         z = points[used, 2]
-        if np.ptp(z) > 1e-9 * max(np.ptp(points[used, :2]), 1e-300):
+        span = max(float(np.ptp(points[used, :2])), 1e-300)
+        if float(np.ptp(z)) > 1e-9 * span:
             raise MeshReadError(f"{label}: only surface cells (triangles/quads) in 3D space; "
                                 "this is a boundary mesh - a volume mesh of the fluid domain "
                                 "is needed (or a planar mesh in z = const for a 2D model)")
         keep, dim = surf, 2
-    else:
-        keep, dim = vol, 3
-    bad = [t for t in unsupported if CELL_TYPES.get(t) is None and
-           (dim == 3 and not t.startswith(("triangle", "quad")))]
-    if bad:
-        raise MeshReadError(f"{label}: cell type(s) {', '.join(bad)} are not supported; "
-                            "export linear or quadratic (serendipity) cells")
-    blocks = []
-    for i in keep:
-        cb = raw.cells[i]
-        data = np.asarray(cb.data)
-        if data.ndim != 2 or data.shape[1] != CELL_TYPES[cb.type].n_nodes:
-            raise MeshReadError(f"{label}: {cb.type} cells with {data.shape[-1]} nodes "
-                                f"(expected {CELL_TYPES[cb.type].n_nodes}); the file is "
-                                "inconsistent, export it again")
-        if data.size and (data.min() < 0 or data.max() >= len(points)):
-            raise MeshReadError(f"{label}: {cb.type} cells refer to nodes that do not exist "
-                                f"(index {int(data.max())} of {len(points)} nodes); the file "
-                                "is truncated or inconsistent")
-        blocks.append(CellBlock(cb.type, data, _region_tags(raw, i, len(data))))
-    # merge blocks of the same type (meshio splits them per physical group)
-    merged: dict[str, list[CellBlock]] = {}
-    for b in blocks:
+    merged: dict[str, list[RawBlock]] = {}
+    for b in keep:
         merged.setdefault(b.type, []).append(b)
-    blocks = [CellBlock(t, np.concatenate([b.cells for b in bs]),
-                        np.concatenate([b.region for b in bs])) for t, bs in merged.items()]
+    blocks = tuple(CellBlock(t, bs[0].cells if len(bs) == 1 else
+                             np.concatenate([b.cells for b in bs]),
+                             bs[0].region if len(bs) == 1 else
+                             np.concatenate([b.region for b in bs])) for t, bs in merged.items())
+    if units is not None:
+        unit = units.strip().lower() if isinstance(units, str) else units
+    elif raw.unit is not None:
+        unit = raw.unit
+    else:
+        used = np.zeros(n, bool)
+        for b in blocks:
+            used[b.cells] = True
+        diagonal = float(np.linalg.norm(np.ptp(points[used], axis=0)))
+        speeds = tuple((s.card, s.speed) for s in raw.speeds)
+        unit = decide_unit(diagonal, _typical_edge(points, keep), label, speeds, fmax_hint).unit
+    factor = unit_factor(unit, label)
+    tags = {int(t) for b in blocks for t in distinct(b.region)}
+    names = {t: nm for t, nm in raw.region_names.items() if t in tags}
+    return Mesh(points * factor, blocks, names, dim, label, unit)
 
-    finite = np.isfinite(points).all(axis=1)
-    used = np.zeros(len(points), bool)
-    for b in blocks:
-        used[b.cells] = True
-    sel = points[used & finite]
-    diagonal = float(np.linalg.norm(np.ptp(sel, axis=0))) if len(sel) else 0.0
-    if units is None:
-        guess = guess_unit(diagonal)
-        if guess.unit is None:
-            r = guess.readings
-            raise UnitsError(
-                f"{label}: the length unit is not stored in the file and the domain size "
-                f"does not tell it (diagonal {diagonal:g}: {r['m']:g} m if metres, "
-                f"{r['mm']:g} m if millimetres); pass --units m or --units mm")
-        units = guess.unit
-    factor = unit_factor(units, label)
-    return Mesh(points * factor, tuple(blocks), _region_names(raw), dim, label,
-                units.strip().lower())
+
+def raw_from_meshio(mesh, fmt: str = "meshio") -> RawMesh:
+    """RawMesh of an in-memory ``meshio.Mesh`` (region tags from the usual cell-data keys)."""
+    keys = ("gmsh:physical", "medit:ref", "nastran:ref", "CellEntityIds", "cell_tags", "region",
+            "regions", "material", "ele_tag", "flac3d:zone")
+    points = np.asarray(mesh.points, dtype=np.float64)
+    if points.ndim == 2 and points.shape[1] == 2:
+        points = np.column_stack([points, np.zeros(len(points))])
+    blocks, ignored = [], {}
+    for i, cb in enumerate(mesh.cells):
+        data = np.asarray(cb.data)
+        nc = len(data)
+        if cb.type in ("vertex", "line", "line3", "line4"):
+            ignored[cb.type] = ignored.get(cb.type, 0) + nc
+            continue
+        region = np.zeros(nc, np.int64)
+        for key in keys:
+            vals = mesh.cell_data.get(key)
+            if vals is not None and len(vals) == len(mesh.cells):
+                arr = np.asarray(vals[i]).reshape(-1)
+                if arr.shape[0] == nc and np.issubdtype(arr.dtype, np.number):
+                    region = arr.astype(np.int64)
+                    break
+        else:
+            for k, (name, sets) in enumerate(sorted(mesh.cell_sets.items())):
+                if i < len(sets) and sets[i] is not None and len(sets[i]):
+                    region[np.asarray(sets[i], dtype=np.int64)] = k + 1
+        blocks.append(RawBlock(cb.type, data.reshape(nc, -1).astype(np.int64), region))
+    names = {}
+    for name, value in (mesh.field_data or {}).items():
+        arr = np.asarray(value).reshape(-1)
+        if arr.size and np.issubdtype(arr.dtype, np.integer):
+            names[int(arr[0])] = clean_name(str(name))
+    if not names and mesh.cell_sets:
+        names = {k + 1: clean_name(str(nm)) for k, nm in enumerate(sorted(mesh.cell_sets))}
+    return RawMesh(points=points, blocks=tuple(blocks), region_names=names, format=fmt,
+                   ignored=ignored)
+
+
+def mesh_from_meshio(raw, source: str = "", units: str | None = None) -> Mesh:
+    """Turn a ``meshio.Mesh`` into a meshcheck Mesh in metres (same checks as a file read)."""
+    return mesh_from_raw(raw_from_meshio(raw), source=source, units=units)
 
 
 def describe_units(mesh: Mesh) -> str:
     return UNIT_NAMES.get(mesh.unit, mesh.unit)
+

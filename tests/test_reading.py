@@ -74,7 +74,7 @@ def test_planar_triangles_are_a_2d_model(tmp_path):
 @pytest.mark.parametrize("content, match", [
     (b"", "empty"),
     (b"   \n\t\n", "empty"),
-    (b"$MeshFormat\n2.2 0 8\n$EndMeshFormat\n$Nodes\n3\n1 0 0", "cannot be read|gave up"),
+    (b"$MeshFormat\n2.2 0 8\n$EndMeshFormat\n$Nodes\n3\n1 0 0", "no \\$EndNodes; the file is truncated"),
     (b"hello world", "must start with \\$MeshFormat"),
 ])
 def test_bad_msh_files(tmp_path, content, match):
@@ -95,7 +95,7 @@ def test_zip_renamed_refused(tmp_path):
 def test_stl_refused(tmp_path):
     path = tmp_path / "part.stl"
     path.write_text("solid part\nendsolid part\n")
-    with pytest.raises(MeshReadError, match="surface file, not a volume mesh"):
+    with pytest.raises(MeshReadError, match="STL surface, not a volume mesh"):
         read_mesh(path)
 
 
@@ -113,3 +113,125 @@ def test_reader_system_exit_is_caught(tmp_path):
     path.write_text("<?xml version='1.0'?><VTKFile type='UnstructuredGrid'><Unstr")
     with pytest.raises(MeshReadError, match="broken.vtu"):
         read_mesh(path, units="m")
+
+
+# ---- units guard --------------------------------------------------------------------
+from meshcheck.units import REFERENCE_SPEED, decide_unit, guess_unit, speed_unit  # noqa: E402
+
+
+@pytest.mark.parametrize("diagonal, unit", [(1.7, "m"), (150.0, None), (1700.0, "mm"),
+                                            (36.0, None), (0.001, None), (1e7, None)])
+def test_bounding_box_classes(diagonal, unit):
+    """Plausible domain diagonal 0.02 m .. 200 m (common practice, no source)."""
+    assert guess_unit(diagonal).unit == unit
+
+
+@pytest.mark.parametrize("speed, unit", [(343.0, "m"), (1481.0, "m"), (343000.0, "mm"),
+                                         (1.0, None), (34300.0, None)])
+def test_speed_of_sound_classes(speed, unit):
+    assert speed_unit(speed) == unit
+
+
+def test_ambiguous_message_spells_both_readings():
+    """h = 10 file units at 2 kHz in air (343.2 m/s): wavelength 0.1716 m, so 0.01716
+    elements per wavelength if metres and 17.16 if millimetres."""
+    assert REFERENCE_SPEED == pytest.approx(331.3 * (1 + 20 / 273.15) ** 0.5, abs=0.05)
+    with pytest.raises(UnitsError, match=r"elements per wavelength at 2 kHz in air: 0\.017 if "
+                                          r"metres, 17\.2 if millimetres\); pass --units"):
+        decide_unit(36.0, 10.0, "x.bdf", fmax_hint=2000.0)
+
+
+@pytest.mark.parametrize("diagonal, speeds, unit", [
+    (36.0, (("MAT10 1", 343.0),), "m"),
+    (36.0, (("MAT10 1", 343000.0),), "mm"),
+    (1.7, (("MAT10 1", 343.0),), "m"),
+    (1700.0, (), "mm"),
+])
+def test_material_speed_decides(diagonal, speeds, unit):
+    assert decide_unit(diagonal, 1.0, speeds=speeds).unit == unit
+
+
+@pytest.mark.parametrize("diagonal, speeds, match", [
+    (1.7, (("MAT10 1", 343000.0),), "the file is inconsistent"),
+    (36.0, (("MAT10 1", 343.0), ("MAT10 2", 343000.0)), "material cards disagree"),
+])
+def test_material_speed_conflicts(diagonal, speeds, match):
+    with pytest.raises(UnitsError, match=match):
+        decide_unit(diagonal, 1.0, speeds=speeds)
+
+
+# ---- cross-checks on in-memory meshes ------------------------------------------------
+from meshcheck.formats.raw import RawBlock, RawMesh  # noqa: E402
+from meshcheck.reading import mesh_from_meshio, mesh_from_raw  # noqa: E402
+
+
+def _raw(**kw):
+    m = tet_box((1, 1, 1))
+    base = dict(points=m.points, blocks=(RawBlock("tetra", m.blocks[0].cells,
+                                                  np.zeros(m.n_cells, np.int64)),))
+    base.update(kw)
+    return RawMesh(**base)
+
+
+@pytest.mark.parametrize("kw, match", [
+    ({"counts": (("CTETRA cards", 7, 6),)}, r"CTETRA cards: 7 expected from the pre-scan or "
+                                           r"the file's own counts, 6 found"),
+    ({"blocks": (RawBlock("tetra", np.zeros((2, 3), np.int64), np.zeros(2, np.int64)),)},
+     r"tetra cells with 3 nodes \(expected 4\)"),
+    ({"blocks": (RawBlock("tetra", np.zeros((2, 4), np.int64), np.zeros(3, np.int64)),)},
+     r"3 region tags for 2 tetra cells"),
+    ({"blocks": (RawBlock("tetra", np.full((1, 4), 99), np.zeros(1, np.int64)),)},
+     r"refer to nodes that do not exist \(index 99 of 8 nodes\)"),
+    ({"blocks": ()}, r"no volume cells \(found: none\)"),
+    ({"points": np.zeros((0, 3)), "blocks": ()}, r"holds no nodes"),
+    ({"blocks": (RawBlock("polyhedron", np.zeros((1, 4), np.int64), np.zeros(1, np.int64)),)},
+     r"cell type\(s\) polyhedron are not supported"),
+])
+def test_cross_checks(kw, match):
+    with pytest.raises(MeshReadError, match=match):
+        mesh_from_raw(_raw(**kw), "x", units="m")
+
+
+def test_mesh_from_meshio_keeps_working():
+    m = tet_box((1, 1, 1))
+    out = mesh_from_meshio(meshio.Mesh(m.points, [("tetra", m.blocks[0].cells)],
+                                       cell_sets={"air": [np.arange(m.n_cells)]}), "mem", "m")
+    assert out.n_cells == m.n_cells and out.region_names == {1: "air"}
+
+
+def test_unv_unit_is_honoured_end_to_end(tmp_path):
+    from hostile.texts import CUBE, unv
+    from meshes import KUHN
+    p = tmp_path / "mm.unv"
+    p.write_text(unv(CUBE * 500.0, [(111, KUHN)], units=(5, "MM", 1000.0)))
+    m = read_mesh(p)
+    assert m.unit == "mm" and m.bounding_box[1].tolist() == pytest.approx([0.5, 0.5, 0.5])
+
+
+# ---- the command line ------------------------------------------------------------------
+def test_cli_ambiguous_units_message_uses_fmax(tmp_path, capsys):
+    from hostile.texts import CUBE, nastran
+    from meshcheck.cli import main
+    from meshes import KUHN
+    p = tmp_path / "amb.bdf"
+    p.write_text(nastran(CUBE * 40.0, [("CTETRA", KUHN)]))
+    assert main(["audit", str(p), "--fmax", "2000", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "elements per wavelength at 2 kHz in air: 0.0036 if metres, 3.6 if millimetres" in err
+    assert "Traceback" not in err
+
+
+def test_cli_allow_outside(tmp_path, capsys):
+    from hostile.texts import CUBE, nas_small, nastran
+    from meshcheck.cli import main
+    from meshes import KUHN
+    (tmp_path / "grids.bdf").write_text(nastran(CUBE, [], begin=False, end=False))
+    sub = tmp_path / "model"
+    sub.mkdir()
+    elems = "\n".join(nas_small("CTETRA", [k + 1, 1, *(c + 1)]) for k, c in enumerate(KUHN))
+    (sub / "m.bdf").write_text("BEGIN BULK\nINCLUDE '../grids.bdf'\n" + elems + "\nENDDATA\n")
+    args = ["audit", str(sub / "m.bdf"), "--units", "m", "--fmax", "100", "--quiet",
+            "--out", str(tmp_path / "out")]
+    assert main(args) == 2
+    assert "--allow-outside" in capsys.readouterr().err
+    assert main(args + ["--allow-outside"]) in (0, 1)

@@ -1,0 +1,1 @@
+"""Builders of tiny mesh files as text, for the reading tests (nothing is stored on disk)."""
