@@ -6,6 +6,7 @@ Exit codes: 0 the mesh is ready up to the requested upper frequency,
 from __future__ import annotations
 
 import sys
+import time
 from contextlib import contextmanager
 from enum import Enum
 from pathlib import Path
@@ -77,6 +78,39 @@ def _parse_region_speeds(items: list[str]) -> dict:
     return out
 
 
+def _fmt_s(t: float) -> str:
+    return f"{t:.3g} s" if t < 120 else (f"{t / 60:.3g} min" if t < 7200 else f"{t / 3600:.3g} h")
+
+
+def _fmt_b(b: float) -> str:
+    return f"{b / 1e6:.3g} MB" if b < 1e9 else f"{b / 1e9:.3g} GB"
+
+
+def _print_cost(console: Console, data: dict) -> None:
+    """One line per strategy of the quote, one for the coarsening scenario."""
+    c = data.get("cost")
+    if not c:
+        return
+    if "error" in c:
+        console.print(f"cost: not estimated ({escape(c['error'])})")
+        return
+    parts = []
+    for q in c["strategies"]:
+        lo, hi = q["total_band_s"]
+        note = "" if q["carries_all"] else ", misses the target at the top"
+        note += ", beyond calibration" if q.get("beyond_calibration") else ""
+        parts.append(f"{q['strategy']} {_fmt_s(q['total_s'])} ({_fmt_s(lo)}-{_fmt_s(hi)}), "
+                     f"peak {_fmt_b(q['peak_memory_bytes'])}{note}")
+    console.print("cost of the sweep (direct solver, this machine): " + "; ".join(parts))
+    co = c.get("coarsening")
+    if co and co.get("quote"):
+        sp = co.get("speedup")
+        console.print(f"coarsening scenario (sizes for p={co['order']} at "
+                      f"{co['upper_frequency_hz']:g} Hz, gradation {co['gradation']:g}): "
+                      f"~{co['estimated_cells']:,.0f} cells, {_fmt_s(co['quote']['total_s'])}"
+                      + (f", {sp:.3g}x the speed of the supplied mesh" if sp else ""))
+
+
 def _print_summary(console: Console, res, files: dict | None, data: dict) -> None:
     from .report import CAUTION, _fmt_hz
 
@@ -130,6 +164,7 @@ def _print_summary(console: Console, res, files: dict | None, data: dict) -> Non
                   f"{len(data['refine'])} groups; could be coarser (x"
                   f"{res.settings.advice.coarsen_factor:g} or more): "
                   f"{sum(c['cells'] for c in data['coarsen'])} cells")
+    _print_cost(console, data)
     if files:
         for kind, p in files.items():
             console.print(f"wrote {kind}: {escape(str(p))}")
@@ -160,7 +195,7 @@ def _stages(quiet: bool):
 
 def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, max_order,
          speed, temperature, region_speed, distance, out: Optional[Path], quiet: bool,
-         job: Optional[Path] = None) -> int:
+         job: Optional[Path] = None, allow_outside: bool = False) -> int:
     from .advice import AdviceSettings
     from .job import load_job
     from .pipeline import AuditSettings, audit
@@ -177,7 +212,9 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     temperature = 20.0 if temperature is None else temperature
     with _stages(quiet) as step:
         step("reading")
-        mesh = read_mesh(mesh_path, units.value if units is not None else None)
+        mesh = read_mesh(mesh_path, units.value if units is not None else None,
+                         fmax_hint=float(np.max(f)) if len(f) else None,
+                         allow_outside=allow_outside)
         dist = None if distance is None else distance * UNIT_FACTORS[mesh.unit]
         adv = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist)
         settings = AuditSettings(frequencies=tuple(f), advice=adv, temperature=temperature,
@@ -192,6 +229,10 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
             files = {"json": write_json(res, out / f"{stem}.audit.json", data),
                      "markdown": write_markdown(res, out / f"{stem}.audit.md", data),
                      "vtu": write_vtu(res, out / f"{stem}.audit.vtu")}
+            from .sizefield import write_size_view
+            pos = write_size_view(res, out / f"{stem}.size.pos")
+            if pos is not None:
+                files["size view (gmsh)"] = pos
             try:  # figures need matplotlib; without it the other reports still stand
                 from .html_report import write_html
                 files["html"] = write_html(res, out / f"{stem}.audit.html", data)
@@ -233,11 +274,14 @@ def audit(
                                        "it).", dir_okay=False),
     quiet: bool = typer.Option(False, help="No terminal summary (exit code only)."),
     debug: bool = typer.Option(False, help="Show tracebacks."),
+    allow_outside: bool = typer.Option(False, help="Let INCLUDE statements of the mesh file "
+                                       "name files outside the mesh's folder tree."),
 ):
     """Audit MESH: validity, quality, usable frequency per order, refine/coarsen advice."""
     out = out if out is not None else Path.cwd() / f"{mesh.stem}-audit"
     raise typer.Exit(_run(mesh, units, fmin, fmax, step, bands, freqs, target, order, max_order,
-                          speed, temperature, region_speed, distance, out, quiet, job))
+                          speed, temperature, region_speed, distance, out, quiet, job,
+                          allow_outside=allow_outside))
 
 
 @app.command()
@@ -249,6 +293,176 @@ def demo(out: Path = typer.Option(Path("meshcheck-demo"), help="Folder for the r
     code = _run(mesh, Unit(DEMO["units"]), DEMO["fmin"], DEMO["fmax"], None, Bands.third, None,
                 DEMO["target"], None, DEMO["max_order"], None, 20.0, None, None, out, quiet)
     raise typer.Exit(code)
+
+
+@app.command()
+def calibrate(
+    mesh: Optional[Path] = typer.Option(None, "--mesh", help="Calibrate on sub-meshes of this "
+                                        "mesh (default: gmsh meshes of a box, 3D and 2D)."),
+    units: Optional[Unit] = typer.Option(None, "--units", "-u", help="Length unit of --mesh."),
+    out: Optional[Path] = typer.Option(None, help="Constants file to write (default: "
+                                       "$XDG_CONFIG_HOME/meshcheck/machine.json, which audits "
+                                       "then use)."),
+    max_dofs: float = typer.Option(30000, help="Unknowns of the largest system factorised."),
+    steps: int = typer.Option(6, help="System sizes per order."),
+    orders: str = typer.Option("1,2,3,4", help="Orders factorised, comma separated."),
+    quick: bool = typer.Option(False, help="A small run (about a minute): smoke test only."),
+    quiet: bool = typer.Option(False, help="No terminal output."),
+    debug: bool = typer.Option(False, help="Show tracebacks."),
+):
+    """Time real factorisations on this machine and fit the cost constants of the quote.
+
+    Assembles complex Helmholtz systems (NGSolve) of sub-meshes of increasing size at
+    orders 1-4, factorises them with SciPy's SuperLU in nested-dissection order, and fits
+    memory and time against unknowns and non-zeros with the nested-dissection exponents.
+    Takes 10-20 minutes with the defaults.
+    """
+    from .calibration import calibrate as run_cal, fit_machine, save_machine, user_machine_path
+    from .errors import SettingsError
+    from .reading import read_mesh
+
+    console = Console(highlight=False, quiet=quiet)
+    try:
+        import gmsh  # noqa: F401
+        import ngsolve  # noqa: F401
+    except ImportError as exc:
+        raise SettingsError(f"meshcheck calibrate needs NGSolve and gmsh ({exc}); "
+                            "pip install ngsolve gmsh") from None
+    try:
+        order_list = tuple(int(x) for x in orders.split(",") if x.strip())
+    except ValueError:
+        raise SettingsError(f"--orders {orders}: give integers, e.g. 1,2,3,4") from None
+    if not order_list or min(order_list) < 1 or max(order_list) > 8:
+        raise SettingsError("--orders must be between 1 and 8")
+    src = read_mesh(mesh, units.value if units is not None else None) if mesh else None
+    kw = dict(orders=order_list, max_dofs=max_dofs, steps=steps)
+    if quick:
+        kw = dict(orders=order_list[:2], max_dofs=5000, steps=4, assembly_orders=(1, 2, 3, 4),
+                  assembly_dofs=3000, min_dofs=400)
+    t0 = time.perf_counter()
+    with console.status("calibrating", spinner="line") as status:
+        samples = run_cal(src, progress=lambda m: status.update(f"factorising: {m}"), **kw)
+    model = fit_machine(samples)
+    path = save_machine(model, out if out is not None else user_machine_path())
+    t = Table(title=f"Fitted cost constants ({len(samples)} systems, "
+                    f"{time.perf_counter() - t0:.0f} s)")
+    for col in ("quantity", "terms", "coefficients", "spread (x/)", "free exponent per order"):
+        t.add_column(col)
+    for key, fit in model.fits.items():
+        ex = model.exponents.get(key, {})
+        t.add_row(key, " + ".join(fit.terms), ", ".join(f"{c:.3g}" for c in fit.coef),
+                  f"{np.exp(2 * fit.log_sd):.2f}",
+                  ", ".join(f"p{o}: {e:.2f}" for o, e in ex.items()))
+    console.print(t)
+    console.print(f"wrote machine constants: {escape(str(path))}")
+    raise typer.Exit(0)
+
+
+@app.command()
+def coarsen(
+    mesh: Path = MESH_ARG,
+    units: Optional[Unit] = typer.Option(None, "--units", "-u", help="Length unit of the file."),
+    fmax: Optional[float] = typer.Option(None, help="Upper frequency of the sweep, Hz."),
+    fmin: Optional[float] = typer.Option(None, help="Lower frequency, Hz."),
+    step: Optional[float] = typer.Option(None, help="Linear step from fmin to fmax, Hz."),
+    bands: Optional[Bands] = typer.Option(None, help="Band centres from fmin to fmax (ISO 266)."),
+    target: float = typer.Option(0.01, help="Allowed relative error (0.01 = 1 %)."),
+    order: Optional[int] = typer.Option(None, help="Fixed element order of the solver."),
+    max_order: int = typer.Option(8, help="Highest order of a variable-order solver."),
+    size_order: Optional[int] = typer.Option(None, help="Build the sizes for this order (the "
+                                             "new mesh is then audited at this fixed order); "
+                                             "default: the allowed order."),
+    gradation: float = typer.Option(0.3, help="Largest size gradient |grad h| of the field."),
+    speed: Optional[float] = typer.Option(None, help="Sound speed, m/s (default: air)."),
+    temperature: float = typer.Option(20.0, help="Air temperature, deg C."),
+    out: Optional[Path] = typer.Option(None, help="Folder for the reports and the new mesh "
+                                       "(default: <mesh name>-coarsen)."),
+    quiet: bool = typer.Option(False, help="No terminal output."),
+    debug: bool = typer.Option(False, help="Show tracebacks."),
+):
+    """Remesh MESH with gmsh to the size field of the upper frequency and audit both meshes.
+
+    The boundary faces are reclassified into a discrete geometry and the volume is
+    meshed with tetrahedra sized by the field (a .pos background view).  Regions are
+    merged into one fluid.  Exit 0 when the new mesh carries the upper frequency.
+    """
+    import json
+    from .advice import AdviceSettings
+    from .cost import job_cost, job_cost_dict
+    from .pipeline import AuditSettings, audit
+    from .reading import read_mesh
+    from .report import to_dict, write_all
+    from .sizefield import remesh_and_audit
+    from .units import UNIT_FACTORS
+
+    console = Console(highlight=False, quiet=quiet)
+    f = _frequencies(fmin, fmax, step, bands, None)
+    m = read_mesh(mesh, units.value if units is not None else None)
+    scale = UNIT_FACTORS.get(m.unit, 1.0)
+    adv = AdviceSettings(target=target, max_order=max_order, order=order)
+    settings = AuditSettings(frequencies=tuple(f), advice=adv, temperature=temperature,
+                             speed=speed)
+    folder = out if out is not None else Path.cwd() / f"{mesh.stem}-coarsen"
+    folder.mkdir(parents=True, exist_ok=True)
+    with console.status("auditing the supplied mesh", spinner="line") as status:
+        res = audit(m, settings)
+        job = job_cost(m, res.topology, res.advice, np.asarray(settings.frequencies),
+                       size_order=size_order, gradation=gradation)
+        scen = job.chosen if size_order is not None else job.coarsening
+        files = write_all(res, folder, mesh.stem)
+        status.update("remeshing with gmsh and auditing the new mesh")
+        adv2 = adv if size_order is None else AdviceSettings(
+            target=target, max_order=max(max_order, size_order), order=size_order)
+        s2 = AuditSettings(frequencies=tuple(f), advice=adv2, temperature=temperature,
+                           speed=speed)
+        new_path, res2, shrink = remesh_and_audit(m, res.topology, scen.field, s2,
+                                                  folder / f"{mesh.stem}.coarse.msh")
+        new = res2.mesh
+        files2 = write_all(res2, folder, f"{mesh.stem}.coarse")
+    d1, d2 = to_dict(res), to_dict(res2)
+    summary = {"schema": "meshcheck-coarsen", "schema_version": 1, "supplied": str(mesh),
+               "coarsened": str(new_path), "size_order": scen.field.order,
+               "gradation": gradation, "mesher_size_shrink": shrink,
+               "estimated": job_cost_dict(job, scale),
+               "supplied_cells": m.n_cells, "coarsened_cells": new.n_cells,
+               "supplied_verdict": d1["verdict"], "coarsened_verdict": d2["verdict"],
+               "supplied_cost": d1["cost"], "coarsened_cost": d2["cost"]}
+    spath = folder / f"{mesh.stem}.coarsen.json"
+    spath.write_text(json.dumps(summary, indent=1, allow_nan=False), encoding="utf-8")
+    t = Table(title=f"coarsening at {settings.fmax:g} Hz (sizes for p={scen.field.order})")
+    for col in ("", "supplied", "estimated", "remeshed"):
+        t.add_column(col, justify="right")
+
+    def total(d, strategy):
+        for q in (d.get("cost") or {}).get("strategies", []):
+            if q["strategy"] == strategy:
+                return q
+        return None
+
+    name = scen.quote.strategy if scen.quote is not None else None
+    q1, q2 = total(d1, name), total(d2, name)
+    t.add_row("cells", f"{m.n_cells:,}", f"{scen.cells:,.0f}", f"{new.n_cells:,}")
+    if q1 and q2 and scen.quote is not None:
+        t.add_row(f"unknowns at {settings.fmax:g} Hz", f"{q1['unknowns'][-1]:,}",
+                  f"{int(scen.quote.ndof[-1]):,}", f"{q2['unknowns'][-1]:,}")
+        t.add_row(f"sweep time ({name})", _fmt_s(q1["total_s"]), _fmt_s(scen.quote.total_s),
+                  _fmt_s(q2["total_s"]))
+        t.add_row("peak memory", _fmt_b(q1["peak_memory_bytes"]),
+                  _fmt_b(scen.quote.peak_bytes), _fmt_b(q2["peak_memory_bytes"]))
+        t.add_row("speed-up", "1", f"{q1['total_s'] / scen.quote.total_s:.3g}",
+                  f"{q1['total_s'] / q2['total_s']:.3g}")
+    t.add_row("signed off (Hz)", f"{d1['verdict']['signed_off_hz']:,.0f}", "-",
+              f"{d2['verdict']['signed_off_hz']:,.0f}")
+    console.print(t)
+    if shrink < 1.0:
+        console.print(f"note: the first mesh missed the upper frequency; the mesher size was "
+                      f"scaled by {shrink:.3g}")
+    if len(set(np.unique(m.region).tolist())) > 1:
+        console.print("note: the regions of the supplied mesh were merged into one fluid")
+    for kind, p_ in {**files, **{f"new {k}": v for k, v in files2.items()},
+                     "new mesh": new_path, "summary": spath}.items():
+        console.print(f"wrote {kind}: {escape(str(p_))}")
+    raise typer.Exit(0 if res2.ready else 1)
 
 
 def main(argv: list[str] | None = None) -> int:

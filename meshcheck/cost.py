@@ -12,16 +12,40 @@ Counts are exact for the mesh's entities:
   same vertex, edge and face counts with the order of every edge and face set
   by the *maximum rule* (the highest order of the cells sharing it), cell
   interiors not counted because they are eliminated element by element.
+
+Matrix non-zeros (structural, both triangles and the diagonal) follow from the
+entity adjacency: the unknowns of two entities are coupled when a cell holds
+both.  In a conforming mesh the cells holding two entities of one cell are the
+cells holding their *join* (the smallest entity containing both), so every
+coupled pair is counted once at its join.  Summing over all pairs inside the
+closure of an entity S gives T(S)^2, T(S) = unknowns on the closure of S;
+Moebius inversion on the face lattice of a polytope (Eulerian: mu = (-1)^(dim
+difference); e.g. Stanley, "Enumerative Combinatorics" vol. 1, sec. 3.16)
+turns this into
+
+    nnz = sum over entities S of chi(S) T(S)^2,
+    chi(S) = sum over entities R containing S (R = S included) of (-1)^(dim R - dim S),
+
+so an interior edge of a tetrahedral mesh has chi = 1 - (faces) + (cells) = 1,
+an interior face chi = -1, a cell chi = 1.  The count is exact for conforming
+meshes of simplices, hexahedra, wedges and pyramids, in O(number of entities)
+array operations per order configuration (no pair list, no sparse product);
+it is checked against NGSolve's matrix graph and a brute-force pair count in
+tests/test_cost.py.
 """
 from __future__ import annotations
 
 import numpy as np
 
+from dataclasses import dataclass
+
 from .mesh import Mesh
 from .topology import Topology
 
 __all__ = ["face_dofs", "interior_dofs", "lagrange_dofs", "condensed_dofs",
-           "variable_order_dofs"]
+           "variable_order_dofs", "Adjacency", "build_adjacency", "entity_orders",
+           "SystemSize", "system_size", "cell_orders_at", "variable_order_systems",
+           "fixed_order_system"]
 
 
 def face_dofs(n_corners: int, p) -> np.ndarray:
@@ -94,3 +118,513 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
                 if inc > 0 and kind.any():
                     total += inc * np.searchsorted(np.sort(g_face[kind]), f, side="left")
     return total
+
+
+# ---------------------------------------------------------------------------
+# exact matrix non-zeros
+
+
+@dataclass(frozen=True)
+class Adjacency:
+    """Incidence data for exact non-zero counts (built once per mesh).
+
+    vertices : (n_v,) int64 ids of the used vertices.
+    chi_vertex, chi_edge, chi_face : (n_v,), (n_e,), (n_f,) int64 signed star
+        counts chi(S) (see the module docstring); ``chi_face`` empty in 2D.
+    face_edges : (n_f, 4) int64 edge ids of every face, -1 padded (triangles).
+    face_corners : (n_f,) int64 3 or 4.
+    face_tri : (n_f,) bool.
+    cell_corners : (n_cells,) int64 corner count of every cell.
+    cell_kind : (n_cells,) int8 index into ``kinds`` (linear cell type names).
+    kinds : tuple of linear cell type names present.
+    """
+
+    dim: int
+    vertices: np.ndarray
+    chi_vertex: np.ndarray
+    chi_edge: np.ndarray
+    chi_face: np.ndarray
+    face_edges: np.ndarray
+    face_corners: np.ndarray
+    face_tri: np.ndarray
+    cell_corners: np.ndarray
+    cell_kind: np.ndarray
+    kinds: tuple[str, ...]
+
+
+def _edge_ids(mesh: Mesh, topo: Topology, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Unique-edge ids of node pairs (a, b) (every pair must be a mesh edge)."""
+    n = np.int64(mesh.n_points + 1)
+    keys = topo.edges.nodes[:, 0] * n + topo.edges.nodes[:, 1]
+    q = np.minimum(a, b) * n + np.maximum(a, b)
+    return np.searchsorted(keys, q)
+
+
+def build_adjacency(mesh: Mesh, topo: Topology) -> Adjacency:
+    """Star counts chi of every vertex, edge and face, and face -> edge ids."""
+    n_pts = mesh.n_points
+    corners = [b.cells[:, :b.info.n_corners] for b in mesh.blocks]
+    cell_per_node = np.zeros(n_pts, np.int64)
+    for c in corners:
+        cell_per_node += np.bincount(c.ravel(), minlength=n_pts)
+    vertices = np.flatnonzero(cell_per_node > 0)
+    edges = topo.edges
+    edge_per_node = np.bincount(edges.nodes.ravel(), minlength=n_pts) if len(edges) else \
+        np.zeros(n_pts, np.int64)
+    cells_per_edge = np.diff(np.append(edges.incidence_starts, len(edges.incidence))) \
+        if len(edges) else np.zeros(0, np.int64)
+    kinds = tuple(dict.fromkeys(b.info.linear for b in mesh.blocks))
+    cell_kind = np.concatenate([np.full(len(b), kinds.index(b.info.linear), np.int8)
+                                for b in mesh.blocks]) if mesh.blocks else np.zeros(0, np.int8)
+    cell_corners = np.concatenate([np.full(len(b), b.info.n_corners, np.int64)
+                                   for b in mesh.blocks]) if mesh.blocks else np.zeros(0, np.int64)
+    if mesh.dim == 3 and len(topo.faces):
+        fn = topo.faces.nodes
+        tri = fn[:, 3] < 0
+        fc = np.where(tri, 3, 4).astype(np.int64)
+        face_edges = np.full((len(fn), 4), -1, np.int64)
+        for i in range(4):
+            a = fn[:, i]
+            b = np.where(tri & (i == 2), fn[:, 0], fn[:, (i + 1) % 4])
+            ok = (i < 3) | ~tri
+            face_edges[ok, i] = _edge_ids(mesh, topo, a[ok], b[ok])
+        fe = face_edges[face_edges >= 0]
+        faces_per_edge = np.bincount(fe, minlength=len(edges))
+        face_per_node = np.bincount(fn[fn >= 0], minlength=n_pts)
+        chi_face = 1 - topo.faces.count
+        chi_edge = 1 - faces_per_edge + cells_per_edge
+        chi_vertex = 1 - edge_per_node + face_per_node - cell_per_node
+    else:
+        face_edges = np.zeros((0, 4), np.int64)
+        fc = np.zeros(0, np.int64)
+        tri = np.zeros(0, bool)
+        chi_face = np.zeros(0, np.int64)
+        chi_edge = 1 - cells_per_edge
+        chi_vertex = 1 - edge_per_node + cell_per_node
+    return Adjacency(mesh.dim, vertices, chi_vertex[vertices], chi_edge, chi_face, face_edges,
+                     fc, tri, cell_corners, cell_kind, kinds)
+
+
+def entity_orders(mesh: Mesh, topo: Topology, cell_order: np.ndarray
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """Edge and face orders by the maximum rule -> ((n_e,), (n_f,)) int64."""
+    q = np.asarray(cell_order, dtype=np.int64)
+    q_edge = topo.edges.from_cells(q, np.maximum) if len(topo.edges) else np.zeros(0, np.int64)
+    if mesh.dim == 3 and len(topo.faces):
+        c = topo.faces.cells
+        q_face = np.where(c[:, 1] >= 0, np.maximum(q[c[:, 0]], q[np.maximum(c[:, 1], 0)]),
+                          q[c[:, 0]])
+    else:
+        q_face = np.zeros(0, np.int64)
+    return q_edge, q_face
+
+
+@dataclass(frozen=True)
+class SystemSize:
+    """Size of one global system.
+
+    ndof : unknowns; nnz : structural non-zeros (full matrix, diagonal included);
+    ndof_interior : interior unknowns condensed out (or kept, when ``condensed`` is
+    False); cell_entries, cell_cubes : sum over cells of n_loc^2 and n_loc^3, n_loc =
+    unknowns of the cell before condensation (element-matrix work of the assembly).
+    """
+
+    ndof: int
+    nnz: int
+    ndof_interior: int
+    condensed: bool
+    cell_entries: int = 0
+    cell_cubes: int = 0
+
+
+def _interior_table(kinds: tuple[str, ...], pmax: int) -> np.ndarray:
+    """(n_kinds, pmax + 1) interior unknowns per cell kind and order (column 0 unused)."""
+    return np.array([[interior_dofs(k, max(p, 1)) for p in range(pmax + 1)] for k in kinds],
+                    dtype=np.int64).reshape(len(kinds), pmax + 1)
+
+
+def system_size(mesh: Mesh, topo: Topology, cell_order, condensed: bool = True,
+                adjacency: Adjacency | None = None) -> SystemSize:
+    """Exact unknowns and non-zeros of the hierarchical H1 system.
+
+    cell_order : int or (n_cells,) int order of every cell; edges and faces take the
+        highest order of their cells (maximum rule).
+    condensed : True -> interior (bubble) unknowns eliminated cell by cell (they are
+        neither counted nor coupled); False -> kept (at uniform order this is the
+        Lagrange space of that order, the same count and graph).
+    """
+    adj = adjacency if adjacency is not None else build_adjacency(mesh, topo)
+    q = np.broadcast_to(np.asarray(cell_order, dtype=np.int64), (mesh.n_cells,))
+    if mesh.n_cells and q.min() < 1:
+        raise ValueError("cell orders must be at least 1")
+    q_edge, q_face = entity_orders(mesh, topo, q)
+    w_edge = q_edge - 1
+    # vertices: T = 1
+    nnz = int(adj.chi_vertex.sum())
+    ndof = len(adj.vertices) + int(w_edge.sum())
+    t_edge = 2 + w_edge
+    nnz += int(np.dot(adj.chi_edge, t_edge * t_edge))
+    t_cell = adj.cell_corners.copy()
+    for ce, off in zip(topo.edges.cell_edges, mesh.block_offsets[:-1]):
+        t_cell[off:off + len(ce)] += w_edge[ce].sum(axis=1)
+    if adj.dim == 3 and len(q_face):
+        w_face = np.where(adj.face_tri, (q_face - 1) * (q_face - 2) // 2, (q_face - 1) ** 2)
+        ndof += int(w_face.sum())
+        fe = adj.face_edges
+        t_face = adj.face_corners + np.where(fe >= 0, w_edge[np.maximum(fe, 0)], 0).sum(axis=1) \
+            + w_face
+        nnz += int(np.dot(adj.chi_face, t_face * t_face))
+        c = topo.faces.cells
+        t_cell += np.bincount(c[:, 0], w_face, minlength=mesh.n_cells).astype(np.int64)
+        two = c[:, 1] >= 0
+        t_cell += np.bincount(c[two, 1], w_face[two], minlength=mesh.n_cells).astype(np.int64)
+    table = _interior_table(adj.kinds, int(q.max()) if len(q) else 1)
+    w_cell = table[adj.cell_kind, q] if len(q) else np.zeros(0, np.int64)
+    n_int = int(w_cell.sum())
+    n_loc = (t_cell + w_cell).astype(float)
+    if not condensed:
+        t_cell = t_cell + w_cell
+        ndof += n_int
+    nnz += int(np.dot(t_cell, t_cell))
+    return SystemSize(int(ndof), int(nnz), n_int, bool(condensed),
+                      int(np.dot(n_loc, n_loc)), int(np.sum(n_loc ** 3)))
+
+
+def cell_orders_at(cell_limits: np.ndarray, frequency: float, max_order: int) -> np.ndarray:
+    """(n_cells,) lowest order whose limit reaches ``frequency`` (Hz), capped at max_order."""
+    lim = np.asarray(cell_limits)[:, :max(max_order - 1, 0)]
+    return 1 + np.count_nonzero(lim < frequency, axis=1)
+
+
+def variable_order_systems(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
+                           frequencies: np.ndarray, max_order: int,
+                           adjacency: Adjacency | None = None) -> list[SystemSize]:
+    """Condensed hierarchical system per frequency with the advised orders.
+
+    Frequencies with the same order configuration share one computation.
+    Returns one :class:`SystemSize` per frequency.
+    """
+    adj = adjacency if adjacency is not None else build_adjacency(mesh, topo)
+    out, last_q, last = [], None, None
+    for f in np.asarray(frequencies, dtype=float):
+        q = cell_orders_at(cell_limits, f, max_order)
+        if last_q is None or not np.array_equal(q, last_q):
+            last = system_size(mesh, topo, q, True, adj)
+            last_q = q
+        out.append(last)
+    return out
+
+
+def fixed_order_system(mesh: Mesh, topo: Topology, p: int,
+                       adjacency: Adjacency | None = None) -> SystemSize:
+    """Order-p Lagrange system (interiors kept): ``lagrange_dofs`` unknowns."""
+    return system_size(mesh, topo, p, False, adjacency)
+
+
+# ---------------------------------------------------------------------------
+# time and memory of a sweep
+
+
+def matrix_bytes(ndof, nnz, value_bytes: int = 16) -> np.ndarray:
+    """Bytes of a CSR matrix: values, column indices and row pointers (int32 indices
+    while nnz < 2^31, else int64); value_bytes 16 complex128, 8 float64."""
+    n = np.asarray(ndof, dtype=float)
+    z = np.asarray(nnz, dtype=float)
+    idx = np.where(z < 2.0 ** 31, 4.0, 8.0)
+    return z * (value_bytes + idx) + (n + 1) * idx
+
+
+@dataclass(frozen=True)
+class Quote:
+    """Predicted cost of a frequency sweep with one strategy (direct solver, one
+    factorisation per frequency).
+
+    strategy : e.g. "variable p<=8", "fixed p=2".
+    frequencies : (n_f,) Hz.  ndof, nnz : (n_f,) int64 (exact on the supplied mesh,
+        estimates in a scenario: ``exact``).
+    carried : (n_f,) bool, the strategy meets the accuracy target at f on this mesh.
+    factor_s, solve_s, assembly_s : (n_f,) s per frequency (assembly_s: per-frequency
+        assembly and condensation, 0 when K and M are assembled once).
+    time_s : (n_f,) s, their sum; time_low, time_high : (n_f,) band from the fits' spread.
+    memory_bytes : (n_f,) peak of one frequency (factorisation peak + system matrix, and
+        K and M when assembled once); memory_low, memory_high : band.
+    assembly_once_s : one-off assembly of K and M at the highest order, s.
+    fill : (n_f,) predicted factor entries.
+    """
+
+    strategy: str
+    frequencies: np.ndarray
+    ndof: np.ndarray
+    nnz: np.ndarray
+    carried: np.ndarray
+    factor_s: np.ndarray
+    solve_s: np.ndarray
+    assembly_s: np.ndarray
+    time_s: np.ndarray
+    time_low: np.ndarray
+    time_high: np.ndarray
+    memory_bytes: np.ndarray
+    memory_low: np.ndarray
+    memory_high: np.ndarray
+    assembly_once_s: float
+    assembly_once_band: tuple[float, float]
+    fill: np.ndarray
+    exact: bool = True
+    extrapolated: bool = False
+
+    @property
+    def total_s(self) -> float:
+        return float(self.assembly_once_s + self.time_s.sum())
+
+    @property
+    def total_band(self) -> tuple[float, float]:
+        return (float(self.assembly_once_band[0] + self.time_low.sum()),
+                float(self.assembly_once_band[1] + self.time_high.sum()))
+
+    @property
+    def peak_bytes(self) -> float:
+        return float(self.memory_bytes.max()) if len(self.memory_bytes) else 0.0
+
+    @property
+    def peak_band(self) -> tuple[float, float]:
+        if not len(self.memory_bytes):
+            return (0.0, 0.0)
+        i = int(np.argmax(self.memory_bytes))
+        return float(self.memory_low[i]), float(self.memory_high[i])
+
+
+def quote(strategy: str, dim: int, frequencies, systems: list[SystemSize], carried,
+          machine, once: SystemSize | None = None, cells: int = 0,
+          exact: bool = True) -> Quote:
+    """Cost of a sweep from its systems (one per frequency) and a machine model.
+
+    once : system whose K and M are assembled once at the highest order (fixed order);
+        None -> every frequency assembles (and condenses) its own system.
+    cells : number of cells (assembly model).
+    """
+    f = np.asarray(frequencies, dtype=float)
+    N = np.array([s.ndof for s in systems], dtype=np.int64)
+    Z = np.array([s.nnz for s in systems], dtype=np.int64)
+    E = np.array([s.cell_entries for s in systems], dtype=float)
+    C3 = np.array([s.cell_cubes for s in systems], dtype=float)
+    pr = machine.predict(dim, N, Z, np.full(len(N), float(cells)), E, C3)
+    a_mat = matrix_bytes(N, Z, 16)
+    if once is None:
+        asm, asm_lo, asm_hi = pr.assembly_s, pr.assembly_band[0], pr.assembly_band[1]
+        once_s, once_band, extra = 0.0, (0.0, 0.0), 0.0
+    else:
+        po = machine.predict(dim, [once.ndof], [once.nnz], [float(cells)], [once.cell_entries],
+                             [once.cell_cubes])
+        once_s = float(po.assembly_s[0])
+        once_band = (float(po.assembly_band[0][0]), float(po.assembly_band[1][0]))
+        asm = asm_lo = asm_hi = np.zeros(len(N))
+        extra = 2.0 * float(matrix_bytes(once.ndof, once.nnz, 8))
+    t = pr.factor_s + pr.solve_s + asm
+    lo, hi = pr.time_band[0] + asm_lo, pr.time_band[1] + asm_hi
+    mem = pr.factor_bytes + a_mat + extra
+    top = machine.largest_calibrated(dim) if hasattr(machine, "largest_calibrated") else None
+    beyond = bool(top is not None and len(N) and N.max() > 2 * top)
+    return Quote(strategy, f, N, Z, np.asarray(carried, bool), np.asarray(pr.factor_s, float),
+                 np.asarray(pr.solve_s, float), np.asarray(asm, float), np.asarray(t, float),
+                 np.asarray(lo, float), np.asarray(hi, float), np.asarray(mem, float),
+                 np.asarray(pr.bytes_band[0] + a_mat + extra, float),
+                 np.asarray(pr.bytes_band[1] + a_mat + extra, float), once_s, once_band,
+                 np.asarray(pr.fill, float), exact, beyond)
+
+
+def sweep_quotes(mesh: Mesh, topo: Topology, advice, frequencies, machine,
+                 fixed_orders=(1, 2), adjacency: Adjacency | None = None) -> list[Quote]:
+    """Quotes on the supplied mesh: variable order up to the maximum order (condensed,
+    advised orders), and fixed Lagrange orders ``fixed_orders`` (plus the audit's fixed
+    order, if any).  ``carried`` tells where each strategy meets the target."""
+    adj = adjacency if adjacency is not None else build_adjacency(mesh, topo)
+    f = np.asarray(frequencies, dtype=float)
+    s = advice.settings
+    lim = advice.mesh_limit
+    P = s.max_order
+    out = []
+    systems = variable_order_systems(mesh, topo, advice.cell_limit, f, P, adj)
+    out.append(quote(f"variable p<={P}", mesh.dim, f, systems, f <= lim[P - 1], machine,
+                     None, mesh.n_cells))
+    orders = list(dict.fromkeys([*fixed_orders, *( [s.order] if s.order else [])]))
+    for p in orders:
+        sys_p = fixed_order_system(mesh, topo, p, adj)
+        out.append(quote(f"fixed p={p}", mesh.dim, f, [sys_p] * len(f),
+                         f <= lim[min(p, advice.pmax) - 1], machine, sys_p, mesh.n_cells))
+    return out
+
+
+# ---------------------------------------------------------------------------
+# the quote of an audit: strategies on the supplied mesh and the coarsening scenario
+
+
+@dataclass(frozen=True)
+class Coarsening:
+    """A mesh built to a size field, estimated.
+
+    field : :class:`~meshcheck.sizefield.SizeField`; cells : estimated cell count;
+    quote : sweep on that mesh (``exact`` False) or None (2D); reference : the quote on
+    the supplied mesh with the same strategy; speedup : reference total / quote total.
+    """
+
+    field: object
+    cells: float
+    quote: Quote | None
+    reference: Quote | None
+    speedup: float | None
+
+
+@dataclass(frozen=True)
+class JobCost:
+    """Everything the quote needs: machine constants, strategies on the supplied mesh
+    (variable order first), the coarsening scenario at the allowed order and, if asked
+    for, at a chosen order."""
+
+    machine: object
+    quotes: tuple[Quote, ...]
+    coarsening: Coarsening | None
+    chosen: Coarsening | None = None
+
+
+def _scenario(mesh, topo, advice, field, frequencies, machine, fixed: int | None,
+              reference: Quote | None) -> Coarsening:
+    from .sizefield import scenario_systems
+
+    if mesh.dim != 3:
+        return Coarsening(field, field.cells_estimate, None, reference, None)
+    P = advice.settings.max_order
+    systems, n_cells = scenario_systems(mesh, topo, advice, field, frequencies, P, fixed)
+    f = np.asarray(frequencies, dtype=float)
+    name = f"fixed p={fixed}" if fixed else f"variable p<={P}"
+    once = systems[0] if fixed else None
+    q = quote(name, 3, f, systems, np.ones(len(f), bool), machine, once, int(round(n_cells)),
+              exact=False)
+    speed = reference.total_s / q.total_s if reference is not None and q.total_s > 0 else None
+    return Coarsening(field, n_cells, q, reference, speed)
+
+
+def job_cost(mesh: Mesh, topo: Topology, advice, frequencies, machine=None,
+             fixed_orders=(1, 2), size_order: int | None = None, gradation: float = 0.3,
+             geometry_limit=None) -> JobCost:
+    """Quote a sweep: variable order and fixed orders on the supplied mesh, and the
+    coarsening scenario (size field at the upper frequency for the allowed order, and
+    for ``size_order`` if given) with its estimated cost and speed-up.
+
+    machine : :class:`~meshcheck.calibration.MachineModel` (default: ``load_machine()``).
+    geometry_limit : hook ``(mesh, topo) -> (n_points,)`` largest size the boundary
+        allows, m (see :func:`meshcheck.sizefield.size_field`).
+    """
+    from .calibration import load_machine
+    from .sizefield import size_field
+
+    machine = machine if machine is not None else load_machine()
+    adj = build_adjacency(mesh, topo)
+    f = np.asarray(frequencies, dtype=float)
+    s = advice.settings
+    orders = list(fixed_orders)
+    if size_order is not None and size_order not in orders and size_order != s.order:
+        orders.append(int(size_order))
+    quotes = sweep_quotes(mesh, topo, advice, f, machine, orders, adj)
+    by_name = {q.strategy: q for q in quotes}
+    field = size_field(mesh, topo, advice, None, gradation, geometry_limit)
+    ref_name = f"fixed p={s.order}" if s.order else f"variable p<={s.max_order}"
+    main = _scenario(mesh, topo, advice, field, f, machine, s.order, by_name.get(ref_name))
+    chosen = None
+    if size_order is not None:
+        fld = size_field(mesh, topo, advice, size_order, gradation, geometry_limit)
+        chosen = _scenario(mesh, topo, advice, fld, f, machine, int(size_order),
+                           by_name.get(f"fixed p={int(size_order)}"))
+    return JobCost(machine, tuple(quotes), main, chosen)
+
+
+def _q_dict(q: Quote) -> dict:
+    def fl(a):
+        return [float(x) for x in np.asarray(a)]
+
+    return {"strategy": q.strategy, "exact_counts": q.exact, "unknowns": q.ndof.tolist(),
+            "nonzeros": q.nnz.tolist(), "carried": q.carried.tolist(),
+            "carries_all": bool(q.carried.all()),
+            "factor_entries": fl(q.fill), "time_s": fl(q.time_s), "time_low_s": fl(q.time_low),
+            "time_high_s": fl(q.time_high), "factor_s": fl(q.factor_s),
+            "solve_s": fl(q.solve_s), "assembly_s": fl(q.assembly_s),
+            "memory_bytes": fl(q.memory_bytes), "memory_low_bytes": fl(q.memory_low),
+            "memory_high_bytes": fl(q.memory_high),
+            "assembly_once_s": q.assembly_once_s,
+            "assembly_once_band_s": list(q.assembly_once_band),
+            "total_s": q.total_s, "total_band_s": list(q.total_band),
+            "peak_memory_bytes": q.peak_bytes, "peak_memory_band_bytes": list(q.peak_band),
+            "beyond_calibration": bool(q.extrapolated)}
+
+
+def _c_dict(c: Coarsening | None, scale: float) -> dict | None:
+    if c is None:
+        return None
+    fld = c.field
+    ok = np.isfinite(fld.size)
+    return {"order": fld.order, "upper_frequency_hz": fld.fmax, "gradation": fld.gradation,
+            "mesher_size_factor": 1.0 / fld.edge_factor,
+            "geometry_limited_nodes": int(np.count_nonzero(np.isfinite(fld.geometry))),
+            "target_size_min": float(np.min(fld.size[ok]) / scale) if ok.any() else None,
+            "target_size_max": float(np.max(fld.size[ok]) / scale) if ok.any() else None,
+            "estimated_cells": float(c.cells),
+            "cell_count_rule": "gmsh tetrahedra: 0.501 int 6 sqrt(2)/h^3 dV + 1.604 int "
+                               "1/h^2 dS, h = mesher size (measured with gmsh 4.15)",
+            "quote": _q_dict(c.quote) if c.quote is not None else None,
+            "compared_with": c.reference.strategy if c.reference is not None else None,
+            "speedup": c.speedup}
+
+
+def job_cost_dict(job: JobCost, scale: float = 1.0) -> dict:
+    """The "cost" section of the JSON report (lengths in the mesh's unit: ``scale`` m
+    per unit)."""
+    m = job.machine
+    qs = [_q_dict(q) for q in job.quotes]
+    var = job.quotes[0]
+    savings = {q.strategy: (q.total_s / var.total_s if var.total_s > 0 else None)
+               for q in job.quotes[1:]}
+    return {"solver": m.solver, "machine_constants": m.source, "calibrated": m.created,
+            "machine": m.machine,
+            "calibrated_up_to_unknowns": {str(d): m.largest_calibrated(d) for d in (2, 3)},
+            "model": ("factor memory and solve time ~ c1 X1 + c2 nnz - c3 N, factor time ~ "
+                      "c1 X2 + c2 nnz^2/N + c3 nnz - c4 N (nested dissection: X1 = N^(4/3), "
+                      "X2 = N^2 in 3D; N log2 N, N^(3/2) in 2D), assembly ~ cells, sum "
+                      "n_loc^2, sum n_loc^3; constants fitted to real factorisations "
+                      "(meshcheck calibrate)"),
+            "band": "exp(+-2 x root-mean-square of ln(measured / fitted)) of the calibration",
+            "per_frequency": ("variable order: assemble and condense at the advised orders, "
+                              "factorise, solve; fixed order: K and M assembled once, then "
+                              "factorise K - k^2 M and solve"),
+            "strategies": qs,
+            "time_ratio_to_variable": savings,
+            "coarsening": _c_dict(job.coarsening, scale),
+            "coarsening_chosen_order": _c_dict(job.chosen, scale)}
+
+
+_CACHE: dict = {}
+
+
+def audit_job_cost(res, machine=None) -> JobCost:
+    """:func:`job_cost` of an :class:`~meshcheck.pipeline.AuditResult` (cached per result,
+    so the JSON, VTU and size-view writers share one computation)."""
+    import weakref
+
+    key = id(res)
+    hit = _CACHE.get(key)
+    if hit is not None and hit[0]() is res and machine is None:
+        return hit[1]
+    job = job_cost(res.mesh, res.topology, res.advice, np.asarray(res.settings.frequencies),
+                   machine)
+    if machine is None:
+        _CACHE[key] = (weakref.ref(res, lambda _, k=key: _CACHE.pop(k, None)), job)
+    return job
+
+
+def cost_section(res, scale: float = 1.0) -> dict:
+    """The "cost" section of the audit report, or {"error": message} when no machine
+    constants can be loaded."""
+    from .errors import MeshcheckError
+
+    try:
+        return job_cost_dict(audit_job_cost(res), scale)
+    except MeshcheckError as exc:
+        return {"error": str(exc)}

@@ -160,7 +160,14 @@ def to_dict(res: AuditResult) -> dict:
                      "edge_length_max": float(np.nanmax(topo.edges.length) / scale)},
         "timings_s": {k: round(v, 4) for k, v in res.timings.items()},
         **_physics_sections(res, scale),
+        "cost": _cost_section(res, scale),
     }
+
+
+def _cost_section(res: AuditResult, scale: float) -> dict:
+    """Quote of the sweep and the coarsening scenario (meshcheck.cost)."""
+    from .cost import cost_section
+    return cost_section(res, scale)
 
 
 def _physics_sections(res: AuditResult, scale: float) -> dict:
@@ -377,7 +384,9 @@ def write_vtu(res: AuditResult, path: str | Path) -> Path:
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
             data[f"quality_{name}"] = values.astype(f32)
-    return vtkxml.write_vtu(path, m.points / scale, cells, cell_data=data)
+    from .sizefield import size_point_data
+    return vtkxml.write_vtu(path, m.points / scale, cells, cell_data=data,
+                            point_data=size_point_data(res, scale) or None)
 
 
 def write_all(res: AuditResult, folder: str | Path, stem: str | None = None) -> dict[str, Path]:
@@ -394,4 +403,8 @@ def write_all(res: AuditResult, folder: str | Path, stem: str | None = None) -> 
     write_json(res, out["json"], data)
     write_markdown(res, out["markdown"], data)
     write_vtu(res, out["vtu"])
+    from .sizefield import write_size_view
+    pos = write_size_view(res, folder / f"{stem}.size.pos")
+    if pos is not None:
+        out["size_view"] = pos
     return out

@@ -87,3 +87,183 @@ def test_variable_order_uniform_equals_condensed(p):
     limits = np.where(np.arange(1, 9)[None, :] >= p, 1e9, 0.0) * np.ones((mesh.n_cells, 1))
     assert variable_order_dofs(mesh, topo, limits, np.array([10.0]), 8)[0] == \
         condensed_dofs(mesh, topo, p)
+
+
+# ---------------------------------------------------------------------------
+# exact non-zeros: against NGSolve's matrix graph and a brute-force pair count
+
+from meshcheck.cost import build_adjacency, cell_orders_at, fixed_order_system, \
+    system_size, variable_order_systems
+from meshcheck.cells import CELL_TYPES
+from meshes import grid_hexes, grid_points
+
+
+def wedge_box(n=(2, 2, 1)) -> Mesh:
+    """Every hex of a grid split into two wedges (triangles 0-1-2 / 0-2-3 at the bottom)."""
+    h = grid_hexes(n)
+    w = np.vstack([h[:, [0, 1, 2, 4, 5, 6]], h[:, [0, 2, 3, 4, 6, 7]]])
+    return Mesh(grid_points(n), (CellBlock("wedge", w, np.ones(len(w))),), {1: "air"}, 3, "w", "m")
+
+
+def pyramid_box(n=(2, 1, 1)) -> Mesh:
+    """Every hex of a grid split into six pyramids on its faces with the apex at its centre."""
+    pts = grid_points(n)
+    h = grid_hexes(n)
+    centres = pts[h].mean(axis=1)
+    apex = len(pts) + np.arange(len(h))
+    faces = CELL_TYPES["hexahedron"].faces
+    pyr = np.vstack([np.column_stack([h[:, list(f[::-1])], apex]) for f in faces])
+    return Mesh(np.vstack([pts, centres]), (CellBlock("pyramid", pyr, np.ones(len(pyr))),),
+                {1: "air"}, 3, "p", "m")
+
+
+def mixed_hex_wedge(n=(2, 2, 2)) -> Mesh:
+    """Hexes for x < 1/2, wedges (two per hex, triangles on the z faces) for x > 1/2: the
+    hex-wedge interfaces are quadrilaterals on both sides (conforming)."""
+    h = grid_hexes(n)
+    x = grid_points(n)[h].mean(axis=1)[:, 0]
+    lo, hi = h[x < 0.5], h[x >= 0.5]
+    w = np.vstack([hi[:, [0, 1, 2, 4, 5, 6]], hi[:, [0, 2, 3, 4, 6, 7]]])
+    return Mesh(grid_points(n), (CellBlock("hexahedron", lo, np.ones(len(lo))),
+                                 CellBlock("wedge", w, np.ones(len(w)))), {1: "air"}, 3, "hw", "m")
+
+
+def tri_square(n=(3, 2)) -> Mesh:
+    pts = grid_points((n[0], n[1], 0), size=(1.0, 1.0, 0.0))
+    idx = np.arange(len(pts)).reshape(n[0] + 1, n[1] + 1)
+    a, b, c, d = idx[:-1, :-1].ravel(), idx[1:, :-1].ravel(), idx[1:, 1:].ravel(), idx[:-1, 1:].ravel()
+    tri = np.vstack([np.column_stack([a, b, c]), np.column_stack([a, c, d])])
+    return Mesh(pts, (CellBlock("triangle", tri, np.ones(len(tri))),), {1: "air"}, 2, "t", "m")
+
+
+def quad_square(n=(3, 2)) -> Mesh:
+    pts = grid_points((n[0], n[1], 0), size=(1.0, 1.0, 0.0))
+    idx = np.arange(len(pts)).reshape(n[0] + 1, n[1] + 1)
+    q = np.column_stack([idx[:-1, :-1].ravel(), idx[1:, :-1].ravel(), idx[1:, 1:].ravel(),
+                         idx[:-1, 1:].ravel()])
+    return Mesh(pts, (CellBlock("quad", q, np.ones(len(q))),), {1: "air"}, 2, "q", "m")
+
+
+def _brute_system(mesh: Mesh, orders: np.ndarray, condensed: bool) -> tuple[int, int]:
+    """Reference: entities named by their sorted vertex sets, orders by the maximum rule,
+    unknowns per entity from the closed forms, non-zeros = sum over pairs of entities that
+    share a cell of the product of their unknowns (Python loops)."""
+    cell_entities = []
+    order = {}
+    for b in mesh.blocks:
+        info = b.info
+        for row in b.cells:
+            v = row[:info.n_corners]
+            ents = [("v", (int(x),)) for x in v]
+            ents += [("e", tuple(sorted((int(v[a]), int(v[c]))))) for a, c, _ in info.edges]
+            if mesh.dim == 3:
+                ents += [("f%d" % len(f), tuple(sorted(int(v[i]) for i in f))) for f in info.faces]
+            ents.append(("c:" + info.linear, tuple(sorted(int(x) for x in v)) + (len(cell_entities),)))
+            cell_entities.append(ents)
+    for c, ents in enumerate(cell_entities):
+        for e in ents:
+            order[e] = max(order.get(e, 1), int(orders[c]))
+
+    def dofs(e):
+        kind, q = e[0], order[e]
+        if kind == "v":
+            return 1
+        if kind == "e":
+            return q - 1
+        if kind in ("f3", "f4"):
+            return face_dofs(int(kind[1]), q)
+        return 0 if condensed else interior_dofs(kind[2:], q)
+
+    pairs = set()
+    for ents in cell_entities:
+        for a in ents:
+            for b in ents:
+                pairs.add((a, b))
+    ndof = sum(dofs(e) for e in order)
+    nnz = sum(dofs(a) * dofs(b) for a, b in pairs)
+    return ndof, nnz
+
+
+MESHES = {"tet": lambda: tet_box((3, 2, 2)), "hex": lambda: hex_box((3, 2, 2)),
+          "wedge": lambda: wedge_box((2, 2, 2)), "pyramid": lambda: pyramid_box((2, 1, 1)),
+          "hex+wedge": lambda: mixed_hex_wedge(), "triangle": lambda: tri_square(),
+          "quad": lambda: quad_square()}
+
+
+@pytest.mark.parametrize("condensed", [True, False], ids=["condensed", "full"])
+@pytest.mark.parametrize("name", list(MESHES))
+def test_nonzeros_match_brute_force_pair_count(name, condensed):
+    mesh = MESHES[name]()
+    topo = build_topology(mesh)
+    orders = np.random.default_rng(7).integers(1, 6, mesh.n_cells)
+    got = system_size(mesh, topo, orders, condensed)
+    assert (got.ndof, got.nnz) == _brute_system(mesh, orders, condensed)
+
+
+@pytest.mark.parametrize("make", [tet_box, tri_square], ids=["tet", "triangle"])
+def test_linear_simplex_nonzeros_closed_form(make):
+    # p = 1 on simplices: one unknown per vertex, coupled along edges: nnz = n_v + 2 n_e
+    mesh = make((3, 3, 2)) if make is tet_box else make((4, 3))
+    topo = build_topology(mesh)
+    s = system_size(mesh, topo, 1)
+    assert s.nnz == mesh.n_points + 2 * len(topo.edges)
+
+
+def _ngsolve_graph(mesh: Mesh, orders: np.ndarray, condensed: bool) -> tuple[int, int]:
+    """Unknowns and stored entries of NGSolve's H1 matrix for the same entity orders."""
+    ngs = pytest.importorskip("ngsolve")
+    from meshcheck.calibration import _set_orders, to_ngsolve
+
+    M = to_ngsolve(mesh)
+    fes = ngs.H1(M, order=int(orders.max()))
+    _set_orders(fes, M, orders)
+    u, v = fes.TnT()
+    a = ngs.BilinearForm(fes, condense=condensed)
+    a += u * v * ngs.dx
+    a.Assemble()
+    free = np.array(list(fes.FreeDofs(coupling=condensed)), bool)
+    r, c, _ = a.mat.COO()
+    r, c = np.asarray(r), np.asarray(c)
+    return int(free.sum()), int(np.count_nonzero(free[r] & free[c]))
+
+
+@pytest.mark.parametrize("condensed", [True, False], ids=["condensed", "full"])
+@pytest.mark.parametrize("name", ["tet", "hex", "wedge", "hex+wedge", "triangle", "quad"])
+def test_counts_match_ngsolve_variable_order(name, condensed):
+    # NGSolve's hierarchical H1 space with per-node orders set by the maximum rule
+    mesh = MESHES[name]()
+    topo = build_topology(mesh)
+    orders = np.random.default_rng(11).integers(1, 6, mesh.n_cells)
+    got = system_size(mesh, topo, orders, condensed)
+    assert (got.ndof, got.nnz) == _ngsolve_graph(mesh, orders, condensed)
+
+
+@pytest.mark.parametrize("p", [1, 2, 3, 4])
+def test_uniform_counts_match_ngsolve(p):
+    mesh = tet_box((3, 3, 2))
+    topo = build_topology(mesh)
+    got = system_size(mesh, topo, p, True)
+    assert (got.ndof, got.nnz) == _ngsolve_graph(mesh, np.full(mesh.n_cells, p), True)
+
+
+def test_variable_order_systems_follow_the_limits():
+    mesh = tet_box((3, 2, 2))
+    topo = build_topology(mesh)
+    pmax = 6
+    need = np.random.default_rng(5).integers(1, pmax + 1, mesh.n_cells)
+    limits = np.where(np.arange(1, pmax + 1)[None, :] >= need[:, None], 1000.0, 10.0)
+    f = np.array([5.0, 100.0, 2000.0])
+    systems = variable_order_systems(mesh, topo, limits, f, pmax)
+    assert np.array_equal(cell_orders_at(limits, 100.0, pmax), need)
+    assert systems[1] == system_size(mesh, topo, need, True)
+    assert systems[0] == system_size(mesh, topo, 1, True)
+    assert systems[2] == system_size(mesh, topo, pmax, True)
+    # the unknown counts agree with the existing counter
+    assert [s.ndof for s in systems] == variable_order_dofs(mesh, topo, limits, f, pmax).tolist()
+
+
+@pytest.mark.parametrize("p", [1, 2, 3])
+def test_fixed_order_system_is_lagrange(p):
+    mesh = hex_box((3, 2, 2))
+    topo = build_topology(mesh)
+    assert fixed_order_system(mesh, topo, p).ndof == lagrange_dofs(mesh, topo, p)

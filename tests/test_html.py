@@ -232,7 +232,7 @@ def test_cli_writes_the_html_next_to_the_other_reports(tmp_path):
     code = main(["audit", str(src), "--units", "m", "--fmax", "300", "--out", str(out), "--quiet"])
     assert code in (0, 1)
     names = sorted(p.name for p in out.iterdir())
-    assert names == ["box.audit.html", "box.audit.json", "box.audit.md", "box.audit.vtu"]
+    assert {"box.audit.html", "box.audit.json", "box.audit.md", "box.audit.vtu"} <= set(names)
     data = json.loads((out / "box.audit.json").read_text())
     text = (out / "box.audit.html").read_text(encoding="utf-8")
     assert html_report._hz(data["verdict"]["signed_off_hz"]) in text

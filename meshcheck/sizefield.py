@@ -1,0 +1,536 @@
+"""Coarsening scenario: a target element-size field and what a mesh built to it costs.
+
+Target size.  At the upper frequency every cell has a largest edge length
+that meets the accuracy target with a given order (the 1D dispersion model of
+:mod:`meshcheck.dispersion`, inverted by ``usable_kh(...).max_size``; the
+advice's ``target_size`` for the allowed order).  A node takes the smallest
+target of the cells around it.
+
+Limits.  A geometry limit (largest size the boundary allows, per node, e.g.
+from its curvature) is a hook: any function ``(mesh, topo) -> (n_points,)``
+metres (inf = no limit).  The size gradation is then limited to
+|grad h| <= beta along the mesh edges:
+
+    h_i = min_j (h_j + beta d_ij),   d_ij = shortest path along mesh edges,
+
+the smallest field below the targets whose growth rate is at most beta (the
+"H-variation" control of Borouchaki, Hecht & Frey, "Mesh gradation control",
+IJNME 43 (1998) 1143-1165; cited from memory), solved exactly by one Dijkstra
+search from a virtual source joined to every node j by an edge of length
+h_j / beta (h_i = beta x distance).  beta = 0.3 (neighbouring cells differ by
+about 30 %) is common practice, no source.
+
+Mesher size.  gmsh's unstructured tetrahedra are longer than the size asked
+for: with a uniform size h (gmsh 4.15.2, ``Mesh.Algorithm3D`` = 1, box
+1 x 0.8 x 0.6 m) the longest edge of a cell is 1.6 h (median), 1.92 h (99th
+percentile), 2.07 h at most (measured; :data:`GMSH_LONGEST_EDGE`).  The size
+handed to gmsh is therefore the target divided by 2, so that the longest
+edges meet the target.
+
+Element count.  A regular tetrahedron of edge a has volume a^3 / (6 sqrt 2),
+so a size field h(x) would hold int 6 sqrt(2) / h^3 dV regular tetrahedra
+(regular triangles in 2D: int 4 / (sqrt(3) h^2) dA).  gmsh's cells are larger
+inside and smaller near the boundary; with uniform sizes on the box
+1 x 0.8 x 0.6 m (h = 0.2 .. 0.025 m, 403 .. 140,189 tetrahedra) its counts
+are, within +-7 % (least squares on relative errors; measured with gmsh
+4.15.2, Delaunay):
+
+    N = 0.501 int 6 sqrt(2) / h^3 dV + 1.604 int 1 / h^2 dS      (3D, S = boundary)
+    N = 0.998 int 4 / (sqrt(3) h^2) dA + 0.428 int 1 / h dl       (2D, h = 0.2 .. 0.006 m
+                                                                   on 1 x 0.8 m)
+
+(:data:`GMSH_COUNT`).  Per cell of the supplied mesh h^-d is averaged over
+the corners, per boundary face h^-(d-1).
+
+Cost on the coarsened mesh.  Per frequency every new cell takes the order its
+size needs (longest edge = target, conservative), and the unknowns and
+non-zeros per cell follow from the entity ratios and the star counts of
+:mod:`meshcheck.cost` (interior entities: chi = -1, 1, -1, 1 for vertices,
+edges, faces, cells), measured on the supplied mesh when it is tetrahedral.
+The maximum rule and the boundary are neglected there (estimates).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+from scipy import sparse
+from scipy.sparse.csgraph import dijkstra
+
+from .errors import SettingsError
+from .mesh import Mesh
+from .topology import Topology
+
+__all__ = ["GMSH_LONGEST_EDGE", "GMSH_COUNT", "REGULAR_TET", "GeometryLimit",
+           "SizeField", "TetRatios", "node_min", "cell_target_size", "limit_gradation",
+           "size_field", "estimate_cells", "write_pos", "tet_ratios", "scenario_systems",
+           "remesh"]
+
+#: regular tetrahedra of edge h per h^3 of volume: 6 sqrt(2)
+REGULAR_TET = 6.0 * math.sqrt(2.0)
+#: longest edge of a gmsh tetrahedron / requested size (measured, see module docstring)
+GMSH_LONGEST_EDGE = 2.0
+#: gmsh cell count = volume factor x regular cells + boundary factor x int h^(1-d) dS, per
+#: dimension (measured, see the module docstring)
+GMSH_COUNT = {3: (0.501, 1.604), 2: (0.998, 0.428)}
+
+GeometryLimit = Callable[[Mesh, Topology], np.ndarray]
+
+
+def _corners(mesh: Mesh):
+    for b in mesh.blocks:
+        yield b, b.cells[:, :b.info.n_corners]
+
+
+def node_min(mesh: Mesh, topo: Topology, cell_values: np.ndarray) -> np.ndarray:
+    """(n_points,) smallest value of the cells around each corner node; mid-nodes of
+    quadratic cells get the mean of their edge's ends; nodes of no cell get nan."""
+    out = np.full(mesh.n_points, np.inf)
+    v = np.asarray(cell_values, dtype=float)
+    for (b, c), off in zip(_corners(mesh), mesh.block_offsets[:-1]):
+        vals = np.repeat(v[off:off + len(b)], c.shape[1])
+        np.minimum.at(out, c.ravel(), vals)
+    used = np.isfinite(out)
+    for b in mesh.blocks:
+        if b.info.quadratic:
+            e = b.info.edges
+            mid = b.cells[:, e[:, 2]].ravel()
+            out[mid] = 0.5 * (out[b.cells[:, e[:, 0]].ravel()] + out[b.cells[:, e[:, 1]].ravel()])
+            used[mid] = True
+    out[~used] = np.nan
+    return out
+
+
+def cell_target_size(advice, order: int) -> np.ndarray:
+    """(n_cells,) largest edge length meeting the target at ``advice.fmax`` with ``order``, m."""
+    from .dispersion import usable_kh
+
+    s = advice.settings
+    if order == s.allowed_order:
+        return np.asarray(advice.target_size, dtype=float)
+    if not 1 <= order <= 16:
+        raise SettingsError(f"order {order} of the size field must be between 1 and 16")
+    table = usable_kh(s.target, max(order, advice.pmax))
+    k = 2.0 * np.pi * advice.fmax / advice.cell_speed
+    return np.asarray(table.max_size(order, k, advice.cell_distance), dtype=float)
+
+
+def limit_gradation(mesh: Mesh, topo: Topology, size: np.ndarray, gradation: float) -> np.ndarray:
+    """Smallest field <= ``size`` with |grad h| <= ``gradation`` along mesh edges.
+
+    size : (n_points,) m (nan / inf where not set); returns (n_points,) m (nan where
+    no finite value reaches a node).
+    """
+    if not gradation > 0:
+        raise SettingsError(f"size gradation {gradation} must be positive (e.g. 0.3)")
+    n = mesh.n_points
+    h = np.asarray(size, dtype=float)
+    src = np.flatnonzero(np.isfinite(h))
+    a, b = topo.edges.nodes[:, 0], topo.edges.nodes[:, 1]
+    w = np.asarray(topo.edges.length, dtype=float)
+    ok = np.isfinite(w) & (w > 0)
+    rows = np.concatenate([a[ok], b[ok], np.full(len(src), n)])
+    cols = np.concatenate([b[ok], a[ok], src])
+    vals = np.concatenate([w[ok], w[ok], h[src] / gradation])
+    # zero-length source edges are dropped by csgraph; keep them tiny instead
+    vals = np.maximum(vals, 1e-300)
+    g = sparse.csr_matrix((vals, (rows, cols)), shape=(n + 1, n + 1))
+    dist = dijkstra(g, directed=True, indices=n)[:n]
+    out = gradation * dist
+    out[~np.isfinite(out)] = np.nan
+    # mid-nodes (not on any edge as a corner) keep the mean of their edge ends
+    for bl in mesh.blocks:
+        if bl.info.quadratic:
+            e = bl.info.edges
+            mid = bl.cells[:, e[:, 2]].ravel()
+            out[mid] = 0.5 * (out[bl.cells[:, e[:, 0]].ravel()] + out[bl.cells[:, e[:, 1]].ravel()])
+    return out
+
+
+@dataclass(frozen=True)
+class SizeField:
+    """Per-node target sizes at the upper frequency for one order.
+
+    order : element order the sizes are meant for; fmax : Hz; gradation : beta.
+    target : (n_points,) dispersion target (longest edge), m, nan at unused nodes.
+    geometry : (n_points,) geometry limit, m (inf = none).
+    size : (n_points,) final target (longest edge) after the limits, m.
+    mesher_size : (n_points,) size to ask gmsh for = size / edge_factor, m.
+    current : (n_points,) shortest longest-edge of the cells around each node, m.
+    cells_estimate : tetrahedra gmsh would make from ``mesher_size``.
+    """
+
+    order: int
+    fmax: float
+    gradation: float
+    edge_factor: float
+    target: np.ndarray
+    geometry: np.ndarray
+    size: np.ndarray
+    mesher_size: np.ndarray
+    current: np.ndarray
+    cells_estimate: float
+
+    @property
+    def ratio(self) -> np.ndarray:
+        """(n_points,) size / current (above 1: the mesh could be coarser there)."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return self.size / self.current
+
+
+def _cell_density(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> np.ndarray:
+    """(n_cells,) regular cells per unit volume (area) at the corner mean of h^-d."""
+    dens = []
+    e = 3 if mesh.dim == 3 else 2
+    for b, c in _corners(mesh):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dens.append(np.nanmean(mesher_size[c] ** -float(e), axis=1))
+    unit = REGULAR_TET if mesh.dim == 3 else 4.0 / math.sqrt(3.0)
+    return unit * (np.concatenate(dens) if dens else np.zeros(0))
+
+
+def _boundary_integral(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> float:
+    """int h^(1-d) over the boundary (faces with one cell in 3D, edges in 2D)."""
+    P = mesh.points
+    if mesh.dim == 3:
+        f = topo.faces.nodes[topo.faces.boundary]
+        tri = f[:, 3] < 0
+        a = np.linalg.norm(np.cross(P[f[:, 1]] - P[f[:, 0]], P[f[:, 2]] - P[f[:, 0]]), axis=1) / 2
+        q = ~tri
+        if q.any():
+            fq = f[q]
+            a[q] = 0.5 * np.linalg.norm(np.cross(P[fq[:, 2]] - P[fq[:, 0]],
+                                                 P[fq[:, 3]] - P[fq[:, 1]]), axis=1)
+        h = mesher_size[np.maximum(f, 0)]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w = np.where(f >= 0, h ** -2.0, 0.0).sum(axis=1) / np.where(tri, 3, 4)
+    else:
+        cnt = np.diff(np.append(topo.edges.incidence_starts, len(topo.edges.incidence)))
+        e = topo.edges.nodes[cnt == 1]
+        a = topo.edges.length[cnt == 1]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w = 0.5 * (mesher_size[e[:, 0]] ** -1.0 + mesher_size[e[:, 1]] ** -1.0)
+    ok = np.isfinite(w) & np.isfinite(a)
+    return float(np.sum(a[ok] * w[ok]))
+
+
+def estimate_cells(mesh: Mesh, topo: Topology, mesher_size: np.ndarray,
+                   factors: tuple[float, float] | None = None) -> float:
+    """Cells gmsh makes from a node size field (:data:`GMSH_COUNT`).
+
+    mesher_size : (n_points,) m.  factors : (volume, boundary) factors (default:
+    gmsh's, for the mesh's dimension).
+    """
+    a, b = factors if factors is not None else GMSH_COUNT[3 if mesh.dim == 3 else 2]
+    d = _cell_density(mesh, topo, mesher_size)
+    vol = np.abs(topo.cell_volume)
+    ok = np.isfinite(d)
+    return float(a * np.sum(vol[ok] * d[ok]) + b * _boundary_integral(mesh, topo, mesher_size))
+
+
+def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
+               gradation: float = 0.3, geometry_limit: GeometryLimit | None = None,
+               edge_factor: float = GMSH_LONGEST_EDGE, h_max: float | None = None) -> SizeField:
+    """Per-node target size at ``advice.fmax`` for ``order`` (default: the allowed order).
+
+    geometry_limit : hook ``(mesh, topo) -> (n_points,)`` largest size the geometry
+        allows, m (inf = none), applied before the gradation.
+    h_max : cap, m (default: the extent of the fluid part of each node's cells).
+    """
+    p = advice.settings.allowed_order if order is None else int(order)
+    cell_t = cell_target_size(advice, p)
+    cap = topo.cell_extent() if h_max is None else np.full(mesh.n_cells, float(h_max))
+    target = node_min(mesh, topo, np.where(np.isfinite(cell_t), cell_t, cap))
+    raw = np.minimum(target, node_min(mesh, topo, cap))
+    geo = np.full(mesh.n_points, np.inf)
+    if geometry_limit is not None:
+        geo = np.asarray(geometry_limit(mesh, topo), dtype=float)
+        if geo.shape != (mesh.n_points,):
+            raise SettingsError("the geometry limit must give one size per node")
+        raw = np.minimum(raw, np.where(np.isnan(geo), np.inf, geo))
+    size = limit_gradation(mesh, topo, raw, gradation)
+    mesher = size / float(edge_factor)
+    current = node_min(mesh, topo, advice.cell_size)
+    n_est = estimate_cells(mesh, topo, mesher) if mesh.dim in (2, 3) else float("nan")
+    return SizeField(p, float(advice.fmax), float(gradation), float(edge_factor), target, geo,
+                     size, mesher, current, n_est)
+
+
+# ---------------------------------------------------------------------------
+# gmsh view
+
+
+_POS_KIND = {"tetra": "SS", "hexahedron": "SH", "wedge": "SI", "pyramid": "SY",
+             "triangle": "ST", "quad": "SQ"}
+
+
+def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "target_size",
+              scale: float = 1.0, chunk: int = 200_000) -> Path:
+    """Write node values as a gmsh post-processing view (ASCII .pos, one scalar list
+    element per linear cell: SS tetrahedra, SH hexahedra, SI prisms, SY pyramids, ST/SQ
+    in 2D).  Coordinates and values are divided by ``scale`` (metres per file unit),
+    so the view is in the mesh's own unit.  gmsh reads it with ``-bgm file.pos`` or
+    ``gmsh.merge`` and a "PostView" background field."""
+    path = Path(path)
+    v = np.asarray(values, dtype=float) / scale
+    P = mesh.points / scale
+    with open(path, "w") as fh:
+        fh.write(f'View "{name}" {{\n')
+        for b, c in _corners(mesh):
+            kind = _POS_KIND[b.info.linear]
+            nc = c.shape[1]
+            fmt = (kind + "(" + ",".join(["%.8g"] * (3 * nc)) + "){"
+                   + ",".join(["%.5g"] * nc) + "};")
+            for s in range(0, len(c), chunk):
+                cc = c[s:s + chunk]
+                vals = v[cc]
+                keep = np.all(np.isfinite(vals), axis=1)
+                rows = np.hstack([P[cc[keep]].reshape(int(keep.sum()), 3 * nc), vals[keep]])
+                if len(rows):
+                    np.savetxt(fh, rows, fmt=fmt)
+        fh.write("};\n")
+    return path
+
+
+# ---------------------------------------------------------------------------
+# cost on the coarsened mesh
+
+
+@dataclass(frozen=True)
+class TetRatios:
+    """Entities per cell and summed star counts per cell of a tetrahedral mesh.
+
+    vertices, edges, faces : entities per cell; chi_vertex, chi_edge, chi_face :
+    sum of chi over the entities of that kind per cell (interior limit -v, e, -f).
+    source : where the ratios come from.
+    """
+
+    vertices: float
+    edges: float
+    faces: float
+    chi_vertex: float
+    chi_edge: float
+    chi_face: float
+    source: str
+
+    def ndof(self, q) -> np.ndarray:
+        """Condensed unknowns per cell at uniform order q."""
+        q = np.asarray(q, dtype=float)
+        return self.vertices + self.edges * (q - 1) + self.faces * (q - 1) * (q - 2) / 2
+
+    def nnz(self, q) -> np.ndarray:
+        """Non-zeros per cell of the condensed system at uniform order q."""
+        q = np.asarray(q, dtype=float)
+        te = q + 1
+        tf = (q + 1) * (q + 2) / 2
+        tc = 4 + 6 * (q - 1) + 4 * (q - 1) * (q - 2) / 2
+        return self.chi_vertex + self.chi_edge * te * te + self.chi_face * tf * tf + tc * tc
+
+    def n_loc(self, q) -> np.ndarray:
+        """Unknowns of one tetrahedron of order q before condensation."""
+        q = np.asarray(q, dtype=float)
+        return (q + 1) * (q + 2) * (q + 3) / 6
+
+
+#: a gmsh Delaunay tetrahedral mesh of the box 1 x 0.8 x 0.6 m at size 0.05 m (18,293
+#: tetrahedra), measured with gmsh 4.15.2 and :func:`tet_ratios` (at 0.03 m, 83,689
+#: tetrahedra: 0.191, 1.252, 2.061, -0.131, 1.070, -1.939: the boundary share shrinks)
+GMSH_TET_RATIOS = TetRatios(0.2123, 1.3103, 2.0981, -0.1141, 1.0161, -1.9019,
+                            "gmsh 4.15 Delaunay box, 18k tetrahedra")
+
+
+def tet_ratios(mesh: Mesh, topo: Topology) -> TetRatios:
+    """Entity and star-count ratios of a mesh (meaningful for tetrahedral meshes)."""
+    from .cost import build_adjacency
+
+    adj = build_adjacency(mesh, topo)
+    n = max(mesh.n_cells, 1)
+    return TetRatios(len(adj.vertices) / n, len(topo.edges) / n, len(topo.faces) / n,
+                     adj.chi_vertex.sum() / n, adj.chi_edge.sum() / n, adj.chi_face.sum() / n,
+                     mesh.source or "supplied mesh")
+
+
+def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
+                     frequencies: np.ndarray, max_order: int, fixed_order: int | None = None,
+                     ratios: TetRatios | None = None) -> tuple[list, float]:
+    """Estimated systems of a tetrahedral mesh built to ``field``, per frequency.
+
+    Every new cell takes the lowest order (up to ``max_order``) whose limit at its
+    size (longest edge = ``field.size``) reaches the frequency, or ``fixed_order``.
+    Returns (list of :class:`~meshcheck.cost.SystemSize` (estimates), cell count).
+    """
+    from .cost import SystemSize
+    from .dispersion import usable_kh
+
+    if ratios is None:
+        pure_tet = all(b.info.linear == "tetra" for b in mesh.blocks) and mesh.n_cells >= 1000
+        ratios = tet_ratios(mesh, topo) if pure_tet else GMSH_TET_RATIOS
+    vol = np.abs(topo.cell_volume)
+    # new cells per old cell (the boundary share spread in proportion), and their size
+    h_cell = []
+    for b, c in _corners(mesh):
+        with np.errstate(divide="ignore", invalid="ignore"):
+            h_cell.append(np.nanmean(field.size[c], axis=1))
+    h = np.concatenate(h_cell)
+    n_new = vol * _cell_density(mesh, topo, field.mesher_size)
+    total = estimate_cells(mesh, topo, field.mesher_size)
+    n_new = n_new * (total / np.nansum(n_new)) if np.nansum(n_new) > 0 else n_new
+    ok = np.isfinite(h) & np.isfinite(n_new)
+    h, n_new = h[ok], n_new[ok]
+    s = advice.settings
+    pmax = max(max_order, fixed_order or 1)
+    table = usable_kh(s.target, pmax)
+    c, L = advice.cell_speed[ok], advice.cell_distance[ok]
+    limits = np.column_stack([c * table.max_kh(p, L / h) / (2 * np.pi * h)
+                              for p in range(1, pmax + 1)])
+    np.maximum.accumulate(limits, axis=1, out=limits)
+    out = []
+    for f in np.asarray(frequencies, dtype=float):
+        if fixed_order is not None:
+            q = np.full(len(h), fixed_order)
+        else:
+            q = 1 + np.count_nonzero(limits[:, :max_order - 1] < f, axis=1)
+        nd = float(np.sum(n_new * ratios.ndof(q)))
+        nz = float(np.sum(n_new * ratios.nnz(q)))
+        nl = ratios.n_loc(q)
+        out.append(SystemSize(int(round(nd)), int(round(nz)), 0, fixed_order is None,
+                              int(round(np.sum(n_new * nl ** 2))),
+                              int(round(np.sum(n_new * nl ** 3)))))
+    return out, float(n_new.sum())
+
+
+# ---------------------------------------------------------------------------
+# remeshing with gmsh (stretch goal)
+
+
+def remesh(mesh: Mesh, topo: Topology, field: SizeField, path: str | Path,
+           algorithm: int = 1, threads: int = 1, angle: float = 40.0) -> Path:
+    """Remesh the domain of ``mesh`` with gmsh to ``field.mesher_size``; write ``path``.
+
+    The boundary faces become a discrete surface, reclassified into patches at
+    ``angle`` degrees (``classifySurfaces``) and re-parametrised
+    (``createGeometry``); the volume is then meshed with tetrahedra with the size
+    field as a background view (its mesh is the supplied one).  Coordinates are
+    in the mesh's unit (metres divided by ``scale``).  Raises SettingsError when
+    gmsh fails.
+    """
+    import gmsh
+
+    from .units import UNIT_FACTORS
+
+    if mesh.dim != 3:
+        raise SettingsError("remeshing is implemented for volume meshes only")
+    scale = UNIT_FACTORS.get(mesh.unit, 1.0)
+    path = Path(path)
+    faces = topo.faces
+    bnd = faces.nodes[faces.boundary]
+    tri = bnd[bnd[:, 3] < 0][:, :3]
+    quad = bnd[bnd[:, 3] >= 0]
+    tri = np.vstack([tri, quad[:, [0, 1, 2]], quad[:, [0, 2, 3]]]) if len(quad) else tri
+    used = np.unique(tri)
+    pos_path = path.with_suffix(".size.pos")
+    write_pos(pos_path, mesh, field.mesher_size, "mesher_size", scale)
+    gmsh.initialize(interruptible=False)
+    try:
+        opt = gmsh.option.setNumber
+        opt("General.Terminal", 0)
+        opt("General.NumThreads", threads)
+        opt("Mesh.Algorithm3D", algorithm)
+        opt("Mesh.MeshSizeFromPoints", 0)
+        opt("Mesh.MeshSizeFromCurvature", 0)
+        opt("Mesh.MeshSizeExtendFromBoundary", 0)
+        gmsh.model.add("coarsened")
+        s = gmsh.model.addDiscreteEntity(2)
+        gmsh.model.mesh.addNodes(2, s, (used + 1).tolist(), (mesh.points[used] / scale).ravel().tolist())
+        gmsh.model.mesh.addElementsByType(s, 2, [], (tri + 1).ravel().tolist())
+        gmsh.model.mesh.classifySurfaces(angle * math.pi / 180.0, True, False, math.pi)
+        gmsh.model.mesh.createGeometry()
+        surfs = [t for _, t in gmsh.model.getEntities(2)]
+        loop = gmsh.model.geo.addSurfaceLoop(surfs)
+        gmsh.model.geo.addVolume([loop])
+        gmsh.model.geo.synchronize()
+        gmsh.merge(str(pos_path))
+        views = gmsh.view.getTags()
+        fld = gmsh.model.mesh.field.add("PostView")
+        gmsh.model.mesh.field.setNumber(fld, "ViewTag", views[-1])
+        gmsh.model.mesh.field.setAsBackgroundMesh(fld)
+        gmsh.model.mesh.generate(3)
+        gmsh.model.addPhysicalGroup(3, [t for _, t in gmsh.model.getEntities(3)], 1,
+                                    name="fluid")
+        opt("Mesh.SaveAll", 0)
+        gmsh.write(str(path))
+    except Exception as exc:  # gmsh raises plain Exception
+        raise SettingsError(f"gmsh could not remesh {mesh.source or 'the mesh'}: {exc}") from None
+    finally:
+        gmsh.finalize()
+    return path
+
+
+# ---------------------------------------------------------------------------
+# outputs of an audit
+
+
+def size_point_data(res, scale: float = 1.0) -> dict[str, np.ndarray]:
+    """VTU point data of an audit's size field (mesh units): target_size (longest edge
+    for the allowed order), mesher_size (what to ask gmsh for) and size_ratio (target /
+    current).  Empty when the cost cannot be computed."""
+    from .cost import audit_job_cost
+    from .errors import MeshcheckError
+
+    try:
+        c = audit_job_cost(res).coarsening
+    except MeshcheckError:
+        return {}
+    if c is None:
+        return {}
+    f = c.field
+    f32 = np.float32
+    return {"target_size": (f.size / scale).astype(f32),
+            "mesher_size": (f.mesher_size / scale).astype(f32),
+            "size_ratio": f.ratio.astype(f32)}
+
+
+def write_size_view(res, path: str | Path) -> Path | None:
+    """Write the audit's mesher size field as a gmsh view (.pos, mesh units); None when
+    the cost cannot be computed."""
+    from .cost import audit_job_cost
+    from .errors import MeshcheckError
+    from .units import UNIT_FACTORS
+
+    try:
+        c = audit_job_cost(res).coarsening
+    except MeshcheckError:
+        return None
+    if c is None:
+        return None
+    return write_pos(path, res.mesh, c.field.mesher_size, "mesher_size",
+                     UNIT_FACTORS.get(res.mesh.unit, 1.0))
+
+
+def remesh_and_audit(mesh: Mesh, topo: Topology, field: SizeField, settings, path: str | Path,
+                     attempts: int = 3):
+    """Remesh with :func:`remesh` and audit the new mesh with ``settings``
+    (:class:`~meshcheck.pipeline.AuditSettings`); while it misses the upper frequency,
+    shrink the mesher size by (signed-off / upper frequency)^1.1 (the limit of an edge
+    grows about like 1/h) and remesh again, at most ``attempts`` times.
+
+    Returns (path, AuditResult of the new mesh, factor applied to the mesher size).
+    """
+    from dataclasses import replace
+
+    from .pipeline import audit
+    from .reading import read_mesh
+
+    factor = 1.0
+    res = None
+    for _ in range(max(1, attempts)):
+        fld = field if factor == 1.0 else replace(field, mesher_size=field.mesher_size * factor)
+        out = remesh(mesh, topo, fld, path)
+        res = audit(read_mesh(out, mesh.unit), settings)
+        if res.ready or res.blocking or res.advice.signed_off <= 0:
+            break
+        factor *= min(0.97, (res.advice.signed_off / settings.fmax) ** 1.1)
+    return Path(path), res, factor

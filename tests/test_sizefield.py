@@ -1,0 +1,308 @@
+"""Size field: gradation against closed forms and a brute-force relaxation, element
+count against gmsh meshes of known count, the .pos view read back by gmsh."""
+import math
+
+import numpy as np
+import pytest
+
+from meshcheck.advice import AdviceSettings, advise
+from meshcheck.cost import system_size
+from meshcheck.mesh import CellBlock, Mesh
+from meshcheck.sizefield import (GMSH_COUNT, REGULAR_TET, estimate_cells,
+                                 limit_gradation, node_min, remesh, scenario_systems,
+                                 size_field, write_pos)
+from meshcheck.topology import build_topology
+from meshes import hex_box, tet_box
+
+BOX = (1.0, 0.8, 0.6)
+
+
+def _gmsh_box(size: float, bgm: str | None = None) -> Mesh:
+    """gmsh 4.15 Delaunay tets of BOX at a uniform size (or a background view)."""
+    gmsh = pytest.importorskip("gmsh")
+    gmsh.initialize(interruptible=False)
+    try:
+        opt = gmsh.option.setNumber
+        opt("General.Terminal", 0)
+        opt("General.NumThreads", 1)
+        opt("Mesh.Algorithm3D", 1)
+        opt("Mesh.RandomSeed", 1)
+        gmsh.model.occ.addBox(0, 0, 0, *BOX)
+        gmsh.model.occ.synchronize()
+        if bgm is None:
+            opt("Mesh.MeshSizeMin", size)
+            opt("Mesh.MeshSizeMax", size)
+        else:
+            for k in ("Mesh.MeshSizeFromPoints", "Mesh.MeshSizeFromCurvature",
+                      "Mesh.MeshSizeExtendFromBoundary"):
+                opt(k, 0)
+            gmsh.merge(bgm)
+            f = gmsh.model.mesh.field.add("PostView")
+            gmsh.model.mesh.field.setNumber(f, "ViewTag", gmsh.view.getTags()[-1])
+            gmsh.model.mesh.field.setAsBackgroundMesh(f)
+        gmsh.model.mesh.generate(3)
+        tags, xyz, _ = gmsh.model.mesh.getNodes()
+        et = gmsh.model.mesh.getElementType("tetrahedron", 1)
+        _, en = gmsh.model.mesh.getElementsByType(et)
+    finally:
+        gmsh.finalize()
+    idx = np.zeros(int(tags.max()) + 1, np.int64)
+    idx[tags.astype(np.int64)] = np.arange(len(tags))
+    cells = idx[en.astype(np.int64)].reshape(-1, 4)
+    return Mesh(xyz.reshape(-1, 3), (CellBlock("tetra", cells, np.ones(len(cells))),),
+                {1: "air"}, 3, "gmsh", "m")
+
+
+# ---------------------------------------------------------------------------
+# gradation
+
+
+def test_gradation_along_a_row_is_the_closed_form():
+    # a row of hexes along x: a small size at x = 0 grows linearly, h(x) = min(H, h0 + beta x)
+    mesh = hex_box((20, 1, 1), size=(2.0, 0.1, 0.1))
+    topo = build_topology(mesh)
+    x = mesh.points[:, 0]
+    h = np.full(mesh.n_points, 1.0)
+    h[x == 0] = 0.01
+    beta = 0.3
+    out = limit_gradation(mesh, topo, h, beta)
+    assert np.allclose(out, np.minimum(1.0, 0.01 + beta * x), rtol=1e-12)
+
+
+def _relax(mesh, topo, h, beta):
+    """Reference: Jacobi sweeps of h_i = min(h_i, h_j + beta |x_i - x_j|) over edges."""
+    h = h.copy()
+    a, b = topo.edges.nodes.T
+    w = topo.edges.length
+    while True:
+        new = h.copy()
+        np.minimum.at(new, a, h[b] + beta * w)
+        np.minimum.at(new, b, h[a] + beta * w)
+        if np.array_equal(new, h):
+            return h
+        h = new
+
+
+@pytest.mark.parametrize("beta", [0.1, 0.3, 1.0])
+def test_gradation_matches_relaxation_and_bounds_growth(beta):
+    mesh = tet_box((5, 4, 3), size=(1.0, 0.8, 0.6))
+    topo = build_topology(mesh)
+    rng = np.random.default_rng(2)
+    h = rng.uniform(0.02, 0.5, mesh.n_points)
+    out = limit_gradation(mesh, topo, h, beta)
+    assert np.allclose(out, _relax(mesh, topo, h, beta), rtol=1e-12)
+    assert np.all(out <= h + 1e-15)
+    a, b = topo.edges.nodes.T
+    assert np.all(np.abs(out[a] - out[b]) <= beta * topo.edges.length * (1 + 1e-12))
+
+
+def test_node_min_is_the_smallest_cell_value():
+    mesh = tet_box((2, 2, 2))
+    topo = build_topology(mesh)
+    v = np.random.default_rng(1).uniform(1, 2, mesh.n_cells)
+    got = node_min(mesh, topo, v)
+    cells = mesh.blocks[0].cells
+    for n in range(mesh.n_points):
+        assert got[n] == v[np.any(cells == n, axis=1)].min()
+
+
+# ---------------------------------------------------------------------------
+# element count against gmsh
+
+
+def _gmsh_rectangle_count(size: float) -> int:
+    gmsh = pytest.importorskip("gmsh")
+    gmsh.initialize(interruptible=False)
+    try:
+        gmsh.option.setNumber("General.Terminal", 0)
+        gmsh.option.setNumber("Mesh.Algorithm", 6)
+        gmsh.option.setNumber("Mesh.MeshSizeMin", size)
+        gmsh.option.setNumber("Mesh.MeshSizeMax", size)
+        gmsh.model.occ.addRectangle(0, 0, 0, 1.0, 0.8)
+        gmsh.model.occ.synchronize()
+        gmsh.model.mesh.generate(2)
+        et = gmsh.model.mesh.getElementType("triangle", 1)
+        return len(gmsh.model.mesh.getElementsByType(et)[0])
+    finally:
+        gmsh.finalize()
+
+
+@pytest.mark.parametrize("h", [0.12, 0.06, 0.04])
+def test_estimated_count_matches_uniform_gmsh_mesh(h):
+    # N = a V 6 sqrt(2) / h^3 + b S / h^2: regular tetrahedra (edge h, volume h^3/(6 sqrt2))
+    # plus a boundary layer; (a, b) measured with gmsh 4.15 on other sizes (0.2 .. 0.025 m)
+    field_mesh = tet_box((4, 4, 3), size=BOX)
+    topo = build_topology(field_mesh)
+    est = estimate_cells(field_mesh, topo, np.full(field_mesh.n_points, h))
+    a, b = GMSH_COUNT[3]
+    area = 2 * (BOX[0] * BOX[1] + BOX[0] * BOX[2] + BOX[1] * BOX[2])
+    assert est == pytest.approx(a * REGULAR_TET * 0.48 / h ** 3 + b * area / h ** 2, rel=1e-12)
+    assert est == pytest.approx(_gmsh_box(h).n_cells, rel=0.1)
+
+
+@pytest.mark.parametrize("h", [0.08, 0.03])
+def test_estimated_count_2d_matches_uniform_gmsh_mesh(h):
+    # regular triangles (area sqrt(3) h^2 / 4) plus a boundary term, gmsh Frontal-Delaunay
+    from test_cost import tri_square
+
+    sq = tri_square((5, 4))
+    pts = sq.points * np.array([1.0, 0.8, 0.0])
+    mesh = Mesh(pts, sq.blocks, sq.region_names, 2, "rect", "m")
+    topo = build_topology(mesh)
+    est = estimate_cells(mesh, topo, np.full(mesh.n_points, h))
+    a, b = GMSH_COUNT[2]
+    assert est == pytest.approx(a * 0.8 * 4 / math.sqrt(3) / h ** 2 + b * 3.6 / h, rel=1e-12)
+    assert est == pytest.approx(_gmsh_rectangle_count(h), rel=0.1)
+
+
+def test_pos_view_is_read_by_gmsh_as_background_size(tmp_path):
+    # a graded field h = 0.05 + 0.1 x written as a .pos view drives gmsh's mesh: the
+    # count matches the estimate, and gmsh probes the view to the same values
+    gmsh = pytest.importorskip("gmsh")
+    mesh = tet_box((6, 5, 4), size=BOX)
+    topo = build_topology(mesh)
+    h = 0.05 + 0.1 * mesh.points[:, 0]
+    pos = write_pos(tmp_path / "size.pos", mesh, h)
+    gmsh.initialize(interruptible=False)
+    try:
+        gmsh.option.setNumber("General.Terminal", 0)
+        gmsh.merge(str(pos))
+        tag = gmsh.view.getTags()[-1]
+        for x in (0.1, 0.45, 0.93):
+            val = gmsh.view.probe(tag, x, 0.37, 0.21)[0][0]
+            assert val == pytest.approx(0.05 + 0.1 * x, rel=1e-4)
+    finally:
+        gmsh.finalize()
+    est = estimate_cells(mesh, topo, h)
+    assert _gmsh_box(0.0, str(pos)).n_cells == pytest.approx(est, rel=0.1)
+
+
+def test_pos_in_millimetres_scales_coordinates_and_values(tmp_path):
+    mesh = tet_box((1, 1, 1))
+    pos = write_pos(tmp_path / "s.pos", mesh, np.full(mesh.n_points, 0.02), scale=1e-3)
+    first = pos.read_text().splitlines()[1]
+    assert first.startswith("SS(") and first.endswith("{20,20,20,20};")
+    assert "1000" in first
+
+
+# ---------------------------------------------------------------------------
+# the size field of an audit
+
+
+def _advice(mesh, fmax, order=None, max_order=4):
+    topo = build_topology(mesh)
+    s = AdviceSettings(target=0.01, max_order=max_order, order=order)
+    return topo, advise(mesh, topo, np.full(mesh.n_cells, 343.0), fmax, s)
+
+
+def test_size_field_is_the_graded_cell_target():
+    mesh = tet_box((6, 5, 4), size=BOX)
+    topo, adv = _advice(mesh, 800.0)
+    sf = size_field(mesh, topo, adv, gradation=0.3)
+    raw = node_min(mesh, topo, adv.target_size)
+    assert np.allclose(sf.target, raw)
+    assert np.allclose(sf.size, limit_gradation(mesh, topo, np.minimum(raw, node_min(
+        mesh, topo, topo.cell_extent())), 0.3))
+    assert np.allclose(sf.mesher_size, sf.size / 2.0)
+    assert sf.order == 4
+
+
+def test_chosen_order_gives_smaller_sizes_and_geometry_hook_applies():
+    mesh = tet_box((6, 5, 4), size=BOX)
+    topo, adv = _advice(mesh, 800.0)
+    p4 = size_field(mesh, topo, adv)
+    p2 = size_field(mesh, topo, adv, order=2)
+    assert np.all(p2.target < p4.target)
+    corner = np.argmin(np.linalg.norm(mesh.points, axis=1))
+
+    def limit(m, t):
+        g = np.full(m.n_points, np.inf)
+        g[corner] = 0.01
+        return g
+
+    lim = size_field(mesh, topo, adv, geometry_limit=limit, gradation=0.2)
+    assert lim.size[corner] == pytest.approx(0.01)
+    d = np.linalg.norm(mesh.points - mesh.points[corner], axis=1)
+    assert np.all(lim.size <= 0.01 + 0.2 * d * np.sqrt(3) + 1e-12)
+
+
+@pytest.mark.parametrize("p", [1, 2, 3])
+def test_scenario_counts_match_a_gmsh_mesh_built_to_the_field(p):
+    # fixed order p on a gmsh mesh of size h: exact counts vs the scenario estimate
+    mesh = tet_box((5, 4, 3), size=BOX)
+    topo, adv = _advice(mesh, 300.0, order=p, max_order=p)
+    sf = size_field(mesh, topo, adv)
+    h = 0.07
+    sf = type(sf)(sf.order, sf.fmax, sf.gradation, sf.edge_factor, sf.target, sf.geometry,
+                  np.full(mesh.n_points, 2 * h), np.full(mesh.n_points, h), sf.current,
+                  estimate_cells(mesh, topo, np.full(mesh.n_points, h)))
+    systems, n_cells = scenario_systems(mesh, topo, adv, sf, [300.0], p, fixed_order=p)
+    g = _gmsh_box(h)
+    exact = system_size(g, build_topology(g), p, True)
+    assert n_cells == pytest.approx(g.n_cells, rel=0.1)
+    assert systems[0].ndof == pytest.approx(exact.ndof, rel=0.15)
+    assert systems[0].nnz == pytest.approx(exact.nnz, rel=0.15)
+
+
+def test_remesh_with_gmsh_follows_the_field(tmp_path):
+    from meshcheck.reading import read_mesh
+
+    mesh = tet_box((6, 5, 4), size=BOX)
+    topo, adv = _advice(mesh, 500.0)
+    sf = size_field(mesh, topo, adv)
+    h = np.full(mesh.n_points, 0.09)
+    sf = type(sf)(sf.order, sf.fmax, sf.gradation, sf.edge_factor, sf.target, sf.geometry,
+                  2 * h, h, sf.current, estimate_cells(mesh, topo, h))
+    out = remesh(mesh, topo, sf, tmp_path / "coarse.msh")
+    new = read_mesh(out, "m")
+    vol = np.abs(build_topology(new).cell_volume).sum()
+    assert vol == pytest.approx(0.48, rel=1e-9)
+    assert new.n_cells == pytest.approx(sf.cells_estimate, rel=0.15)
+
+
+# ---------------------------------------------------------------------------
+# audit outputs and the coarsen command
+
+
+def test_audit_reports_carry_the_size_field(tmp_path):
+    import meshio
+
+    from meshcheck.cost import audit_job_cost
+    from meshcheck.pipeline import AuditSettings, audit
+    from meshcheck.report import to_dict, write_all
+
+    mesh = tet_box((6, 5, 4), size=BOX)
+    res = audit(mesh, AuditSettings((200.0, 400.0, 800.0), AdviceSettings(max_order=4),
+                                    speed=343.0))
+    files = write_all(res, tmp_path, "box")
+    field = audit_job_cost(res).coarsening.field
+    vtu = meshio.read(files["vtu"])
+    assert np.allclose(vtu.point_data["target_size"], field.size, rtol=1e-6)
+    assert np.allclose(vtu.point_data["mesher_size"], field.size / 2, rtol=1e-6)
+    assert files["size_view"].read_text().startswith('View "mesher_size" {')
+    cost = to_dict(res)["cost"]
+    assert [q["strategy"] for q in cost["strategies"]] == ["variable p<=4", "fixed p=1",
+                                                           "fixed p=2"]
+    assert cost["coarsening"]["order"] == 4
+    assert cost["strategies"][0]["unknowns"] == res.sweep.dofs.tolist()
+
+
+def test_coarsen_command_remeshes_and_audits(tmp_path):
+    import json
+
+    from meshcheck.cli import main
+
+    mesh = tet_box((10, 8, 6), size=BOX)
+    import meshio
+    meshio.write(tmp_path / "box.vtu", meshio.Mesh(mesh.points, [("tetra", mesh.blocks[0].cells)]))
+    rc = main(["coarsen", str(tmp_path / "box.vtu"), "--units", "m", "--fmax", "800",
+               "--max-order", "4", "--out", str(tmp_path / "out"), "--quiet"])
+    summary = json.loads((tmp_path / "out" / "box.coarsen.json").read_text())
+    assert rc == 0 and summary["coarsened_verdict"]["ready"]
+    assert summary["coarsened_cells"] < summary["supplied_cells"]
+    # a remesh that misses the upper frequency is redone with the mesher size scaled by
+    # `shrink` < 1, which multiplies the count by shrink^-3
+    est = summary["estimated"]["coarsening"]["estimated_cells"]
+    shrink = summary["mesher_size_shrink"]
+    assert 0.8 < shrink <= 1.0
+    assert summary["coarsened_cells"] == pytest.approx(est / shrink ** 3, rel=0.2)
