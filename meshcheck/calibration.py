@@ -682,18 +682,17 @@ def reference_mesh(dim: int = 3, size: float = 0.03) -> Mesh:
     return m
 
 
-def _system_stats(mesh: Mesh, topo, cell_order, condensed: bool = True):
-    from .cost import system_size
-    return system_size(mesh, topo, cell_order, condensed)
-
-
 def measure(mesh: Mesh, cell_order, k: float | None = None, condensed: bool = True,
             factorise: bool = True, topo=None, label: str = "") -> Sample:
-    """Assemble (NGSolve) and factorise (SuperLU) the Helmholtz system of ``mesh``."""
+    """Assemble (NGSolve) and factorise (SuperLU, nested-dissection order) the Helmholtz
+    system of ``mesh`` at ``cell_order`` (int or (n_cells,)); k defaults to 1 / median
+    edge length.  The assembled size and non-zeros must equal meshcheck's exact counts
+    (SettingsError otherwise).  factorise=False times the assembly only."""
+    from .cost import system_size
     from .topology import build_topology
 
     topo = topo if topo is not None else build_topology(mesh)
-    s = _system_stats(mesh, topo, cell_order, condensed)
+    s = system_size(mesh, topo, cell_order, condensed)
     q = np.broadcast_to(np.asarray(cell_order, dtype=np.int64), (mesh.n_cells,))
     if k is None:
         h = float(np.median(topo.edges.length)) if len(topo.edges) else 1.0
@@ -733,12 +732,13 @@ def calibrate(mesh: Mesh | None = None, orders=(1, 2, 3, 4), min_dofs: float = 8
               max_dofs: float = 30000, steps: int = 6, dims=(3, 2),
               assembly_orders=(1, 2, 3, 4, 5, 6, 7, 8), assembly_dofs: float = 20000,
               progress: Callable[[str], None] | None = None) -> list[Sample]:
-    """Measure factorisations of sub-meshes of ``mesh`` (default: netgen box meshes).
+    """Measure factorisations of sub-meshes of ``mesh`` (default: the gmsh box meshes of
+    :func:`reference_mesh`, sized so that order 1 reaches about ``max_dofs``).
 
     For every order, sub-meshes with about ``min_dofs`` .. ``max_dofs`` unknowns
     (``steps`` sizes, geometric) are assembled and factorised; assembly alone is
-    timed for ``assembly_orders`` on sub-meshes of about ``assembly_dofs``
-    unknowns.  ``dims`` (without a mesh): which reference meshes to use.
+    timed for ``assembly_orders`` on sub-meshes of about min(``assembly_dofs``,
+    ``max_dofs``) unknowns.  ``dims`` (without a mesh): which reference meshes to use.
     Returns the samples (see :func:`fit_machine`).
     """
     from .topology import build_topology
@@ -752,8 +752,8 @@ def calibrate(mesh: Mesh | None = None, orders=(1, 2, 3, 4), min_dofs: float = 8
         topo = build_topology(src)
         seed = int(np.argmin(np.linalg.norm(src.centroids - src.centroids.mean(0), axis=1)))
         plan = [(p, c, True) for p, c in _plan(src, topo, orders, min_dofs, max_dofs, steps)]
-        plan += [(p, c, False) for p, c in _plan(src, topo, assembly_orders, assembly_dofs,
-                                                 assembly_dofs, 1)]
+        n_asm = min(assembly_dofs, max_dofs)
+        plan += [(p, c, False) for p, c in _plan(src, topo, assembly_orders, n_asm, n_asm, 1)]
         for p, cells, fac in plan:
             sub = submesh(src, topo, cells, seed)
             say(f"{src.dim}D order {p}: {sub.n_cells} cells" + ("" if fac else " (assembly)"))

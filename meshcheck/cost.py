@@ -31,13 +31,21 @@ an interior face chi = -1, a cell chi = 1.  The count is exact for conforming
 meshes of simplices, hexahedra, wedges and pyramids, in O(number of entities)
 array operations per order configuration (no pair list, no sparse product);
 it is checked against NGSolve's matrix graph and a brute-force pair count in
-tests/test_cost.py.
+tests/test_cost.py.  (The lattice facts are textbook combinatorics, cited from
+memory.)
+
+Quotes.  :func:`quote` turns one system per frequency into time and memory with
+the fitted machine constants of :mod:`meshcheck.calibration` (sparse direct
+factorisation per frequency; bands from the fits' spread); :func:`job_cost`
+quotes variable order and fixed orders 1 and 2 on the supplied mesh and the
+coarsening scenario of :mod:`meshcheck.sizefield`.  See docs/cost.md.
 """
 from __future__ import annotations
 
-import numpy as np
-
 from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
 
 from .mesh import Mesh
 from .topology import Topology
@@ -45,7 +53,9 @@ from .topology import Topology
 __all__ = ["face_dofs", "interior_dofs", "lagrange_dofs", "condensed_dofs",
            "variable_order_dofs", "Adjacency", "build_adjacency", "entity_orders",
            "SystemSize", "system_size", "cell_orders_at", "variable_order_systems",
-           "fixed_order_system"]
+           "fixed_order_system", "matrix_bytes", "Quote", "quote", "sweep_quotes",
+           "Coarsening", "JobCost", "job_cost", "job_cost_dict", "audit_job_cost",
+           "cost_section", "cost_markdown"]
 
 
 def face_dofs(n_corners: int, p) -> np.ndarray:
@@ -550,6 +560,8 @@ def _q_dict(q: Quote) -> dict:
             "memory_bytes": fl(q.memory_bytes), "memory_low_bytes": fl(q.memory_low),
             "memory_high_bytes": fl(q.memory_high),
             "assembly_once_s": q.assembly_once_s,
+            "assembly_highest_order_s": (q.assembly_once_s if q.assembly_once_s > 0 else
+                                         float(q.assembly_s[-1]) if len(q.assembly_s) else 0.0),
             "assembly_once_band_s": list(q.assembly_once_band),
             "total_s": q.total_s, "total_band_s": list(q.total_band),
             "peak_memory_bytes": q.peak_bytes, "peak_memory_band_bytes": list(q.peak_band),
@@ -628,3 +640,46 @@ def cost_section(res, scale: float = 1.0) -> dict:
         return job_cost_dict(audit_job_cost(res), scale)
     except MeshcheckError as exc:
         return {"error": str(exc)}
+
+
+def cost_markdown(cost: dict | None) -> list[str]:
+    """Markdown lines of the report's "cost" section (empty without one)."""
+    if not cost:
+        return []
+    if "error" in cost:
+        return ["## Cost of the sweep\n", f"Not estimated: {cost['error']}\n"]
+
+    def t(s):
+        return f"{s:.3g} s" if s < 120 else (f"{s / 60:.3g} min" if s < 7200 else
+                                              f"{s / 3600:.3g} h")
+
+    def b(x):
+        return f"{x / 1e6:.3g} MB" if x < 1e9 else f"{x / 1e9:.3g} GB"
+
+    cpu = (cost.get("machine") or {}).get("cpu", "unknown CPU")
+    L = ["## Cost of the sweep\n",
+         f"Solver: {cost['solver']}. Constants: {Path(cost['machine_constants']).name} "
+         f"(calibrated {cost['calibrated']} on {cpu}; `meshcheck calibrate` measures this "
+         f"machine). Bands: {cost['band']}.\n",
+         "| strategy | unknowns at the top | non-zeros | sweep time | band | peak memory | "
+         "carries every frequency |", "|---|---|---|---|---|---|---|"]
+    for q in cost["strategies"]:
+        lo, hi = q["total_band_s"]
+        flag = " (beyond calibration)" if q.get("beyond_calibration") else ""
+        L.append(f"| {q['strategy'].replace('<=', '≤')} | {q['unknowns'][-1]:,} | {q['nonzeros'][-1]:,} | "
+                 f"{t(q['total_s'])}{flag} | {t(lo)} - {t(hi)} | "
+                 f"{b(q['peak_memory_bytes'])} | {'yes' if q['carries_all'] else 'no'} |")
+    co = cost.get("coarsening")
+    if co and co.get("quote"):
+        q = co["quote"]
+        sp = f", {co['speedup']:.3g} times faster than on the supplied mesh" \
+            if co.get("speedup") else ""
+        L.append(f"\nCoarsening scenario: a mesh sized for order {co['order']} at "
+                 f"{co['upper_frequency_hz']:g} Hz (gradation {co['gradation']:g}) would hold "
+                 f"about {co['estimated_cells']:,.0f} tetrahedra and "
+                 f"{q['unknowns'][-1]:,} unknowns at the top; the sweep would take "
+                 f"{t(q['total_s'])}{sp}. The size field is in the VTU (point data "
+                 f"`target_size`, `mesher_size`) and in the gmsh view `*.size.pos` "
+                 f"(`gmsh model.geo -bgm <mesh>.size.pos -3`).")
+    L.append("")
+    return L

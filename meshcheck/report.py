@@ -344,6 +344,8 @@ def write_markdown(res: AuditResult, path: str | Path, data: dict | None = None,
                      f"{c['largest_edge']:.4g} | {c['target_size']:.4g} | {c['factor']:.3g} | "
                      f"{', '.join(str(i) for i in c['some_cell_ids'][:5])} |")
         L.append("")
+    from .cost import cost_markdown
+    L.extend(cost_markdown(d.get("cost")))
     L.append("## Quality\n")
     L.append("| metric | cells | min | median | max | out of range | acceptable |")
     L.append("|---|---|---|---|---|---|---|")

@@ -67,7 +67,7 @@ from .topology import Topology
 __all__ = ["GMSH_LONGEST_EDGE", "GMSH_COUNT", "REGULAR_TET", "GeometryLimit",
            "SizeField", "TetRatios", "node_min", "cell_target_size", "limit_gradation",
            "size_field", "estimate_cells", "write_pos", "tet_ratios", "scenario_systems",
-           "remesh"]
+           "remesh", "remesh_and_audit", "size_point_data", "write_size_view"]
 
 #: regular tetrahedra of edge h per h^3 of volume: 6 sqrt(2)
 REGULAR_TET = 6.0 * math.sqrt(2.0)
@@ -444,7 +444,8 @@ def remesh(mesh: Mesh, topo: Topology, field: SizeField, path: str | Path,
         opt("Mesh.MeshSizeExtendFromBoundary", 0)
         gmsh.model.add("coarsened")
         s = gmsh.model.addDiscreteEntity(2)
-        gmsh.model.mesh.addNodes(2, s, (used + 1).tolist(), (mesh.points[used] / scale).ravel().tolist())
+        gmsh.model.mesh.addNodes(2, s, (used + 1).tolist(),
+                                 (mesh.points[used] / scale).ravel().tolist())
         gmsh.model.mesh.addElementsByType(s, 2, [], (tri + 1).ravel().tolist())
         gmsh.model.mesh.classifySurfaces(angle * math.pi / 180.0, True, False, math.pi)
         gmsh.model.mesh.createGeometry()

@@ -196,3 +196,18 @@ def test_nested_dissection_cuts_fill_of_a_3d_grid():
     natural = measure_factorisation(A)
     assert nd["fill"] < 0.8 * natural["fill"]
     assert nd["flops"] < 0.6 * natural["flops"]
+
+
+def test_calibrate_command_writes_loadable_constants(tmp_path):
+    from meshcheck.cli import main
+
+    out = tmp_path / "m.json"
+    rc = main(["calibrate", "--max-dofs", "1200", "--steps", "4", "--orders", "1,2",
+               "--out", str(out), "--quiet"])
+    assert rc == 0
+    m = load_machine(out)
+    for dim in (2, 3):
+        assert m.fit("factor_s", dim).n == 8 and m.fit("fill", dim).log_sd < 0.5
+        assert m.largest_calibrated(dim) >= 800
+    assert m.fit("assembly_s").n >= 8
+    assert m.solver.startswith("scipy.sparse.linalg.splu")

@@ -92,8 +92,8 @@ def test_variable_order_uniform_equals_condensed(p):
 # ---------------------------------------------------------------------------
 # exact non-zeros: against NGSolve's matrix graph and a brute-force pair count
 
-from meshcheck.cost import build_adjacency, cell_orders_at, fixed_order_system, \
-    system_size, variable_order_systems
+from meshcheck.cost import cell_orders_at, fixed_order_system, system_size, \
+    variable_order_systems
 from meshcheck.cells import CELL_TYPES
 from meshes import grid_hexes, grid_points
 
@@ -131,7 +131,8 @@ def mixed_hex_wedge(n=(2, 2, 2)) -> Mesh:
 def tri_square(n=(3, 2)) -> Mesh:
     pts = grid_points((n[0], n[1], 0), size=(1.0, 1.0, 0.0))
     idx = np.arange(len(pts)).reshape(n[0] + 1, n[1] + 1)
-    a, b, c, d = idx[:-1, :-1].ravel(), idx[1:, :-1].ravel(), idx[1:, 1:].ravel(), idx[:-1, 1:].ravel()
+    a, b = idx[:-1, :-1].ravel(), idx[1:, :-1].ravel()
+    c, d = idx[1:, 1:].ravel(), idx[:-1, 1:].ravel()
     tri = np.vstack([np.column_stack([a, b, c]), np.column_stack([a, c, d])])
     return Mesh(pts, (CellBlock("triangle", tri, np.ones(len(tri))),), {1: "air"}, 2, "t", "m")
 
@@ -158,7 +159,8 @@ def _brute_system(mesh: Mesh, orders: np.ndarray, condensed: bool) -> tuple[int,
             ents += [("e", tuple(sorted((int(v[a]), int(v[c]))))) for a, c, _ in info.edges]
             if mesh.dim == 3:
                 ents += [("f%d" % len(f), tuple(sorted(int(v[i]) for i in f))) for f in info.faces]
-            ents.append(("c:" + info.linear, tuple(sorted(int(x) for x in v)) + (len(cell_entities),)))
+            ents.append(("c:" + info.linear,
+                         tuple(sorted(int(x) for x in v)) + (len(cell_entities),)))
             cell_entities.append(ents)
     for c, ents in enumerate(cell_entities):
         for e in ents:
