@@ -306,23 +306,41 @@ def cell_orders_at(cell_limits: np.ndarray, frequency: float, max_order: int) ->
     return 1 + np.count_nonzero(lim < frequency, axis=1)
 
 
+#: most frequencies of a sweep whose systems are counted exactly (see variable_order_systems)
+EXACT_SYSTEMS = 16
+
+
 def variable_order_systems(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
                            frequencies: np.ndarray, max_order: int,
-                           adjacency: Adjacency | None = None) -> list[SystemSize]:
+                           adjacency: Adjacency | None = None,
+                           exact: int = EXACT_SYSTEMS) -> list[SystemSize]:
     """Condensed hierarchical system per frequency with the advised orders.
 
-    Frequencies with the same order configuration share one computation.
-    Returns one :class:`SystemSize` per frequency.
+    The system is counted exactly at ``exact`` frequencies spread evenly over the
+    sweep (all of them when there are no more); in between, every count is
+    interpolated linearly in frequency (and rounded), so a fine sweep costs no
+    more than ``exact`` counts.  Frequencies with the same order configuration
+    share one computation.  Returns one :class:`SystemSize` per frequency.
     """
     adj = adjacency if adjacency is not None else build_adjacency(mesh, topo)
-    out, last_q, last = [], None, None
-    for f in np.asarray(frequencies, dtype=float):
-        q = cell_orders_at(cell_limits, f, max_order)
+    f = np.asarray(frequencies, dtype=float)
+    picks = np.arange(len(f)) if len(f) <= exact else \
+        np.unique(np.round(np.linspace(0, len(f) - 1, exact)).astype(int))
+    known, last_q, last = {}, None, None
+    for i in picks:
+        q = cell_orders_at(cell_limits, f[i], max_order)
         if last_q is None or not np.array_equal(q, last_q):
             last = system_size(mesh, topo, q, True, adj)
             last_q = q
-        out.append(last)
-    return out
+        known[int(i)] = last
+    if len(picks) == len(f):
+        return [known[i] for i in range(len(f))]
+    fields = ("ndof", "nnz", "ndof_interior", "cell_entries", "cell_cubes")
+    xs = f[picks]
+    cols = {k: np.interp(f, xs, [getattr(known[int(i)], k) for i in picks]) for k in fields}
+    return [known[i] if i in known else
+            SystemSize(**{k: int(round(cols[k][i])) for k in fields}, condensed=True)
+            for i in range(len(f))]
 
 
 def fixed_order_system(mesh: Mesh, topo: Topology, p: int,
