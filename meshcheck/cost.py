@@ -515,13 +515,14 @@ class JobCost:
 
 
 def _scenario(mesh, topo, advice, field, frequencies, machine, fixed: int | None,
-              reference: Quote | None) -> Coarsening:
+              reference: Quote | None, adj: Adjacency | None = None) -> Coarsening:
     from .sizefield import scenario_systems
 
     if mesh.dim != 3:
         return Coarsening(field, field.cells_estimate, None, reference, None)
     P = advice.settings.max_order
-    systems, n_cells = scenario_systems(mesh, topo, advice, field, frequencies, P, fixed)
+    systems, n_cells = scenario_systems(mesh, topo, advice, field, frequencies, P, fixed,
+                                        adjacency=adj)
     f = np.asarray(frequencies, dtype=float)
     name = f"fixed p={fixed}" if fixed else f"variable p<={P}"
     once = systems[0] if fixed else None
@@ -556,12 +557,12 @@ def job_cost(mesh: Mesh, topo: Topology, advice, frequencies, machine=None,
     by_name = {q.strategy: q for q in quotes}
     field = size_field(mesh, topo, advice, None, gradation, geometry_limit)
     ref_name = f"fixed p={s.order}" if s.order else f"variable p<={s.max_order}"
-    main = _scenario(mesh, topo, advice, field, f, machine, s.order, by_name.get(ref_name))
+    main = _scenario(mesh, topo, advice, field, f, machine, s.order, by_name.get(ref_name), adj)
     chosen = None
     if size_order is not None:
         fld = size_field(mesh, topo, advice, size_order, gradation, geometry_limit)
         chosen = _scenario(mesh, topo, advice, fld, f, machine, int(size_order),
-                           by_name.get(f"fixed p={int(size_order)}"))
+                           by_name.get(f"fixed p={int(size_order)}"), adj)
     return JobCost(machine, tuple(quotes), main, chosen)
 
 

@@ -267,31 +267,68 @@ _POS_KIND = {"tetra": "SS", "hexahedron": "SH", "wedge": "SI", "pyramid": "SY",
              "triangle": "ST", "quad": "SQ"}
 
 
+def _fixed_width(strings: list[str]) -> np.ndarray:
+    """(n, w) uint8 ASCII codes of ``strings``, padded with zero bytes."""
+    arr = np.array(strings, dtype=bytes)
+    return arr.view(np.uint8).reshape(len(arr), arr.dtype.itemsize)
+
+
 def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "target_size",
               scale: float = 1.0, chunk: int = 200_000) -> Path:
     """Write node values as a gmsh post-processing view (ASCII .pos, one scalar list
     element per linear cell: SS tetrahedra, SH hexahedra, SI prisms, SY pyramids, ST/SQ
     in 2D).  Coordinates and values are divided by ``scale`` (metres per file unit),
     so the view is in the mesh's own unit.  gmsh reads it with ``-bgm file.pos`` or
-    ``gmsh.merge`` and a "PostView" background field."""
+    ``gmsh.merge`` and a "PostView" background field.
+
+    Each point's coordinates and value are formatted once (``%.8g``, ``%.5g``); the
+    cells' lines are then assembled as byte rows by gathering those fixed-width fields
+    and dropping the padding, so the cost grows with the points, not with 4-8
+    formatted numbers per cell corner.
+    """
     path = Path(path)
     v = np.asarray(values, dtype=float) / scale
-    P = mesh.points / scale
-    with open(path, "w") as fh:
-        fh.write(f'View "{name}" {{\n')
+    used = np.zeros(mesh.n_points, bool)
+    for _, c in _corners(mesh):
+        used[c.ravel()] = True
+    idx = np.flatnonzero(used)
+    P = (mesh.points[idx] / scale).tolist()
+    pts = np.zeros((mesh.n_points, 1), np.uint8)
+    vals = np.zeros((mesh.n_points, 1), np.uint8)
+    if len(idx):
+        pw = _fixed_width(["%.8g,%.8g,%.8g" % tuple(x) for x in P])
+        vw = _fixed_width(["%.5g" % x for x in v[idx].tolist()])
+        pts = np.zeros((mesh.n_points, pw.shape[1]), np.uint8)
+        vals = np.zeros((mesh.n_points, vw.shape[1]), np.uint8)
+        pts[idx], vals[idx] = pw, vw
+    finite = np.isfinite(v)
+
+    def lit(text: str) -> np.ndarray:
+        return np.frombuffer(text.encode(), np.uint8)
+
+    with open(path, "wb") as fh:
+        fh.write(f'View "{name}" {{\n'.encode())
         for b, c in _corners(mesh):
-            kind = _POS_KIND[b.info.linear]
             nc = c.shape[1]
-            fmt = (kind + "(" + ",".join(["%.8g"] * (3 * nc)) + "){"
-                   + ",".join(["%.5g"] * nc) + "};")
+            head, comma = lit(_POS_KIND[b.info.linear] + "("), lit(",")
+            mid, tail = lit("){"), lit("};\n")
             for s in range(0, len(c), chunk):
                 cc = c[s:s + chunk]
-                vals = v[cc]
-                keep = np.all(np.isfinite(vals), axis=1)
-                rows = np.hstack([P[cc[keep]].reshape(int(keep.sum()), 3 * nc), vals[keep]])
-                if len(rows):
-                    np.savetxt(fh, rows, fmt=fmt)
-        fh.write("};\n")
+                cc = cc[np.all(finite[cc], axis=1)]
+                if not len(cc):
+                    continue
+                parts = [np.broadcast_to(head, (len(cc), len(head)))]
+                for k in range(nc):
+                    parts += [pts[cc[:, k]], np.broadcast_to(comma if k < nc - 1 else mid,
+                                                             (len(cc), 1 if k < nc - 1 else 2))]
+                for k in range(nc):
+                    parts.append(vals[cc[:, k]])
+                    if k < nc - 1:
+                        parts.append(np.broadcast_to(comma, (len(cc), 1)))
+                parts.append(np.broadcast_to(tail, (len(cc), len(tail))))
+                rows = np.hstack(parts).ravel()
+                fh.write(rows[rows != 0].tobytes())
+        fh.write(b"};\n")
     return path
 
 
@@ -342,11 +379,12 @@ GMSH_TET_RATIOS = TetRatios(0.2123, 1.3103, 2.0981, -0.1141, 1.0161, -1.9019,
                             "gmsh 4.15 Delaunay box, 18k tetrahedra")
 
 
-def tet_ratios(mesh: Mesh, topo: Topology) -> TetRatios:
-    """Entity and star-count ratios of a mesh (meaningful for tetrahedral meshes)."""
+def tet_ratios(mesh: Mesh, topo: Topology, adjacency=None) -> TetRatios:
+    """Entity and star-count ratios of a mesh (meaningful for tetrahedral meshes);
+    ``adjacency``: :func:`meshcheck.cost.build_adjacency` of the mesh, if already built."""
     from .cost import build_adjacency
 
-    adj = build_adjacency(mesh, topo)
+    adj = adjacency if adjacency is not None else build_adjacency(mesh, topo)
     n = max(mesh.n_cells, 1)
     return TetRatios(len(adj.vertices) / n, len(topo.edges) / n, len(topo.faces) / n,
                      adj.chi_vertex.sum() / n, adj.chi_edge.sum() / n, adj.chi_face.sum() / n,
@@ -355,7 +393,8 @@ def tet_ratios(mesh: Mesh, topo: Topology) -> TetRatios:
 
 def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
                      frequencies: np.ndarray, max_order: int, fixed_order: int | None = None,
-                     ratios: TetRatios | None = None) -> tuple[list, float]:
+                     ratios: TetRatios | None = None,
+                     adjacency=None) -> tuple[list, float]:
     """Estimated systems of a tetrahedral mesh built to ``field``, per frequency.
 
     Every new cell takes the lowest order (up to ``max_order``) whose limit at its
@@ -367,7 +406,7 @@ def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
 
     if ratios is None:
         pure_tet = all(b.info.linear == "tetra" for b in mesh.blocks) and mesh.n_cells >= 1000
-        ratios = tet_ratios(mesh, topo) if pure_tet else GMSH_TET_RATIOS
+        ratios = tet_ratios(mesh, topo, adjacency) if pure_tet else GMSH_TET_RATIOS
     vol = np.abs(topo.cell_volume)
     # new cells per old cell (the boundary share spread in proportion), and their size
     h_cell = []
@@ -380,26 +419,50 @@ def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
     n_new = n_new * (total / np.nansum(n_new)) if np.nansum(n_new) > 0 else n_new
     ok = np.isfinite(h) & np.isfinite(n_new)
     h, n_new = h[ok], n_new[ok]
-    s = advice.settings
-    pmax = max(max_order, fixed_order or 1)
-    table = usable_kh(s.target, pmax)
-    c, L = advice.cell_speed[ok], advice.cell_distance[ok]
-    limits = np.column_stack([c * table.max_kh(p, L / h) / (2 * np.pi * h)
-                              for p in range(1, pmax + 1)])
-    np.maximum.accumulate(limits, axis=1, out=limits)
-    out = []
-    for f in np.asarray(frequencies, dtype=float):
-        if fixed_order is not None:
-            q = np.full(len(h), fixed_order)
-        else:
-            q = 1 + np.count_nonzero(limits[:, :max_order - 1] < f, axis=1)
-        nd = float(np.sum(n_new * ratios.ndof(q)))
-        nz = float(np.sum(n_new * ratios.nnz(q)))
-        nl = ratios.n_loc(q)
-        out.append(SystemSize(int(round(nd)), int(round(nz)), 0, fixed_order is None,
-                              int(round(np.sum(n_new * nl ** 2))),
-                              int(round(np.sum(n_new * nl ** 3)))))
+    f = np.asarray(frequencies, dtype=float)
+    if fixed_order is not None:
+        q = np.array([fixed_order])
+        sums = [np.full(len(f), n_new.sum() * g(q)[0]) for g in _scenario_terms(ratios)]
+    else:
+        table = usable_kh(advice.settings.target, max_order)
+        c, L = advice.cell_speed[ok], advice.cell_distance[ok]
+        limits = np.column_stack([c * table.max_kh(p, L / h) / (2 * np.pi * h)
+                                  for p in range(1, max_order + 1)])
+        np.maximum.accumulate(limits, axis=1, out=limits)
+        sums = _step_sums(limits[:, :max_order - 1], n_new, f, _scenario_terms(ratios))
+    nd, nz, a2, a3 = sums
+    out = [SystemSize(int(round(nd[i])), int(round(nz[i])), 0, fixed_order is None,
+                      int(round(a2[i])), int(round(a3[i]))) for i in range(len(f))]
     return out, float(n_new.sum())
+
+
+def _scenario_terms(ratios: TetRatios):
+    """Per-cell quantities summed by :func:`scenario_systems`, as functions of the order."""
+    return (ratios.ndof, ratios.nnz, lambda q: ratios.n_loc(q) ** 2,
+            lambda q: ratios.n_loc(q) ** 3)
+
+
+def _step_sums(thresholds: np.ndarray, weights: np.ndarray, frequencies: np.ndarray,
+               terms) -> list[np.ndarray]:
+    """sum_i weights_i g(q_i(f)) for every g in ``terms`` and every frequency, where
+    q_i(f) = 1 + #{j : thresholds[i, j] < f} (rows non-decreasing).
+
+    The sum telescopes over the order steps, g(q) = g(1) + sum_j [t_ij < f] (g(j+2) -
+    g(j+1)), so one sort per column and a search of the frequencies replace a pass
+    over the cells per frequency: O(P n log n + P m log n) for n cells, m frequencies.
+    """
+    n_steps = thresholds.shape[1]
+    qs = np.arange(1, n_steps + 2, dtype=float)
+    gq = [np.asarray(g(qs), dtype=float) for g in terms]
+    total = float(weights.sum())
+    out = [np.full(len(frequencies), total * v[0]) for v in gq]
+    for j in range(n_steps):
+        order = np.argsort(thresholds[:, j], kind="stable")
+        cum = np.concatenate([[0.0], np.cumsum(weights[order])])
+        below = cum[np.searchsorted(thresholds[order, j], frequencies, side="left")]
+        for acc, v in zip(out, gq):
+            acc += below * (v[j + 1] - v[j])
+    return out
 
 
 # ---------------------------------------------------------------------------

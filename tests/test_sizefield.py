@@ -185,6 +185,52 @@ def test_pos_in_millimetres_scales_coordinates_and_values(tmp_path):
     assert "1000" in first
 
 
+def _pos_reference(mesh, values, scale=1.0) -> str:
+    """The .pos text formatted number by number (the plain way the fast writer replaces)."""
+    kinds = {"tetra": "SS", "hexahedron": "SH", "wedge": "SI", "pyramid": "SY"}
+    lines = []
+    for b in mesh.blocks:
+        for cell in b.cells[:, :b.info.n_corners]:
+            v = np.asarray(values)[cell] / scale
+            if not np.all(np.isfinite(v)):
+                continue
+            xyz = ",".join("%.8g" % x for x in (mesh.points[cell] / scale).ravel())
+            lines.append(f"{kinds[b.info.linear]}({xyz}){{{','.join('%.5g' % x for x in v)}}};")
+    return 'View "target_size" {\n' + "".join(ln + "\n" for ln in lines) + "};\n"
+
+
+@pytest.mark.parametrize("scale", [1.0, 1e-3])
+def test_pos_writer_equals_number_by_number_formatting(tmp_path, scale):
+    # mixed hexes and tets, irrational coordinates, a nan node: the fast byte assembly
+    # gives the same text as formatting every number in turn; cells on the nan node drop
+    hexes, tets = hex_box((3, 2, 2), size=(0.7, 0.3, 0.2)), tet_box((2, 2, 2), origin=(1, 0, 0))
+    pts = np.vstack([hexes.points, tets.points]) * np.pi
+    mesh = Mesh(pts, (CellBlock("hexahedron", hexes.blocks[0].cells, np.ones(hexes.n_cells, np.int64)),
+                      CellBlock("tetra", tets.blocks[0].cells + len(hexes.points),
+                                np.ones(tets.n_cells, np.int64))))
+    vals = 0.01 + np.random.default_rng(3).random(len(pts)) / 7
+    vals[len(hexes.points) + 5] = np.nan
+    pos = write_pos(tmp_path / "v.pos", mesh, vals, scale=scale, chunk=7)
+    assert pos.read_text() == _pos_reference(mesh, vals, scale)
+
+
+def test_scenario_sums_equal_a_pass_per_frequency():
+    # the sorted step sums of scenario_systems against the plain loop over frequencies
+    from meshcheck.sizefield import GMSH_TET_RATIOS, _scenario_terms, _step_sums
+
+    rng = np.random.default_rng(7)
+    thr = np.sort(rng.uniform(50, 3000, (500, 6)), axis=1)
+    thr[::37, 3:] = np.inf
+    w = rng.uniform(0.5, 2.0, 500)
+    f = np.concatenate([rng.uniform(10, 4000, 40), thr[:5, 2]])  # incl. ties with thresholds
+    terms = _scenario_terms(GMSH_TET_RATIOS)
+    fast = _step_sums(thr, w, f, terms)
+    for i, fi in enumerate(f):
+        q = 1 + np.count_nonzero(thr < fi, axis=1)
+        for g, got in zip(terms, fast):
+            assert got[i] == pytest.approx(np.sum(w * g(q)), rel=1e-12)
+
+
 # ---------------------------------------------------------------------------
 # the size field of an audit
 
