@@ -125,40 +125,98 @@ class Edges:
         return np.concatenate(out) if out else np.zeros((0,) + values.shape[1:], values.dtype)
 
 
+def _sorted_groups(key: np.ndarray, key_max: int):
+    """Group equal int64 keys: (order, starts, inverse, sorted keys at starts).
+
+    ``order`` sorts the keys (equal keys keep their row order), ``starts`` indexes
+    the first sorted row of every group, ``inverse`` maps each row to its group.
+    The packed path sorts key and row number as one int64 (see
+    :func:`_argsort_key`) and reads the sorted keys back from the high bits, so no
+    gather of the keys by the permutation is needed.
+    """
+    n = key.shape[0]
+    pos_bits = max(int(n - 1).bit_length(), 1)
+    if int(key_max).bit_length() + pos_bits <= 63:
+        packed = np.left_shift(key, pos_bits)
+        packed |= np.arange(n, dtype=np.int64)
+        packed.sort()
+        skey = packed >> pos_bits
+        packed &= (1 << pos_bits) - 1
+        order = packed
+    else:
+        order = np.argsort(key, kind="stable")
+        skey = key[order]
+    new = np.empty(n, dtype=bool)
+    if n:
+        new[0] = True
+        np.not_equal(skey[1:], skey[:-1], out=new[1:])
+    starts = np.flatnonzero(new)
+    ukey = skey[starts]
+    del skey
+    group = np.cumsum(new, dtype=np.int64)
+    group -= 1
+    inverse = np.empty(n, dtype=np.int64)
+    inverse[order] = group
+    return order, starts, inverse, ukey
+
+
+def _row_owner(rows: np.ndarray, widths: list[int], lengths: list[int],
+               offsets: np.ndarray) -> np.ndarray:
+    """Global cell id of flattened (cells x local entities) rows of consecutive blocks.
+
+    rows : positions in the concatenation of blocks of ``lengths[i]`` cells with
+    ``widths[i]`` local entities each; ``offsets[i]`` is block i's first cell id.
+    """
+    bounds = np.cumsum([0] + [w * m for w, m in zip(widths, lengths)])
+    if len(widths) == 1:
+        return rows // widths[0] + offsets[0]
+    blk = np.searchsorted(bounds, rows, side="right") - 1
+    w = np.asarray(widths, dtype=np.int64)[blk]
+    return (rows - bounds[blk]) // w + np.asarray(offsets, dtype=np.int64)[blk]
+
+
 def build_edges(mesh: Mesh) -> Edges:
-    """Unique edges of all cells with their lengths (vectorised sort of node-pair keys)."""
+    """Unique edges of all cells with their lengths (vectorised sort of node-pair keys).
+
+    Memory: the pair keys, the sort permutation and the group numbers of the
+    (cells x local edges) rows, int64 each; owners and mid-nodes are derived from
+    the permutation instead of being stored per row.
+    """
     n = np.int64(mesh.n_points + 1)
-    keys, mids, sizes, owners = [], [], [], []
-    for bi, b in enumerate(mesh.blocks):
+    keys, widths, lengths = [], [], []
+    for b in mesh.blocks:
         e = b.info.edges
         a = b.cells[:, e[:, 0]]
         c = b.cells[:, e[:, 1]]
-        lo, hi = np.minimum(a, c), np.maximum(a, c)
-        keys.append((lo * n + hi).ravel())
-        if b.info.quadratic:
-            mids.append(b.cells[:, e[:, 2]].ravel())
-        else:
-            mids.append(np.full(a.size, -1, np.int64))
-        sizes.append(a.shape)
-        owners.append(np.repeat(np.arange(len(b), dtype=np.int64) + mesh.block_offsets[bi],
-                                e.shape[0]))
+        lo = np.minimum(a, c)
+        np.maximum(a, c, out=a)
+        del c
+        lo *= n
+        lo += a
+        keys.append(lo.ravel())
+        widths.append(e.shape[0])
+        lengths.append(len(b))
     if not keys:
         z = np.zeros(0, np.int64)
         return Edges(np.zeros((0, 2), np.int64), z, np.zeros(0), ())
-    key = np.concatenate(keys)
-    mid = np.concatenate(mids)
-    order, starts, inverse = _group_sorted((key,), int(n) * int(n))
-    first = order[starts]
-    ukey = key[first]
-    nodes = np.column_stack([ukey // n, ukey % n])
-    umid = mid[first]
-    length = edge_lengths(mesh.points, nodes[:, 0], nodes[:, 1], umid)
+    key = keys[0] if len(keys) == 1 else np.concatenate(keys)
+    del keys
+    order, starts, inverse, ukey = _sorted_groups(key, int(n) * int(n))
+    del key
+    nodes = np.empty((len(ukey), 2), np.int64)
+    np.floor_divide(ukey, n, out=nodes[:, 0])
+    np.remainder(ukey, n, out=nodes[:, 1])
+    del ukey
+    umid = np.full(len(starts), -1, np.int64)
     cell_edges, pos = [], 0
-    for shape in sizes:
-        size = shape[0] * shape[1]
-        cell_edges.append(inverse[pos:pos + size].reshape(shape))
-        pos += size
-    incidence = np.concatenate(owners)[order]
+    for b, w, m in zip(mesh.blocks, widths, lengths):
+        ce = inverse[pos:pos + w * m].reshape(m, w)
+        cell_edges.append(ce)
+        if b.info.quadratic:
+            umid[ce] = b.cells[:, b.info.edges[:, 2]]
+        pos += w * m
+    length = edge_lengths(mesh.points, nodes[:, 0], nodes[:, 1], umid)
+    incidence = _row_owner(order, widths, lengths, mesh.block_offsets[:-1])
     return Edges(nodes, umid, length, tuple(cell_edges), incidence, starts)
 
 
@@ -185,49 +243,118 @@ class Faces:
         return self.nodes.shape[0]
 
 
-def _local_faces(mesh: Mesh):
-    """Yield (global cell ids, (m*f, 4) face corners) per block and face size."""
+def _face_tables(mesh: Mesh, size: int):
+    """Per block: (block index, (f, size) local corner indices of its faces of ``size``
+    corners); blocks without such faces are skipped."""
+    out = []
     for bi, b in enumerate(mesh.blocks):
         faces = b.info.faces if b.info.dim == 3 else ()
-        for size in (3, 4):
-            sel = [f for f in faces if len(f) == size]
-            if not sel:
-                continue
-            idx = np.array(sel, dtype=np.int64)
-            corners = b.cells[:, idx]  # (m, f, size)
-            m, f = corners.shape[:2]
-            corners = corners.reshape(m * f, size)
-            if size == 3:
-                corners = np.column_stack([corners, np.full(m * f, -1, np.int64)])
-            cid = np.repeat(np.arange(m, dtype=np.int64) + mesh.block_offsets[bi], f)
-            yield cid, corners
+        sel = [f for f in faces if len(f) == size]
+        if sel:
+            out.append((bi, np.array(sel, dtype=np.int64)))
+    return out
 
 
-def build_faces(mesh: Mesh) -> Faces:
-    """Unique faces of a volume mesh with the cells on each side."""
-    parts = list(_local_faces(mesh))
-    if not parts:
-        z = np.zeros(0, np.int64)
-        return Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), z)
-    cid = np.concatenate([p[0] for p in parts])
-    corners = np.concatenate([p[1] for p in parts])
-    s = np.sort(corners, axis=1)  # -1 (triangle pad) sorts first
-    n = np.int64(mesh.n_points + 1)
-    if not (s[:, 0] >= 0).any() and 3 * int(n).bit_length() <= 62:
-        # tetrahedra and wedges/pyramids' triangles only: one packed key
-        key = (s[:, 1] * n + s[:, 2]) * n + s[:, 3]
-        order, starts, inverse = _group_sorted((key,), int(n) ** 3)
+def _tri_keys(mesh: Mesh, tables, edges: Edges | None):
+    """Keys identifying triangular faces by their node set, and the largest key.
+
+    With the mesh's edges at hand and room in 63 bits for key and row number, a
+    triangle is keyed by (id of the edge joining its two smallest nodes, largest
+    node), so the packed sort applies; otherwise by its three sorted nodes.
+    """
+    n = int(mesh.n_points + 1)
+    rows = sum(len(mesh.blocks[bi]) * len(t) for bi, t in tables)
+    pos_bits = max(int(rows - 1).bit_length(), 1)
+    by_edge = (edges is not None and len(edges) > 0 and
+               int(len(edges)).bit_length() + n.bit_length() + pos_bits <= 63)
+    if not by_edge and 3 * n.bit_length() > 63:
+        return None, None
+    keys = []
+    for bi, t in tables:
+        b = mesh.blocks[bi]
+        g = b.cells[:, t]  # (m, f, 3)
+        if by_edge:
+            # the edge joining the two smallest nodes is the one opposite the largest
+            x, y, z = g[..., 0], g[..., 1], g[..., 2]
+            imax = np.where(x >= y, np.where(x >= z, 0, 2), np.where(y >= z, 1, 2))
+            table = np.full((b.info.n_corners, b.info.n_corners), -1, np.int64)
+            ed = b.info.edges
+            table[ed[:, 0], ed[:, 1]] = np.arange(len(ed))
+            table[ed[:, 1], ed[:, 0]] = np.arange(len(ed))
+            opposite = np.stack([table[t[:, 1], t[:, 2]], table[t[:, 2], t[:, 0]],
+                                 table[t[:, 0], t[:, 1]]], axis=1)  # (f, 3)
+            le = opposite[np.arange(len(t)), imax]
+            k = np.take_along_axis(edges.cell_edges[bi], le, axis=1)
+            k *= n
+            k += np.maximum(np.maximum(x, y), z)
+        else:
+            g.sort(axis=2)
+            k = g[..., 0] * n
+            k += g[..., 1]
+            k *= n
+            k += g[..., 2]
+        keys.append(k.ravel())
+    key = keys[0] if len(keys) == 1 else np.concatenate(keys)
+    return key, (len(edges) * n if by_edge else n ** 3)
+
+
+def _group_faces(mesh: Mesh, size: int, edges: Edges | None):
+    """Unique faces of ``size`` corners: (corners (k, 4), cells (k, 2), count (k,))."""
+    tables = _face_tables(mesh, size)
+    if not tables:
+        return None
+    widths = [len(t) for _, t in tables]
+    lengths = [len(mesh.blocks[bi]) for bi, _ in tables]
+    offsets = np.array([mesh.block_offsets[bi] for bi, _ in tables], np.int64)
+    key = None
+    if size == 3:
+        key, key_max = _tri_keys(mesh, tables, edges)
+    if key is not None:
+        order, starts, inverse, _ = _sorted_groups(key, key_max)
+        del key, inverse
     else:
-        k_hi = (s[:, 1] * n + s[:, 2])
-        k_lo = (s[:, 0] + 1) * n + s[:, 3]
-        order, starts, inverse = _group_sorted((k_lo, k_hi))
+        n = np.int64(mesh.n_points + 1)
+        s = np.concatenate([np.sort(mesh.blocks[bi].cells[:, t], axis=2).reshape(-1, size)
+                            for bi, t in tables])
+        if size == 3:
+            order, starts, _ = _group_sorted((s[:, 2], s[:, 1] * n + s[:, 0]))
+        else:
+            order, starts, _ = _group_sorted(((s[:, 0] + 1) * n + s[:, 3], s[:, 1] * n + s[:, 2]))
+        del s
     count = np.diff(np.append(starts, len(order)))
     first = order[starts]
     cells = np.full((len(starts), 2), -1, np.int64)
-    cells[:, 0] = cid[first]
+    cells[:, 0] = _row_owner(first, widths, lengths, offsets)
     two = count >= 2
-    cells[two, 1] = cid[order[starts[two] + 1]]
-    return Faces(corners[first], cells, count.astype(np.int64))
+    cells[two, 1] = _row_owner(order[starts[two] + 1], widths, lengths, offsets)
+    # outward corners of the first cell of every face, from its row
+    corners = np.full((len(starts), 4), -1, np.int64)
+    bounds = np.cumsum([0] + [w * m for w, m in zip(widths, lengths)])
+    blk = np.searchsorted(bounds, first, side="right") - 1
+    for i, (bi, t) in enumerate(tables):
+        sel = np.flatnonzero(blk == i)
+        r = first[sel] - bounds[i]
+        cl = mesh.blocks[bi].cells
+        flat = (r // widths[i] * cl.shape[1])[:, None] + t[r % widths[i]]
+        corners[sel, :size] = np.take(cl.reshape(-1), flat)
+    return corners, cells, count.astype(np.int64)
+
+
+def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
+    """Unique faces of a volume mesh with the cells on each side (triangles first,
+    then quadrilaterals; a triangle never equals a quadrilateral).
+
+    edges : the mesh's :func:`build_edges`, if already built; it lets triangles be
+    keyed by (edge, node) in few enough bits for the packed sort.
+    """
+    parts = [p for p in (_group_faces(mesh, 3, edges), _group_faces(mesh, 4, edges))
+             if p is not None]
+    if not parts:
+        z = np.zeros(0, np.int64)
+        return Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), z)
+    if len(parts) == 1:
+        return Faces(*parts[0])
+    return Faces(*(np.concatenate([p[k] for p in parts]) for k in range(3)))
 
 
 def cell_volumes(mesh: Mesh) -> np.ndarray:
@@ -426,7 +553,7 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
         shortest incident edges are duplicates (default 1e-6).
     """
     edges = build_edges(mesh)
-    faces = build_faces(mesh) if mesh.dim == 3 else Faces(
+    faces = build_faces(mesh, edges) if mesh.dim == 3 else Faces(
         np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), np.zeros(0, np.int64))
     n_comp, comp = _components(mesh, faces, edges)
     comp = comp.astype(np.int64)

@@ -97,3 +97,80 @@ def test_edges_from_cells_reduces_over_sharing_cells():
     emax = topo.edges.from_cells(vals, np.maximum)
     shared = np.isin(topo.edges.nodes, np.intersect1d(*mesh.blocks[0].cells)).all(axis=1)
     assert (emax[shared] == 5.0).all() and shared.sum() == 4
+
+
+# ---------------------------------------------------------------------------
+# the sorted, packed fast paths against plain Python sets on random connectivity
+
+
+def _random_mesh(seed: int, n_nodes: int = 40) -> Mesh:
+    """Cells of all four kinds on a small node pool: many shared and non-manifold
+    edges and faces (the check is combinatorial, geometry does not matter)."""
+    rng = np.random.default_rng(seed)
+    pts = rng.random((n_nodes, 3))
+    blocks = []
+    for kind, k, m in (("tetra", 4, 60), ("pyramid", 5, 15), ("wedge", 6, 15),
+                       ("hexahedron", 8, 10)):
+        cells = np.array([rng.choice(n_nodes, k, replace=False) for _ in range(m)])
+        # repeat a third of the cells: faces shared by two identical cells
+        cells = np.vstack([cells, cells[: m // 3]])
+        blocks.append(CellBlock(kind, cells, np.ones(len(cells), np.int64)))
+    return Mesh(pts, tuple(blocks))
+
+
+def _reference_edges(mesh: Mesh):
+    cells_of = {}
+    for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
+        for i, cell in enumerate(b.cells):
+            for a, c, _ in b.info.edges:
+                cells_of.setdefault(tuple(sorted((int(cell[a]), int(cell[c])))), []).append(off + i)
+    return cells_of
+
+
+def _reference_faces(mesh: Mesh):
+    seen = {}
+    for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
+        for i, cell in enumerate(b.cells):
+            for f in b.info.faces:
+                corners = tuple(int(cell[j]) for j in f)
+                seen.setdefault(tuple(sorted(corners)), []).append((off + i, corners))
+    return seen
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_edges_equal_a_set_of_node_pairs(seed):
+    mesh = _random_mesh(seed)
+    edges = build_topology(mesh).edges
+    ref = _reference_edges(mesh)
+    got = {tuple(map(int, e)) for e in edges.nodes}
+    assert got == set(ref)
+    for e in range(len(edges)):  # incidence: the cells of each edge, each local copy once
+        cells = edges.incidence[edges.incidence_starts[e]:(edges.incidence_starts[e + 1]
+                                if e + 1 < len(edges) else len(edges.incidence))]
+        assert sorted(cells.tolist()) == sorted(ref[tuple(map(int, edges.nodes[e]))])
+    for b, ce in zip(mesh.blocks, edges.cell_edges):  # each local edge maps to its pair
+        loc = b.info.edges
+        pairs = np.sort(np.stack([b.cells[:, loc[:, 0]], b.cells[:, loc[:, 1]]], -1), -1)
+        assert (edges.nodes[ce] == pairs).all()
+    assert edges.length == pytest.approx(np.linalg.norm(
+        mesh.points[edges.nodes[:, 0]] - mesh.points[edges.nodes[:, 1]], axis=1), rel=1e-15)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("path", ["edge_keys", "node_keys", "lexsort"])
+def test_faces_equal_a_dictionary_of_node_sets(seed, path, monkeypatch):
+    from meshcheck import topology as T
+
+    mesh = _random_mesh(seed)
+    edges = T.build_edges(mesh)
+    if path == "lexsort":
+        monkeypatch.setattr(T, "_tri_keys", lambda *a: (None, None))
+    faces = T.build_faces(mesh, edges if path == "edge_keys" else None)
+    ref = _reference_faces(mesh)
+    assert len(faces) == len(ref)
+    for corners, cells, count in zip(faces.nodes, faces.cells, faces.count):
+        c = tuple(int(x) for x in corners if x >= 0)
+        occ = ref[tuple(sorted(c))]
+        assert count == len(occ)
+        assert (cells[0], c) == occ[0]  # first occurrence, its own outward corners
+        assert cells[1] == (occ[1][0] if len(occ) > 1 else -1)
