@@ -12,7 +12,9 @@ and with VTK's own reader.
 from __future__ import annotations
 
 import base64
+import os
 import zlib
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from xml.sax.saxutils import quoteattr
 
@@ -27,13 +29,17 @@ VTK_CELL_TYPES = {"triangle": 5, "quad": 9, "tetra": 10, "hexahedron": 12, "wedg
 _VTK_TYPE = {np.dtype(np.int8): "Int8", np.dtype(np.uint8): "UInt8",
              np.dtype(np.int32): "Int32", np.dtype(np.int64): "Int64",
              np.dtype(np.float32): "Float32", np.dtype(np.float64): "Float64"}
-_BLOCK = 1 << 22  # bytes per compressed block
+_BLOCK = 1 << 21  # bytes per compressed block (blocks are compressed in parallel)
 
 
 def _encode(arr: np.ndarray, level: int) -> str:
     raw = np.ascontiguousarray(arr).astype(arr.dtype.newbyteorder("<"), copy=False).tobytes()
     blocks = [raw[i:i + _BLOCK] for i in range(0, len(raw), _BLOCK)] or [b""]
-    comp = [zlib.compress(b, level) for b in blocks]
+    if len(blocks) > 1:  # zlib releases the GIL: compress the blocks on all cores
+        with ThreadPoolExecutor(max_workers=min(len(blocks), os.cpu_count() or 1)) as pool:
+            comp = list(pool.map(lambda b: zlib.compress(b, level), blocks))
+    else:
+        comp = [zlib.compress(b, level) for b in blocks]
     last = len(blocks[-1]) if blocks else 0
     header = np.array([len(blocks), _BLOCK if len(blocks) > 1 else last, last]
                       + [len(c) for c in comp], dtype="<u8")

@@ -43,7 +43,7 @@ def test_vtk_reader_reads_it(tmp_path):
 
 
 def test_multi_block_compression(tmp_path):
-    # arrays larger than one compressed block (4 MiB)
+    # arrays larger than one compressed block (2 MiB; blocks compressed in parallel)
     n = 700_000
     pts = np.random.default_rng(1).random((n, 3))
     cells = np.arange(n - n % 4).reshape(-1, 4)
