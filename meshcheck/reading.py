@@ -203,8 +203,8 @@ def mesh_from_raw(raw: RawMesh, source: str = "", units: str | None = None,
 
 def raw_from_meshio(mesh, fmt: str = "meshio") -> RawMesh:
     """RawMesh of an in-memory ``meshio.Mesh`` (region tags from the usual cell-data keys)."""
-    keys = ("gmsh:physical", "medit:ref", "nastran:ref", "CellEntityIds", "cell_tags", "region",
-            "regions", "material", "ele_tag", "flac3d:zone")
+    from .formats.via_meshio import cell_data_region, field_data_names
+
     points = np.asarray(mesh.points, dtype=np.float64)
     if points.ndim == 2 and points.shape[1] == 2:
         points = np.column_stack([points, np.zeros(len(points))])
@@ -215,24 +215,14 @@ def raw_from_meshio(mesh, fmt: str = "meshio") -> RawMesh:
         if cb.type in ("vertex", "line", "line3", "line4"):
             ignored[cb.type] = ignored.get(cb.type, 0) + nc
             continue
-        region = np.zeros(nc, np.int64)
-        for key in keys:
-            vals = mesh.cell_data.get(key)
-            if vals is not None and len(vals) == len(mesh.cells):
-                arr = np.asarray(vals[i]).reshape(-1)
-                if arr.shape[0] == nc and np.issubdtype(arr.dtype, np.number):
-                    region = arr.astype(np.int64)
-                    break
-        else:
+        region = cell_data_region(mesh.cell_data, i, len(mesh.cells), nc)
+        if region is None:
+            region = np.zeros(nc, np.int64)
             for k, (name, sets) in enumerate(sorted(mesh.cell_sets.items())):
                 if i < len(sets) and sets[i] is not None and len(sets[i]):
                     region[np.asarray(sets[i], dtype=np.int64)] = k + 1
         blocks.append(RawBlock(cb.type, data.reshape(nc, -1).astype(np.int64), region))
-    names = {}
-    for name, value in (mesh.field_data or {}).items():
-        arr = np.asarray(value).reshape(-1)
-        if arr.size and np.issubdtype(arr.dtype, np.integer):
-            names[int(arr[0])] = clean_name(str(name))
+    names = field_data_names(mesh.field_data)
     if not names and mesh.cell_sets:
         names = {k + 1: clean_name(str(nm)) for k, nm in enumerate(sorted(mesh.cell_sets))}
     return RawMesh(points=points, blocks=tuple(blocks), region_names=names, format=fmt,

@@ -35,10 +35,35 @@ OPTIONAL_PACKAGES = {"exodus": ("netCDF4", "Exodus II"), "med": ("h5py", "MED"),
 _NAMES = {"gmsh": "gmsh MSH", "vtu": "VTK XML", "vtk": "legacy VTK", "exodus": "Exodus II",
           "med": "MED", "cgns": "CGNS", "xdmf": "XDMF", "medit": "Medit"}
 #: cell-data keys that carry region tags, in order of preference
-_REGION_KEYS = ("gmsh:physical", "medit:ref", "CellEntityIds", "cell_tags", "region", "regions",
-                "material", "ele_tag", "flac3d:zone")
+_REGION_KEYS = ("gmsh:physical", "medit:ref", "nastran:ref", "CellEntityIds", "cell_tags",
+                "region", "regions", "material", "ele_tag", "flac3d:zone")
 #: a compressed VTU may expand this much (zlib's largest ratio is about 1032:1)
 _ZLIB_RATIO = 1100
+
+
+def cell_data_region(cell_data: dict, block: int, n_blocks: int, n: int) -> np.ndarray | None:
+    """(n,) int64 region tags of cell block ``block`` from a meshio ``cell_data`` dict:
+    the first of the usual region keys holding one number per cell; None if none does."""
+    for key in _REGION_KEYS:
+        values = (cell_data or {}).get(key)
+        if values is not None and len(values) == n_blocks:
+            arr = np.asarray(values[block]).reshape(-1)
+            if arr.shape[0] == n and np.issubdtype(arr.dtype, np.number):
+                return arr.astype(np.int64)
+    return None
+
+
+def field_data_names(field_data: dict, dim: int | None = None) -> dict[int, str]:
+    """Region tag -> name from meshio ``field_data`` ({name: [tag, dim]}); entries of
+    another dimension than ``dim`` (when given and recorded) are skipped."""
+    names = {}
+    for name, value in (field_data or {}).items():
+        arr = np.asarray(value).reshape(-1)
+        if arr.size and np.issubdtype(arr.dtype, np.integer):
+            if dim is not None and arr.size >= 2 and int(arr[1]) != dim:
+                continue
+            names[int(arr[0])] = clean_name(str(name))
+    return names
 
 
 def _declared_guard(path: Path, kind: str, size: int) -> dict:
@@ -359,22 +384,10 @@ def _to_raw(path: Path, source: Path, raw, kind: str, detail: str, declared: dic
             region = np.array([phys.get((info.dim, int(t)), 0) for t in tags],
                               dtype=np.int64)[inv.reshape(-1)]
         else:
-            region = np.zeros(n, np.int64)
-            for key in _REGION_KEYS:
-                values = raw.cell_data.get(key)
-                if values is not None and len(values) == len(raw.cells):
-                    arr = np.asarray(values[i]).reshape(-1)
-                    if arr.shape[0] == n and np.issubdtype(arr.dtype, np.number):
-                        region = arr.astype(np.int64)
-                        break
+            region = cell_data_region(raw.cell_data, i, len(raw.cells), n)
+            region = np.zeros(n, np.int64) if region is None else region
         blocks.append(RawBlock(cb.type, data.astype(np.int64), region))
-    names = {}
-    for name, value in (raw.field_data or {}).items():
-        arr = np.asarray(value).reshape(-1)
-        if arr.size and np.issubdtype(arr.dtype, np.integer):
-            if arr.size >= 2 and int(arr[1]) != dim_model:
-                continue
-            names[int(arr[0])] = clean_name(str(name))
+    names = field_data_names(raw.field_data, dim_model)
     total = sum(len(c.data) for c in raw.cells)
     checks = list(declared.get("_lines", []))
     for key, got in (("nodes", len(points)), ("points", len(points)), ("elements", total),
