@@ -6,7 +6,9 @@ k*h; the edge's highest usable frequency is f = c * (kh)_max / (2 pi h).
 A cell is usable up to the lowest limit of its edges; a region and the mesh
 up to the lowest limit of their cells.  A sweep is advised by binning these
 limits (sorted once per order), so its cost does not grow with the number of
-frequencies.
+frequencies.  By default (``AdviceSettings.correction_3d``) the model sees each
+edge as ``a * h`` with a 3D correction factor a fitted to real solves
+(:data:`SIZE_FACTOR_TABLE`, :func:`size_correction`, docs/validation.md).
 """
 from __future__ import annotations
 
@@ -39,7 +41,9 @@ class AdviceSettings:
     coarsen_factor : cells that could be at least this many times larger are
         reported as coarsening candidates.
     correction_3d : apply the 3D correction of the 1D model fitted to real solves
-        (:data:`SIZE_FACTOR_TABLE`, docs/validation.md); False = the plain 1D model.
+        (:data:`SIZE_FACTOR_TABLE`, docs/validation.md), on by default: tetrahedra,
+        wedges and hexahedra are assessed as if their edges were ``a * length`` long;
+        False = the plain 1D model (every factor 1).
     """
 
     target: float = 0.01
@@ -47,7 +51,7 @@ class AdviceSettings:
     order: int | None = None
     distance: float | None = None
     coarsen_factor: float = 2.0
-    correction_3d: bool = False
+    correction_3d: bool = True
 
     def __post_init__(self):
         if not 1e-8 <= self.target <= 0.5:
@@ -320,9 +324,9 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     cell_mach : optional (n_cells, 3) uniform mean-flow Mach vector of every cell; an
         edge's wavenumber is multiplied by the worst-case projection factor of
         :func:`meshcheck.flow.edge_flow_factor` (its speed divided by it).
-    With ``settings.correction_3d`` the model sees every edge as ``a * length``
-    (:func:`size_correction`); ``cell_size`` stays the true longest edge and
-    ``target_size`` is a true edge length.
+    With ``settings.correction_3d`` (the default) the model sees every edge as
+    ``a * length`` (:func:`size_correction`); ``cell_size`` stays the true longest
+    edge and ``target_size`` is a true edge length.
     """
     if not fmax > 0:
         raise SettingsError(f"upper frequency {fmax} Hz must be positive")

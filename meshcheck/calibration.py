@@ -383,20 +383,31 @@ def submesh(mesh: Mesh, topo, n_cells: int, seed_cell: int = 0) -> Mesh:
     return Mesh(mesh.points[used], out, dict(mesh.region_names), mesh.dim, mesh.source, mesh.unit)
 
 
-def to_ngsolve(mesh: Mesh):
-    """NGSolve mesh of the corner nodes of ``mesh`` (straight-sided cells)."""
+def to_ngsolve(mesh: Mesh, topo=None):
+    """NGSolve mesh of the corner nodes of ``mesh`` (straight-sided cells); volume
+    element i is meshcheck cell i.
+
+    3D: the mesh of :func:`meshcheck.verify.solver_mesh` (one builder for both uses; its
+    corner maps orient every cell positively in NGSolve, and its boundary faces, given
+    as surface elements, add no unknowns).  2D (planar calibration meshes; verification
+    is 3D only): triangles and quadrilaterals in the plane, whose meshio/VTK corner
+    order is NGSolve's up to a cyclic shift, which keeps the orientation.
+    topo : the mesh's :class:`~meshcheck.topology.Topology` (3D; built when None).
+    """
+    if mesh.dim == 3:
+        from .topology import build_topology
+        from .verify import solver_mesh
+
+        return solver_mesh(mesh, topo if topo is not None else build_topology(mesh)).ngmesh
     import netgen.meshing as nm
     import ngsolve as ngs
 
-    m = nm.Mesh(dim=mesh.dim)
-    m.AddPoints(np.ascontiguousarray(mesh.points if mesh.dim == 3 else mesh.points[:, :2]))
-    if mesh.dim == 3:
-        m.Add(nm.FaceDescriptor(bc=1, domin=1, surfnr=1))
-    else:
-        m.Add(nm.FaceDescriptor(bc=1, domin=1, surfnr=1))
+    m = nm.Mesh(dim=2)
+    m.AddPoints(np.ascontiguousarray(mesh.points[:, :2]))
+    m.Add(nm.FaceDescriptor(bc=1, domin=1, surfnr=1))
     for b in mesh.blocks:
         c = np.ascontiguousarray(b.cells[:, :b.info.n_corners].astype(np.int32))
-        m.AddElements(dim=mesh.dim, index=1, data=c, base=0)
+        m.AddElements(dim=2, index=1, data=c, base=0)
     return ngs.Mesh(m)
 
 
@@ -697,7 +708,7 @@ def measure(mesh: Mesh, cell_order, k: float | None = None, condensed: bool = Tr
     if k is None:
         h = float(np.median(topo.edges.length)) if len(topo.edges) else 1.0
         k = 1.0 / h
-    ngm = to_ngsolve(mesh)
+    ngm = to_ngsolve(mesh, topo)
     A, inc, t_asm = helmholtz_matrix(ngm, q, k, condensed)
     if A.shape[0] != s.ndof or A.nnz != s.nnz:
         raise SettingsError(f"assembled system ({A.shape[0]} unknowns, {A.nnz} non-zeros) "

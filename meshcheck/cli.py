@@ -195,7 +195,8 @@ def _stages(quiet: bool):
 
 def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, max_order,
          speed, temperature, region_speed, distance, out: Optional[Path], quiet: bool,
-         job: Optional[Path] = None, allow_outside: bool = False) -> int:
+         job: Optional[Path] = None, allow_outside: bool = False,
+         correction_3d: bool = True) -> int:
     from .advice import AdviceSettings
     from .job import load_job
     from .pipeline import AuditSettings, audit
@@ -216,7 +217,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
                          fmax_hint=float(np.max(f)) if len(f) else None,
                          allow_outside=allow_outside)
         dist = None if distance is None else distance * UNIT_FACTORS[mesh.unit]
-        adv = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist)
+        adv = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist,
+                             correction_3d=correction_3d)
         settings = AuditSettings(frequencies=tuple(f), advice=adv, temperature=temperature,
                                  speed=speed, region_speeds=region_speeds, job=job_spec)
         res = audit(mesh, settings, progress=step)
@@ -248,6 +250,11 @@ MESH_ARG = typer.Argument(..., help="Volume mesh file (.msh, .vtu, .vtk, .bdf/.n
                           exists=False, dir_okay=False)
 
 
+NO_3D_CORRECTION = typer.Option(False, "--no-3d-correction", help="Use the plain 1D "
+                                 "dispersion model, without the 3D correction fitted to real "
+                                 "solves (docs/validation.md).")
+
+
 @app.command()
 def audit(
     mesh: Path = MESH_ARG,
@@ -276,12 +283,13 @@ def audit(
     debug: bool = typer.Option(False, help="Show tracebacks."),
     allow_outside: bool = typer.Option(False, help="Let INCLUDE statements of the mesh file "
                                        "name files outside the mesh's folder tree."),
+    no_3d_correction: bool = NO_3D_CORRECTION,
 ):
     """Audit MESH: validity, quality, usable frequency per order, refine/coarsen advice."""
     out = out if out is not None else Path.cwd() / f"{mesh.stem}-audit"
     raise typer.Exit(_run(mesh, units, fmin, fmax, step, bands, freqs, target, order, max_order,
                           speed, temperature, region_speed, distance, out, quiet, job,
-                          allow_outside=allow_outside))
+                          allow_outside=allow_outside, correction_3d=not no_3d_correction))
 
 
 @app.command()
@@ -480,6 +488,7 @@ def verify(
     distance: Optional[float] = typer.Option(None, help="Propagation distance L in the mesh's unit."),
     point_source: bool = typer.Option(True, help="Also solve the point-source problem."),
     compare: bool = typer.Option(True, help="Also solve at uniform orders p and p-1."),
+    no_3d_correction: bool = NO_3D_CORRECTION,
     out: Optional[Path] = typer.Option(None, help="Folder for the JSON (default: <mesh>-audit)."),
     quiet: bool = typer.Option(False, help="No terminal output (exit code only)."),
     debug: bool = typer.Option(False, help="Show tracebacks."),
@@ -504,7 +513,8 @@ def verify(
         raise typer.Exit(2)
     m = read_mesh(mesh, units.value if units is not None else None)
     dist = None if distance is None else distance * UNIT_FACTORS[m.unit]
-    adv_s = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist)
+    adv_s = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist,
+                           correction_3d=not no_3d_correction)
     settings = AuditSettings(frequencies=tuple(frequency), advice=adv_s, temperature=temperature,
                              speed=speed)
     res = audit(m, settings)
@@ -535,8 +545,10 @@ def verify(
     path = folder / f"{mesh.stem}.verify.json"
     doc = {"schema": "meshcheck-verify", "schema_version": 1, "mesh": str(mesh), "unit": m.unit,
            "target_relative_error": target, "max_order": max_order, "fixed_order": order,
-           "signed_off_hz": res.signed_off, "model": "1D dispersion with the 3D correction "
-           "(docs/validation.md)", "frequencies": [ver.verification_dict(v, scale) for v in runs]}
+           "signed_off_hz": res.signed_off,
+           "model": ("1D dispersion without the 3D correction" if no_3d_correction else
+                     "1D dispersion with the 3D correction (docs/validation.md)"),
+           "frequencies": [ver.verification_dict(v, scale) for v in runs]}
     path.write_text(json.dumps(doc, indent=1, allow_nan=False), encoding="utf-8")
     console.print(f"wrote json: {escape(str(path))}")
     raise typer.Exit(0 if all(v.meets_target for v in runs) else 1)

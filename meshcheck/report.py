@@ -20,7 +20,7 @@ from . import vtkxml
 from .units import UNIT_FACTORS
 
 __all__ = ["SCHEMA", "SCHEMA_VERSION", "CAUTION", "to_dict", "write_json", "write_markdown",
-           "write_vtu", "write_all", "state", "METRIC_BAD"]
+           "write_vtu", "write_all", "state", "METRIC_BAD", "CORRECTION_3D"]
 
 SCHEMA = "meshcheck-audit"
 SCHEMA_VERSION = 1
@@ -31,6 +31,12 @@ MODEL = ("Exact 1D discrete dispersion relation of order-p elements (Ihlenburg &
          "1995/1997; Ainsworth 2004) plus the best-approximation error, applied to every edge "
          "with a plane wave carried over the propagation distance L; a cell takes the limit "
          "of its worst edge.")
+#: the 3D correction of the 1D model (meshcheck.advice.size_correction), as reported
+CORRECTION_3D = {
+    True: "applied (fitted factors, docs/validation.md): every edge of a tetrahedron, wedge "
+          "or hexahedron is assessed as if it were a times its length, a fitted to NGSolve "
+          "solves per cell type, order and target; pyramids and 2D cells keep the plain model",
+    False: "not applied (plain 1D model)"}
 #: direction in which a quality metric gets worse
 METRIC_BAD = {"edge_ratio": "high", "aspect_ratio": "high", "radius_ratio": "high",
               "scaled_jacobian": "low", "min_dihedral": "low", "max_dihedral": "high",
@@ -132,7 +138,10 @@ def to_dict(res: AuditResult) -> dict:
                                        else [float(x) for x in topo.component_extent]),
             "propagation_distance_rule": ("given" if s.advice.distance is not None else
                                           "bounding-box diagonal of each connected fluid part"),
-            "length_unit": m.unit, "model": MODEL, "caution": CAUTION},
+            "length_unit": m.unit, "model": MODEL,
+            "correction_3d": bool(s.advice.correction_3d),
+            "correction_3d_note": CORRECTION_3D[bool(s.advice.correction_3d)],
+            "caution": CAUTION},
         "verdict": {"state": state(res), "ready": res.ready, "blocking": res.blocking,
                     "upper_frequency_hz": s.fmax, "signed_off_hz": res.signed_off,
                     "model_limit_hz": a.signed_off, "allowed_order": P,
@@ -286,7 +295,8 @@ def write_markdown(res: AuditResult, path: str | Path, data: dict | None = None,
                  f"(requested upper frequency {_fmt_hz(v['upper_frequency_hz'])} Hz).\n")
     L.append(f"Assumptions: sound speed {asm['sound_speed_m_s']:.1f} m/s "
              f"(air at {asm['temperature_c']:g} deg C unless overridden), length unit "
-             f"{unit}, propagation distance {asm['propagation_distance_rule']}.\n")
+             f"{unit}, propagation distance {asm['propagation_distance_rule']}, 3D correction "
+             f"of the 1D model {'applied' if asm['correction_3d'] else 'not applied'}.\n")
     L.append(f"> {CAUTION}\n")
     lc = v.get("limiting_cell")
     if lc:
@@ -355,6 +365,7 @@ def write_markdown(res: AuditResult, path: str | Path, data: dict | None = None,
     L.append("")
     L.append("## Method and assumptions\n")
     L.append(f"- Model: {MODEL}")
+    L.append(f"- 3D correction of the 1D model: {asm['correction_3d_note']}.")
     L.append(f"- Target: relative L2 error {asm['target_relative_error']:.3g}; mode: {mode}.")
     L.append(f"- Sound speed: {asm['sound_speed_m_s']:.2f} m/s; per-region overrides: "
              f"{asm['region_speeds_m_s'] or 'none'}.")

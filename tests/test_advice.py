@@ -4,11 +4,12 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
-from meshcheck.advice import AdviceSettings
-from meshcheck.dispersion import predicted_error
+from meshcheck.advice import SIZE_FACTOR_TABLE, AdviceSettings
+from meshcheck.dispersion import predicted_error, usable_kh
 from meshcheck.pipeline import AuditSettings, audit
 from meshcheck.reading import read_mesh
 from meshes import hex_box, tet_box
+from test_verify import _gmsh_tets
 
 C = 343.0
 
@@ -30,10 +31,74 @@ def test_uniform_grid_limit_is_the_1d_model(p, target):
     mesh = hex_box((n, 3, 3), size=size)
     h = 0.2
     L = np.linalg.norm(size)
-    res = audit(mesh, AuditSettings((100.0,), AdviceSettings(target=target, max_order=8),
-                                    speed=C))
+    # correction_3d=False: this checks the plain 1D model (the correction is tested below)
+    res = audit(mesh, AuditSettings((100.0,), AdviceSettings(target=target, max_order=8,
+                                                             correction_3d=False), speed=C))
     expected = C * _first_crossing(p, L / h, target) / (2 * np.pi * h)
     assert res.advice.mesh_limit[p - 1] == pytest.approx(expected, rel=2e-3)
+
+
+TET_MESHES = {"split bricks": lambda: tet_box((4, 3, 3), size=(1.2, 0.9, 0.6)),
+              "gmsh unstructured": _gmsh_tets}
+_TET_AUDITS = {}
+
+
+def _tet_audit(name: str):
+    """(mesh, audit with the default AdviceSettings, plain-model audit), computed once."""
+    if name not in _TET_AUDITS:
+        mesh = TET_MESHES[name]()
+        _TET_AUDITS[name] = (mesh, audit(mesh, AuditSettings((100.0,), speed=C)),
+                             audit(mesh, AuditSettings((100.0,), AdviceSettings(
+                                 correction_3d=False), speed=C)))
+    return _TET_AUDITS[name]
+
+
+def _longest_edges(mesh):
+    """(n,) length and (n, 3) unit direction of each tetrahedron's longest edge."""
+    t = mesh.blocks[0].cells
+    pairs = np.array([(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)])
+    vec = mesh.points[t[:, pairs[:, 1]]] - mesh.points[t[:, pairs[:, 0]]]
+    length = np.linalg.norm(vec, axis=2)
+    h = length.max(axis=1)
+    return h, vec[np.arange(len(t)), np.argmax(length, axis=1)] / h[:, None]
+
+
+def test_default_settings_apply_the_3d_correction():
+    assert AdviceSettings().correction_3d is True
+    assert AuditSettings((100.0,)).advice.correction_3d is True
+
+
+@pytest.mark.parametrize("p", [1, 2, 4, 8])
+@pytest.mark.parametrize("name", list(TET_MESHES))
+def test_default_limit_is_the_1d_model_on_edges_a_times_shorter(name, p):
+    # docs/validation.md: with the correction (on by default) the 1D model sees an edge of
+    # length h as a*h long, f = c (kh)_max(p, L/(a h)) / (2 pi a h) = f_plain(a h), with
+    # a = a_free + w (a_aligned - a_free), w = max(0, s - s_free) / (1 - s_free) and s from
+    # the largest eigenvalue lam of mean(d d^T) over the cells' longest-edge directions d,
+    # s = (3 lam - 1) / 2.  Split bricks: every d is the brick diagonal (s = 1, a_aligned);
+    # gmsh tetrahedra point every way (s below s_free, a_free).  The longest edge of the
+    # mesh governs (one speed, one L = the box diagonal).  (kh)_max is the 1D model's
+    # first crossing as tabulated by meshcheck.dispersion.usable_kh (checked against root
+    # finding in test_dispersion.py); root finding here instead would also test the
+    # table's interpolation in L/h, which near a thin stop band (p >= 3) can be off by a
+    # few per cent (gmsh mesh, p = 8: 1.9 %, the jump of (kh)_max above 3 pi).
+    mesh, default, plain = _tet_audit(name)
+    h, d = _longest_edges(mesh)
+    lam = np.linalg.eigvalsh(d.T @ d / len(d))[-1]
+    s = float(np.clip((3.0 * lam - 1.0) / 2.0, 0.0, 1.0))
+    assert s > 0.99 if name == "split bricks" else s < 0.25
+    s_free, rows = SIZE_FACTOR_TABLE["tetra"]
+    a_free, a_aligned = rows[0.01][0][p - 1], rows[0.01][1][p - 1]
+    a = a_free + max(0.0, s - s_free) / (1.0 - s_free) * (a_aligned - a_free)
+    L = float(np.linalg.norm(np.ptp(mesh.points, axis=0)))
+    hmax = float(h.max())
+    kh = usable_kh(0.01, 12).max_kh
+    f_plain = C * float(kh(p, L / hmax)) / (2 * np.pi * hmax)
+    f_corr = C * float(kh(p, L / (a * hmax))) / (2 * np.pi * a * hmax)
+    assert plain.advice.mesh_limit[p - 1] == pytest.approx(f_plain, rel=1e-9)
+    assert default.advice.mesh_limit[p - 1] == pytest.approx(f_corr, rel=1e-9)
+    # a < 1 for tetrahedra: the 3D meshes did better than the 1D model, the limit rises
+    assert f_corr > 1.1 * f_plain
 
 
 def test_limits_monotone_in_order_and_advice_in_frequency():
@@ -121,7 +186,8 @@ def test_cell_limit_is_min_over_its_edges_with_two_media():
     cells = base.blocks[0].cells
     region = np.where(base.centroids[:, 0] < 0.5, 1, 2)
     mesh = Mesh(pts, (CellBlock("tetra", cells, region),), {1: "air", 2: "water"})
-    res = audit(mesh, AuditSettings((300.0,), AdviceSettings(max_order=8),
+    # correction_3d=False: the brute force below is the plain 1D model edge by edge
+    res = audit(mesh, AuditSettings((300.0,), AdviceSettings(max_order=8, correction_3d=False),
                                     region_speeds={"air": 343.0, "water": 1481.0}))
     topo = build_topology(mesh)
     c_cell = np.where(region == 1, 343.0, 1481.0)

@@ -9,10 +9,12 @@ from scipy import sparse
 
 from meshcheck.calibration import (Fit, MachineModel, default_machine_path, fit_machine,
                                    fit_power, fit_terms, load_machine, measure,
-                                   measure_factorisation, regressors, save_machine, submesh)
+                                   measure_factorisation, regressors, save_machine, submesh,
+                                   to_ngsolve)
 from meshcheck.errors import SettingsError
 from meshcheck.topology import build_topology
-from meshes import tet_box
+from meshes import hex_box, tet_box
+from test_cost import mixed_hex_wedge, pyramid_box, quad_square, tri_square, wedge_box
 
 RNG = np.random.default_rng(42)
 
@@ -133,6 +135,28 @@ def test_submesh_is_a_connected_piece():
     t = build_topology(sub)
     assert sub.n_cells == 100 and t.n_components == 1
     assert len(t.unused_nodes) == 0
+
+
+UNIT_MESHES = {"tetra": lambda: tet_box((2, 2, 2)), "hexahedron": lambda: hex_box((2, 2, 2)),
+               "wedge": wedge_box, "pyramid": pyramid_box, "hex+wedge": mixed_hex_wedge,
+               "triangle": tri_square, "quad": quad_square}
+
+
+@pytest.mark.parametrize("name", list(UNIT_MESHES))
+def test_ngsolve_mesh_is_positively_oriented(name):
+    # the meshes the calibration assembles on: every cell maps from NGSolve's reference
+    # element with det J > 0, so the measure where det J > 0 is the whole unit cube or
+    # square (a tetrahedron handed over in meshio/VTK order would be inverted: NGSolve's
+    # reference tetrahedron is (1,0,0) (0,1,0) (0,0,1) (0,0,0))
+    ng = pytest.importorskip("ngsolve")
+    mesh = UNIT_MESHES[name]()
+    M = to_ngsolve(mesh)
+    assert M.ne == mesh.n_cells
+    J = ng.specialcf.JacobianMatrix(mesh.dim)
+    # one inverted cell would remove 1/48 or more; NGSolve's pyramid map is singular at
+    # the apex, where its quadrature loses ~1e-10
+    assert ng.Integrate(ng.IfPos(ng.Det(J), 1.0, 0.0), M, order=2) == pytest.approx(1.0,
+                                                                                    rel=1e-9)
 
 
 def test_small_calibration_end_to_end():

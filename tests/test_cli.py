@@ -1,13 +1,14 @@
 """The command line: exit codes, one-line errors, reports written, input untouched."""
 import hashlib
 import json
+import math
 
 import meshio
 import numpy as np
 import pytest
 
 from meshcheck.cli import main
-from meshes import tet_box
+from meshes import hex_box, tet_box
 
 
 @pytest.fixture
@@ -99,3 +100,73 @@ def test_demo_runs(tmp_path, capsys):
     assert "signed off" in out
     for ext in ("json", "md", "vtu"):
         assert (tmp_path / "demo" / f"enclosure.audit.{ext}").is_file()
+
+
+# ---------------------------------------------------------- --no-3d-correction
+# Speed of sound in dry air at 20 deg C, the CLI's default: c = 331.3 sqrt(1 + T/273.15) m/s
+# (Kinsler, Frey, Coppens & Sanders, "Fundamentals of Acoustics", 4th ed. 2000, eq. 5.6.8).
+C_AIR_20 = 331.3 * math.sqrt(1.0 + 20.0 / 273.15)
+HEX_SIZE = (1.2, 0.6, 0.6)  # 6 x 3 x 3 cubes: every edge 0.2 m
+
+
+@pytest.fixture(scope="module")
+def hex_audits(tmp_path_factory):
+    """flag given -> (JSON report, exit code) of `meshcheck audit` on a uniform hex grid."""
+    folder = tmp_path_factory.mktemp("correction")
+    m = hex_box((6, 3, 3), size=HEX_SIZE)
+    path = folder / "hexes.vtu"
+    meshio.write(path, meshio.Mesh(m.points, [("hexahedron", m.blocks[0].cells)]))
+    out = {}
+    for flag in (False, True):
+        o = folder / ("plain" if flag else "default")
+        code = main(["audit", str(path), "-u", "m", "--fmax", "100", "--out", str(o), "--quiet"]
+                    + (["--no-3d-correction"] if flag else []))
+        out[flag] = json.loads((o / "hexes.audit.json").read_text()), code
+    return out
+
+
+@pytest.mark.parametrize("p", [1, 2])
+@pytest.mark.parametrize("flag", [False, True], ids=["default", "no-3d-correction"])
+def test_no_3d_correction_flag_gives_the_plain_1d_model(hex_audits, flag, p):
+    # f = c (kh)_max(p, L/(a h)) / (2 pi a h) (docs/validation.md), the 1D model's first
+    # crossing by root finding; a = 1 with the flag, the hexahedron row by default
+    from meshcheck.advice import SIZE_FACTOR_TABLE
+    from test_advice import _first_crossing
+
+    data, code = hex_audits[flag]
+    assert code == 0
+    assert data["assumptions"]["correction_3d"] is (not flag)
+    a = 1.0 if flag else SIZE_FACTOR_TABLE["hexahedron"][1][0.01][0][p - 1]
+    h, L = 0.2, float(np.linalg.norm(HEX_SIZE))
+    expected = C_AIR_20 * _first_crossing(p, L / (a * h), 0.01) / (2 * np.pi * a * h)
+    assert data["limits_hz"]["mesh"][str(p)] == pytest.approx(expected, rel=2e-3)
+
+
+@pytest.mark.parametrize("flag", [False, True], ids=["default", "no-3d-correction"])
+def test_verify_no_3d_correction_flag_reaches_the_advice(tmp_path, flag):
+    # hexahedra at p = 1 are seen a = 0.68 times their size (5 %): between the plain and the
+    # corrected limit of order 1 the default advises order 1, the plain model order 2
+    from meshcheck import verify as V
+    from meshcheck.advice import SIZE_FACTOR_TABLE
+    from test_advice import _first_crossing
+
+    if not V.ngsolve_available():
+        pytest.skip('NGSolve not installed: pip install "meshcheck[verify]"')
+    size = (0.6, 0.4, 0.4)
+    m = hex_box((3, 2, 2), size)
+    path = tmp_path / "box.vtu"
+    meshio.write(path, meshio.Mesh(m.points, [("hexahedron", m.blocks[0].cells)]))
+    a, h, L = SIZE_FACTOR_TABLE["hexahedron"][1][0.05][0][0], 0.2, float(np.linalg.norm(size))
+    plain = C_AIR_20 * _first_crossing(1, L / h, 0.05) / (2 * np.pi * h)
+    corrected = C_AIR_20 * _first_crossing(1, L / (a * h), 0.05) / (2 * np.pi * a * h)
+    assert corrected > 1.2 * plain
+    f = math.sqrt(plain * corrected)
+    code = main(["verify", str(path), "-u", "m", "-f", f"{f:.6g}", "--target", "0.05",
+                 "--no-compare", "--no-point-source", "--out", str(tmp_path / "o"), "--quiet"]
+                + (["--no-3d-correction"] if flag else []))
+    assert code == 0
+    doc = json.loads((tmp_path / "o" / "box.verify.json").read_text())
+    assert ("without" in doc["model"]) is flag
+    (solve,) = doc["frequencies"][0]["solves"]
+    assert (solve["order_min"], solve["order_max"]) == ((2, 2) if flag else (1, 1))
+    assert solve["max_error"] <= 0.05

@@ -166,7 +166,8 @@ def test_target_size_uses_the_worst_edge_factor_of_the_cell():
     mesh = hex_box((3, 3, 3))
     topo = build_topology(mesh)
     M, f = 0.4, 800.0
-    s = AdviceSettings(order=2, max_order=4)
+    # correction_3d=False: `expected` is the plain 1D model's size (the flow factor is checked)
+    s = AdviceSettings(order=2, max_order=4, correction_3d=False)
     adv = advise(mesh, topo, np.full(mesh.n_cells, C), f, s,
                  cell_mach=np.tile([0.0, M, 0.0], (mesh.n_cells, 1)))
     k = 2 * np.pi * f / C / (1 - M)          # every cell has an edge along the flow

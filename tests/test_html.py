@@ -35,7 +35,7 @@ from meshcheck.mesh import CellBlock, Mesh  # noqa: E402
 from meshcheck.pipeline import AuditSettings, audit, audit_file  # noqa: E402
 from meshcheck.report import to_dict  # noqa: E402
 from meshes import tet_box  # noqa: E402
-from test_figures import graded_tets  # noqa: E402
+from test_figures import GRADED_FMAX, graded_tets  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
@@ -64,7 +64,7 @@ def reports(tmp_path_factory):
                       AuditSettings(frequencies=tuple(band_centres(50.0, 2000.0, 3))), units="m")
     out["ready"] = _write(demo, folder, "ready")
     limited = audit(graded_tets(unit="mm"),
-                    AuditSettings(frequencies=tuple(np.linspace(50, 1500, 30))))
+                    AuditSettings(frequencies=tuple(np.linspace(50, GRADED_FMAX, 30))))
     out["limited"] = _write(limited, folder, "limited")
     out["blocked"] = _write(audit(_inverted(), AuditSettings(frequencies=(100.0, 200.0))),
                             folder, "blocked")
