@@ -507,7 +507,10 @@ class UsableKh:
 
         Linear interpolation of t_max in ln r on the uniform grid (identical
         to ``np.interp(np.log(ratio), log_r, t_max[p-1])``, done by direct
-        indexing: ~20 ms per million ratios).  Ratios below 1 are treated as
+        indexing: ~20 ms per million ratios), except on the grid segments where
+        t_max jumps down (a stop band meets the target somewhere inside): there
+        the segment's lower end value is used, since a straight line would be
+        optimistic past the jump (see :func:`_segments`).  Ratios below 1 are treated as
         1 (conservative: at least one element's phase error is counted);
         ratios above r_max = 1e7 as r_max (optimistic by at most a factor
         (r / r_max)^(1/(2p+1)); no 3D mesh has 1e7 elements along a line).
@@ -524,8 +527,8 @@ class UsableKh:
         np.clip(u, 0.0, n - 1, out=u)
         i = u.astype(np.intp)
         u -= i
-        step = np.append(np.diff(row), 0.0)
-        return row[i] + u * step[i]
+        base, step = _segments(row)
+        return base[i] + u * step[i]
 
     def max_size(self, p: int, k, L) -> np.ndarray:
         """Largest element size h (m) meeting the target for order p.
@@ -552,7 +555,46 @@ class UsableKh:
         frac = (x - u0) / (u1 - u0)  # in (0, 1] except below r = 1 and past r_max
         log_r = self.log_r[b - 1] + frac * (self.log_r[b] - self.log_r[b - 1])
         log_r = np.maximum(log_r, 0.0)  # kL <= t_max(1): h = L
-        return L * np.exp(-log_r)
+        h = L * np.exp(-log_r)
+        # on a jump segment max_kh holds the lower value: shrink h until k h <= max_kh(L/h)
+        for _ in range(60):
+            allowed = self.max_kh(p, L / h) / k
+            over = h > allowed * (1.0 + 1e-12)
+            if not over.any():
+                break
+            h = np.where(over, allowed, h)
+        return h
+
+
+@lru_cache(maxsize=64)
+def _segments_cached(key: bytes, n: int) -> tuple[np.ndarray, np.ndarray]:
+    row = np.frombuffer(key, dtype=np.float64, count=n)
+    drop = np.append(row[:-1] - row[1:], 0.0)
+    # a jump: a drop well above the smooth drops around it (median of 7 segments)
+    pad = np.pad(drop, 3, mode="edge")
+    window = np.lib.stride_tricks.sliding_window_view(pad, 7)
+    jump = drop > 2.0 * np.median(window, axis=1) + 1e-12 * row
+    base = row.copy()
+    step = -drop
+    base[jump] = row[np.flatnonzero(jump) + 1]
+    step[jump] = 0.0
+    base.setflags(write=False)
+    step.setflags(write=False)
+    return base, step
+
+
+def _segments(row: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(base, step) of the interpolation of a usable-kh row on its grid segments.
+
+    t_max(r) is smooth and non-increasing in ln r except where it jumps down
+    (the error curve touches the target near a stop band, so the first crossing
+    moves to a lower kh).  On a smooth segment the value is base + u step with
+    base = row[i], step = row[i+1] - row[i], u in [0, 1) the position in it; on a
+    segment whose drop is more than twice the median drop of the 7 segments
+    around it, the jump lies somewhere inside and base = row[i+1], step = 0: the
+    conservative value (t_max is non-increasing, so t_max(r) >= row[i+1] there).
+    """
+    return _segments_cached(np.ascontiguousarray(row, np.float64).tobytes(), row.size)
 
 
 def usable_kh(target: float, pmax: int = 12) -> UsableKh:
