@@ -235,6 +235,20 @@ def order_shares(res: AuditResult, data: dict | None = None) -> Figure:
     return fig
 
 
+def _cell_size_factors(res: AuditResult, cell: int, pmax: int) -> np.ndarray:
+    """(pmax,) 3D-correction factor a of one cell per order (the largest over its
+    edges, as for the advice's target size); ones for the plain 1D model."""
+    from .advice import size_correction
+
+    if not res.settings.advice.correction_3d:
+        return np.ones(pmax)
+    mesh, topo = res.mesh, res.topology
+    corr = size_correction(mesh, topo, pmax, res.settings.advice.target)
+    bi = int(np.searchsorted(mesh.block_offsets, cell, side="right") - 1)
+    edges = topo.edges.cell_edges[bi][cell - mesh.block_offsets[bi]]
+    return np.array([float(np.max(corr.at(p)[edges])) for p in range(1, pmax + 1)])
+
+
 def elements_per_wavelength(res: AuditResult, data: dict | None = None,
                             n_points: int = 200) -> Figure:
     """Elements per wavelength lambda/h against frequency, with the need per order.
@@ -243,7 +257,8 @@ def elements_per_wavelength(res: AuditResult, data: dict | None = None,
     by the worst-case flow factor, the upstream wavelength); the minimum
     (coarsest cell) and the median over cells are drawn.  The horizontal lines are the
     lambda/h each order p needs to meet the target at the coarsest cell's
-    propagation-distance ratio L/h, 2 pi / (kh)_max(p, L/h) from the 1D model;
+    propagation-distance ratio L/h, 2 pi a / (kh)_max(p, L/(a h)) from the 1D model
+    with the cell's 3D-correction factor a (1 for the plain model);
     where the minimum curve crosses a line, that order stops carrying the
     coarsest cell.  ``meshcheck_data``: frequencies (n,) Hz, min (n,),
     median (n,), needed {p: lambda/h}, ratio (L/h of the coarsest cell),
@@ -268,7 +283,10 @@ def elements_per_wavelength(res: AuditResult, data: dict | None = None,
         lo, med = float(c_over_h[coarsest]), float(np.median(c_over_h[ok]))
         ratio = float(max(a.cell_distance[coarsest] / a.cell_size[coarsest], 1.0))
         table = usable_kh(s.advice.target, max(P, 1))
-        needed = {p: float(2.0 * np.pi / table.max_kh(p, ratio)) for p in range(1, P + 1)}
+        factor = _cell_size_factors(res, coarsest, P)
+        # the model sees the cell's edges as a h: lambda/h >= 2 pi a / (kh)_max(p, L/(a h))
+        needed = {p: float(2.0 * np.pi * factor[p - 1] / table.max_kh(p, ratio / factor[p - 1]))
+                  for p in range(1, P + 1)}
     else:
         coarsest, lo, med, ratio, needed = -1, np.nan, np.nan, np.nan, {}
     y_min, y_med = lo / f, med / f

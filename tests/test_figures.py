@@ -57,13 +57,13 @@ def graded():
     return res, to_dict(res)
 
 
-@pytest.fixture(scope="module")
-def uniform():
-    """Hexahedra with every edge 0.2 m long, fixed order 2, plain 1D model."""
+@pytest.fixture(scope="module", params=[False, True], ids=["plain_1d", "corrected"])
+def uniform(request):
+    """Hexahedra with every edge 0.2 m long, fixed order 2, plain 1D model or with the
+    3D correction (the lines must follow the model the advice used)."""
     mesh = hex_box((6, 4, 3), size=(1.2, 0.8, 0.6))
-    # correction_3d=False: the elements-per-wavelength lines are the plain 1D model's
     res = audit(mesh, AuditSettings(frequencies=tuple(np.linspace(20.0, 800.0, 12)),
-                                    advice=AdviceSettings(order=2, correction_3d=False)))
+                                    advice=AdviceSettings(order=2, correction_3d=request.param)))
     return res, to_dict(res)
 
 
