@@ -127,7 +127,8 @@ def _print_summary(console: Console, res, files: dict | None, data: dict) -> Non
                 f"(requested {_fmt_hz(v['upper_frequency_hz'])} Hz)")
     body = (f"[{style}]{head}[/]\n{mode}, target {asm['target_relative_error']:.3g} relative error, "
             f"c = {asm['sound_speed_m_s']:.1f} m/s, unit {unit}, L = "
-            f"{asm['propagation_distance_rule']}")
+            f"{asm['propagation_distance_rule']}, 3D correction "
+            f"{'on' if asm.get('correction_3d') else 'off (plain 1D model)'}")
     console.print(Panel(body, title=f"meshcheck audit: {escape(Path(res.mesh.source).name)}"))
     lc = v.get("limiting_cell")
     if lc and v["state"] != "ready":

@@ -274,6 +274,7 @@ def _assumptions(res: AuditResult, d: dict) -> str:
          + (f"; per region: {speeds}" if speeds else "")),
         ("solver", _mode_text(asm)),
         ("accuracy target", f"relative error {asm['target_relative_error']:.3g}"),
+        ("3D correction of the 1D model", asm["correction_3d_note"]),
         ("propagation distance L", f"{Ltxt} ({asm['propagation_distance_rule']})"),
         ("frequencies", f"{len(f)} from {_hz(f[0])} to {_hz(f[-1])} Hz"),
         ("length unit", f"{unit} (lengths and coordinates below are in {unit})"),

@@ -24,7 +24,8 @@ __all__ = ["SCHEMA", "SCHEMA_VERSION", "CAUTION", "to_dict", "write_json", "writ
 
 SCHEMA = "meshcheck-audit"
 SCHEMA_VERSION = 1
-CAUTION = ("This is engineering advice from a 1D dispersion model applied edge by edge; "
+CAUTION = ("This is engineering advice from a 1D dispersion model applied edge by edge "
+           "(with a 3D correction fitted to real solves unless switched off); "
            "confirm it with a convergence check (solve again on a refined mesh or at a higher "
            "order) before relying on the results. It does not replace the analyst's judgement.")
 MODEL = ("Exact 1D discrete dispersion relation of order-p elements (Ihlenburg & Babuska "

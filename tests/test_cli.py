@@ -170,3 +170,15 @@ def test_verify_no_3d_correction_flag_reaches_the_advice(tmp_path, flag):
     (solve,) = doc["frequencies"][0]["solves"]
     assert (solve["order_min"], solve["order_max"]) == ((2, 2) if flag else (1, 1))
     assert solve["max_error"] <= 0.05
+
+
+@pytest.mark.parametrize("flag", [False, True], ids=["default", "no-3d-correction"])
+def test_terminal_summary_states_the_3d_correction(tmp_path, flag, capsys, monkeypatch):
+    monkeypatch.setenv("COLUMNS", "250")  # one line per panel row
+    m = hex_box((3, 2, 2), size=(0.6, 0.4, 0.4))
+    path = tmp_path / "hexes.vtu"
+    meshio.write(path, meshio.Mesh(m.points, [("hexahedron", m.blocks[0].cells)]))
+    main(["audit", str(path), "-u", "m", "--fmax", "100", "--out", str(tmp_path / "o")]
+         + (["--no-3d-correction"] if flag else []))
+    text = " ".join(capsys.readouterr().out.split())
+    assert ("3D correction off (plain 1D model)" if flag else "3D correction on") in text

@@ -174,6 +174,19 @@ def test_signed_off_frequency_per_solver_mode_equals_json(case, reports):
         assert rows[0][4] == f"{d['sweep']['dofs'][-1]:,}"
 
 
+def test_assumptions_state_the_3d_correction(reports):
+    # the default audits apply the correction; the note is the JSON's, escaped once
+    import html as _html
+
+    from meshcheck.report import CORRECTION_3D
+
+    text = _html.unescape(reports["ready"][0].read_text(encoding="utf-8"))
+    assert "3D correction of the 1D model" in text and CORRECTION_3D[True] in text
+    plain = audit(graded_tets(), AuditSettings(frequencies=(100.0, 200.0),
+                                               advice=AdviceSettings(correction_3d=False)))
+    assert CORRECTION_3D[False] in html_report.render_html(plain)
+
+
 def test_blocked_mesh_signs_off_nothing(reports):
     path, d, _ = reports["blocked"]
     doc = _Doc(path.read_text(encoding="utf-8"))
