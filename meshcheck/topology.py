@@ -357,37 +357,42 @@ def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
     return Faces(*(np.concatenate([p[k] for p in parts]) for k in range(3)))
 
 
-def cell_volumes(mesh: Mesh) -> np.ndarray:
+def _block_volumes(P: np.ndarray, info, corners: np.ndarray) -> np.ndarray:
+    """Signed volumes (areas) of cells of one kind from their (m, n_corners) corners."""
+    if info.dim == 2:
+        x = P[corners][:, :, :2]
+        xs = np.roll(x, -1, axis=1)
+        return 0.5 * np.sum(x[..., 0] * xs[..., 1] - xs[..., 0] * x[..., 1], axis=1)
+    if info.linear == "tetra":
+        x = P[corners]
+        d = x[:, 1:] - x[:, :1]
+        return np.einsum("ij,ij->i", d[:, 0], np.cross(d[:, 1], d[:, 2])) / 6.0
+    vol = np.zeros(len(corners))
+    for f in info.faces:
+        pts = P[corners[:, list(f)]]
+        if len(f) == 3:
+            vol += np.einsum("ij,ij->i", pts[:, 0], np.cross(pts[:, 1], pts[:, 2]))
+        else:
+            c = pts.mean(axis=1)
+            for i in range(4):
+                vol += np.einsum("ij,ij->i", c, np.cross(pts[:, i], pts[:, (i + 1) % 4]))
+    return vol / 6.0
+
+
+def cell_volumes(mesh: Mesh, chunk_size: int = 200_000) -> np.ndarray:
     """(n_cells,) signed volume (3D, m^3) or area (2D, m^2) from the corner nodes.
 
     3D: divergence theorem over the outward faces, quadrilaterals split into
-    four triangles about their mean point (exact for planar faces).
+    four triangles about their mean point (exact for planar faces).  Cells are
+    taken ``chunk_size`` at a time, so the gathered coordinates stay small.
     """
-    out = []
-    P = mesh.points
-    for b in mesh.blocks:
+    out = np.empty(mesh.n_cells)
+    for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
         corners = b.cells[:, :b.info.n_corners]
-        if b.info.dim == 2:
-            x = P[corners][:, :, :2]
-            xs = np.roll(x, -1, axis=1)
-            out.append(0.5 * np.sum(x[..., 0] * xs[..., 1] - xs[..., 0] * x[..., 1], axis=1))
-            continue
-        if b.info.linear == "tetra":
-            x = P[corners]
-            d = x[:, 1:] - x[:, :1]
-            out.append(np.einsum("ij,ij->i", d[:, 0], np.cross(d[:, 1], d[:, 2])) / 6.0)
-            continue
-        vol = np.zeros(len(b))
-        for f in b.info.faces:
-            pts = P[b.cells[:, list(f)]]
-            if len(f) == 3:
-                vol += np.einsum("ij,ij->i", pts[:, 0], np.cross(pts[:, 1], pts[:, 2]))
-            else:
-                c = pts.mean(axis=1)
-                for i in range(4):
-                    vol += np.einsum("ij,ij->i", c, np.cross(pts[:, i], pts[:, (i + 1) % 4]))
-        out.append(vol / 6.0)
-    return np.concatenate(out) if out else np.zeros(0)
+        for s in range(0, len(b), chunk_size):
+            e = min(s + chunk_size, len(b))
+            out[off + s:off + e] = _block_volumes(mesh.points, b.info, corners[s:e])
+    return out
 
 
 @dataclass(frozen=True)

@@ -174,3 +174,19 @@ def test_faces_equal_a_dictionary_of_node_sets(seed, path, monkeypatch):
         assert count == len(occ)
         assert (cells[0], c) == occ[0]  # first occurrence, its own outward corners
         assert cells[1] == (occ[1][0] if len(occ) > 1 else -1)
+
+
+def test_cell_volumes_in_chunks_equal_one_pass():
+    # chunking only bounds memory: volumes of mixed cells equal one pass to the last bit,
+    # and a box of hexes and Kuhn tets fills its volume (closed form)
+    from meshcheck.topology import cell_volumes
+
+    hexes, tets = hex_box((3, 2, 2), size=(0.6, 0.4, 0.4)), tet_box((2, 2, 2), origin=(1, 0, 0))
+    mesh = Mesh(np.vstack([hexes.points, tets.points]),
+                (CellBlock("hexahedron", hexes.blocks[0].cells, np.ones(12, np.int64)),
+                 CellBlock("tetra", tets.blocks[0].cells + len(hexes.points),
+                           np.ones(tets.n_cells, np.int64))))
+    one = cell_volumes(mesh, chunk_size=10**6)
+    assert np.array_equal(cell_volumes(mesh, chunk_size=5), one)
+    assert one[:12].sum() == pytest.approx(0.6 * 0.4 * 0.4, rel=1e-12)
+    assert one[12:].sum() == pytest.approx(1.0, rel=1e-12)
