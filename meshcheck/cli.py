@@ -130,6 +130,9 @@ def _print_summary(console: Console, res, files: dict | None, data: dict) -> Non
             f"{asm['propagation_distance_rule']}, 3D correction "
             f"{'on' if asm.get('correction_3d') else 'off (plain 1D model)'}")
     console.print(Panel(body, title=f"meshcheck audit: {escape(Path(res.mesh.source).name)}"))
+    for ms in asm.get("material_speeds", []):
+        console.print(f"speed stated by the mesh file: {escape(ms['name'])} "
+                      f"{ms['speed_m_s']:.6g} m/s ({escape(ms['card'])}), {escape(ms['note'])}")
     lc = v.get("limiting_cell")
     if lc and v["state"] != "ready":
         console.print(f"Limited by cell {lc['cell']} in {escape(lc['region_name'])} (longest edge "

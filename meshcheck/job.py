@@ -434,13 +434,35 @@ def _medium(spec: RegionSpec, default_t: float) -> tuple[complex, float | None, 
     return c, rho, src
 
 
+#: speeds of sound (m/s) that a mesh file's material cards may state for use in the advice;
+#: outside this range the card is most likely in other units than the mesh (e.g. mm/s in a
+#: deck read in metres) and it is reported but not used (common practice, no source: the
+#: range spans light gases to dense liquids and equivalent fluids)
+PLAUSIBLE_SPEED = (10.0, 20000.0)
+
+
+def file_speed_used(mesh: Mesh, tag: int, job: Job | None = None) -> bool:
+    """True when the mesh file's stated speed of region ``tag`` sets its medium: it is
+    plausible and the job file gives no entry of its own for the region."""
+    stated = mesh.material_speeds.get(tag)
+    if stated is None or not PLAUSIBLE_SPEED[0] <= stated[0] <= PLAUSIBLE_SPEED[1]:
+        return False
+    if job is not None:
+        tags = set(np.unique(mesh.region).tolist())
+        for r in job.regions:
+            if _tag_of(mesh, r.key, tags, "job") == tag:
+                return False
+    return True
+
+
 def resolve_media(mesh: Mesh, job: Job | None = None, temperature: float = 20.0,
                   speed: float | None = None, region_speeds: Mapping | None = None) -> Media:
     """Media of every region of ``mesh`` from a job and the overrides.
 
     Precedence (lowest first): air at ``temperature`` deg C, the job's default entry
-    and top-level temperature, its region entries, ``speed`` (every region),
-    ``region_speeds`` (tag or name -> m/s).  Raises SettingsError for an unknown
+    and top-level temperature, the speed the mesh file's material cards state for a
+    region (``mesh.material_speeds``, when within :data:`PLAUSIBLE_SPEED`), the job's
+    region entries, ``speed`` (every region), ``region_speeds`` (tag or name -> m/s).  Raises SettingsError for an unknown
     region, a non-positive speed or a Mach number >= 1.
     """
     job = job if job is not None else Job()
@@ -469,6 +491,9 @@ def resolve_media(mesh: Mesh, job: Job | None = None, temperature: float = 20.0,
     for tag in sorted(tags):
         spec = specs.get(tag, job.default)
         c, rho, src = _medium(spec, default_t)
+        if tag not in specs and file_speed_used(mesh, tag):
+            cs_file, card = mesh.material_speeds[tag]
+            c, rho, src = complex(cs_file), None, f"{card} in the mesh file"
         override = overrides.get(tag, speed)
         if override is not None:
             c, src = complex(override), "command line"

@@ -57,6 +57,9 @@ class Mesh:
     dim : 3 for a volume mesh, 2 for a plane model.
     source : the file it came from (for messages), or "" when built in memory.
     unit : the length unit of the file ("m", "mm", ...); points are already in metres.
+    material_speeds : region tag -> (speed of sound in m/s, the card stating it), from
+        the file's material cards (Nastran MAT10, Abaqus *ACOUSTIC MEDIUM), converted
+        with the length unit.
     """
 
     points: np.ndarray
@@ -65,6 +68,7 @@ class Mesh:
     dim: int = 3
     source: str = ""
     unit: str = "m"
+    material_speeds: dict[int, tuple[float, str]] = field(default_factory=dict)
 
     def __post_init__(self):
         pts = np.ascontiguousarray(self.points, dtype=np.float64)

@@ -74,8 +74,9 @@ class AuditSettings:
 
 
 def cell_speeds(mesh: Mesh, settings: AuditSettings) -> np.ndarray:
-    """(n_cells,) sound speed of every cell, m/s."""
-    if settings.job is not None:
+    """(n_cells,) sound speed of every cell, m/s (see :func:`meshcheck.job.resolve_media`
+    for the precedence of job file, file-stated speeds and overrides)."""
+    if settings.job is not None or mesh.material_speeds:
         return media_of(mesh, settings).cell_speed
     c = np.full(mesh.n_cells, settings.default_speed)
     by_name = {v.lower(): k for k, v in mesh.region_names.items()}

@@ -198,7 +198,9 @@ def mesh_from_raw(raw: RawMesh, source: str = "", units: str | None = None,
     factor = unit_factor(unit, label)
     tags = {int(t) for b in blocks for t in distinct(b.region)}
     names = {t: nm for t, nm in raw.region_names.items() if t in tags}
-    return Mesh(points * factor, blocks, names, dim, label, unit)
+    stated = {int(t): (float(s.speed) * factor, s.card) for s in raw.speeds for t in s.regions
+              if int(t) in tags}
+    return Mesh(points * factor, blocks, names, dim, label, unit, stated)
 
 
 def raw_from_meshio(mesh, fmt: str = "meshio") -> RawMesh:

@@ -133,6 +133,7 @@ def to_dict(res: AuditResult) -> dict:
         "assumptions": {
             "sound_speed_m_s": s.default_speed, "temperature_c": s.temperature,
             "region_speeds_m_s": {str(k): float(v) for k, v in s.region_speeds.items()},
+            "material_speeds": _material_speeds(res),
             "target_relative_error": s.advice.target, "solver_mode": s.advice.mode,
             "fixed_order": s.advice.order, "max_order": s.advice.max_order,
             "propagation_distance_m": (s.advice.distance if s.advice.distance is not None
@@ -172,6 +173,28 @@ def to_dict(res: AuditResult) -> dict:
         **_physics_sections(res, scale),
         "cost": _cost_section(res, scale),
     }
+
+
+def _material_speeds(res: AuditResult) -> list[dict]:
+    """Speeds of sound stated by the mesh file's material cards, and whether each sets
+    its region's medium (see :func:`meshcheck.job.resolve_media`)."""
+    from .job import PLAUSIBLE_SPEED
+
+    media = getattr(res, "media", None)
+    out = []
+    for tag, (c, card) in sorted(res.mesh.material_speeds.items()):
+        r = media.regions.get(tag) if media is not None else None
+        used = r is not None and r.source == f"{card} in the mesh file"
+        if used:
+            why = "sets the region's medium"
+        elif not PLAUSIBLE_SPEED[0] <= c <= PLAUSIBLE_SPEED[1]:
+            why = (f"not used: outside {PLAUSIBLE_SPEED[0]:g}-{PLAUSIBLE_SPEED[1]:g} m/s "
+                   f"(is the card in another length unit than --units {res.mesh.unit}?)")
+        else:
+            why = f"not used: {r.source if r is not None else 'overridden'} takes precedence"
+        out.append({"region": int(tag), "name": res.mesh.region_name(tag), "card": card,
+                    "speed_m_s": float(c), "used": bool(used), "note": why})
+    return out
 
 
 def _cost_section(res: AuditResult, scale: float) -> dict:
@@ -370,6 +393,9 @@ def write_markdown(res: AuditResult, path: str | Path, data: dict | None = None,
     L.append(f"- Target: relative L2 error {asm['target_relative_error']:.3g}; mode: {mode}.")
     L.append(f"- Sound speed: {asm['sound_speed_m_s']:.2f} m/s; per-region overrides: "
              f"{asm['region_speeds_m_s'] or 'none'}.")
+    for ms in asm["material_speeds"]:
+        L.append(f"- Speed stated by the mesh file: {_md_escape(ms['name'])} "
+                 f"{ms['speed_m_s']:.6g} m/s ({_md_escape(ms['card'])}), {ms['note']}.")
     L.append(f"- Unknowns: {sw['dofs_kind']}.")
     L.append(f"- {CAUTION}")
     path = Path(path)

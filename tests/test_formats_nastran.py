@@ -311,6 +311,16 @@ def test_material_speed_settles_an_ambiguous_unit(tmp_path):
     assert raw.speeds[0].card == "MAT10 3" and raw.speeds[0].speed == 343000.0
 
 
+@pytest.mark.parametrize("units, c_file", [("mm", 1.481e6), ("m", 1481.0)])
+def test_material_speed_reaches_the_mesh_in_metres_per_second(tmp_path, units, c_file):
+    # MAT10 C is in the deck's length unit per second: 1.481e6 mm/s = 1481 m/s
+    extra = [nas_small("PSOLID", [1, 3, "", "", "", "", "PFLUID"]),
+             nas_small("MAT10", [3, "", "", repr(c_file)])]
+    m = read_mesh(_write(tmp_path, nastran(CUBE * 50.0, [("CTETRA", KUHN)], extra=extra)),
+                  units=units)
+    assert m.material_speeds == {1: (pytest.approx(1481.0, rel=1e-12), "MAT10 3")}
+
+
 def test_material_bulk_and_density_give_the_speed(tmp_path):
     """MAT10 without C: c = sqrt(BULK / RHO) = sqrt(141179 / 1.2) = 343.0 m/s."""
     extra = [nas_small("PSOLID", [1, 3]), nas_small("MAT10", [3, "141179.", "1.2"])]

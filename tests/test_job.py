@@ -268,3 +268,45 @@ def test_cli_bad_job_exits_2_with_one_line(two_files, tmp_path, capsys, text, ms
                  "--out", str(tmp_path / "x")]) == 2
     err = capsys.readouterr().err.strip()
     assert msg in err and len(err.splitlines()) == 1 and "Traceback" not in err
+
+
+# ------------------------------------------------- speeds stated by the mesh file
+def _stated(speeds):
+    m = _two_regions()
+    return Mesh(m.points, m.blocks, m.region_names, 3, "two.bdf", "m", speeds)
+
+
+def test_file_speed_sets_its_region_and_scales_the_limits():
+    # the usable frequency of an edge is c (kh)_max / (2 pi h): with the same mesh and
+    # target, a region whose file card states water has its limits x c_water / c_air
+    c_air = air_speed(20.0)
+    plain = audit(_stated({}), AuditSettings(frequencies=(500.0,)))
+    media = resolve_media(_stated({2: (1481.0, "MAT10 7")}))
+    assert media.regions[2].effective_speed == 1481.0
+    assert media.regions[2].source == "MAT10 7 in the mesh file"
+    assert media.regions[1].effective_speed == pytest.approx(c_air)
+    wet = audit(_stated({1: (1481.0, "MAT10 7"), 2: (1481.0, "MAT10 7")}),
+                AuditSettings(frequencies=(500.0,)))
+    np.testing.assert_allclose(wet.advice.cell_limit, plain.advice.cell_limit * 1481.0 / c_air,
+                               rtol=1e-12)
+
+
+def test_job_entry_and_command_line_win_over_the_file():
+    mesh = _stated({1: (1481.0, "MAT10 7"), 2: (1481.0, "MAT10 7")})
+    job = parse_job({"region": {"air": {"medium": "air"}}}, "job.toml")
+    media = resolve_media(mesh, job, region_speeds={"water": 1400.0})
+    assert media.regions[1].source.startswith("air at 20")  # the job names region 1
+    assert media.regions[2].effective_speed == 1400.0       # --region-speed
+    assert resolve_media(mesh, speed=340.0).regions[2].effective_speed == 340.0  # --speed
+
+
+def test_implausible_file_speed_is_reported_not_used():
+    # a deck in mm-t-s units read with --units m: MAT10 C = 1.481e6 (mm/s) would mean
+    # 1481 km/s; it is listed in the report with the reason and air is kept
+    from meshcheck.report import to_dict
+
+    res = audit(_stated({2: (1.481e6, "MAT10 7")}), AuditSettings(frequencies=(500.0,)))
+    assert res.media.regions[2].effective_speed == pytest.approx(air_speed(20.0))
+    (ms,) = to_dict(res)["assumptions"]["material_speeds"]
+    assert ms["used"] is False and "another length unit" in ms["note"]
+    assert ms["region"] == 2 and ms["card"] == "MAT10 7"
