@@ -7,8 +7,12 @@ with :func:`html.escape` (region names and file names come from the mesh file);
 only markup built here is emitted raw.
 
 Sections, most important first: 1 the verdict (signed-off upper frequency per
-solver mode, with the assumptions), 2 what blocks or limits it, 3 the advice
-per frequency, 4 quality, 5 method and cautions.  A print style sheet lays
+solver mode, with the assumptions and, when a job file set them, the media per
+region), 2 what blocks or limits it, 3 the advice per frequency (ending with the
+geometry checks and the cost of the sweep), 4 quality, 5 method and cautions.
+Figures come from the report dict of :func:`meshcheck.report.to_dict`, formatted,
+not recomputed (the unknowns of the solver-mode table excepted, see
+:func:`solver_modes`).  A print style sheet lays
 the page out for A4 or Letter (whichever the print dialog uses; the content
 is at most 186 mm wide), one section per page start.
 
@@ -91,6 +95,24 @@ def _pct(n: int, total: int) -> str:
         return ""
     s = 100.0 * n / total
     return "<0.1" if s < 0.1 else f"{s:.1f}"
+
+
+def _dur(s: float) -> str:
+    """Seconds as s, min or h (as in the Markdown report's cost table)."""
+    s = float(s)
+    return f"{s:.3g} s" if s < 120 else (f"{s / 60:.3g} min" if s < 7200 else
+                                          f"{s / 3600:.3g} h")
+
+
+def _bytes(x: float) -> str:
+    """Bytes as MB or GB (as in the Markdown report's cost table)."""
+    x = float(x)
+    return f"{x / 1e6:.3g} MB" if x < 1e9 else f"{x / 1e9:.3g} GB"
+
+
+def _sentence(text: str) -> str:
+    text = str(text).strip()
+    return text if text.endswith((".", "!", "?")) else text + "."
 
 
 def _table(head, rows, text=(0,), cls: str = "", tid: str = "") -> str:
@@ -285,7 +307,47 @@ def _assumptions(res: AuditResult, d: dict) -> str:
          + f"; box {_xyz(inp['bounding_box'][0])} to {_xyz(inp['bounding_box'][1])} {unit}"),
     ]
     dl = "".join(f"<dt>{_e(k)}</dt><dd>{_e(v)}</dd>" for k, v in items)
-    return f'<h3>Assumptions</h3><dl class="assumptions">{dl}</dl>'
+    return f'<h3>Assumptions</h3><dl class="assumptions">{dl}</dl>' + _media(d)
+
+
+def _default_medium(r: dict, temperature_c: float) -> bool:
+    """True for a region a job file left alone: still fluid, no flow, and air at the
+    audit's temperature (or a speed from the command line, stated above)."""
+    return (r["role"] == "fluid" and not r["mach_number"]
+            and r["source"] in (f"air at {temperature_c:g} deg C (ideal gas)", "command line"))
+
+
+def _speed(c) -> str:
+    re_, im = (float(c[0]), float(c[1])) if isinstance(c, (list, tuple)) else (float(c), 0.0)
+    if not im:
+        return f"{re_:.1f}"
+    sign = "+" if im > 0 else "\u2212"
+    return f"{re_:.1f} {sign} {abs(im):.3g}i"
+
+
+def _media(d: dict) -> str:
+    """Per-region media table, only when a job file set a medium, a role or a flow."""
+    media = d.get("media")
+    asm = d["assumptions"]
+    if not media or all(_default_medium(r, asm["temperature_c"]) for r in media):
+        return ""
+    names = _region_names(d)
+    rows = []
+    for r in media:
+        role = r["role"].replace("_", " ")
+        if r.get("surrounds") is not None:
+            role += f" around {names.get(int(r['surrounds']), r['surrounds'])}"
+        rows.append(([r["name"], role, _speed(r["speed_m_s"]), f"{r['effective_speed_m_s']:.1f}",
+                      _g(r["attenuation_db_per_wavelength"], 3), _g(r["mach_number"]),
+                      r["source"]],
+                     {"class": "default" if _default_medium(r, asm["temperature_c"]) else "set",
+                      "data-tag": r["tag"]}))
+    return ("<p><b>Media per region</b> (job file; the speed per region replaces the sound "
+            "speed above). The effective speed 1/Re(1/c) sets the wavelength; the Mach number "
+            "is the mean flow over it.</p>"
+            + _table(["region", "role", "speed (m/s)", "effective speed (m/s)",
+                      "attenuation (dB per wavelength)", "Mach", "source"], rows,
+                     text=(0, 1, 6), tid="media-table", cls="media"))
 
 
 def _findings_list(items: list[dict], unit: str) -> str:
@@ -407,8 +469,174 @@ def _advice(res: AuditResult, d: dict, figs: dict) -> str:
         out.append(_clusters(d["coarsen"], d, "coarsen"))
     else:
         out.append("<p>No cell could be coarsened by that factor.</p>")
+    out.append(_geometry_checks(d))
+    out.append(_cost(d))
     out.append("</section>")
     return "\n".join(out)
+
+
+def _span(lo, hi, unit: str) -> str:
+    """'lo to hi unit', or one value when both print alike (3 digits)."""
+    a, b = _g(lo, 3), _g(hi, 3)
+    return f"{a} {unit}" if a == b else f"{a} to {b} {unit}"
+
+
+def _pct_of(x) -> str:
+    return "\u2013" if x is None else f"{100.0 * float(x):.1f} %"
+
+
+def _geometry_checks(d: dict) -> str:
+    """Rows of the checks that ran (gradation, curved boundaries, quadratic cells,
+    absorbing layers, directional orders): what each flags and its details."""
+    unit = d["input"]["unit"]
+    from .units import UNIT_FACTORS
+    scale = UNIT_FACTORS.get(unit, 1.0)
+    names = _region_names(d)
+    rows = []
+    g = d.get("gradation")
+    if g is not None:
+        worst = g.get("worst") or []
+        where = f"; worst at {_xyz(worst[0]['location'], 3)} {unit}" if worst else ""
+        rows.append((["size jumps", _int(g["count"]),
+                      f"neighbouring cell pairs whose sizes ({g['size_measure']}) differ by "
+                      f"more than x{g['ratio']:g} (threshold); largest ratio "
+                      f"x{_g(g['max_ratio'], 3)}{where}"], {"data-check": "gradation"}))
+    c = d.get("curvature")
+    if c is not None:
+        rad = c["min_radius"]
+        text = (f"straight boundary faces off the curved surface, of "
+                f"{_int(c['boundary_faces'])} boundary faces in {_int(c['smooth_patches'])} "
+                f"smooth patches; quadratic geometry would do for "
+                f"{_int(c['quadratic_geometry_would_do'])}, too large even quadratic: "
+                f"{_int(c['too_large_even_quadratic'])}; smallest radius of curvature "
+                + (f"{_g(rad, 3)} {unit}" if rad is not None else "\u2013 (no curved patch)"))
+        if c.get("curved_quadratic_faces"):
+            text += f"; curved quadratic faces {_int(c['curved_quadratic_faces'])}"
+        text += f"; criterion: {c['criterion']}"
+        rows.append((["curved boundaries", _int(c["straight_faces_off_surface"]), text],
+                     {"data-check": "curvature"}))
+    q = d.get("quadratic_cells")
+    if q is not None:
+        rows.append((["quadratic cells", _int(q["below_threshold"]),
+                      f"of {_int(q['cells'])} quadratic cells, det J min/max below "
+                      f"{q['threshold']:g} (threshold); lowest {_g(q['jacobian_ratio_min'], 3)}, "
+                      f"median {_g(q['jacobian_ratio_median'], 3)}"],
+                     {"data-check": "quadratic_cells"}))
+    for lay in d.get("absorbing_layers") or []:
+        tw, tm, ca = lay["thickness_wavelengths"], lay["thickness_m"], lay["cells_across"]
+        around = ", ".join(names.get(int(t), f"region {t}") for t in lay["surrounds"]) \
+            or "\u2013"
+        msgs = "; ".join(f"{m['severity']}: {str(m['message']).rstrip('.')}"
+                         for m in lay["messages"])
+        thick = ("\u2013" if tm["min"] is None else
+                 _span(tm["min"] / scale, tm["max"] / scale, unit))
+        rows.append(([f"absorbing layer {lay['name']}", _int(len(lay["messages"])),
+                      f"messages{': ' + msgs if msgs else ': none'}; around {around}; "
+                      f"thickness {thick}, min {_g(tw['min'], 3)} / median "
+                      f"{_g(tw['median'], 3)} wavelengths at the lowest frequency; cells "
+                      f"across min {_g(ca['min'], 3)} / median {_g(ca['median'], 3)}; "
+                      + ("conforming" if lay["conforming"] else
+                         f"not conforming ({_int(lay['nonconforming_faces'])} faces)")],
+                     {"data-check": "absorbing_layer", "data-tag": lay["tag"]}))
+    o = d.get("directional_orders")
+    if o is not None:
+        rows.append((["directional orders", _int(o["anisotropic_cells"]),
+                      f"cells whose parametric directions need different orders (p \u2264 "
+                      f"{o['max_order']}); unknowns {_int(o['dofs_isotropic'])} \u2192 "
+                      f"{_int(o['dofs_directional'])} with interiors condensed, saving "
+                      f"{_pct_of(o['saving'])}; {_int(o['total_isotropic'])} \u2192 "
+                      f"{_int(o['total_directional'])} with interiors, saving "
+                      f"{_pct_of(o['saving_total'])}"], {"data-check": "directional_orders"}))
+    out = ["<h3>Geometry checks</h3>"]
+    if not rows:
+        out.append("<p>No geometry check applied.</p>")
+        return "\n".join(out)
+    out.append("<p>Checks of the geometry the mesh must follow (warnings and notes, never "
+               "blocking); the flagged items are listed in the JSON report.</p>")
+    out.append(_table(["check", "flagged", "details"], rows, text=(0, 2), tid="geometry-table",
+                      cls="geometry"))
+    return "\n".join(out)
+
+
+def _cost(d: dict) -> str:
+    """The quote of the sweep (JSON "cost"; the Markdown report's cost section)."""
+    cost = d.get("cost")
+    if not cost:
+        return ""
+    out = ['<h3 id="cost">Cost of the sweep</h3>']
+    if "error" in cost:
+        out.append(f'<p class="not-estimated">The cost of the sweep was not estimated: '
+                   f"{_e(_sentence(cost['error']))}</p>")
+        return "\n".join(out)
+    asm = d["assumptions"]
+    f = d["sweep"]["frequencies_hz"]
+    mach = cost.get("machine") or {}
+    cpu = mach.get("cpu", "unknown CPU")
+    cores = f", {mach['cores']} cores" if mach.get("cores") else ""
+    top = cost.get("calibrated_up_to_unknowns") or {}
+    upto = (f"; calibrated up to {_int(top['3'])} unknowns in 3D and {_int(top['2'])} in 2D"
+            if top.get("3") and top.get("2") else "")
+    out.append(f"<p>Solver: {_e(cost['solver'])}. Machine constants: "
+               f"{_e(Path(cost['machine_constants']).name)} (calibrated {_e(cost['calibrated'])} "
+               f"on {_e(cpu)}{_e(cores)}{_e(upto)}; <code>meshcheck calibrate</code> measures "
+               f"this machine). Per frequency: {_e(cost['per_frequency'])}. Bands: "
+               f"{_e(cost['band'])}.</p>")
+    own = (f"fixed p={asm['fixed_order']}" if asm["solver_mode"] == "fixed"
+           else f"variable p<={asm['max_order']}")
+    rows, beyond = [], False
+    for q in cost["strategies"]:
+        lo, hi = q["total_band_s"]
+        flag = " (beyond calibration)" if q.get("beyond_calibration") else ""
+        beyond |= bool(flag)
+        sel = q["strategy"] == own
+        label = q["strategy"].replace("<=", "\u2264")
+        rows.append(([_Raw(f"{_e(label)}"
+                           f"{' <b>(this audit)</b>' if sel else ''}"),
+                      _int(q["unknowns"][-1]), _int(q["nonzeros"][-1]), _dur(q["total_s"]) + flag,
+                      f"{_dur(lo)} \u2013 {_dur(hi)}", _bytes(q["peak_memory_bytes"]),
+                      "yes" if q["carries_all"] else "no"],
+                     {"class": ("selected " if sel else "") +
+                      ("carries" if q["carries_all"] else "short"),
+                      "data-strategy": q["strategy"]}))
+    out.append(_table(["strategy", f"unknowns at {_hz(f[-1])} Hz", "non-zeros", "sweep time",
+                       "band", "peak memory", "carries every frequency"], rows, text=(0, 6),
+                      tid="cost-table", cls="cost"))
+    out.append(f'<p class="note">Sweep time: all {len(f)} frequencies (factorise, solve, '
+               "assembly) plus any one-off assembly; peak memory: the largest over the "
+               "frequencies. Fixed orders are quoted on the supplied mesh even where they do "
+               "not carry every frequency."
+               + (" Beyond calibration: more than twice the largest system measured; the "
+                  "prediction is extrapolated." if beyond else "") + "</p>")
+    unit = d["input"]["unit"]
+    for key in ("coarsening", "coarsening_chosen_order"):
+        co = cost.get(key)
+        if co:
+            out.append(_coarsening(co, unit, d["input"]["dimension"]))
+    return "\n".join(out)
+
+
+def _coarsening(co: dict, unit: str, dim: int) -> str:
+    """The coarsening-scenario sentence of the cost subsection."""
+    lo, hi = co.get("target_size_min"), co.get("target_size_max")
+    sizes = f"; target size {_span(lo, hi, unit)}" if lo is not None else ""
+    if co.get("geometry_limited_nodes"):
+        sizes += f", {_int(co['geometry_limited_nodes'])} nodes limited by the geometry"
+    head = (f"Coarsening scenario: a mesh sized for order {co['order']} at "
+            f"{_hz(co['upper_frequency_hz'])} Hz (gradation {co['gradation']:g}{sizes}) ")
+    q = co.get("quote")
+    if q is None:
+        text = (head + f"would hold about {_int(round(co['estimated_cells']))} cells; its cost "
+                + ("is quoted for 3D meshes only." if dim != 3 else "is not estimated."))
+    else:
+        ref = str(co.get("compared_with") or "").replace("<=", "\u2264")
+        sp = (f", {co['speedup']:.3g} times faster than {ref} on the supplied mesh"
+              if co.get("speedup") and ref else "")
+        text = (head + f"would hold about {_int(round(co['estimated_cells']))} tetrahedra and "
+                f"{_int(q['unknowns'][-1])} unknowns at the top frequency; the sweep would take "
+                f"{_dur(q['total_s'])}{sp}.")
+    where = ("The size field is in the VTU report (point data target_size and mesher_size) "
+             "and in the gmsh view *.size.pos (gmsh model.geo -bgm <mesh>.size.pos -3).")
+    return f'<p class="coarsening">{_e(text)} {_e(where)}</p>'
 
 
 def _range(rng) -> str:

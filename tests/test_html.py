@@ -31,10 +31,12 @@ from meshcheck import figures, html_report  # noqa: E402
 from meshcheck.acoustics import band_centres  # noqa: E402
 from meshcheck.advice import AdviceSettings  # noqa: E402
 from meshcheck.cli import main  # noqa: E402
+from meshcheck.cost import cost_markdown  # noqa: E402
+from meshcheck.job import load_job, parse_job  # noqa: E402
 from meshcheck.mesh import CellBlock, Mesh  # noqa: E402
 from meshcheck.pipeline import AuditSettings, audit, audit_file  # noqa: E402
 from meshcheck.report import to_dict  # noqa: E402
-from meshes import tet_box  # noqa: E402
+from meshes import grid_hexes, tet10_box, tet_box  # noqa: E402
 from test_figures import GRADED_FMAX, graded_tets  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -71,7 +73,54 @@ def reports(tmp_path_factory):
     # names that try to inject markup, on a fixed-order (p = 2) audit
     out["xss"] = out["fixed"] = _write(audit(_xss_mesh(), AuditSettings(
         frequencies=(200.0, 400.0), advice=AdviceSettings(order=2))), folder, "xss")
+    # a job file (flow, lossy water, a PML) on hexahedra in mm, and the same with hostile names
+    job = load_job(_job_file(folder))
+    for name, names in (("job", JOB_NAMES), ("job_xss", XSS_NAMES)):
+        out[name] = _write(audit(_job_mesh(names), AuditSettings(JOB_FREQS, job=job)),
+                           folder, name)
+    out["quadratic"] = _write(audit(_bent_tet10(), AuditSettings((100.0, 200.0))), folder,
+                              "quadratic")
     return out
+
+
+JOB_NAMES = {1: "duct_air", 2: "tank_water", 3: "pml"}
+XSS_NAMES = {1: XSS, 2: "\" onmouseover=\"alert(2)", 3: "<img src=x onerror=alert(4)>"}
+JOB_FREQS = (100.0, 400.0)
+JOB_FLOW = 34.0        # m/s along x in region 1
+LAYER_T = 0.3          # m, the PML beyond x = 1 m
+
+
+def _job_file(folder: Path) -> Path:
+    """Regions by tag (names may be hostile): flow in 1, lossy water in 2, a PML (3) around 2."""
+    path = folder / "job.toml"
+    path.write_text(f"[region.1]\nflow = [{JOB_FLOW}, 0.0, 0.0]\n"
+                    "[region.2]\nmedium = \"water\"\nloss_factor = 0.05\n"
+                    "[region.3]\nrole = \"pml\"\nsurrounds = \"2\"\n")
+    return path
+
+
+def _job_mesh(names: dict) -> Mesh:
+    """Hexahedra, x in [0, 1] m (region 1 below 0.5, region 2 above) and a layer (3) of
+    LAYER_T m and 3 cells across beyond x = 1; unit mm."""
+    xs = np.concatenate([np.linspace(0.0, 1.0, 6), np.linspace(1.0, 1.0 + LAYER_T, 4)[1:]])
+    ys = zs = np.linspace(0.0, 0.4, 3)
+    x, y, z = np.meshgrid(xs, ys, zs, indexing="ij")
+    pts = np.column_stack([x.ravel(), y.ravel(), z.ravel()])
+    hexes = grid_hexes((len(xs) - 1, len(ys) - 1, len(zs) - 1))
+    cx = pts[hexes].mean(axis=1)[:, 0]
+    region = np.where(cx < 0.5, 1, np.where(cx < 1.0, 2, 3))
+    return Mesh(pts, (CellBlock("hexahedron", hexes, region),), names, 3, "job.msh", "mm")
+
+
+def _bent_tet10() -> Mesh:
+    """Quadratic tets with one interior mid-node pushed off its edge (two cells fall below
+    the default det J min/max threshold of 0.3)."""
+    m = tet10_box((2, 2, 2))
+    pts = m.points.copy()
+    mids = np.unique(m.blocks[0].cells[:, 4:])
+    i = mids[np.argmin(np.linalg.norm(pts[mids] - 0.5, axis=1))]
+    pts[i] += 0.12 * np.array([1.0, 0.7, 0.4])
+    return Mesh(pts, m.blocks, m.region_names, 3, "bent.msh", "m")
 
 
 def _inverted() -> Mesh:
@@ -127,7 +176,7 @@ class _Doc(HTMLParser):
 
 
 # ------------------------------------------------------- static structure
-@pytest.mark.parametrize("case", ["ready", "limited", "blocked"])
+@pytest.mark.parametrize("case", ["ready", "limited", "blocked", "job"])
 def test_document_is_self_contained(case, reports):
     path, _, _ = reports[case]
     text = path.read_text(encoding="utf-8")
@@ -433,7 +482,7 @@ return {text: el.innerText, w: r.width, h: r.height, top: r.top,
 
 
 @needs_browser
-@pytest.mark.parametrize("case", ["ready", "limited", "blocked"])
+@pytest.mark.parametrize("case", ["ready", "limited", "blocked", "job"])
 def test_renders_in_chromium_without_errors_or_requests(case, reports, browser, artifacts):
     path, d, _ = reports[case]
     browser.open(path.as_uri())
@@ -474,17 +523,19 @@ def test_the_checks_catch_console_errors_and_requests(tmp_path, browser):
 
 
 @needs_browser
-def test_region_named_script_does_not_run(reports, browser, artifacts):
-    path, _, _ = reports["xss"]
+@pytest.mark.parametrize("case", ["xss", "job_xss"])
+def test_region_named_script_does_not_run(case, reports, browser, artifacts):
+    path, _, _ = reports[case]
     browser.open(path.as_uri())
     assert browser.js("return document.scripts.length") == 0
     with pytest.raises(WebDriverError) as exc:
         browser.cmd("GET", "/alert/text")
     assert exc.value.error == "no such alert"
     body = browser.js("return document.body.innerText")
-    assert XSS in body and "<img src=x onerror=alert(3)>.msh" in body
+    assert XSS in body
+    assert ("<img src=x onerror=alert(3)>.msh" if case == "xss" else XSS_NAMES[3]) in body
     assert [e for e in browser.console() if e["level"] == "SEVERE"] == []
-    browser.screenshot(artifacts / "report-xss.png")
+    browser.screenshot(artifacts / f"report-{case}.png")
 
 
 @needs_browser
