@@ -23,20 +23,55 @@ _GL_X, _GL_WT = np.polynomial.legendre.leggauss(12)
 _GL_S, _GL_W = 0.5 + 0.5 * _GL_X, 0.5 * _GL_WT
 
 
-def _argsort_key(key: np.ndarray, key_max: int) -> np.ndarray:
-    """Permutation sorting an int64 key array (keys in [0, key_max]).
+def _packed_sort(key: np.ndarray, key_max: int) -> tuple[np.ndarray, np.ndarray]:
+    """(order, key[order]) for int64 keys in [0, key_max]; equal keys keep row order.
 
-    When the key and the row number fit together in 63 bits they are packed
-    into one int64 and sorted with ``np.sort`` (SIMD, several times faster
-    than ``np.argsort``); otherwise ``np.argsort``.  Equal keys keep their
-    row order in both paths.
+    Key and row number are packed into one int64 and sorted with ``np.sort`` (SIMD,
+    about 10 times faster than ``np.argsort``: 0.7 s against 7.4 s for 28M keys).
+    When they do not fit in 63 bits together, the rows are first split by the top
+    bits of the key into 2**s buckets (a stable radix sort of a small integer),
+    each bucket then fits: key bits - s + row bits <= 63.
     """
     n = key.shape[0]
     pos_bits = max(int(n - 1).bit_length(), 1)
-    if int(key_max).bit_length() + pos_bits <= 63:
-        packed = np.sort((key << pos_bits) | np.arange(n, dtype=np.int64))
-        return packed & ((1 << pos_bits) - 1)
-    return np.argsort(key, kind="stable")
+    key_bits = max(int(key_max).bit_length(), 1)
+    s = max(0, key_bits + pos_bits - 63)
+    if s == 0:
+        packed = np.left_shift(key, pos_bits)
+        packed |= np.arange(n, dtype=np.int64)
+        packed.sort()
+        skey = packed >> pos_bits
+        packed &= (1 << pos_bits) - 1
+        return packed, skey
+    if s > 16:
+        order = np.argsort(key, kind="stable")
+        return order, key[order]
+    low_bits = key_bits - s
+    bucket = (key >> low_bits).astype(np.uint16)
+    rows = np.argsort(bucket, kind="stable")  # radix sort: O(n), rows ascending per bucket
+    bounds = np.searchsorted(bucket[rows], np.arange((1 << s) + 1), side="left")
+    del bucket
+    order = np.empty(n, np.int64)
+    skey = np.empty(n, np.int64)
+    mask = (1 << low_bits) - 1
+    for j in range(1 << s):
+        lo, hi = bounds[j], bounds[j + 1]
+        if hi == lo:
+            continue
+        r = rows[lo:hi]
+        pb = max(int(hi - lo - 1).bit_length(), 1)
+        packed = np.left_shift(key[r] & mask, pb)
+        packed |= np.arange(hi - lo, dtype=np.int64)
+        packed.sort()
+        skey[lo:hi] = (packed >> pb) | (j << low_bits)
+        order[lo:hi] = r[packed & ((1 << pb) - 1)]
+    return order, skey
+
+
+def _argsort_key(key: np.ndarray, key_max: int) -> np.ndarray:
+    """Permutation sorting an int64 key array (keys in [0, key_max]), stable
+    (see :func:`_packed_sort`)."""
+    return _packed_sort(key, key_max)[0]
 
 
 def _group_sorted(keys: tuple[np.ndarray, ...], key_max: int | None = None):
@@ -130,22 +165,12 @@ def _sorted_groups(key: np.ndarray, key_max: int):
 
     ``order`` sorts the keys (equal keys keep their row order), ``starts`` indexes
     the first sorted row of every group, ``inverse`` maps each row to its group.
-    The packed path sorts key and row number as one int64 (see
-    :func:`_argsort_key`) and reads the sorted keys back from the high bits, so no
-    gather of the keys by the permutation is needed.
+    The sort packs key and row number in one int64 (:func:`_packed_sort`) and reads
+    the sorted keys back from the high bits, so no gather of the keys by the
+    permutation is needed.
     """
     n = key.shape[0]
-    pos_bits = max(int(n - 1).bit_length(), 1)
-    if int(key_max).bit_length() + pos_bits <= 63:
-        packed = np.left_shift(key, pos_bits)
-        packed |= np.arange(n, dtype=np.int64)
-        packed.sort()
-        skey = packed >> pos_bits
-        packed &= (1 << pos_bits) - 1
-        order = packed
-    else:
-        order = np.argsort(key, kind="stable")
-        skey = key[order]
+    order, skey = _packed_sort(key, key_max)
     new = np.empty(n, dtype=bool)
     if n:
         new[0] = True
@@ -258,15 +283,14 @@ def _face_tables(mesh: Mesh, size: int):
 def _tri_keys(mesh: Mesh, tables, edges: Edges | None):
     """Keys identifying triangular faces by their node set, and the largest key.
 
-    With the mesh's edges at hand and room in 63 bits for key and row number, a
-    triangle is keyed by (id of the edge joining its two smallest nodes, largest
-    node), so the packed sort applies; otherwise by its three sorted nodes.
+    With the mesh's edges at hand a triangle is keyed by (id of the edge joining its
+    two smallest nodes, largest node): fewer bits than three node numbers, so the
+    packed sort needs fewer buckets (none up to about a million tetrahedra);
+    otherwise by its three sorted nodes.
     """
     n = int(mesh.n_points + 1)
-    rows = sum(len(mesh.blocks[bi]) * len(t) for bi, t in tables)
-    pos_bits = max(int(rows - 1).bit_length(), 1)
     by_edge = (edges is not None and len(edges) > 0 and
-               int(len(edges)).bit_length() + n.bit_length() + pos_bits <= 63)
+               int(len(edges)).bit_length() + n.bit_length() <= 62)
     if not by_edge and 3 * n.bit_length() > 63:
         return None, None
     keys = []

@@ -190,3 +190,19 @@ def test_cell_volumes_in_chunks_equal_one_pass():
     assert np.array_equal(cell_volumes(mesh, chunk_size=5), one)
     assert one[:12].sum() == pytest.approx(0.6 * 0.4 * 0.4, rel=1e-12)
     assert one[12:].sum() == pytest.approx(1.0, rel=1e-12)
+
+
+@pytest.mark.parametrize("n, key_bits", [(1000, 40), (1000, 62), (5000, 60), (140_000, 62)],
+                         ids=["packed", "buckets-9", "buckets-10", "argsort"])
+def test_packed_sort_equals_a_stable_argsort(n, key_bits):
+    # one packed int64 when key and row bits fit in 63, else buckets by the top key bits,
+    # else (more than 16 bucket bits) np.argsort: always numpy's stable argsort
+    from meshcheck.topology import _packed_sort
+
+    rng = np.random.default_rng(key_bits)
+    key = rng.integers(0, 2 ** key_bits, n // 4, dtype=np.int64)
+    key = rng.choice(np.concatenate([key, [0, 2 ** key_bits - 1]]), n)  # many repeats
+    order, skey = _packed_sort(key, 2 ** key_bits - 1)
+    ref = np.argsort(key, kind="stable")
+    assert np.array_equal(order, ref)
+    assert np.array_equal(skey, key[ref])
