@@ -286,7 +286,8 @@ def size_correction(mesh: Mesh, topo: Topology, pmax: int, target: float,
     touched = {k: np.zeros(n_e, bool) for k in table}
     mixed = []
     for b, ce, off in zip(mesh.blocks, topo.edges.cell_edges, mesh.block_offsets):
-        groups = _CORRECTED_EDGES.get(b.info.linear, ((slice(None), None),))[0]
+        # cell kinds without a row (pyramids, 2D cells): all their edges keep a = 1
+        groups = _CORRECTED_EDGES.get(b.info.linear, (((slice(None), None),),))[0]
         sources = set()
         for sl, key in groups:
             (touched[key] if key in touched else plain)[ce[:, sl].ravel()] = True

@@ -8,6 +8,7 @@ from meshcheck.advice import SIZE_FACTOR_TABLE, AdviceSettings
 from meshcheck.dispersion import predicted_error, usable_kh
 from meshcheck.pipeline import AuditSettings, audit
 from meshcheck.reading import read_mesh
+from meshcheck.mesh import CellBlock, Mesh
 from meshes import hex_box, tet_box
 from test_verify import _gmsh_tets
 
@@ -36,6 +37,49 @@ def test_uniform_grid_limit_is_the_1d_model(p, target):
                                                              correction_3d=False), speed=C))
     expected = C * _first_crossing(p, L / h, target) / (2 * np.pi * h)
     assert res.advice.mesh_limit[p - 1] == pytest.approx(expected, rel=2e-3)
+
+
+def _quad_grid(nx=6, ny=3, h=0.2):
+    x, y = np.meshgrid(np.arange(nx + 1) * h, np.arange(ny + 1) * h, indexing="ij")
+    pts = np.column_stack([x.ravel(), y.ravel(), np.zeros(x.size)])
+    i, j = np.meshgrid(np.arange(nx), np.arange(ny), indexing="ij")
+    a = (i * (ny + 1) + j).ravel()
+    return pts, np.column_stack([a, a + ny + 1, a + ny + 2, a + 1])
+
+
+def _uncorrected_meshes():
+    """Kinds without a correction row (a = 1): 2D quads, 2D triangles, pyramids."""
+    pts, quads = _quad_grid()
+    one = np.ones(len(quads), np.int64)
+    tris = np.vstack([quads[:, [0, 1, 2]], quads[:, [0, 2, 3]]])
+    hexes = hex_box((6, 3, 3), size=(1.2, 0.6, 0.6))
+    hp = hexes.points
+    hc = hexes.blocks[0].cells  # 6 pyramids per cube, apex at an added centre node
+    centre = len(hp) + np.arange(len(hc))
+    pyr_pts = np.vstack([hp, hp[hc].mean(axis=1)])
+    faces = [(0, 3, 2, 1), (4, 5, 6, 7), (0, 1, 5, 4), (1, 2, 6, 5), (2, 3, 7, 6), (3, 0, 4, 7)]
+    pyr = np.vstack([np.column_stack([hc[:, list(f)], centre]) for f in faces])
+    return {"quads 2D": (Mesh(pts, (CellBlock("quad", quads, one),), dim=2), 0.2,
+                         np.hypot(1.2, 0.6)),
+            "triangles 2D": (Mesh(pts, (CellBlock("triangle", tris, np.ones(len(tris),
+                                                                         np.int64)),), dim=2),
+                             0.2 * np.sqrt(2), np.hypot(1.2, 0.6)),
+            "pyramids": (Mesh(pyr_pts, (CellBlock("pyramid", pyr, np.ones(len(pyr),
+                                                                         np.int64)),)),
+                         0.2, np.linalg.norm((1.2, 0.6, 0.6)))}
+
+
+@pytest.mark.parametrize("correction", [True, False], ids=["default", "plain"])
+@pytest.mark.parametrize("name", ["quads 2D", "triangles 2D", "pyramids"])
+def test_kinds_without_a_correction_row_keep_the_1d_model(name, correction):
+    # no fitted factor for these kinds: with or without the correction the limit of the
+    # mesh is the 1D model's at its longest edge, f = c (kh)_max(p, L/h) / (2 pi h)
+    mesh, h, L = _uncorrected_meshes()[name]
+    res = audit(mesh, AuditSettings((100.0,), AdviceSettings(max_order=4,
+                                                             correction_3d=correction), speed=C))
+    for p in (1, 2, 4):
+        expected = C * _first_crossing(p, L / h, 0.01) / (2 * np.pi * h)
+        assert res.advice.mesh_limit[p - 1] == pytest.approx(expected, rel=2e-3)
 
 
 TET_MESHES = {"split bricks": lambda: tet_box((4, 3, 3), size=(1.2, 0.9, 0.6)),
