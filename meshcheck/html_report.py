@@ -7,14 +7,14 @@ with :func:`html.escape` (region names and file names come from the mesh file);
 only markup built here is emitted raw.
 
 Sections, most important first: 1 the verdict (signed-off upper frequency per
-solver mode, with the assumptions and, when a job file set them, the media per
-region), 2 what blocks or limits it, 3 the advice per frequency (ending with the
-geometry checks and the cost of the sweep), 4 quality, 5 method and cautions.
-Figures come from the report dict of :func:`meshcheck.report.to_dict`, formatted,
-not recomputed (the unknowns of the solver-mode table excepted, see
-:func:`solver_modes`).  A print style sheet lays
-the page out for A4 or Letter (whichever the print dialog uses; the content
-is at most 186 mm wide), one section per page start.
+solver mode, with the assumptions and, when a job file or the mesh file's
+material cards set them, the media per region), 2 what blocks or limits it,
+3 the advice per frequency (ending with the geometry checks and the cost of the
+sweep), 4 quality, 5 method and cautions.  Figures come from the report dict
+of :func:`meshcheck.report.to_dict`, formatted, not recomputed (the unknowns of
+the solver-mode table excepted, see :func:`solver_modes`).  A print style sheet
+lays the page out for A4 or Letter (whichever the print dialog uses; the
+content is at most 186 mm wide), one section per page start.
 
 matplotlib is imported only when figures are rendered; without it
 :func:`render_html` raises ImportError with the install hint.
@@ -294,6 +294,8 @@ def _assumptions(res: AuditResult, d: dict) -> str:
          ("" if res.settings.speed is not None else
           f" (air at {asm['temperature_c']:g} \u00b0C, c = 331.3\u221a(1 + T/273.15))")
          + (f"; per region: {speeds}" if speeds else "")),
+    ] + [("speed stated by the mesh file", f"{ms['name']}: {ms['speed_m_s']:.6g} m/s "
+          f"({ms['card']}), {ms['note']}") for ms in asm.get("material_speeds", [])] + [
         ("solver", _mode_text(asm)),
         ("accuracy target", f"relative error {asm['target_relative_error']:.3g}"),
         ("3D correction of the 1D model", asm["correction_3d_note"]),
@@ -311,8 +313,9 @@ def _assumptions(res: AuditResult, d: dict) -> str:
 
 
 def _default_medium(r: dict, temperature_c: float) -> bool:
-    """True for a region a job file left alone: still fluid, no flow, and air at the
-    audit's temperature (or a speed from the command line, stated above)."""
+    """True for a region neither a job file nor the mesh file's material cards set: still
+    fluid, no flow, and air at the audit's temperature (or a speed from the command line,
+    stated above)."""
     return (r["role"] == "fluid" and not r["mach_number"]
             and r["source"] in (f"air at {temperature_c:g} deg C (ideal gas)", "command line"))
 
@@ -326,7 +329,8 @@ def _speed(c) -> str:
 
 
 def _media(d: dict) -> str:
-    """Per-region media table, only when a job file set a medium, a role or a flow."""
+    """Per-region media table, only when a region is not default air (a medium, role or
+    flow set by a job file, or a speed stated by the mesh file)."""
     media = d.get("media")
     asm = d["assumptions"]
     if not media or all(_default_medium(r, asm["temperature_c"]) for r in media):
@@ -342,9 +346,9 @@ def _media(d: dict) -> str:
                       r["source"]],
                      {"class": "default" if _default_medium(r, asm["temperature_c"]) else "set",
                       "data-tag": r["tag"]}))
-    return ("<p><b>Media per region</b> (job file; the speed per region replaces the sound "
-            "speed above). The effective speed 1/Re(1/c) sets the wavelength; the Mach number "
-            "is the mean flow over it.</p>"
+    return ("<p><b>Media per region</b> (set by the job file or the mesh file's material "
+            "cards; the speed per region replaces the sound speed above). The effective speed "
+            "1/Re(1/c) sets the wavelength; the Mach number is the mean flow over it.</p>"
             + _table(["region", "role", "speed (m/s)", "effective speed (m/s)",
                       "attenuation (dB per wavelength)", "Mach", "source"], rows,
                      text=(0, 1, 6), tid="media-table", cls="media"))
@@ -475,9 +479,14 @@ def _advice(res: AuditResult, d: dict, figs: dict) -> str:
     return "\n".join(out)
 
 
+def _len3(x) -> str:
+    """A length to 3 digits, without an exponent from 1,000 to 10^7."""
+    return f"{float(x):,.0f}" if x is not None and 1e3 <= abs(float(x)) < 1e7 else _g(x, 3)
+
+
 def _span(lo, hi, unit: str) -> str:
     """'lo to hi unit', or one value when both print alike (3 digits)."""
-    a, b = _g(lo, 3), _g(hi, 3)
+    a, b = _len3(lo), _len3(hi)
     return f"{a} {unit}" if a == b else f"{a} to {b} {unit}"
 
 
@@ -509,7 +518,7 @@ def _geometry_checks(d: dict) -> str:
                 f"smooth patches; quadratic geometry would do for "
                 f"{_int(c['quadratic_geometry_would_do'])}, too large even quadratic: "
                 f"{_int(c['too_large_even_quadratic'])}; smallest radius of curvature "
-                + (f"{_g(rad, 3)} {unit}" if rad is not None else "\u2013 (no curved patch)"))
+                + (f"{_len3(rad)} {unit}" if rad is not None else "\u2013 (no curved patch)"))
         if c.get("curved_quadratic_faces"):
             text += f"; curved quadratic faces {_int(c['curved_quadratic_faces'])}"
         text += f"; criterion: {c['criterion']}"
@@ -611,12 +620,13 @@ def _cost(d: dict) -> str:
     for key in ("coarsening", "coarsening_chosen_order"):
         co = cost.get(key)
         if co:
-            out.append(_coarsening(co, unit, d["input"]["dimension"]))
+            out.append(_coarsening(co, unit, d["input"]["dimension"], key == "coarsening"))
     return "\n".join(out)
 
 
-def _coarsening(co: dict, unit: str, dim: int) -> str:
-    """The coarsening-scenario sentence of the cost subsection."""
+def _coarsening(co: dict, unit: str, dim: int, written: bool) -> str:
+    """The coarsening-scenario sentence of the cost subsection (``written``: its size
+    field is the one the VTU and the gmsh view hold)."""
     lo, hi = co.get("target_size_min"), co.get("target_size_max")
     sizes = f"; target size {_span(lo, hi, unit)}" if lo is not None else ""
     if co.get("geometry_limited_nodes"):
@@ -629,13 +639,14 @@ def _coarsening(co: dict, unit: str, dim: int) -> str:
                 + ("is quoted for 3D meshes only." if dim != 3 else "is not estimated."))
     else:
         ref = str(co.get("compared_with") or "").replace("<=", "\u2264")
-        sp = (f", {co['speedup']:.3g} times faster than {ref} on the supplied mesh"
+        sp = (f" (speed-up {co['speedup']:.3g} over {ref} on the supplied mesh)"
               if co.get("speedup") and ref else "")
         text = (head + f"would hold about {_int(round(co['estimated_cells']))} tetrahedra and "
                 f"{_int(q['unknowns'][-1])} unknowns at the top frequency; the sweep would take "
                 f"{_dur(q['total_s'])}{sp}.")
     where = ("The size field is in the VTU report (point data target_size and mesher_size) "
-             "and in the gmsh view *.size.pos (gmsh model.geo -bgm <mesh>.size.pos -3).")
+             f"and in the gmsh view *.size.pos (gmsh model.geo -bgm <mesh>.size.pos -{dim})."
+             if written else "")
     return f'<p class="coarsening">{_e(text)} {_e(where)}</p>'
 
 

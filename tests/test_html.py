@@ -283,6 +283,229 @@ def test_print_stylesheet(reports):
         assert min(rgb) >= 0xe0, colour  # light backgrounds only
 
 
+# ------------------------------------------------ cost, media and geometry checks
+def _rows_by_first_cell(table: list[list[str]]) -> tuple[dict[str, int], dict[str, list[str]]]:
+    """(column index by header, body rows by first cell without " (this audit)")."""
+    col = {h: j for j, h in enumerate(table[0])}
+    return col, {r[0].replace(" (this audit)", ""): r for r in table[1:]}
+
+
+def _md_cost_rows(cost: dict) -> dict[str, list[str]]:
+    """Body rows of the Markdown report's cost table (meshcheck.cost.cost_markdown)."""
+    out = {}
+    for line in cost_markdown(cost):
+        if line.startswith("| ") and not line.startswith("| strategy"):
+            cells = [c.strip() for c in line.strip().strip("|").split("|")]
+            out[cells[0]] = cells
+    return out
+
+
+def _label(strategy: str) -> str:
+    return strategy.replace("<=", "\u2264")
+
+
+@pytest.mark.parametrize("strategy", ["variable p<=8", "fixed p=1", "fixed p=2"])
+def test_cost_table_equals_json(strategy, reports):
+    path, d, _ = reports["ready"]
+    col, rows = _rows_by_first_cell(_Doc(path.read_text(encoding="utf-8")).tables["cost-table"])
+    q = next(q for q in d["cost"]["strategies"] if q["strategy"] == strategy)
+    row = rows[_label(strategy)]
+    top = f"unknowns at {html_report._hz(d['sweep']['frequencies_hz'][-1])} Hz"
+    assert row[col[top]] == f"{q['unknowns'][-1]:,}"
+    assert row[col["non-zeros"]] == f"{q['nonzeros'][-1]:,}"
+    assert row[col["carries every frequency"]] == ("yes" if q["carries_all"] else "no")
+    # the same figures as the Markdown report's cost table, formatted from the same JSON
+    md = _md_cost_rows(d["cost"])[_label(strategy)]
+    assert row[col[top]] == md[1]
+    assert row[col["peak memory"]] == md[5]
+    # and the printed memory reads back as the JSON's bytes to its three digits
+    value, unit = row[col["peak memory"]].split()
+    assert float(value) * {"MB": 1e6, "GB": 1e9}[unit] == pytest.approx(
+        q["peak_memory_bytes"], rel=5e-3)
+
+
+def test_cost_table_lists_the_json_strategies_in_order(reports):
+    path, d, _ = reports["ready"]
+    table = _Doc(path.read_text(encoding="utf-8")).tables["cost-table"]
+    labels = [r[0].replace(" (this audit)", "") for r in table[1:]]
+    assert labels == [_label(q["strategy"]) for q in d["cost"]["strategies"]]
+    assert labels[0].startswith("variable") and "(this audit)" in table[1][0]
+
+
+@pytest.mark.parametrize("case", ["ready", "limited"])
+def test_coarsening_sentence_equals_json_in_the_users_unit(case, reports):
+    from meshcheck.cost import audit_job_cost
+
+    path, d, res = reports[case]
+    text = " ".join(" ".join(_Doc(path.read_text(encoding="utf-8")).text).split())
+    co = d["cost"]["coarsening"]
+    assert f"about {round(co['estimated_cells']):,} tetrahedra" in text
+    assert f"{co['quote']['unknowns'][-1]:,} unknowns at the top frequency" in text
+    assert f"(speed-up {co['speedup']:.3g} over {_label(co['compared_with'])} on the " \
+        "supplied mesh)" in text
+    assert "target_size" in text and "mesher_size" in text and "*.size.pos" in text
+    # target sizes in the user's unit: the size field (metres) times the unit's factor
+    unit = d["input"]["unit"]
+    m = re.search(rf"target size ([0-9.,e+-]+)(?: to ([0-9.,e+-]+))? {unit}\b", text)
+    size = audit_job_cost(res).coarsening.field.size
+    lo = float(np.nanmin(size[np.isfinite(size)])) * {"m": 1.0, "mm": 1000.0}[unit]
+    assert float(m.group(1).replace(",", "")) == pytest.approx(lo, rel=5e-3)
+
+
+@pytest.mark.parametrize("case", ["ready", "job"])
+def test_cost_and_geometry_are_the_last_subsections_of_the_advice(case, reports):
+    text = reports[case][0].read_text(encoding="utf-8")
+    start = text.index('<section id="advice">')
+    end = text.index("</section>", start)
+    geo, cost = text.index("<h3>Geometry checks</h3>"), text.index('<h3 id="cost">')
+    assert start < geo < cost < end
+    assert "<h3>" not in text[cost + 4:end]  # the cost is the last subsection
+    assert re.findall(r'<span class="secno">(\d)</span>', text) == ["1", "2", "3", "4", "5"]
+
+
+def test_cost_error_renders_the_not_estimated_sentence(reports):
+    import copy
+
+    _, d, res = reports["blocked"]
+    d = copy.deepcopy(d)
+    msg = "no machine constants <machine.json>: run meshcheck calibrate"
+    d["cost"] = {"error": msg}
+    text = html_report.render_html(res, d)
+    doc = _Doc(text)
+    assert "cost-table" not in doc.tables
+    assert f"The cost of the sweep was not estimated: {msg}." in " ".join(doc.text)
+    assert "<machine.json>" not in text and "&lt;machine.json&gt;" in text
+
+
+MEDIA_CASES = [("ready", None, False), ("job", None, True),
+               ("cold_air_no_job", dict(temperature=0.0), False),
+               ("job_air_at_30c", dict(job={"temperature": 30.0}), True),
+               ("job_plain_air", dict(job={"region": {"air": {"medium": "air"}}}), False),
+               ("mesh_file_speed", dict(material_speeds={1: (1481.0, "MAT10")}), True)]
+
+
+@pytest.mark.parametrize("case,settings,shown", MEDIA_CASES, ids=[c[0] for c in MEDIA_CASES])
+def test_media_table_only_when_a_job_sets_media_or_flow(case, settings, shown, reports):
+    if settings is None:
+        tables = _Doc(reports[case][0].read_text(encoding="utf-8")).tables
+    else:
+        kw = dict(settings)
+        if "job" in kw:
+            kw["job"] = parse_job(kw["job"])
+        m = tet_box((2, 2, 2))
+        if "material_speeds" in kw:  # a speed stated by the mesh file's material card
+            m = Mesh(m.points, m.blocks, m.region_names, 3, "deck.bdf", "m",
+                     kw.pop("material_speeds"))
+        res = audit(m, AuditSettings((100.0,), **kw))
+        tables = _Doc(html_report._media(to_dict(res))).tables
+    assert ("media-table" in tables) == shown
+
+
+@pytest.mark.parametrize("case", ["job", "job_xss"])
+def test_media_table_names_and_mach_numbers_equal_json(case, reports):
+    from meshcheck.acoustics import air_speed
+
+    path, d, _ = reports[case]
+    names = JOB_NAMES if case == "job" else XSS_NAMES
+    col, rows = _rows_by_first_cell(
+        _Doc(path.read_text(encoding="utf-8")).tables["media-table"])
+    assert list(rows) == [r["name"] for r in d["media"]] == [names[t] for t in (1, 2, 3)]
+    for r in d["media"]:
+        assert float(rows[r["name"]][col["Mach"]]) == pytest.approx(r["mach_number"], rel=1e-3)
+    # the JSON's Mach number: the job's flow over air at 20 deg C (Kinsler et al. eq. 5.6.8)
+    assert float(rows[names[1]][col["Mach"]]) == pytest.approx(JOB_FLOW / air_speed(20.0),
+                                                                rel=1e-3)
+    assert float(rows[names[2]][col["Mach"]]) == 0.0
+    assert rows[names[3]][col["role"]] == f"pml around {names[2]}"
+
+
+def test_media_table_escapes_region_names(reports):
+    text = reports["job_xss"][0].read_text(encoding="utf-8")
+    table = text[text.index('<table id="media-table"'):]
+    table = table[:table.index("</table>")]
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in table
+    assert "&quot; onmouseover=&quot;alert(2)" in table
+    assert "&lt;img src=x onerror=alert(4)&gt;" in table
+    doc = _Doc(text)
+    assert XSS not in text and "<img src=x" not in text and "script" not in doc.tags
+    assert not [a for a in doc.attrs if a[1].lower().startswith("on")]
+
+
+def _expected_checks(d: dict) -> list[tuple[str, str]]:
+    """(check, flagged) per geometry check that ran, from the JSON."""
+    out = []
+    if d["gradation"] is not None:
+        out.append(("size jumps", d["gradation"]["count"]))
+    if d["curvature"] is not None:
+        out.append(("curved boundaries", d["curvature"]["straight_faces_off_surface"]))
+    if d["quadratic_cells"] is not None:
+        out.append(("quadratic cells", d["quadratic_cells"]["below_threshold"]))
+    for lay in d["absorbing_layers"]:
+        out.append((f"absorbing layer {lay['name']}", len(lay["messages"])))
+    if d["directional_orders"] is not None:
+        out.append(("directional orders", d["directional_orders"]["anisotropic_cells"]))
+    return [(k, f"{n:,}") for k, n in out]
+
+
+GEOMETRY_CASES = {"ready": {"size jumps", "curved boundaries"},
+                  "job": {"size jumps", "curved boundaries", "absorbing layer pml",
+                          "directional orders"},
+                  "quadratic": {"size jumps", "curved boundaries", "quadratic cells"}}
+
+
+@pytest.mark.parametrize("case", list(GEOMETRY_CASES))
+def test_geometry_rows_equal_json_counts(case, reports):
+    path, d, _ = reports[case]
+    table = _Doc(path.read_text(encoding="utf-8")).tables["geometry-table"]
+    rows = [(r[0], r[1]) for r in table[1:]]
+    assert rows == _expected_checks(d)
+    assert {r[0] for r in rows} == GEOMETRY_CASES[case]  # the checks these meshes trigger
+    if case == "quadratic":  # the bent mid-node pushes cells below the threshold
+        assert int(dict(rows)["quadratic cells"]) > 0
+
+
+def test_layer_row_in_the_users_unit_and_wavelengths(reports):
+    from meshcheck.acoustics import air_speed
+
+    path, d, _ = reports["job"]
+    _, rows = _rows_by_first_cell(
+        _Doc(path.read_text(encoding="utf-8")).tables["geometry-table"])
+    details = rows["absorbing layer pml"][2]
+    assert f"thickness {LAYER_T * 1000:g} mm" in details  # built LAYER_T m thick, unit mm
+    # thickness over the wavelength in air at the lowest frequency (the PML holds air)
+    lam = air_speed(20.0) / JOB_FREQS[0]
+    assert f"min {LAYER_T / lam:.3g} / median {LAYER_T / lam:.3g} wavelengths" in details
+    assert "cells across min 3 / median 3" in details and "conforming" in details
+    for m in d["absorbing_layers"][0]["messages"]:
+        assert m["message"].rstrip(".") in details
+
+
+@pytest.mark.parametrize("case,key", [("job", "gradation"), ("job", "curvature"),
+                                      ("job", "absorbing_layers"),
+                                      ("job", "directional_orders"),
+                                      ("quadratic", "quadratic_cells")])
+def test_null_geometry_sections_are_skipped(case, key, reports):
+    import copy
+
+    d = copy.deepcopy(reports[case][1])
+    before = _expected_checks(d)
+    d[key] = [] if key == "absorbing_layers" else None
+    after = _expected_checks(d)
+    assert len(after) < len(before)
+    table = _Doc(html_report._geometry_checks(d)).tables["geometry-table"]
+    assert [(r[0], r[1]) for r in table[1:]] == after
+
+
+def test_no_geometry_check_applied(reports):
+    import copy
+
+    d = copy.deepcopy(reports["ready"][1])
+    d.update(gradation=None, curvature=None, quadratic_cells=None, absorbing_layers=[],
+             directional_orders=None)
+    text = html_report._geometry_checks(d)
+    assert "No geometry check applied." in text and "<table" not in text
+
+
 # --------------------------------------------------------------- the CLI
 def test_cli_writes_the_html_next_to_the_other_reports(tmp_path):
     import meshio
@@ -552,3 +775,19 @@ def test_prints_one_section_per_page_start(paper, size_cm, size_pt, reports, bro
     boxes = {tuple(round(float(x), 0) for x in m.split()[2:4])
              for m in re.findall(rb"/MediaBox\s*\[([^\]]+)\]", pdf)}
     assert boxes == {tuple(round(x, 0) for x in size_pt)}
+
+
+@pytest.mark.parametrize("speed, used", [(1481.0, True), (1.481e6, False)],
+                         ids=["used", "implausible"])
+def test_assumptions_list_the_mesh_file_speeds_with_the_jsons_note(speed, used):
+    import html as _html
+
+    m = tet_box((2, 2, 2))
+    m = Mesh(m.points, m.blocks, {1: "<b>fluid</b>"}, 3, "deck.bdf", "m", {1: (speed, "MAT10 4")})
+    res = audit(m, AuditSettings((100.0,)))
+    d = to_dict(res)
+    (ms,) = d["assumptions"]["material_speeds"]
+    assert ms["used"] is used
+    text = html_report.render_html(res, d)
+    assert f"{ms['speed_m_s']:.6g} m/s (MAT10 4), {ms['note']}" in _html.unescape(text)
+    assert "<b>fluid</b>" not in text  # the region name is escaped
