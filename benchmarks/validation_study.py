@@ -98,31 +98,9 @@ def split_wedges(n, size):
 
 def _gmsh_mesh(build, name):
     """Run a gmsh model builder and return its linear volume cells as a Mesh."""
-    import gmsh
+    from meshcheck.gmsh_mesh import generate
 
-    gmsh.initialize(interruptible=False)
-    try:
-        opt = gmsh.option.setNumber
-        opt("General.Terminal", 0)
-        opt("General.NumThreads", 1)
-        opt("Mesh.RandomSeed", 1)
-        opt("Mesh.Algorithm", 6)
-        opt("Mesh.Algorithm3D", 1)
-        opt("Mesh.Optimize", 1)
-        build(gmsh)
-        gmsh.model.mesh.generate(3)
-        tags, xyz, _ = gmsh.model.mesh.getNodes()
-        idx = np.full(int(tags.max()) + 1, -1, np.int64)
-        idx[tags.astype(np.int64)] = np.arange(len(tags))
-        blocks = []
-        for etype, kind, n in ((4, "tetra", 4), (6, "wedge", 6), (5, "hexahedron", 8)):
-            _, nodes = gmsh.model.mesh.getElementsByType(etype)
-            if len(nodes):
-                cells = idx[nodes.astype(np.int64)].reshape(-1, n)
-                blocks.append(CellBlock(kind, cells, np.ones(len(cells), np.int64)))
-    finally:
-        gmsh.finalize()
-    return Mesh(xyz.reshape(-1, 3), tuple(blocks), {1: "air"}, 3, name, "m")
+    return generate(build, 3, {"Mesh.Optimize": 1}, name)
 
 
 def gmsh_box(size, h, graded=None):

@@ -643,54 +643,19 @@ def reference_mesh(dim: int = 3, size: float = 0.03) -> Mesh:
     """Unstructured gmsh mesh (Delaunay, one thread, fixed seed) of the box
     1 x 0.8 x 0.6 m (3D, tets) or the rectangle 1 x 0.8 m (2D, triangles) with
     uniform target size ``size`` (m), as a meshcheck Mesh."""
-    import gmsh
+    from .gmsh_mesh import generate
 
-    from .topology import cell_volumes
-
-    gmsh.initialize(interruptible=False)
-    try:
-        opt = gmsh.option.setNumber
-        opt("General.Terminal", 0)
-        opt("General.NumThreads", 1)
-        opt("Mesh.RandomSeed", 1)
-        opt("Mesh.Algorithm", 6)
-        opt("Mesh.Algorithm3D", 1)
-        opt("Mesh.MeshSizeMin", size)
-        opt("Mesh.MeshSizeMax", size)
-        opt("Mesh.MeshSizeFromPoints", 0)
-        opt("Mesh.MeshSizeFromCurvature", 0)
+    def build(gmsh):
         gmsh.model.add("reference")
         if dim == 3:
             gmsh.model.occ.addBox(0, 0, 0, 1.0, 0.8, 0.6)
         else:
             gmsh.model.occ.addRectangle(0, 0, 0, 1.0, 0.8)
         gmsh.model.occ.synchronize()
-        gmsh.model.mesh.generate(dim)
-        tags, coords, _ = gmsh.model.mesh.getNodes()
-        etype = gmsh.model.mesh.getElementType("tetrahedron" if dim == 3 else "triangle", 1)
-        _, enodes = gmsh.model.mesh.getElementsByType(etype)
-    finally:
-        gmsh.finalize()
-    index = np.zeros(int(tags.max()) + 1, np.int64)
-    index[tags.astype(np.int64)] = np.arange(len(tags))
-    nc = dim + 1
-    cells = index[np.asarray(enodes, np.int64)].reshape(-1, nc)
-    pts = np.asarray(coords, float).reshape(-1, 3)
-    used = np.zeros(len(pts), bool)
-    used[cells] = True
-    new = np.cumsum(used) - 1
-    pts, cells = pts[used], new[cells]
-    kind = "tetra" if dim == 3 else "triangle"
-    src = f"gmsh box size={size:g} m"
-    m = Mesh(pts, (CellBlock(kind, cells, np.ones(len(cells), np.int64)),), {1: "air"}, dim,
-             src, "m")
-    neg = cell_volumes(m) < 0
-    if neg.any():
-        cells = cells.copy()
-        cells[neg, 1], cells[neg, 2] = cells[neg, 2].copy(), cells[neg, 1].copy()
-        m = Mesh(pts, (CellBlock(kind, cells, np.ones(len(cells), np.int64)),), {1: "air"},
-                 dim, src, "m")
-    return m
+
+    return generate(build, dim, {"Mesh.MeshSizeMin": size, "Mesh.MeshSizeMax": size,
+                                 "Mesh.MeshSizeFromPoints": 0, "Mesh.MeshSizeFromCurvature": 0},
+                    f"gmsh box size={size:g} m")
 
 
 def measure(mesh: Mesh, cell_order, k: float | None = None, condensed: bool = True,

@@ -19,38 +19,25 @@ BOX = (1.0, 0.8, 0.6)
 
 def _gmsh_box(size: float, bgm: str | None = None) -> Mesh:
     """gmsh 4.15 Delaunay tets of BOX at a uniform size (or a background view)."""
-    gmsh = pytest.importorskip("gmsh")
-    gmsh.initialize(interruptible=False)
-    try:
-        opt = gmsh.option.setNumber
-        opt("General.Terminal", 0)
-        opt("General.NumThreads", 1)
-        opt("Mesh.Algorithm3D", 1)
-        opt("Mesh.RandomSeed", 1)
+    pytest.importorskip("gmsh")
+    from meshcheck.gmsh_mesh import generate
+
+    def build(gmsh):
         gmsh.model.occ.addBox(0, 0, 0, *BOX)
         gmsh.model.occ.synchronize()
         if bgm is None:
-            opt("Mesh.MeshSizeMin", size)
-            opt("Mesh.MeshSizeMax", size)
-        else:
-            for k in ("Mesh.MeshSizeFromPoints", "Mesh.MeshSizeFromCurvature",
-                      "Mesh.MeshSizeExtendFromBoundary"):
-                opt(k, 0)
-            gmsh.merge(bgm)
-            f = gmsh.model.mesh.field.add("PostView")
-            gmsh.model.mesh.field.setNumber(f, "ViewTag", gmsh.view.getTags()[-1])
-            gmsh.model.mesh.field.setAsBackgroundMesh(f)
-        gmsh.model.mesh.generate(3)
-        tags, xyz, _ = gmsh.model.mesh.getNodes()
-        et = gmsh.model.mesh.getElementType("tetrahedron", 1)
-        _, en = gmsh.model.mesh.getElementsByType(et)
-    finally:
-        gmsh.finalize()
-    idx = np.zeros(int(tags.max()) + 1, np.int64)
-    idx[tags.astype(np.int64)] = np.arange(len(tags))
-    cells = idx[en.astype(np.int64)].reshape(-1, 4)
-    return Mesh(xyz.reshape(-1, 3), (CellBlock("tetra", cells, np.ones(len(cells))),),
-                {1: "air"}, 3, "gmsh", "m")
+            gmsh.option.setNumber("Mesh.MeshSizeMin", size)
+            gmsh.option.setNumber("Mesh.MeshSizeMax", size)
+            return
+        for k in ("Mesh.MeshSizeFromPoints", "Mesh.MeshSizeFromCurvature",
+                  "Mesh.MeshSizeExtendFromBoundary"):
+            gmsh.option.setNumber(k, 0)
+        gmsh.merge(bgm)
+        f = gmsh.model.mesh.field.add("PostView")
+        gmsh.model.mesh.field.setNumber(f, "ViewTag", gmsh.view.getTags()[-1])
+        gmsh.model.mesh.field.setAsBackgroundMesh(f)
+
+    return generate(build, 3, name="gmsh")
 
 
 # ---------------------------------------------------------------------------
