@@ -274,6 +274,42 @@ def _per_order(a, pmax: int) -> np.ndarray:
     return np.minimum(1.1, np.where(p <= len(a), a[np.minimum(p, len(a)) - 1], last))
 
 
+def _free_and_aligned(entry, pmax: int, target: float) -> tuple[np.ndarray, np.ndarray]:
+    """(pmax,) a_free and a_aligned of a table entry at ``target``: log-linear in the
+    target between the fitted ones, continued down to 0.1 %, held above 5 %."""
+    _, rows = entry
+    t1, t5 = sorted(rows)
+    w_t = np.clip(np.log(target / t1) / np.log(t5 / t1), np.log(1e-3 / t1) / np.log(t5 / t1),
+                  1.0)
+    return tuple((1 - w_t) * _per_order(rows[t1][i], pmax) + w_t * _per_order(rows[t5][i], pmax)
+                 for i in (0, 1))
+
+
+def kind_factors(kind: str, pmax: int, target: float, alignment: float = 0.0,
+                 table: dict | None = None) -> np.ndarray:
+    """(pmax,) factor a per order p = 1..pmax of the cells of one table kind
+    ("tetra", "wedge", "hexahedron") at a mesh alignment s (0 = isotropic, the
+    unstructured meshes of the fit; see :func:`size_correction`); ones for a kind
+    without a row."""
+    table = SIZE_FACTOR_TABLE if table is None else table
+    if kind not in table:
+        return np.ones(pmax)
+    free, aligned = _free_and_aligned(table[kind], pmax, target)
+    s_free = table[kind][0]
+    w = max(0.0, alignment - s_free) / (1.0 - s_free)
+    return free + w * (aligned - free)
+
+
+def cell_factors(mesh: Mesh, topo: Topology, order: int, settings: "AdviceSettings",
+                 pmax: int | None = None) -> np.ndarray:
+    """(n_cells,) factor a of every cell at ``order`` as the advice applies it (the
+    largest over the cell's edges; ones for the plain 1D model)."""
+    if not settings.correction_3d:
+        return np.ones(mesh.n_cells)
+    corr = size_correction(mesh, topo, max(order, pmax or order), settings.target)
+    return topo.edges.per_cell(corr.at(order), np.maximum)
+
+
 def size_correction(mesh: Mesh, topo: Topology, pmax: int, target: float,
                     table: dict | None = None) -> SizeCorrection:
     """The 3D correction for a mesh and an accuracy target (relative error).
@@ -298,15 +334,9 @@ def size_correction(mesh: Mesh, topo: Topology, pmax: int, target: float,
     for key, t in touched.items():
         if not t.any():
             continue
-        s_free, rows = table[key]
-        t1, t5 = sorted(rows)
-        w_t = np.clip(np.log(target / t1) / np.log(t5 / t1), np.log(1e-3 / t1) / np.log(t5 / t1),
-                      1.0)
-        free, aligned = ((1 - w_t) * _per_order(rows[t1][i], pmax) +
-                         w_t * _per_order(rows[t5][i], pmax) for i in (0, 1))
+        free, aligned = _free_and_aligned(table[key], pmax, target)
         align[key] = _alignment(mesh, topo, key) if np.any(free != aligned) else 0.0
-        w = max(0.0, align[key] - s_free) / (1.0 - s_free)
-        classes.append((t, free + w * (aligned - free)))
+        classes.append((t, kind_factors(key, pmax, target, align[key], table)))
     if len(classes) > 1 or (classes and plain.any()):
         # an edge of two kinds (e.g. tetrahedra next to a hexahedron) takes the larger factor
         kinds = plain.astype(np.int64) + sum(t.astype(np.int64) for t, _ in classes)

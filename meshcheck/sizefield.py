@@ -104,8 +104,12 @@ def node_min(mesh: Mesh, topo: Topology, cell_values: np.ndarray) -> np.ndarray:
     return out
 
 
-def cell_target_size(advice, order: int) -> np.ndarray:
-    """(n_cells,) largest edge length meeting the target at ``advice.fmax`` with ``order``, m."""
+def cell_target_size(advice, order: int, mesh: Mesh, topo: Topology) -> np.ndarray:
+    """(n_cells,) largest edge length meeting the target at ``advice.fmax`` with ``order``, m
+    (with the advice's 3D correction: the model's size over the cell's factor a).
+
+    mesh, topo : needed for the correction at an order other than the allowed one."""
+    from .advice import cell_factors
     from .dispersion import usable_kh
 
     s = advice.settings
@@ -115,7 +119,10 @@ def cell_target_size(advice, order: int) -> np.ndarray:
         raise SettingsError(f"order {order} of the size field must be between 1 and 16")
     table = usable_kh(s.target, max(order, advice.pmax))
     k = 2.0 * np.pi * advice.fmax / advice.cell_speed
-    return np.asarray(table.max_size(order, k, advice.cell_distance), dtype=float)
+    if advice.edge_flow_factor is not None:  # as in advise: the upstream wavenumber
+        k = k * topo.edges.per_cell(advice.edge_flow_factor, np.maximum)
+    a = cell_factors(mesh, topo, order, s)
+    return np.asarray(table.max_size(order, k, advice.cell_distance), dtype=float) / a
 
 
 def limit_gradation(mesh: Mesh, topo: Topology, size: np.ndarray, gradation: float) -> np.ndarray:
@@ -241,7 +248,7 @@ def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
     h_max : cap, m (default: the extent of the fluid part of each node's cells).
     """
     p = advice.settings.allowed_order if order is None else int(order)
-    cell_t = cell_target_size(advice, p)
+    cell_t = cell_target_size(advice, p, mesh, topo)
     cap = topo.cell_extent() if h_max is None else np.full(mesh.n_cells, float(h_max))
     target = node_min(mesh, topo, np.where(np.isfinite(cell_t), cell_t, cap))
     raw = np.minimum(target, node_min(mesh, topo, cap))
@@ -398,9 +405,12 @@ def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
     """Estimated systems of a tetrahedral mesh built to ``field``, per frequency.
 
     Every new cell takes the lowest order (up to ``max_order``) whose limit at its
-    size (longest edge = ``field.size``) reaches the frequency, or ``fixed_order``.
+    size (longest edge = ``field.size``) reaches the frequency, or ``fixed_order``;
+    with the advice's 3D correction the limit is that of unstructured tetrahedra
+    (:func:`meshcheck.advice.kind_factors`, alignment 0).
     Returns (list of :class:`~meshcheck.cost.SystemSize` (estimates), cell count).
     """
+    from .advice import kind_factors
     from .cost import SystemSize
     from .dispersion import usable_kh
 
@@ -426,8 +436,13 @@ def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
     else:
         table = usable_kh(advice.settings.target, max_order)
         c, L = advice.cell_speed[ok], advice.cell_distance[ok]
-        limits = np.column_stack([c * table.max_kh(p, L / h) / (2 * np.pi * h)
-                                  for p in range(1, max_order + 1)])
+        if advice.edge_flow_factor is not None:  # mean flow: as in advise, c / phi
+            c = c / topo.edges.per_cell(advice.edge_flow_factor, np.maximum)[ok]
+        # the new cells are unstructured gmsh tetrahedra: the free tetrahedron factors
+        a = (kind_factors("tetra", max_order, advice.settings.target) if
+             advice.settings.correction_3d else np.ones(max_order))
+        limits = np.column_stack([c * table.max_kh(p, L / (a[p - 1] * h))
+                                  / (2 * np.pi * a[p - 1] * h) for p in range(1, max_order + 1)])
         np.maximum.accumulate(limits, axis=1, out=limits)
         sums = _step_sums(limits[:, :max_order - 1], n_new, f, _scenario_terms(ratios))
     nd, nz, a2, a3 = sums

@@ -339,3 +339,61 @@ def test_coarsen_command_remeshes_and_audits(tmp_path):
     shrink = summary["mesher_size_shrink"]
     assert 0.8 < shrink <= 1.0
     assert summary["coarsened_cells"] == pytest.approx(est / shrink ** 3, rel=0.2)
+
+
+# ---------------------------------------------------------------------------
+# the 3D correction in the size field and the coarsening scenario
+
+def _first_crossing(p, r, tau):
+    """Largest kh of the 1D model (first crossing of the target), by scan + brentq."""
+    from scipy.optimize import brentq
+
+    from meshcheck.dispersion import predicted_error
+    t = np.linspace(1e-3, 4 * p + 8, 40000)
+    i = int(np.argmax(predicted_error(t, p, t * r) - tau > 0))
+    return brentq(lambda x: float(predicted_error(x, p, x * r) - tau), t[i - 1], t[i])
+
+
+@pytest.mark.parametrize("correction", [True, False], ids=["default", "plain"])
+@pytest.mark.parametrize("order", [1, 3])
+def test_target_size_at_another_order_meets_the_corrected_1d_model(order, correction):
+    # on hexes the factor is the table's hexahedron row (docs/validation.md); the target
+    # size h_t solves predicted_error(k a h_t, p, k L) = target (the 1D model's definition)
+    from meshcheck.advice import SIZE_FACTOR_TABLE
+    from meshcheck.dispersion import predicted_error
+    from meshcheck.sizefield import cell_target_size
+
+    mesh = hex_box((6, 4, 3), size=BOX)
+    topo = build_topology(mesh)
+    adv = advise(mesh, topo, np.full(mesh.n_cells, 343.0), 800.0,
+                 AdviceSettings(target=0.01, max_order=4, correction_3d=correction))
+    h_t = cell_target_size(adv, order, mesh, topo)
+    a = SIZE_FACTOR_TABLE["hexahedron"][1][0.01][0][order - 1] if correction else 1.0
+    k, L = 2 * np.pi * 800.0 / 343.0, np.linalg.norm(BOX)
+    assert np.allclose(h_t, h_t[0])
+    assert float(predicted_error(k * a * h_t[0], order, k * L)) == pytest.approx(0.01, rel=2e-3)
+
+
+def test_scenario_orders_follow_the_free_tetrahedron_factors():
+    # a uniform field h: every new cell takes the lowest p whose limit
+    # c (kh)_max(p, L/(a_p h)) / (2 pi a_p h) reaches f, a_p the free tetrahedron row at 1 %
+    from meshcheck.advice import SIZE_FACTOR_TABLE
+    from meshcheck.sizefield import GMSH_TET_RATIOS
+
+    mesh = tet_box((5, 4, 3), size=BOX)
+    topo, adv = _advice(mesh, 300.0, max_order=4)
+    sf = size_field(mesh, topo, adv)
+    h = 0.1
+    sf = type(sf)(sf.order, sf.fmax, sf.gradation, sf.edge_factor, sf.target, sf.geometry,
+                  np.full(mesh.n_points, h), np.full(mesh.n_points, h / 2), sf.current,
+                  estimate_cells(mesh, topo, np.full(mesh.n_points, h / 2)))
+    a = SIZE_FACTOR_TABLE["tetra"][1][0.01][0]
+    L = float(topo.component_extent[0])
+    limit = [343.0 * _first_crossing(p, L / (a[p - 1] * h), 0.01) / (2 * np.pi * a[p - 1] * h)
+             for p in range(1, 5)]
+    f = np.array([0.5 * limit[0], 0.5 * (limit[0] + limit[1]), 0.5 * (limit[1] + limit[2]),
+                  0.5 * (limit[2] + limit[3])])
+    systems, n_cells = scenario_systems(mesh, topo, adv, sf, f, 4, ratios=GMSH_TET_RATIOS)
+    per_cell = np.array([s.ndof for s in systems]) / n_cells
+    # (counts are rounded to whole unknowns)
+    np.testing.assert_allclose(per_cell, GMSH_TET_RATIOS.ndof(np.arange(1, 5)), rtol=1e-4)
