@@ -42,6 +42,8 @@ coarsening scenario of :mod:`meshcheck.sizefield`.  See docs/cost.md.
 """
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -326,13 +328,20 @@ def variable_order_systems(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
     f = np.asarray(frequencies, dtype=float)
     picks = np.arange(len(f)) if len(f) <= exact else \
         np.unique(np.round(np.linspace(0, len(f) - 1, exact)).astype(int))
-    known, last_q, last = {}, None, None
+    configs, slot = [], []  # distinct order configurations, in sweep order
     for i in picks:
         q = cell_orders_at(cell_limits, f[i], max_order)
-        if last_q is None or not np.array_equal(q, last_q):
-            last = system_size(mesh, topo, q, True, adj)
-            last_q = q
-        known[int(i)] = last
+        if not configs or not np.array_equal(q, configs[-1]):
+            configs.append(q)
+        slot.append(len(configs) - 1)
+    # the counts are independent and numpy releases the GIL in them: use the cores
+    workers = min(len(configs), os.cpu_count() or 1, 4)
+    if workers > 1:
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            sizes = list(pool.map(lambda q: system_size(mesh, topo, q, True, adj), configs))
+    else:
+        sizes = [system_size(mesh, topo, q, True, adj) for q in configs]
+    known = {int(i): sizes[j] for i, j in zip(picks, slot)}
     if len(picks) == len(f):
         return [known[i] for i in range(len(f))]
     fields = ("ndof", "nnz", "ndof_interior", "cell_entries", "cell_cubes")
