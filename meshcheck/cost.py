@@ -114,21 +114,40 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
     Returns (n_f,) int64.
     """
     f = np.asarray(frequencies, dtype=float)
-    total = np.full(f.shape, _used_vertices(mesh), dtype=np.int64)
     faces = topo.faces
-    is_tri = faces.nodes[:, 3] < 0 if len(faces) else np.zeros(0, bool)
-    inner = faces.count >= 1
-    for q in range(1, max_order):
+    three = mesh.dim == 3 and len(faces) > 0
+    if three:
+        c0, c1 = faces.cells[:, 0], faces.cells[:, 1]
+        two = c1 >= 0
+        c1 = np.maximum(c1, 0)
+        is_tri = faces.nodes[:, 3] < 0
+        kinds = [(is_tri, lambda q: q - 1), (~is_tri, lambda q: 2 * q - 1)]
+        kinds = [(np.flatnonzero(k), inc) for k, inc in kinds if k.any()]
+
+    def above(q: int) -> np.ndarray:
+        """Unknowns added where entities need more than order q, per frequency."""
         col = np.ascontiguousarray(cell_limits[:, q - 1])
         # an edge has order > q where one of its cells has (limit at q below f)
         g_edge = np.sort(topo.edges.from_cells(col, np.minimum))
-        total += np.searchsorted(g_edge, f, side="left")
-        if mesh.dim == 3 and len(faces):
-            c0, c1 = faces.cells[:, 0], faces.cells[:, 1]
-            g_face = np.where(c1 >= 0, np.minimum(col[c0], col[np.maximum(c1, 0)]), col[c0])
-            for kind, inc in ((is_tri & inner, q - 1), (~is_tri & inner, 2 * q - 1)):
-                if inc > 0 and kind.any():
-                    total += inc * np.searchsorted(np.sort(g_face[kind]), f, side="left")
+        out = np.searchsorted(g_edge, f, side="left").astype(np.int64)
+        if three:
+            g_face = col[c0]
+            np.minimum(g_face, col[c1], out=g_face, where=two)
+            for idx, inc in kinds:
+                if inc(q) > 0:
+                    out += inc(q) * np.searchsorted(np.sort(g_face[idx]), f, side="left")
+        return out
+
+    total = np.full(f.shape, _used_vertices(mesh), dtype=np.int64)
+    qs = range(1, max_order)
+    workers = min(len(qs), os.cpu_count() or 1, 4)
+    if workers > 1 and mesh.n_cells > 50_000:  # numpy releases the GIL in sorts and gathers
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            parts = list(pool.map(above, qs))
+    else:
+        parts = [above(q) for q in qs]
+    for part in parts:
+        total += part
     return total
 
 

@@ -269,3 +269,18 @@ def test_fixed_order_system_is_lagrange(p):
     mesh = hex_box((3, 2, 2))
     topo = build_topology(mesh)
     assert fixed_order_system(mesh, topo, p).ndof == lagrange_dofs(mesh, topo, p)
+
+
+def test_variable_order_dofs_on_threads_equal_the_exact_count():
+    # above 50k cells the orders are counted on a thread pool: same unknowns as the
+    # exact count of the system with the orders each frequency needs
+    mesh = tet_box((20, 20, 22))
+    assert mesh.n_cells > 50_000
+    topo = build_topology(mesh)
+    pmax = 5
+    rng = np.random.default_rng(11)
+    limits = np.sort(rng.uniform(100.0, 3000.0, (mesh.n_cells, pmax)), axis=1)
+    f = np.array([50.0, 400.0, 900.0, 1600.0, 2500.0, 4000.0])
+    got = variable_order_dofs(mesh, topo, limits, f, pmax)
+    want = [system_size(mesh, topo, cell_orders_at(limits, x, pmax), True).ndof for x in f]
+    assert got.tolist() == want
