@@ -22,6 +22,7 @@ from .cost import condensed_dofs, lagrange_dofs, variable_order_dofs
 from .dispersion import usable_kh
 from .errors import SettingsError
 from .mesh import Mesh
+from .threads import thread_map
 from .topology import Topology
 
 __all__ = ["AdviceSettings", "Advice", "Cluster", "Sweep", "advise", "sweep", "clusters"]
@@ -388,16 +389,23 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     edge_limit = None
     gov, exact = _governing_edges(topo, h, edge_c, edge_L)
     exact = np.union1d(exact, corr.mixed)  # cells whose edges may differ in factor
-    for p in range(1, pmax + 1):
+
+    def order_limits(p: int):
+        """Fill column p of the cell limits; (edges carrying fmax, edge limits if p = P)."""
         a = corr.at(p)  # the model sees the edge as a * h: a row of L / (a h) elements
         with np.errstate(divide="ignore", invalid="ignore"):
             f_e = np.where(good, edge_c * table.max_kh(p, ratio / a) / (TWO_PI * h * a), 0.0)
-        edge_order[(edge_order > pmax) & (f_e >= fmax)] = p
-        if p == P:
-            edge_limit = f_e
         cell_limit[:, p - 1] = f_e[gov]
         if len(exact):
             cell_limit[exact, p - 1] = _min_over_cell_edges(topo, f_e, exact)
+        return f_e >= fmax, (f_e if p == P else None)
+
+    # orders are independent (each fills its own column): on the cores for large meshes
+    for p, (carries, f_e) in enumerate(thread_map(order_limits, range(1, pmax + 1),
+                                                  parallel=len(h) > 100_000), start=1):
+        edge_order[(edge_order > pmax) & carries] = p
+        if f_e is not None:
+            edge_limit = f_e
     np.maximum.accumulate(cell_limit, axis=1, out=cell_limit)
     cell_order = 1 + np.count_nonzero(cell_limit < fmax, axis=1)
     cell_size = topo.edges.per_cell(h, np.maximum)

@@ -42,14 +42,13 @@ coarsening scenario of :mod:`meshcheck.sizefield`.  See docs/cost.md.
 """
 from __future__ import annotations
 
-import os
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from .mesh import Mesh
+from .threads import thread_map
 from .topology import Topology
 
 __all__ = ["face_dofs", "interior_dofs", "lagrange_dofs", "condensed_dofs",
@@ -139,13 +138,7 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
         return out
 
     total = np.full(f.shape, _used_vertices(mesh), dtype=np.int64)
-    qs = range(1, max_order)
-    workers = min(len(qs), os.cpu_count() or 1, 4)
-    if workers > 1 and mesh.n_cells > 50_000:  # numpy releases the GIL in sorts and gathers
-        with ThreadPoolExecutor(max_workers=workers) as pool:
-            parts = list(pool.map(above, qs))
-    else:
-        parts = [above(q) for q in qs]
+    parts = thread_map(above, range(1, max_order), parallel=mesh.n_cells > 50_000)
     for part in parts:
         total += part
     return total
@@ -354,12 +347,7 @@ def variable_order_systems(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
             configs.append(q)
         slot.append(len(configs) - 1)
     # the counts are independent and numpy releases the GIL in them: use the cores
-    workers = min(len(configs), os.cpu_count() or 1, 4)
-    if workers > 1:
-        with ThreadPoolExecutor(max_workers=workers) as pool:
-            sizes = list(pool.map(lambda q: system_size(mesh, topo, q, True, adj), configs))
-    else:
-        sizes = [system_size(mesh, topo, q, True, adj) for q in configs]
+    sizes = thread_map(lambda q: system_size(mesh, topo, q, True, adj), configs)
     known = {int(i): sizes[j] for i, j in zip(picks, slot)}
     if len(picks) == len(f):
         return [known[i] for i in range(len(f))]

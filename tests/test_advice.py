@@ -244,3 +244,20 @@ def test_cell_limit_is_min_over_its_edges_with_two_media():
                        for e in topo.edges.cell_edges[0]] for q in range(1, 9)], axis=1)
     brute = np.maximum.accumulate(brute, axis=1)  # the advisor's limits never drop with p
     assert np.allclose(res.advice.cell_limit[:, :8], brute, rtol=1e-12)
+
+
+def test_orders_on_threads_give_the_serial_result(monkeypatch):
+    # above 100k edges the orders are computed on a thread pool; the result must be the
+    # same array for array as one order after the other
+    import meshcheck.advice as A
+
+    mesh = tet_box((26, 26, 26), size=(2.0, 1.5, 1.0))
+    from meshcheck.topology import build_topology
+    topo = build_topology(mesh)
+    assert len(topo.edges) > 100_000
+    speeds = np.full(mesh.n_cells, C)
+    par = A.advise(mesh, topo, speeds, 900.0, AdviceSettings(max_order=8))
+    monkeypatch.setattr(A, "thread_map", lambda fn, items, parallel=True: [fn(x) for x in items])
+    ser = A.advise(mesh, topo, speeds, 900.0, AdviceSettings(max_order=8))
+    for name in ("cell_limit", "edge_limit", "edge_order", "cell_order", "target_size"):
+        assert np.array_equal(getattr(par, name), getattr(ser, name)), name
