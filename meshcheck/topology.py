@@ -14,6 +14,7 @@ from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from .mesh import Mesh
+from .threads import thread_map
 
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
            "build_topology", "edge_lengths"]
@@ -582,21 +583,25 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
         shortest incident edges are duplicates (default 1e-6).
     """
     edges = build_edges(mesh)
-    faces = build_faces(mesh, edges) if mesh.dim == 3 else Faces(
-        np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), np.zeros(0, np.int64))
-    n_comp, comp = _components(mesh, faces, edges)
-    comp = comp.astype(np.int64)
-    vol = cell_volumes(mesh)
-    comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
-    lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
-    extent = np.linalg.norm(hi - lo, axis=1)
     used = np.zeros(mesh.n_points, bool)
     for b in mesh.blocks:
         used[b.cells] = True
-    dup = _duplicate_nodes(mesh.points, used, edges, rel_tol)
+    empty = Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), np.zeros(0, np.int64))
+    # four independent pieces of work, on the cores for large meshes (numpy releases the GIL)
+    jobs = (lambda: build_faces(mesh, edges) if mesh.dim == 3 else empty,
+            lambda: cell_volumes(mesh),
+            lambda: _duplicate_nodes(mesh.points, used, edges, rel_tol),
+            lambda: _duplicate_cells(mesh))
+    faces, vol, dup, dup_cells = thread_map(lambda job: job(), jobs,
+                                            parallel=mesh.n_cells > 100_000)
+    n_comp, comp = _components(mesh, faces, edges)
+    comp = comp.astype(np.int64)
+    comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
+    lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
+    extent = np.linalg.norm(hi - lo, axis=1)
     cracks = _cracks(mesh, faces, dup) if mesh.dim == 3 else np.zeros(0, np.int64)
     return Topology(
         edges=edges, faces=faces, component=comp, component_volume=comp_vol,
         component_extent=extent, cell_volume=vol, unused_nodes=np.flatnonzero(~used),
-        duplicate_nodes=dup, duplicate_cells=_duplicate_cells(mesh), crack_faces=cracks,
+        duplicate_nodes=dup, duplicate_cells=dup_cells, crack_faces=cracks,
         nonmanifold_faces=np.flatnonzero(faces.count > 2))
