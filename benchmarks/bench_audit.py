@@ -13,7 +13,7 @@ when missing, binary MSH 4.1):
 * the full ``meshcheck audit`` (read, validity, quality, edges, advice for a
   200-frequency sweep, JSON + Markdown + VTU written) in a fresh process: wall
   time and peak resident memory;
-* the analysis time after reading (stage timings from the JSON report);
+* the analysis time after reading (wall time of the stages, from the JSON report);
 * a 1000-frequency sweep against a 10-frequency one (advice + sweep only).
 
 and the ratios the performance targets are stated in (docs/performance.md).
@@ -117,7 +117,8 @@ def main(argv=None) -> int:
             raise SystemExit(f"audit failed with exit code {code}")
         report = json.loads(next(Path(tmp).glob("*.audit.json")).read_text())
     timings = report["timings_s"]
-    analysis = sum(v for k, v in timings.items() if k != "read")
+    analysis = timings.get("analysis",  # wall time (stages overlap on large meshes)
+                           sum(v for k, v in timings.items() if k != "read"))
     rows.append(("meshcheck audit, 200 frequencies, reports", t_audit, peak))
     rows.append(("  of which analysis after reading", analysis, None))
 

@@ -60,6 +60,7 @@ class Mesh:
     material_speeds : region tag -> (speed of sound in m/s, the card stating it), from
         the file's material cards (Nastran MAT10, Abaqus *ACOUSTIC MEDIUM), converted
         with the length unit.
+    notes : (code, message, count) of reading decisions reported as notes.
     """
 
     points: np.ndarray
@@ -69,6 +70,7 @@ class Mesh:
     source: str = ""
     unit: str = "m"
     material_speeds: dict[int, tuple[float, str]] = field(default_factory=dict)
+    notes: tuple[tuple[str, str, int], ...] = ()
 
     def __post_init__(self):
         pts = np.ascontiguousarray(self.points, dtype=np.float64)

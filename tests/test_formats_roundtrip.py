@@ -194,3 +194,52 @@ def test_gmsh_wedge15_through_meshio_is_refused_clearly(gmsh_files):
     with pytest.raises(MeshReadError, match=r"element type wedge15 cannot be read from this "
                                             r"format .* \(quadratic wedges as \.bdf, \.inp or \.unv\)"):
         read_mesh(root / "wedge2_msh41b.msh", units="m")
+
+
+# ------------------------------------------------ wedges in VTK files: two corner orders
+def _vtk_volumes(path) -> np.ndarray:
+    """Signed cell volumes as VTK itself computes them (vtkCellSizeFilter)."""
+    vtk = pytest.importorskip("vtk")
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    f = vtk.vtkCellSizeFilter()
+    f.SetInputData(r.GetOutput())
+    f.Update()
+    v = f.GetOutput().GetCellData().GetArray("Volume")
+    return np.array([v.GetValue(i) for i in range(v.GetNumberOfTuples())])
+
+
+@pytest.mark.parametrize("writer", ["vtk_positive", "meshio"])
+def test_vtu_wedges_in_either_corner_order_are_read_valid(tmp_path, writer):
+    # meshio's reader turns wedges as if files used the documented VTK order; VTK's own
+    # filters call wedges in gmsh's order positive. Files of both kinds must read as
+    # valid wedges, the VTK-positive one with a note saying which order was taken
+    from meshcheck.pipeline import AuditSettings, audit
+    from meshcheck.vtkxml import write_vtu
+
+    pts, cells = CUBE * 0.3, np.vstack([WEDGES, WEDGES[:1]])  # 3 wedges (one repeated)
+    path = tmp_path / f"{writer}.vtu"
+    if writer == "meshio":
+        meshio.write(path, meshio.Mesh(pts, [("wedge", cells)]))
+    else:
+        write_vtu(path, pts, [("wedge", cells)])
+    expected_sign = {"vtk_positive": 1.0, "meshio": -1.0}[writer]
+    assert np.all(np.sign(_vtk_volumes(path)) == expected_sign)  # what VTK computes
+    mesh = read_mesh(path, units="m")
+    res = audit(mesh, AuditSettings((100.0,)))
+    assert not any(f.code == "inverted_cells" for f in res.findings)
+    notes = [f for f in res.findings if f.code == "wedge_corner_order"]
+    assert len(notes) == (1 if writer == "vtk_positive" else 0)
+    assert np.array_equal(mesh.blocks[0].cells, cells)  # the cells as written, our order
+
+
+def test_a_truly_inverted_wedge_stays_inverted_in_either_order(tmp_path):
+    from meshcheck.pipeline import AuditSettings, audit
+    from meshcheck.vtkxml import write_vtu
+
+    cells = np.vstack([WEDGES, WEDGES, WEDGES[:1][:, [0, 2, 1, 3, 5, 4]]])  # 1 of 5 turned
+    path = write_vtu(tmp_path / "w.vtu", CUBE * 0.3, [("wedge", cells)])
+    res = audit(read_mesh(path, units="m"), AuditSettings((100.0,)))
+    inv = [f for f in res.findings if f.code == "inverted_cells"]
+    assert len(inv) == 1 and inv[0].count == 1 and inv[0].ids.tolist() == [4]

@@ -57,6 +57,7 @@ class RawMesh:
     speeds : speeds of sound stated by material cards.
     counts : (what, pre-scan count, read count) triples for the cross-check.
     ignored : card or element names read but not used -> how many.
+    notes : (code, message, count) of what the reader decided and the user should know.
     """
 
     points: np.ndarray
@@ -69,6 +70,7 @@ class RawMesh:
     speeds: tuple[SpeedHint, ...] = ()
     counts: tuple[tuple[str, int, int], ...] = ()
     ignored: dict[str, int] = field(default_factory=dict)
+    notes: tuple[tuple[str, str, int], ...] = ()
 
 
 _CTRL = re.compile(r"[\x00-\x1f\x7f-\x9f\u2028\u2029\u200b-\u200f\u202a-\u202e\u2066-\u2069]")

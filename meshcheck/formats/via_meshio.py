@@ -331,6 +331,32 @@ def _msh4_physicals(path: Path):
     return {}
 
 
+_WEDGE_NOTE = ("wedges read in the corner order VTK itself computes as positive (the triangle "
+               "0-1-2 facing the other one) instead of meshio's: most wedges came out inverted "
+               "in meshio's order, as they do for files written by VTK-based tools")
+
+
+def _vtk_wedge_convention(points: np.ndarray, wedges: np.ndarray) -> tuple[np.ndarray, int]:
+    """Wedges of a VTK file as meshio returned them, in the corner order that makes most of
+    them positive, and how many were turned (0 when meshio's order stands).
+
+    Two orders are in use for VTK wedges: meshio's reader assumes the documented one (the
+    triangle 0-1-2 facing away from 3-4-5) and turns it into gmsh's, while VTK's own
+    filters (vtkCellSizeFilter, vtkMeshQuality, VTK 9.7) compute wedges in gmsh's order
+    as positive, so files from VTK-based tools come out of meshio inverted.  A file uses
+    one order throughout: when more than half the wedges are inverted in meshio's order
+    (by the sign of the corner-0 Jacobian), the other order is taken; genuinely inverted
+    wedges stay inverted in either case and are reported by the validity check.
+    """
+    if not len(wedges):
+        return wedges, 0
+    x = points[wedges[:, :4]]
+    det = np.einsum("ij,ij->i", x[:, 1] - x[:, 0], np.cross(x[:, 2] - x[:, 0], x[:, 3] - x[:, 0]))
+    if np.count_nonzero(det < 0) * 2 <= len(wedges):
+        return wedges, 0
+    return wedges[:, [0, 2, 1, 3, 5, 4]], len(wedges)
+
+
 def read_via_meshio(path: Path, kind: str, detail: str = "") -> RawMesh:
     """Read ``path`` with meshio's reader for ``kind`` and return a RawMesh (file units)."""
     size = path.stat().st_size
@@ -365,7 +391,7 @@ def _to_raw(path: Path, source: Path, raw, kind: str, detail: str, declared: dic
         except Exception:  # noqa: BLE001 - malformed $Entities: no regions rather than wrong ones
             phys = {}
     geo = raw.cell_data.get("gmsh:geometrical")
-    blocks, ignored = [], {}
+    blocks, ignored, notes = [], {}, []
     vol = any(CELL_TYPES.get(b.type) is not None and CELL_TYPES[b.type].dim == 3 for b in raw.cells)
     dim_model = 3 if vol else 2
     for i, cb in enumerate(raw.cells):
@@ -386,7 +412,12 @@ def _to_raw(path: Path, source: Path, raw, kind: str, detail: str, declared: dic
         else:
             region = cell_data_region(raw.cell_data, i, len(raw.cells), n)
             region = np.zeros(n, np.int64) if region is None else region
-        blocks.append(RawBlock(cb.type, data.astype(np.int64), region))
+        data = data.astype(np.int64)
+        if cb.type == "wedge" and kind in ("vtu", "vtk"):
+            data, flipped = _vtk_wedge_convention(points, data)
+            if flipped:
+                notes.append(("wedge_corner_order", _WEDGE_NOTE, flipped))
+        blocks.append(RawBlock(cb.type, data, region))
     names = field_data_names(raw.field_data, dim_model)
     total = sum(len(c.data) for c in raw.cells)
     checks = list(declared.get("_lines", []))
@@ -396,4 +427,4 @@ def _to_raw(path: Path, source: Path, raw, kind: str, detail: str, declared: dic
             checks.append((f"declared {key}", int(declared[key]), int(got)))
     return RawMesh(points=points, blocks=tuple(blocks), region_names=names,
                    format=_NAMES.get(kind, kind) + (f" ({detail})" if detail else ""),
-                   counts=tuple(checks), ignored=ignored)
+                   counts=tuple(checks), ignored=ignored, notes=tuple(notes))
