@@ -149,6 +149,10 @@ class AuditResult:
         return (not self.blocking) and self.advice.signed_off >= self.settings.fmax
 
 
+#: meshes with more cells compute their cell checks on a second thread beside the topology
+OVERLAP_CELLS = 100_000
+
+
 def audit(mesh: Mesh, settings: AuditSettings,
           progress: Callable[[str], None] | None = None) -> AuditResult:
     """Audit a mesh already in memory (SI units)."""
@@ -174,7 +178,7 @@ def audit(mesh: Mesh, settings: AuditSettings,
             q = mesh_quality(mesh)
             return sj, q, t2 - t1, time.perf_counter() - t2
 
-        side = pool.submit(cell_checks) if mesh.n_cells > 100_000 else None
+        side = pool.submit(cell_checks) if mesh.n_cells > OVERLAP_CELLS else None
         topo = build_topology(mesh)
         done("topology")
         sj, q, t_sj, t_q = side.result() if side is not None else cell_checks()

@@ -1,0 +1,22 @@
+"""The audit pipeline: overlapping stages give the serial result."""
+import numpy as np
+
+from meshcheck import pipeline
+from meshcheck.pipeline import AuditSettings, audit
+from meshes import tet_box
+
+
+def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch):
+    mesh = tet_box((26, 26, 26), size=(2.0, 1.5, 1.0))
+    assert mesh.n_cells > pipeline.OVERLAP_CELLS
+    settings = AuditSettings((200.0, 400.0))
+    par = audit(mesh, settings)
+    monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 10 ** 12)
+    ser = audit(mesh, settings)
+    assert np.array_equal(par.min_scaled_jacobian, ser.min_scaled_jacobian)
+    assert par.quality.names == ser.quality.names
+    for name in par.quality.names:
+        assert np.array_equal(par.quality[name], ser.quality[name], equal_nan=True), name
+    assert [f.code for f in par.findings] == [f.code for f in ser.findings]
+    assert np.array_equal(par.advice.cell_limit, ser.advice.cell_limit)
+    assert par.timings["analysis"] > 0
