@@ -462,7 +462,10 @@ def write_doc(data: dict, path: Path, fig_name: str) -> None:
     w("| mesh | layout | alignment s | cells | q | target | predicted | measured | factor a |")
     w("|---|---|---:|---:|---:|---:|---:|---:|---:|")
     for r in cal:
-        w(f"| {r['mesh']} | {r['layout']} | {r['alignment']:.2f} | {r['cells']} | {r['order']} "
+        # hexahedra have one row for every layout (free = aligned): no alignment is used
+        s_txt = ("–" if r["type"] == "hexahedron" or not np.isfinite(r["alignment"])
+                 else f"{r['alignment']:.2f}")
+        w(f"| {r['mesh']} | {r['layout']} | {s_txt} | {r['cells']} | {r['order']} "
           f"| {r['target']:.0%} | {_pct(r['predicted'])} | {_pct(r['measured'])} | "
           f"{r['factor']:.3f} |")
     w("")
