@@ -24,6 +24,7 @@ from .layers import LayerCheck, check_layer
 from .mesh import Mesh
 from .quality import CellQuality, QualityLimits, mesh_quality, out_of_range
 from .reading import read_mesh
+from .threads import MAX_WORKERS
 from .topology import Topology, build_topology
 from .validity import (BLOCKING, NOTE, Finding, ValiditySettings, check_validity,
                        min_scaled_jacobian)
@@ -178,7 +179,8 @@ def audit(mesh: Mesh, settings: AuditSettings,
             q = mesh_quality(mesh)
             return sj, q, t2 - t1, time.perf_counter() - t2
 
-        side = pool.submit(cell_checks) if mesh.n_cells > OVERLAP_CELLS else None
+        side = (pool.submit(cell_checks) if mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
+                else None)
         topo = build_topology(mesh)
         done("topology")
         sj, q, t_sj, t_q = side.result() if side is not None else cell_checks()

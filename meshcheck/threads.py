@@ -11,8 +11,9 @@ from typing import Callable, Iterable
 
 __all__ = ["thread_map", "MAX_WORKERS"]
 
-#: most threads used (the project's target machine has 2 cores)
-MAX_WORKERS = 4
+#: most threads used (the project's target machine has 2 cores); the environment
+#: variable MESHCHECK_THREADS sets it (1 = everything serial)
+MAX_WORKERS = max(1, int(os.environ.get("MESHCHECK_THREADS", "4") or 4))
 
 
 def thread_map(fn: Callable, items: Iterable, parallel: bool = True) -> list:

@@ -206,19 +206,3 @@ def test_packed_sort_equals_a_stable_argsort(n, key_bits):
     ref = np.argsort(key, kind="stable")
     assert np.array_equal(order, ref)
     assert np.array_equal(skey, key[ref])
-
-
-def test_topology_on_threads_equals_the_serial_result(monkeypatch):
-    # above 100k cells faces, volumes and duplicate searches run on a thread pool
-    import meshcheck.topology as T
-
-    mesh = tet_box((26, 26, 26))
-    assert mesh.n_cells > 100_000
-    par = T.build_topology(mesh)
-    monkeypatch.setattr(T, "thread_map", lambda fn, items, parallel=True: [fn(x) for x in items])
-    ser = T.build_topology(mesh)
-    for name in ("component", "cell_volume", "duplicate_nodes", "duplicate_cells",
-                 "crack_faces", "unused_nodes"):
-        assert np.array_equal(getattr(par, name), getattr(ser, name)), name
-    for name in ("nodes", "cells", "count"):
-        assert np.array_equal(getattr(par.faces, name), getattr(ser.faces, name)), name
