@@ -397,9 +397,10 @@ def _block_volumes(P: np.ndarray, info, corners: np.ndarray) -> np.ndarray:
         if len(f) == 3:
             vol += np.einsum("ij,ij->i", pts[:, 0], np.cross(pts[:, 1], pts[:, 2]))
         else:
+            # the four triangles about the mean point c: sum_i c . (p_i x p_i+1), and
+            # sum_i p_i x p_i+1 = (p2 - p0) x (p3 - p1) for any quadrilateral
             c = pts.mean(axis=1)
-            for i in range(4):
-                vol += np.einsum("ij,ij->i", c, np.cross(pts[:, i], pts[:, (i + 1) % 4]))
+            vol += np.einsum("ij,ij->i", c, np.cross(pts[:, 2] - pts[:, 0], pts[:, 3] - pts[:, 1]))
     return vol / 6.0
 
 
