@@ -102,10 +102,57 @@ def _local_faces(cell_type: str):
     return out
 
 
-def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray) -> tuple[int, int]:
+def _face_rows(mesh: Mesh, topo: Topology):
+    """Every local face of every 3D cell, grouped by its node set (order-independent).
+
+    Returns (order, starts, tri, cell, col_a, col_b): ``order`` sorts the face rows so
+    that equal faces are consecutive, ``starts`` begins each unique face, ``tri`` tells
+    triangles (at the starts), and per row the cell id and the columns of the cell's
+    direction orders that run along the face's two sides (col_b unused for triangles).
+    """
+    n = np.int64(mesh.n_points + 1)
+    lo_k, hi_k, cells, ca, cb, tri = [], [], [], [], [], []
+    for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
+        if b.info.dim != 3:
+            continue
+        ids = np.arange(len(b), dtype=np.int64) + mesh.block_offsets[bi]
+        for corners, sides, cols in _local_faces(b.type):
+            s = np.sort(b.cells[:, list(corners)], axis=1)
+            cells.append(ids)
+            if len(corners) == 3:
+                lo_k.append(s[:, 0])
+                hi_k.append(s[:, 1] * n + s[:, 2])
+                ca.append(np.full(len(b), cols[0], np.int8))
+                cb.append(np.full(len(b), cols[0], np.int8))
+                tri.append(np.ones(len(b), bool))
+            else:
+                lo_k.append((s[:, 0] + 1) * n + s[:, 3])
+                hi_k.append(s[:, 1] * n + s[:, 2])
+                e = ce[:, sides]
+                x_first = np.minimum(e[:, 0], e[:, 2]) < np.minimum(e[:, 1], e[:, 3])
+                ca.append(np.where(x_first, cols[0], cols[1]).astype(np.int8))
+                cb.append(np.where(x_first, cols[1], cols[0]).astype(np.int8))
+                tri.append(np.zeros(len(b), bool))
+    if not lo_k:
+        return None
+    # triangle low keys s0 < n never equal a quadrilateral's (s0 + 1) n + s3 >= n
+    lo, hi = np.concatenate(lo_k), np.concatenate(hi_k)
+    order = np.lexsort((hi, lo))
+    lo_s, hi_s = lo[order], hi[order]
+    new = np.ones(len(order), bool)
+    new[1:] = (lo_s[1:] != lo_s[:-1]) | (hi_s[1:] != hi_s[:-1])
+    starts = np.flatnonzero(new)
+    cell = np.concatenate(cells)[order]
+    return (starts, np.concatenate(tri)[order][starts], cell,
+            np.concatenate(ca)[order], np.concatenate(cb)[order])
+
+
+def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
+               face_rows=None) -> tuple[int, int]:
     """Unknowns of the conforming space with per-direction cell orders.
 
     orders : (n_cells, 3) int orders per direction (see :func:`cell_direction_orders`).
+    face_rows : :func:`_face_rows` of the mesh, when already built.
     Returns (condensed, total): vertices + edges + faces, and that plus the cell
     interiors.  Maximum rule on shared edges and faces.
     """
@@ -115,8 +162,6 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray) -> tuple[int, int
         used[b.cells[:, :b.info.n_corners]] = True
     edge_p = np.ones(len(topo.edges), np.int64)
     interior = 0
-    fkeys_lo, fkeys_hi, fa, fb, ftri = [], [], [], [], []
-    n = np.int64(mesh.n_points + 1)
     for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
         o = orders[mesh.block_offsets[bi]:mesh.block_offsets[bi + 1]]
         grp = _edge_group(b.type)
@@ -132,42 +177,13 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray) -> tuple[int, int
         else:
             ps, counts = np.unique(o[:, 0], return_counts=True)
             interior += int(sum(int(c) * interior_dofs(lin, int(p)) for p, c in zip(ps, counts)))
-        if b.info.dim != 3:
-            continue
-        for corners, sides, cols in _local_faces(b.type):
-            c = b.cells[:, list(corners)]
-            s = np.sort(c, axis=1)
-            if len(corners) == 3:
-                fkeys_lo.append(s[:, 0])
-                fkeys_hi.append(s[:, 1] * n + s[:, 2])
-                fa.append(o[:, cols[0]])
-                fb.append(np.zeros(len(b), np.int64))
-                ftri.append(np.ones(len(b), bool))
-            else:
-                fkeys_lo.append((s[:, 0] + 1) * n + s[:, 3])
-                fkeys_hi.append(s[:, 1] * n + s[:, 2])
-                e = ce[:, sides]
-                ox, oy = o[:, cols[0]], o[:, cols[1]]
-                x_first = np.minimum(e[:, 0], e[:, 2]) < np.minimum(e[:, 1], e[:, 3])
-                fa.append(np.where(x_first, ox, oy))
-                fb.append(np.where(x_first, oy, ox))
-                ftri.append(np.zeros(len(b), bool))
     total_v = int(used.sum()) + int(np.sum(edge_p - 1))
     faces = 0
-    if fkeys_lo:
-        tri = np.concatenate(ftri)
-        # triangle low keys s0 < n never equal a quadrilateral's (s0 + 1) n + s3 >= n
-        lo = np.concatenate(fkeys_lo)
-        hi = np.concatenate(fkeys_hi)
-        a, bb = np.concatenate(fa), np.concatenate(fb)
-        order = np.lexsort((hi, lo))
-        lo_s, hi_s = lo[order], hi[order]
-        new = np.ones(len(order), bool)
-        new[1:] = (lo_s[1:] != lo_s[:-1]) | (hi_s[1:] != hi_s[:-1])
-        starts = np.flatnonzero(new)
-        pa = np.maximum.reduceat(a[order], starts)
-        pb = np.maximum.reduceat(bb[order], starts)
-        is_tri = tri[order][starts]
+    rows = face_rows if face_rows is not None else _face_rows(mesh, topo)
+    if rows is not None:
+        starts, is_tri, cell, col_a, col_b = rows
+        pa = np.maximum.reduceat(orders[cell, col_a], starts)
+        pb = np.maximum.reduceat(orders[cell, col_b], starts)
         faces = int(np.sum(np.where(is_tri, (pa - 1) * (pa - 2) // 2, (pa - 1) * (pb - 1))))
     condensed = total_v + faces
     return condensed, condensed + interior
@@ -213,6 +229,7 @@ def directional_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
         else np.zeros(0, int)
     lowest = np.where(dims == 2, o[:, :2].min(axis=1), o.min(axis=1))
     aniso = int(np.count_nonzero(lowest != iso))
-    cd, td = count_dofs(mesh, topo, o)
-    ci, ti = count_dofs(mesh, topo, o_iso)
+    rows = _face_rows(mesh, topo)  # shared by both counts
+    cd, td = count_dofs(mesh, topo, o, rows)
+    ci, ti = count_dofs(mesh, topo, o_iso, rows)
     return DirectionalOrders(o, iso, aniso, cd, ci, td, ti)
