@@ -392,8 +392,9 @@ def _block_volumes(P: np.ndarray, info, corners: np.ndarray) -> np.ndarray:
         d = x[:, 1:] - x[:, :1]
         return np.einsum("ij,ij->i", d[:, 0], np.cross(d[:, 1], d[:, 2])) / 6.0
     vol = np.zeros(len(corners))
+    x = P[corners]  # gathered once, (m, n_corners, 3)
     for f in info.faces:
-        pts = P[corners[:, list(f)]]
+        pts = x[:, list(f)]
         if len(f) == 3:
             vol += np.einsum("ij,ij->i", pts[:, 0], np.cross(pts[:, 1], pts[:, 2]))
         else:
