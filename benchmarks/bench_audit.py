@@ -147,7 +147,7 @@ for n in (10, 1000, 10, 1000):
     print(f"{'what':45s} {'time s':>8s} {'peak MiB':>9s}")
     for name, t, mem in rows:
         print(f"{name:45s} {t:8.2f} {'' if mem is None else f'{mem:9.0f}'}")
-    print(f"stage timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in timings.items()))
+    print("stage timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in timings.items()))
     print(f"ratio audit / meshio.read:            {t_audit / t_read:6.2f}   (target <= 6)")
     if t_vtk:
         print(f"ratio audit / VTK quality (3 metrics): {t_audit / t_vtk:6.2f}   (target <= 1)")

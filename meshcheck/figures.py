@@ -264,7 +264,6 @@ def elements_per_wavelength(res: AuditResult, data: dict | None = None,
     median (n,), needed {p: lambda/h}, ratio (L/h of the coarsest cell),
     coarsest_cell (id).
     """
-    d = _report(res, data)
     a, s = res.advice, res.settings
     P = _max_order(res)
     fmax = s.fmax

@@ -250,7 +250,7 @@ def _verdict(res: AuditResult, d: dict) -> str:
             f"Signed off up to <strong>{_hz(v['signed_off_hz'])} Hz</strong> with {_e(mode)}, "
             f"below the requested {_hz(fmax)} Hz. {_int(n_ref)} cells in {len(d['refine'])} "
             f"group{'s' if len(d['refine']) != 1 else ''} need refining (section 2).{fix}.")
-    out = [f'<section id="verdict"><h2><span class="secno">1</span> Verdict</h2>',
+    out = ['<section id="verdict"><h2><span class="secno">1</span> Verdict</h2>',
            f'<div class="verdict state-{v["state"]}"><p class="state">{word}</p>'
            f'<p class="headline">{head}</p>'
            f'<p class="sub">Accuracy target: relative error {target:.3g} '

@@ -14,7 +14,6 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .acoustics import nominal_frequency
 from .pipeline import AuditResult
 from . import vtkxml
 from .units import UNIT_FACTORS

@@ -5,7 +5,7 @@ from scipy.integrate import quad
 
 from meshcheck.mesh import CellBlock, Mesh
 from meshcheck.topology import build_topology, edge_lengths
-from meshes import grid_hexes, grid_points, hex_box, tet10_box, tet_box
+from meshes import hex_box, tet10_box, tet_box
 
 
 @pytest.mark.parametrize("n", [1, 2, 5])

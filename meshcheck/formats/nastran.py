@@ -571,7 +571,6 @@ def parse_nastran(src: Source) -> RawMesh:
 
 
 def _parse(C: "_Cards") -> RawMesh:
-    src = C.src
     names = {_decode(c): c for c in C.distinct}
     for nm in names:
         if nm.startswith("INCLUDE"):
