@@ -1,0 +1,59 @@
+"""Compiled kernels for the hot paths of large meshes, with numpy as the reference.
+
+The numpy code of each module (topology, quality, advice, ...) is the reference
+implementation and stays tested; the kernels in this package compute the same
+arrays with numba (compiled on first use and cached on disk, so later runs pay
+only the load). They are used for meshes of :data:`MIN_CELLS` cells or more.
+
+The environment variable ``MESHCHECK_KERNELS`` chooses:
+
+* ``auto`` (default): compiled kernels for meshes of ``MIN_CELLS`` cells or more
+  when numba is installed, numpy otherwise;
+* ``numba``: compiled kernels for every mesh (the tests compare both paths);
+* ``numpy``: the numpy reference everywhere.
+"""
+from __future__ import annotations
+
+import functools
+import importlib.util
+import os
+
+__all__ = ["MIN_CELLS", "available", "use_compiled", "njit"]
+
+#: smallest mesh (cells) for which ``auto`` takes the compiled kernels: below it the
+#: numpy path takes well under a second and loading numba (about 0.5 s) does not pay
+MIN_CELLS = 50_000
+
+
+@functools.lru_cache(maxsize=None)
+def available() -> bool:
+    """True when numba can be imported."""
+    return importlib.util.find_spec("numba") is not None
+
+
+def mode() -> str:
+    """The chosen mode: "auto", "numba" or "numpy" (read at every call)."""
+    value = os.environ.get("MESHCHECK_KERNELS", "auto").strip().lower() or "auto"
+    if value not in ("auto", "numba", "numpy"):
+        from ..errors import SettingsError
+        raise SettingsError(f"MESHCHECK_KERNELS={value!r} is not a mode; use auto, numba or numpy")
+    return value
+
+
+def use_compiled(n_items: int) -> bool:
+    """Whether work over ``n_items`` cells (or edges) takes the compiled kernels."""
+    m = mode()
+    if m == "numpy" or not available():
+        return False
+    return m == "numba" or n_items >= MIN_CELLS
+
+
+def njit(fn=None, **options):
+    """``numba.njit`` with on-disk caching and the GIL released (usable as a bare
+    decorator or with options, e.g. ``@njit(parallel=True)``)."""
+    import numba
+
+    opts = {"cache": True, "nogil": True, **options}
+    if fn is None:
+        return lambda f: numba.njit(**opts)(f)
+    return numba.njit(**opts)(fn)
