@@ -200,7 +200,7 @@ def _stages(quiet: bool):
 def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, max_order,
          speed, temperature, region_speed, distance, out: Optional[Path], quiet: bool,
          job: Optional[Path] = None, allow_outside: bool = False,
-         correction_3d: bool = True) -> int:
+         correction_3d: bool = True, reports: str = "all", cost: bool = True) -> int:
     from .advice import AdviceSettings
     from .job import load_job
     from .pipeline import AuditSettings, audit
@@ -209,6 +209,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     from .units import UNIT_FACTORS
 
     console = Console(highlight=False)
+    kinds = _report_kinds(reports)
     f = _frequencies(fmin, fmax, step, bands, freqs)
     region_speeds = _parse_region_speeds(region_speed)
     job_spec = load_job(job) if job is not None else None
@@ -227,27 +228,48 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
                                  speed=speed, region_speeds=region_speeds, job=job_spec)
         res = audit(mesh, settings, progress=step)
         step("reports")
-        data = to_dict(res)
+        data = to_dict(res, cost=cost)
         files = None
         if out is not None:
             out.mkdir(parents=True, exist_ok=True)
             stem = mesh_path.stem
-            files = {"json": write_json(res, out / f"{stem}.audit.json", data),
-                     "markdown": write_markdown(res, out / f"{stem}.audit.md", data),
-                     "vtu": write_vtu(res, out / f"{stem}.audit.vtu")}
-            from .sizefield import write_size_view
-            pos = write_size_view(res, out / f"{stem}.size.pos")
-            if pos is not None:
-                files["size view (gmsh)"] = pos
-            try:  # figures need matplotlib; without it the other reports still stand
-                from .html_report import write_html
-                files["html"] = write_html(res, out / f"{stem}.audit.html", data)
-            except ImportError as exc:
-                if not quiet:
-                    console.print(f"note: HTML report skipped: {escape(str(exc))}")
+            files = {}
+            if "json" in kinds:
+                files["json"] = write_json(res, out / f"{stem}.audit.json", data)
+            if "md" in kinds:
+                files["markdown"] = write_markdown(res, out / f"{stem}.audit.md", data)
+            if "vtu" in kinds:
+                files["vtu"] = write_vtu(res, out / f"{stem}.audit.vtu")
+            if "pos" in kinds:
+                from .sizefield import write_size_view
+                files["size view (gmsh)"] = write_size_view(res, out / f"{stem}.size.pos")
+            if "html" in kinds:
+                try:  # figures need matplotlib; without it the other reports still stand
+                    from .html_report import write_html
+                    files["html"] = write_html(res, out / f"{stem}.audit.html", data)
+                except ImportError as exc:
+                    if not quiet:
+                        console.print(f"note: HTML report skipped: {escape(str(exc))}")
     if not quiet:
         _print_summary(console, res, files, data)
     return 0 if res.ready else 1
+
+
+REPORT_KINDS = ("json", "md", "vtu", "html", "pos")
+
+
+def _report_kinds(text: str) -> set[str]:
+    """The report files asked for by ``--reports`` (comma separated, or "all")."""
+    from .errors import SettingsError
+
+    words = {w.strip().lower() for w in (text or "all").split(",") if w.strip()}
+    if not words or words == {"all"}:
+        return set(REPORT_KINDS)
+    unknown = sorted(words - set(REPORT_KINDS))
+    if unknown:
+        raise SettingsError(f"--reports {text}: unknown kind(s) {', '.join(unknown)}; choose "
+                            f"from {', '.join(REPORT_KINDS)} or all (e.g. --reports json,vtu)")
+    return words
 
 
 MESH_ARG = typer.Argument(..., help="Volume mesh file (.msh, .vtu, .vtk, .bdf/.nas, .inp, ...).",
@@ -288,12 +310,18 @@ def audit(
     allow_outside: bool = typer.Option(False, help="Let INCLUDE statements of the mesh file "
                                        "name files outside the mesh's folder tree."),
     no_3d_correction: bool = NO_3D_CORRECTION,
+    reports: str = typer.Option("all", help="Report files to write, comma separated: json, "
+                                "md, vtu, html (with figures), pos (gmsh size view), or all."),
+    no_cost: bool = typer.Option(False, "--no-cost", help="Leave out the quote of the sweep "
+                                 "(exact unknown and non-zero counts; the slowest report "
+                                 "part on multi-million-cell meshes)."),
 ):
     """Audit MESH: validity, quality, usable frequency per order, refine/coarsen advice."""
     out = out if out is not None else Path.cwd() / f"{mesh.stem}-audit"
     raise typer.Exit(_run(mesh, units, fmin, fmax, step, bands, freqs, target, order, max_order,
                           speed, temperature, region_speed, distance, out, quiet, job,
-                          allow_outside=allow_outside, correction_3d=not no_3d_correction))
+                          allow_outside=allow_outside, correction_3d=not no_3d_correction,
+                          reports=reports, cost=not no_cost))
 
 
 @app.command()

@@ -119,8 +119,24 @@ class Mesh:
     @cached_property
     def centroids(self) -> np.ndarray:
         """(n_cells, 3) float64 mean of the corner nodes of each cell, metres."""
-        out = [self.points[b.cells[:, :b.info.n_corners]].mean(axis=1) for b in self.blocks]
-        return np.concatenate(out) if out else np.zeros((0, 3))
+        out = np.empty((self.n_cells, 3))
+        for b, start in zip(self.blocks, self.block_offsets):
+            _corner_mean(self.points, b.cells, b.info.n_corners, out[start:start + len(b)])
+        return out
+
+    def centroids_of(self, cell_ids) -> np.ndarray:
+        """(k, 3) float64 :attr:`centroids` of the given cell ids only, metres (cheap for a
+        few cells of a large mesh; the full array when it is already computed)."""
+        ids = np.asarray(cell_ids, dtype=np.int64).reshape(-1)
+        if "centroids" in self.__dict__ or not len(ids):
+            return self.centroids[ids] if len(ids) else np.zeros((0, 3))
+        out = np.empty((len(ids), 3))
+        blk, row = self.locate(ids)
+        for k in np.unique(blk):
+            sel = np.flatnonzero(blk == k)
+            b = self.blocks[int(k)]
+            out[sel] = _corner_mean(self.points, b.cells[row[sel]], b.info.n_corners)
+        return out
 
     @cached_property
     def bounding_box(self) -> np.ndarray:
@@ -131,3 +147,15 @@ class Mesh:
         pts = self.points[used] if used.any() else self.points
         with np.errstate(invalid="ignore"):
             return np.array([np.nanmin(pts, axis=0), np.nanmax(pts, axis=0)])
+
+
+def _corner_mean(points: np.ndarray, cells: np.ndarray, n_corners: int,
+                 out: np.ndarray | None = None) -> np.ndarray:
+    """(m, 3) mean of the first ``n_corners`` nodes of each row of ``cells``, summed corner by
+    corner (no (m, n_corners, 3) temporary)."""
+    out = np.empty((len(cells), 3)) if out is None else out
+    np.take(points, cells[:, 0], axis=0, out=out)
+    for k in range(1, n_corners):
+        out += points[cells[:, k]]
+    out /= n_corners
+    return out

@@ -83,7 +83,7 @@ def _quality(res: AuditResult, scale: float, n_worst: int = 10) -> dict:
         v = values[ok]
         ids = np.flatnonzero(ok)
         bad = METRIC_BAD.get(name, "high")
-        worst = ids[np.argsort(v)[:n_worst]] if bad == "low" else ids[np.argsort(-v)[:n_worst]]
+        worst = ids[_smallest(v if bad == "low" else -v, n_worst)]
         flags = res.quality_flags.get(name, np.zeros(len(values), bool))
         out[name] = {
             "cells": int(ok.sum()), "min": float(v.min()), "p05": float(np.percentile(v, 5)),
@@ -93,13 +93,25 @@ def _quality(res: AuditResult, scale: float, n_worst: int = 10) -> dict:
             "worst": [{"cell": int(i), "value": float(values[i]),
                        "type": res.mesh.cell_type_of(int(i)),
                        "region": int(res.mesh.region[i]),
-                       "centroid": (res.mesh.centroids[i] / scale).tolist()} for i in worst],
+                       "centroid": (c / scale).tolist()}
+                      for i, c in zip(worst, res.mesh.centroids_of(worst))],
         }
     return out
 
 
-def to_dict(res: AuditResult) -> dict:
-    """The JSON report as plain Python data."""
+def _smallest(v: np.ndarray, k: int) -> np.ndarray:
+    """Indices of the k smallest values of v, ascending, ties by index (a partition, then
+    a sort of the few candidates, instead of a sort of the whole array)."""
+    if len(v) <= k:
+        return np.lexsort((np.arange(len(v)), v))
+    cut = np.partition(v, k - 1)[k - 1]
+    cand = np.flatnonzero(v <= cut)
+    return cand[np.lexsort((cand, v[cand]))][:k]
+
+
+def to_dict(res: AuditResult, cost: bool = True) -> dict:
+    """The JSON report as plain Python data; ``cost`` False leaves out the quote of the
+    sweep (the section is then null and ``assumptions.cost_quote`` says so)."""
     m, s, a, sw, topo = res.mesh, res.settings, res.advice, res.sweep, res.topology
     scale = UNIT_FACTORS.get(m.unit, 1.0)
     pmax = a.pmax
@@ -121,7 +133,7 @@ def to_dict(res: AuditResult) -> dict:
         limiting = {"cell": worst, "region": int(m.region[worst]),
                     "region_name": m.region_name(m.region[worst]),
                     "largest_edge": float(a.cell_size[worst] / scale),
-                    "centroid": (m.centroids[worst] / scale).tolist()}
+                    "centroid": (m.centroids_of([worst])[0] / scale).tolist()}
     freq = np.asarray(sw.frequencies)
     return {
         "schema": SCHEMA, "schema_version": SCHEMA_VERSION, "meshcheck_version": __version__,
@@ -142,6 +154,7 @@ def to_dict(res: AuditResult) -> dict:
             "length_unit": m.unit, "model": MODEL,
             "correction_3d": bool(s.advice.correction_3d),
             "correction_3d_note": CORRECTION_3D[bool(s.advice.correction_3d)],
+            "cost_quote": "computed" if cost else "not asked for",
             "caution": CAUTION},
         "verdict": {"state": state(res), "ready": res.ready, "blocking": res.blocking,
                     "upper_frequency_hz": s.fmax, "signed_off_hz": res.signed_off,
@@ -170,7 +183,7 @@ def to_dict(res: AuditResult) -> dict:
                      "edge_length_max": float(np.nanmax(topo.edges.length) / scale)},
         "timings_s": {k: round(v, 4) for k, v in res.timings.items()},
         **_physics_sections(res, scale),
-        "cost": _cost_section(res, scale),
+        "cost": _cost_section(res, scale) if cost else None,
     }
 
 

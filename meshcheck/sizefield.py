@@ -67,7 +67,7 @@ from .topology import Topology
 __all__ = ["GMSH_LONGEST_EDGE", "GMSH_COUNT", "REGULAR_TET", "GeometryLimit",
            "SizeField", "TetRatios", "node_min", "cell_target_size", "limit_gradation",
            "size_field", "estimate_cells", "write_pos", "tet_ratios", "scenario_systems",
-           "remesh", "remesh_and_audit", "size_point_data", "write_size_view"]
+           "remesh", "remesh_and_audit", "size_point_data", "write_size_view", "audit_size_field"]
 
 #: regular tetrahedra of edge h per h^3 of volume: 6 sqrt(2)
 REGULAR_TET = 6.0 * math.sqrt(2.0)
@@ -552,40 +552,40 @@ def remesh(mesh: Mesh, topo: Topology, field: SizeField, path: str | Path,
 # outputs of an audit
 
 
+_FIELDS: dict = {}
+
+
+def audit_size_field(res) -> SizeField:
+    """The size field of an audit: the allowed order at the upper frequency, gradation 0.3
+    (the field of the cost quote's coarsening scenario); cached per result, so the VTU and
+    the gmsh view share one computation and neither needs the quote."""
+    import weakref
+
+    key = id(res)
+    hit = _FIELDS.get(key)
+    if hit is not None and hit[0]() is res:
+        return hit[1]
+    fld = size_field(res.mesh, res.topology, res.advice, None, 0.3, None)
+    _FIELDS[key] = (weakref.ref(res, lambda _, k=key: _FIELDS.pop(k, None)), fld)
+    return fld
+
+
 def size_point_data(res, scale: float = 1.0) -> dict[str, np.ndarray]:
     """VTU point data of an audit's size field (mesh units): target_size (longest edge
     for the allowed order), mesher_size (what to ask gmsh for) and size_ratio (target /
-    current).  Empty when the cost cannot be computed."""
-    from .cost import audit_job_cost
-    from .errors import MeshcheckError
-
-    try:
-        c = audit_job_cost(res).coarsening
-    except MeshcheckError:
-        return {}
-    if c is None:
-        return {}
-    f = c.field
+    current)."""
+    f = audit_size_field(res)
     f32 = np.float32
     return {"target_size": (f.size / scale).astype(f32),
             "mesher_size": (f.mesher_size / scale).astype(f32),
             "size_ratio": f.ratio.astype(f32)}
 
 
-def write_size_view(res, path: str | Path) -> Path | None:
-    """Write the audit's mesher size field as a gmsh view (.pos, mesh units); None when
-    the cost cannot be computed."""
-    from .cost import audit_job_cost
-    from .errors import MeshcheckError
+def write_size_view(res, path: str | Path) -> Path:
+    """Write the audit's mesher size field as a gmsh view (.pos, mesh units)."""
     from .units import UNIT_FACTORS
 
-    try:
-        c = audit_job_cost(res).coarsening
-    except MeshcheckError:
-        return None
-    if c is None:
-        return None
-    return write_pos(path, res.mesh, c.field.mesher_size, "mesher_size",
+    return write_pos(path, res.mesh, audit_size_field(res).mesher_size, "mesher_size",
                      UNIT_FACTORS.get(res.mesh.unit, 1.0))
 
 

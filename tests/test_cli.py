@@ -82,6 +82,36 @@ def test_ambiguous_units_exit_2(tmp_path, capsys):
     assert "--units" in err and "millimetres" in err
 
 
+def test_reports_and_no_cost_write_only_what_was_asked(box_file, tmp_path):
+    out = tmp_path / "lean"
+    code = main(["audit", str(box_file), "-u", "m", "--fmax", "200", "--out", str(out),
+                 "--reports", "json,vtu", "--no-cost", "--quiet"])
+    assert code == 0
+    assert sorted(p.name for p in out.iterdir()) == ["box.audit.json", "box.audit.vtu"]
+    data = json.loads((out / "box.audit.json").read_text())
+    assert data["cost"] is None and data["assumptions"]["cost_quote"] == "not asked for"
+    full = tmp_path / "full"
+    assert main(["audit", str(box_file), "-u", "m", "--fmax", "200", "--out", str(full),
+                 "--quiet"]) == 0
+    assert {p.suffix for p in full.iterdir()} == {".json", ".md", ".vtu", ".html", ".pos"}
+    ref = json.loads((full / "box.audit.json").read_text())
+    assert ref["assumptions"]["cost_quote"] == "computed" and ref["cost"]["strategies"]
+    # the size field in the VTU does not depend on the quote being computed
+    lean_v, full_v = meshio.read(out / "box.audit.vtu"), meshio.read(full / "box.audit.vtu")
+    for name in ("target_size", "mesher_size", "size_ratio"):
+        np.testing.assert_array_equal(lean_v.point_data[name], full_v.point_data[name])
+    for key in ("verdict", "limits_hz", "sweep", "quality", "findings"):
+        assert data[key] == ref[key]
+
+
+def test_unknown_report_kind_is_a_one_line_error(box_file, tmp_path, capsys):
+    code = main(["audit", str(box_file), "-u", "m", "--fmax", "200", "--out",
+                 str(tmp_path / "o"), "--reports", "json,pdf"])
+    err = capsys.readouterr().err
+    assert code == 2 and "pdf" in err and "json, md, vtu, html, pos" in err
+    assert "Traceback" not in err and not (tmp_path / "o").exists()
+
+
 @pytest.mark.parametrize("args", [["audit"], ["audit", "x.msh", "--target", "abc"],
                                   ["frobnicate"], ["audit", "x.vtu", "--units", "furlong"]])
 def test_usage_errors_exit_2(args, capsys):
