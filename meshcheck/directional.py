@@ -25,11 +25,13 @@ highest directional order in all directions.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
 from .cells import CELL_TYPES
 from .cost import interior_dofs
+from .kernels import use_compiled
 from .mesh import Mesh
 from .topology import Topology
 
@@ -76,10 +78,21 @@ def cell_direction_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
     one order; 2D cells have 0 in the t column.
     """
     eo = np.clip(np.asarray(edge_order, dtype=np.int64), 1, max_order)
+    compiled = use_compiled(mesh.n_cells)
+    if compiled:
+        from .kernels import directional as _kd
     out = []
     for b, ce in zip(mesh.blocks, topo.edges.cell_edges):
         groups = direction_groups(b.type)
-        cols = [eo[ce[:, list(g)]].max(axis=1) for g in groups]
+        if compiled:
+            member = np.full(ce.shape[1], -1, np.int64)
+            for j, g in enumerate(groups):
+                member[[k for k in g if member[k] < 0]] = j
+            tab = _kd.group_max(np.ascontiguousarray(ce), eo, member, len(groups))
+            cols = [tab[:, j] if j == 0 or groups[j] != groups[0] else tab[:, 0]
+                    for j in range(len(groups))]
+        else:
+            cols = [eo[ce[:, list(g)]].max(axis=1) for g in groups]
         if len(cols) == 1:
             cols = cols * (3 if b.info.dim == 3 else 2)
         if b.info.dim == 2:
@@ -102,14 +115,60 @@ def _local_faces(cell_type: str):
     return out
 
 
+class _EdgePairRows(NamedTuple):
+    """Local faces of the 3D cells grouped by edge pairs (compiled path): face id per row,
+    number of faces, and per row triangle flag, cell id, direction columns of the sides."""
+
+    group: np.ndarray
+    n_faces: int
+    tri: np.ndarray
+    cell: np.ndarray
+    col_a: np.ndarray
+    col_b: np.ndarray
+
+
+def _edge_pair_rows(mesh: Mesh, topo: Topology) -> _EdgePairRows | None:
+    """Compiled-path twin of :func:`_face_rows`.  A face is keyed by two of its unique edges:
+    a triangle by its two lowest edge ids (two edges sharing a node fix the triangle), a
+    quadrilateral by its lowest edge id and the edge opposite it (two disjoint opposite
+    sides fix the quadrilateral; they never share a node, so no triangle key equals a
+    quadrilateral's).  The rows are grouped by a counting sort on the first edge."""
+    from .kernels import directional as _kd
+
+    blocks = [(bi, b, ce) for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges))
+              if b.info.dim == 3]
+    n_rows = sum(len(b) * len(b.info.faces) for _, b, _ in blocks)
+    if not blocks:
+        return None
+    m, o = np.empty(n_rows, np.int64), np.empty(n_rows, np.int64)
+    cell = np.empty(n_rows, np.int32 if mesh.n_cells < 2**31 else np.int64)
+    ca, cb, tri = np.empty(n_rows, np.int8), np.empty(n_rows, np.int8), np.empty(n_rows, bool)
+    at = 0
+    for bi, b, ce in blocks:
+        local = _local_faces(b.type)
+        sides = np.zeros((len(local), 4), np.int64)
+        cols = np.zeros((len(local), 4), np.int8)
+        n_sides = np.array([len(sd) for _, sd, _ in local], np.int64)
+        for f, (_, sd, cl) in enumerate(local):
+            sides[f, :len(sd)] = sd
+            cols[f, :len(cl)] = cl
+        at = _kd.block_face_keys(np.ascontiguousarray(ce), sides, n_sides, cols,
+                                 int(mesh.block_offsets[bi]), m, o, cell, ca, cb, tri, at)
+    group, n_faces = _kd.group_edge_pairs(m, o, len(topo.edges))
+    return _EdgePairRows(group, int(n_faces), tri, cell, ca, cb)
+
+
 def _face_rows(mesh: Mesh, topo: Topology):
     """Every local face of every 3D cell, grouped by its node set (order-independent).
+    On the compiled path (:func:`meshcheck.kernels.use_compiled`) an :class:`_EdgePairRows`.
 
     Returns (order, starts, tri, cell, col_a, col_b): ``order`` sorts the face rows so
     that equal faces are consecutive, ``starts`` begins each unique face, ``tri`` tells
     triangles (at the starts), and per row the cell id and the columns of the cell's
     direction orders that run along the face's two sides (col_b unused for triangles).
     """
+    if use_compiled(mesh.n_cells):
+        return _edge_pair_rows(mesh, topo)
     n = np.int64(mesh.n_points + 1)
     lo_k, hi_k, cells, ca, cb, tri = [], [], [], [], [], []
     for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
@@ -157,6 +216,9 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
     interiors.  Maximum rule on shared edges and faces.
     """
     orders = np.asarray(orders, dtype=np.int64)
+    compiled = use_compiled(mesh.n_cells)
+    if compiled:
+        from .kernels import directional as _kd
     used = np.zeros(mesh.n_points, bool)
     for b in mesh.blocks:
         used[b.cells[:, :b.info.n_corners]] = True
@@ -165,7 +227,10 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
     for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
         o = orders[mesh.block_offsets[bi]:mesh.block_offsets[bi + 1]]
         grp = _edge_group(b.type)
-        np.maximum.at(edge_p, ce.ravel(), o[:, grp].ravel())
+        if compiled:
+            _kd.edge_orders(edge_p, ce, np.ascontiguousarray(o), grp)
+        else:
+            np.maximum.at(edge_p, ce.ravel(), o[:, grp].ravel())
         lin = b.info.linear
         if lin == "hexahedron":
             q = o - 1
@@ -180,7 +245,10 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
     total_v = int(used.sum()) + int(np.sum(edge_p - 1))
     faces = 0
     rows = face_rows if face_rows is not None else _face_rows(mesh, topo)
-    if rows is not None:
+    if isinstance(rows, _EdgePairRows):
+        faces = int(_kd.face_dofs(rows.group, rows.n_faces, rows.tri, rows.cell, rows.col_a,
+                                  rows.col_b, np.ascontiguousarray(orders)))
+    elif rows is not None:
         starts, is_tri, cell, col_a, col_b = rows
         pa = np.maximum.reduceat(orders[cell, col_a], starts)
         pb = np.maximum.reduceat(orders[cell, col_b], starts)

@@ -125,10 +125,48 @@ MESHES = {"hex": _hex_mesh, "hex_wedge": _hex_wedge_mesh, "quad2d": _quad_mesh,
 
 @pytest.mark.parametrize("name,seed", list(itertools.product(MESHES, [0, 1, 2])),
                          ids=[f"{m}-{s}" for m, s in itertools.product(MESHES, [0, 1, 2])])
-def test_count_matches_brute_force(name, seed):
+@pytest.mark.parametrize("kernels", ["numpy", "numba"])
+def test_count_matches_brute_force(name, seed, kernels, monkeypatch):
+    monkeypatch.setenv("MESHCHECK_KERNELS", kernels)
     mesh = MESHES[name]()
     orders = _random_orders(mesh, seed)
     assert count_dofs(mesh, build_topology(mesh), orders) == _brute_force(mesh, orders)
+
+
+def _perturbed_mixed_mesh(seed):
+    """Hexahedra and prisms on a jittered grid with the cells shuffled and the nodes
+    renumbered at random (so edge and node numbers carry no grid order)."""
+    rng = np.random.default_rng(seed)
+    n = (5, 4, 3)
+    pts = grid_points(n, (2.0, 1.0, 1.0)) + rng.normal(0, 0.02, ((6 * 5 * 4), 3))
+    h = grid_hexes(n)
+    left = rng.random(len(h)) < 0.5
+    wedges = h[~left][:, HEX_TO_WEDGES].reshape(-1, 6)
+    perm = rng.permutation(len(pts))
+    inv = np.argsort(perm)
+    hexes = inv[h[left]][rng.permutation(int(left.sum()))]
+    wedges = inv[wedges][rng.permutation(len(wedges))]
+    return Mesh(pts[perm], (CellBlock("hexahedron", hexes, np.ones(len(hexes))),
+                            CellBlock("wedge", wedges, np.full(len(wedges), 2))))
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3])
+def test_compiled_counts_equal_the_numpy_reference(seed, monkeypatch):
+    mesh = _perturbed_mixed_mesh(seed)
+    topo = build_topology(mesh)
+    orders = _random_orders(mesh, seed)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = count_dofs(mesh, topo, orders)
+    ref_dir = directional_orders(mesh, topo, np.random.default_rng(seed).integers(
+        1, 9, len(topo.edges)), 8)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    assert count_dofs(mesh, topo, orders) == ref == _brute_force(mesh, orders)
+    got = directional_orders(mesh, topo, np.random.default_rng(seed).integers(
+        1, 9, len(topo.edges)), 8)
+    np.testing.assert_array_equal(got.orders, ref_dir.orders)
+    assert (got.dofs_directional, got.dofs_isotropic, got.total_directional,
+            got.total_isotropic) == (ref_dir.dofs_directional, ref_dir.dofs_isotropic,
+                                     ref_dir.total_directional, ref_dir.total_isotropic)
 
 
 @pytest.mark.parametrize("p", [(1, 1, 1), (3, 1, 2), (2, 5, 4), (6, 6, 6)],
