@@ -74,7 +74,7 @@ def size_jumps(mesh: Mesh, topo: Topology, ratio: float = 2.0, max_listed: int =
     order = over[np.argsort(-r[over], kind="stable")][:max_listed]
     p = pairs[order]
     small_first = np.where((size[p[:, 0]] <= size[p[:, 1]])[:, None], p, p[:, ::-1])
-    loc = 0.5 * (mesh.centroids[small_first[:, 0]] + mesh.centroids[small_first[:, 1]])
+    loc = 0.5 * (mesh.centroids_of(small_first[:, 0]) + mesh.centroids_of(small_first[:, 1]))
     finite = r[np.isfinite(r)]
     return SizeJumps(float(ratio), int(len(over)), float(finite.max()) if len(finite) else 1.0,
                      small_first, r[order], loc, size[small_first])

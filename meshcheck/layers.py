@@ -242,7 +242,7 @@ def check_layer(mesh: Mesh, topo: Topology, tag: int, speed: float, fmin: float,
     lam = speed / fmin
     msgs: list[tuple[str, str, str]] = []
     name = mesh.region_name(tag)
-    loc = mesh.centroids[int(np.flatnonzero(in_layer)[0])] if in_layer.any() else np.zeros(3)
+    loc = mesh.centroids_of(np.flatnonzero(in_layer)[:1])[0] if in_layer.any() else np.zeros(3)
     # conformity: own boundary faces lying on the inner regions' boundary
     nonconf = 0
     if len(own_bnd) and len(inner_bnd):

@@ -256,7 +256,7 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
             first = np.flatnonzero(mesh.region == r.tag)[:1]
             for sev, code, text in lc.messages:
                 out.append(Finding(code, WARNING if sev == "warning" else NOTE, text, 1,
-                                   first, "cell", mesh.centroids[first]))
+                                   first, "cell", mesh.centroids_of(first)))
     tensor = any(b.info.linear in ("hexahedron", "wedge", "quad") for b in mesh.blocks)
     dirs = (directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
             if tensor else None)  # tets and triangles have no parametric directions
