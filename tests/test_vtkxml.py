@@ -52,3 +52,33 @@ def test_multi_block_compression(tmp_path):
     back = meshio.read(path)
     assert np.array_equal(back.points, pts)
     assert np.array_equal(back.cells[0].data, cells)
+
+
+def test_vtk_reader_reads_multi_block_arrays_and_mixed_cells(tmp_path):
+    # arrays over several compressed blocks, two cell types, point and cell data, all read
+    # back by VTK's own XML reader (appended raw data, offsets filled in after writing)
+    vtk = pytest.importorskip("vtk")
+    from vtk.util.numpy_support import vtk_to_numpy
+    rng = np.random.default_rng(3)
+    n = 300_000
+    pts = rng.random((n, 3))
+    tets = rng.integers(0, n, (200_000, 4))
+    hexes = rng.integers(0, n, (100_000, 8))
+    cd = {"a": rng.random(300_000), "b": np.arange(300_000, dtype=np.int32),
+          "vec": rng.random((300_000, 3)).astype(np.float32)}
+    path = write_vtu(tmp_path / "mixed.vtu", pts, [("tetra", tets), ("hexahedron", hexes)],
+                     cell_data=cd, point_data={"p": rng.random(n)})
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    g = r.GetOutput()
+    assert g.GetNumberOfCells() == 300_000 and g.GetNumberOfPoints() == n
+    assert np.array_equal(vtk_to_numpy(g.GetPoints().GetData()), pts)
+    conn = vtk_to_numpy(g.GetCells().GetConnectivityArray())
+    assert np.array_equal(conn, np.concatenate([tets.ravel(), hexes.ravel()]))
+    assert g.GetCellType(0) == 10 and g.GetCellType(299_999) == 12
+    for k, v in cd.items():
+        assert np.array_equal(vtk_to_numpy(g.GetCellData().GetArray(k)), v)
+    back = meshio.read(path)
+    assert np.array_equal(back.cells[1].data, hexes)
+    assert np.array_equal(back.point_data["p"], vtk_to_numpy(g.GetPointData().GetArray("p")))
