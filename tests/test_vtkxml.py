@@ -82,3 +82,25 @@ def test_vtk_reader_reads_multi_block_arrays_and_mixed_cells(tmp_path):
     back = meshio.read(path)
     assert np.array_equal(back.cells[1].data, hexes)
     assert np.array_equal(back.point_data["p"], vtk_to_numpy(g.GetPointData().GetArray("p")))
+
+
+def test_many_small_arrays_keep_their_names(tmp_path):
+    # offsets of many short arrays: each read back (meshio and VTK) under its own name
+    mesh = tet_box((2, 2, 2))
+    b = mesh.blocks[0]
+    cd = {f"c{k}": np.full(len(b), k, np.float32) for k in range(30)}
+    pd = {f"p{k}": np.full(mesh.n_points, -k, np.float64) for k in range(12)}
+    path = write_vtu(tmp_path / "many.vtu", mesh.points, [(b.type, b.cells)], cell_data=cd,
+                     point_data=pd)
+    back = meshio.read(path)
+    for k, v in cd.items():
+        assert np.array_equal(back.cell_data[k][0], v), k
+    for k, v in pd.items():
+        assert np.array_equal(back.point_data[k], v), k
+    vtk = pytest.importorskip("vtk")
+    from vtk.util.numpy_support import vtk_to_numpy
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    for k, v in cd.items():
+        assert np.array_equal(vtk_to_numpy(r.GetOutput().GetCellData().GetArray(k)), v), k
