@@ -2,8 +2,8 @@
 
 1. :func:`~meshcheck.formats.sniff.sniff` tells the format from the content.
 2. A reader produces a :class:`~meshcheck.formats.raw.RawMesh`: meshcheck's own
-   for Nastran bulk data, Abaqus input and I-DEAS universal files; meshio's,
-   guarded, for gmsh, VTK and the HDF5/netCDF formats.
+   for Nastran bulk data, Abaqus input, I-DEAS universal files and gmsh MSH 4.1;
+   meshio's, guarded, for older MSH versions, VTK and the HDF5/netCDF formats.
 3. Cross-checks: the counts of an independent pre-scan (element cards,
    data lines, declared header counts) against what was read; the node count
    of every cell against its type; node indices in range; region tags aligned
@@ -78,6 +78,11 @@ def _dispatch(path: Path, kind: Sniffed, allow_outside: bool) -> RawMesh:
     if kind.kind == "unv":
         from .formats.unv import read_unv
         return read_unv(path)
+    if kind.kind == "gmsh" and kind.detail.startswith("MSH 4.1 "):
+        from .formats.gmsh import read_msh41
+        raw = read_msh41(path)          # None: left to meshio
+        if raw is not None:
+            return raw
     from .formats.via_meshio import read_via_meshio
     return read_via_meshio(path, kind.kind, kind.detail)
 
