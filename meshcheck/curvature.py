@@ -2,8 +2,11 @@
 
 Boundary surface.  The boundary faces of the volume mesh (faces with one cell),
 corner nodes only, quadrilaterals split along their 0-2 diagonal, taken as
-given (a :class:`trimesh.Trimesh` with ``process=False``: nothing merged,
-dropped or re-oriented).  Normals point out of the fluid.
+given (as a :class:`trimesh.Trimesh` with ``process=False``: nothing merged,
+dropped or re-oriented; its face normals, areas, adjacency and angles are
+computed here with trimesh's own numpy operations, which equal trimesh's to the
+bit in the tests, so that the check does not pay trimesh's import, about 0.5 s).
+Normals point out of the fluid.
 
 Curvature.  Faces meeting at a dihedral angle above ``feature_angle`` are
 sharp features, not curvature: they split the surface into smooth patches.
@@ -48,7 +51,8 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
-from .jacobian import jacobian_determinants
+from . import kernels
+from .jacobian import jacobian_determinants, quadratic_summary
 from .mesh import Mesh
 from .topology import Topology
 
@@ -121,6 +125,69 @@ class SurfaceCurvature:
         return np.maximum(np.abs(self.k1), np.abs(self.k2))
 
 
+# trimesh's zero tolerances (trimesh.util.TOL_ZERO and trimesh.constants.tol.merge, 5.x)
+_TOL_ZERO = 1e-13
+_TOL_MERGE = 1e-8
+
+
+def _unitize(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """trimesh.util.unitize of (n, 3) rows, the same numpy calls: rows of norm above
+    1e-13 divided by it (times the reciprocal), the others multiplied by it; and
+    the (n,) bool mask of the former."""
+    norm = np.sqrt(np.dot(v * v, [1.0] * v.shape[1]))
+    valid = norm > _TOL_ZERO
+    norm[valid] **= -1
+    return v * norm.reshape((-1, 1)), valid
+
+
+def _surface_geometry(points: np.ndarray, triangles: np.ndarray):
+    """What :func:`surface_curvature` reads of a ``trimesh.Trimesh(process=False)``,
+    computed with the same numpy calls as trimesh 5.x but without importing it
+    (about 0.5 s): face normals (n_t, 3) (zero for degenerate faces), face areas
+    (n_t,) m^2, adjacent face pairs (n_a, 2) int64 (faces sharing an edge used by
+    exactly two faces; any order), the angles between their normals (n_a,) rad and
+    the corner angles (n_t, 3) rad (zero for degenerate faces).  Tested against
+    trimesh (:func:`_trimesh_geometry`)."""
+    T = points[triangles]                                            # (n_t, 3, 3)
+    vec = T[:, 1:, :] - T[:, :2, :]
+    crosses = np.cross(vec[:, 0], vec[:, 1])
+    unit, valid = _unitize(crosses)
+    fn = unit if valid.all() else np.where(valid[:, None], unit, 0.0)
+    area = np.sqrt((crosses ** 2).sum(axis=1)) / 2.0
+    # faces sharing an edge that exactly two faces use
+    edges = np.sort(triangles[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
+    key = edges[:, 0] * np.int64(len(points) + 1) + edges[:, 1]
+    order = np.argsort(key, kind="stable")
+    key = key[order]
+    start = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
+    two = np.diff(np.r_[start, len(key)]) == 2
+    adj = (order[np.column_stack([start[two], start[two] + 1])] // 3).astype(np.int64)
+    adj = np.sort(adj[adj[:, 0] != adj[:, 1]], axis=1)
+    pairs = fn[adj]
+    ang = np.abs(np.arccos(np.clip(np.dot(pairs[:, 0] * pairs[:, 1], [1.0] * 3), -1.0, 1.0)))
+    # corner angles (trimesh.triangles.angles)
+    u = _unitize(T[:, 1] - T[:, 0])[0]
+    v = _unitize(T[:, 2] - T[:, 0])[0]
+    w = _unitize(T[:, 2] - T[:, 1])[0]
+    corner = np.zeros((len(T), 3))
+    corner[:, 0] = np.arccos(np.clip(np.dot(u * v, [1.0] * 3), -1, 1))
+    corner[:, 1] = np.arccos(np.clip(np.dot(-u * w, [1.0] * 3), -1, 1))
+    corner[:, 2] = np.pi - corner[:, 0] - corner[:, 1]
+    corner[(corner < _TOL_MERGE).any(axis=1), :] = 0.0
+    return fn, area, adj, ang, corner
+
+
+def _trimesh_geometry(surface: BoundarySurface):
+    """The same five arrays as :func:`_surface_geometry`, read from trimesh itself
+    (the reference the tests compare with)."""
+    tm = surface.trimesh()
+    return (np.asarray(tm.face_normals, dtype=np.float64),
+            np.asarray(tm.area_faces, dtype=np.float64),
+            np.asarray(tm.face_adjacency, dtype=np.int64).reshape(-1, 2),
+            np.asarray(tm.face_adjacency_angles, dtype=np.float64),
+            np.asarray(tm.face_angles, dtype=np.float64))
+
+
 def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0) -> SurfaceCurvature:
     """Principal curvatures per triangle (Rusinkiewicz 2004 per-face fit), feature-aware.
 
@@ -130,11 +197,7 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0) -> 
     if n_t == 0:
         z = np.zeros(0)
         return SurfaceCurvature(z, z, np.zeros(0, np.int64), 0, 0, z)
-    tm = surface.trimesh()
-    fn = np.asarray(tm.face_normals, dtype=np.float64)
-    area = np.asarray(tm.area_faces, dtype=np.float64)
-    adj = np.asarray(tm.face_adjacency, dtype=np.int64).reshape(-1, 2)
-    ang = np.asarray(tm.face_adjacency_angles, dtype=np.float64)
+    fn, area, adj, ang, corner_w = _surface_geometry(surface.points, surface.triangles)
     smooth = ang <= np.radians(feature_angle)
     g = sparse.coo_matrix((np.ones(int(smooth.sum())), (adj[smooth, 0], adj[smooth, 1])),
                           shape=(n_t, n_t))
@@ -142,7 +205,6 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0) -> 
     patch = patch.astype(np.int64)
     # one normal per (vertex, patch): corner-angle-weighted face normals
     tri = surface.triangles
-    corner_w = np.asarray(tm.face_angles, dtype=np.float64)          # (n_t, 3)
     key = tri * np.int64(n_patch) + patch[:, None]
     uk, inv = np.unique(key.ravel(), return_inverse=True)
     acc = np.zeros((len(uk), 3))
@@ -273,9 +335,13 @@ def _face_midnode_deviation(mesh: Mesh, topo: Topology, fids: np.ndarray):
              (nodes[:, 1], nodes[:, 2], np.ones(len(fids), bool)),
              (nodes[:, 2], np.where(quad, nodes[:, 3], nodes[:, 0]), np.ones(len(fids), bool)),
              (nodes[:, 3], nodes[:, 0], quad))
+    any_mid = bool((edges.mid >= 0).any())
     for a, b, valid in sides:
         longest[valid] = np.maximum(longest[valid],
                                     np.linalg.norm(P[b[valid]] - P[a[valid]], axis=1))
+        if not any_mid:             # no edge has a mid-node (linear mesh): nothing to look up
+            has &= ~valid
+            continue
         lo, hi = np.minimum(a, b), np.maximum(a, b)
         pos = np.clip(np.searchsorted(ekey, lo * n + hi), 0, max(len(ekey) - 1, 0))
         found = valid & (len(ekey) > 0) & (ekey[pos] == lo * n + hi)
@@ -368,11 +434,22 @@ class QuadraticGeometry:
 
 def quadratic_geometry(mesh: Mesh, threshold: float = 0.3, chunk: int = 100_000,
                        max_listed: int = 20) -> QuadraticGeometry | None:
-    """Mid-node deviation and det J variation of quadratic cells (None if there are none)."""
+    """Mid-node deviation and det J variation of quadratic cells (None if there are none).
+
+    Large meshes take the compiled kernel; the values are then the ones kept by
+    :func:`meshcheck.validity.min_scaled_jacobian` when it ran first on the same mesh.
+    """
     ids, devs, ratios = [], [], []
     P = mesh.points
+    compiled = kernels.use_compiled(mesh.n_cells)
     for bi, b in enumerate(mesh.blocks):
         if not b.info.quadratic:
+            continue
+        if compiled:
+            ratio, dev = quadratic_summary(P, b.cells, b.type)
+            devs.append(dev)
+            ratios.append(ratio)
+            ids.append(np.arange(len(b)) + mesh.block_offsets[bi])
             continue
         e = b.info.edges
         for s in range(0, len(b), chunk):
@@ -393,4 +470,4 @@ def quadratic_geometry(mesh: Mesh, threshold: float = 0.3, chunk: int = 100_000,
     low = np.flatnonzero(ratio < threshold)
     worst = low[np.argsort(ratio[low], kind="stable")][:max_listed]
     return QuadraticGeometry(len(ids), ids, dev, ratio, float(threshold), int(len(low)),
-                             ids[worst], mesh.centroids[ids[worst]])
+                             ids[worst], mesh.centroids_of(ids[worst]))

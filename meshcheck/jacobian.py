@@ -37,11 +37,13 @@ the interior.
 """
 from __future__ import annotations
 
+import weakref
 from functools import lru_cache
 
 import numpy as np
 from scipy.special import roots_jacobi
 
+from . import kernels
 from .cells import CELL_TYPES
 
 __all__ = [
@@ -52,6 +54,7 @@ __all__ = [
     "jacobian_matrices",
     "jacobian_determinants",
     "scaled_jacobian_min",
+    "quadratic_summary",
 ]
 
 SAMPLE_KINDS = ("corners", "nodes", "quadrature")
@@ -422,6 +425,11 @@ def scaled_jacobian_min(points: np.ndarray, cells: np.ndarray, cell_type: str,
     A sample point with a zero-length column gives 0 (degenerate).
     Returns (m,) float64.
     """
+    if kernels.use_compiled(len(cells)):
+        table = (_gradient_table(cell_type, where) if isinstance(where, str)
+                 else _unique_rows(shape_gradients(cell_type, _as_ref(where))
+                                   [:, :, :_info(cell_type).dim]))
+        return compiled_extremes(points, cells, table, None)[0]
     out = np.full(len(cells), np.inf)
     for J in _per_point(points, cells, cell_type, where):
         det = _det(J)
@@ -430,3 +438,100 @@ def scaled_jacobian_min(points: np.ndarray, cells: np.ndarray, cell_type: str,
             sj = np.where(norms > 0.0, det / np.where(norms > 0.0, norms, 1.0), 0.0)
         np.minimum(out, sj, out=out)
     return out
+
+
+# ------------------------------------------------------- compiled kernels
+def _unique_rows(G: np.ndarray) -> np.ndarray:
+    """(q', n, d) float64 read-only: G without repeated sample points (same Jacobian,
+    same minimum; a linear simplex has one), first occurrences in order."""
+    if len(G):
+        _, first = np.unique(G.reshape(len(G), -1), axis=0, return_index=True)
+        G = G[np.sort(first)]
+    out = np.ascontiguousarray(G, dtype=np.float64)
+    out.setflags(write=False)
+    return out
+
+
+@lru_cache(maxsize=None)
+def _gradient_table(cell_type: str, *where: str) -> np.ndarray:
+    """(q, n_nodes, d) float64 read-only shape-function gradients at the sample points
+    of the kinds ``where`` in order, each kind without repeated points."""
+    d = _info(cell_type).dim
+    parts = [_unique_rows(shape_gradients(cell_type, sample_points(cell_type, w))[:, :, :d])
+             for w in where]
+    out = np.ascontiguousarray(np.concatenate(parts))
+    out.setflags(write=False)
+    return out
+
+
+_NO_EDGES = np.zeros((0, 3), np.int64)
+
+
+def compiled_extremes(points: np.ndarray, cells: np.ndarray, table: np.ndarray,
+                      ratio_from: int | None, mid_edges: np.ndarray | None = None):
+    """Scaled Jacobian minimum, det J ratio and mid-node deviation by the compiled
+    kernel, in one pass over the cells.
+
+    table : (q, n_nodes, d) shape-function gradients at the sample points (see
+        :func:`_gradient_table`).  ratio_from : first row of ``table`` whose det J
+        enters the ratio, or None for no ratio.  mid_edges : (n_edges, 3) int64
+        corner a, corner b, mid-node of the cell type's edges, or None.
+    Returns sj (m,) float64, the minimum of :func:`scaled_jacobian_min` over all q
+    points; ratio (m,) float64 min det J / max det J over the rows from
+    ``ratio_from`` (-1 where the maximum is not positive) and dev (m,) float64 the
+    largest |x_m - (x_a + x_b)/2| / |x_b - x_a| over the edges, both as
+    :func:`meshcheck.curvature.quadratic_geometry`, or None when not asked for.
+    """
+    from .kernels import cells as _kc
+
+    pts = np.ascontiguousarray(points, dtype=np.float64)
+    c = np.ascontiguousarray(cells, dtype=np.int64)
+    m = len(c)
+    q, n, j = np.nonzero(table)                       # in (point, node, column) order
+    ptr = np.searchsorted(q, np.arange(len(table) + 1)).astype(np.int64)
+    sparse = (ptr, n.astype(np.int64), j.astype(np.int64), np.ascontiguousarray(table[q, n, j]))
+    edges = _NO_EDGES if mid_edges is None else np.ascontiguousarray(mid_edges, dtype=np.int64)
+    sj, dev = np.empty(m), np.empty(m if mid_edges is not None else 0)
+    lo, hi = (np.empty(0), np.empty(0)) if ratio_from is None else (np.empty(m), np.empty(m))
+    first = len(table) if ratio_from is None else int(ratio_from)
+    _kc.jacobian_extremes(pts, c, table, *sparse, first, edges, sj, lo, hi, dev)
+    ratio = None
+    if ratio_from is not None:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where(hi > 0, lo / np.where(hi > 0, hi, 1.0), -1.0)
+    return sj, ratio, (dev if mid_edges is not None else None)
+
+
+# what the validity pass computed for quadratic_geometry:
+# (id(points), id(cells)) -> (weakref to points, weakref to cells, (ratio, dev))
+_QUADRATIC_MEMO: dict = {}
+
+
+def remember_quadratic(points: np.ndarray, cells: np.ndarray, ratio: np.ndarray,
+                       dev: np.ndarray) -> None:
+    """Keep the det J ratio and mid-node deviation of ``cells`` for
+    :func:`quadratic_summary` while ``cells`` lives (read-only points only, i.e. a
+    :class:`~meshcheck.mesh.Mesh`'s, which cannot change)."""
+    if points.flags.writeable:
+        return
+    key = (id(points), id(cells))
+    try:
+        refs = (weakref.ref(points), weakref.ref(cells))
+    except TypeError:
+        return
+    if key not in _QUADRATIC_MEMO:
+        weakref.finalize(cells, _QUADRATIC_MEMO.pop, key, None)
+    _QUADRATIC_MEMO[key] = refs + ((ratio, dev),)
+
+
+def quadratic_summary(points: np.ndarray, cells: np.ndarray,
+                      cell_type: str) -> tuple[np.ndarray, np.ndarray]:
+    """(ratio, dev), each (m,) float64, of :func:`compiled_extremes` over the
+    quadrature points and the edges of quadratic cells: the values kept by
+    :func:`remember_quadratic` for these very arrays, or computed now."""
+    hit = _QUADRATIC_MEMO.get((id(points), id(cells)))
+    if hit is not None and hit[0]() is points and hit[1]() is cells:
+        return hit[2]
+    _, ratio, dev = compiled_extremes(points, cells, _gradient_table(cell_type, "quadrature"), 0,
+                                      _info(cell_type).edges)
+    return ratio, dev

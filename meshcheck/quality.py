@@ -72,6 +72,7 @@ from types import MappingProxyType
 
 import numpy as np
 
+from . import kernels
 from .cells import CELL_TYPES
 from .errors import SettingsError
 from .mesh import Mesh
@@ -348,6 +349,10 @@ def _points_t(points) -> np.ndarray:
 
 def _block_quality(pts_t: np.ndarray, cells: np.ndarray, cell_type: str) -> dict[str, np.ndarray]:
     fam = family_of(cell_type)                   # ValueError if unsupported
+    if kernels.use_compiled(len(cells)):
+        out = np.full((len(METRICS), len(cells)), np.nan)
+        _compiled_quality(np.ascontiguousarray(pts_t.T), cells, cell_type, out, 0)
+        return dict(zip(METRICS, out))
     info = CELL_TYPES[cell_type]
     cells = np.asarray(cells)
     m = cells.shape[0]
@@ -359,6 +364,41 @@ def _block_quality(pts_t: np.ndarray, cells: np.ndarray, cell_type: str) -> dict
     got = _COMPUTE[fam](X) if m else {}
     return {k: np.ascontiguousarray(got[k], dtype=np.float64) if k in got else _nan(m)
             for k in METRICS}
+
+
+def _kernel_edges() -> dict:
+    """Corner pairs of the edges, (n_edges, 2) int64, for the compiled kernels."""
+    return {t: np.ascontiguousarray(CELL_TYPES[t].edges[:, :2])
+            for t in ("hexahedron", "wedge", "pyramid")}
+
+
+_KERNEL_EDGES = _kernel_edges()
+
+
+def _compiled_quality(points: np.ndarray, cells: np.ndarray, cell_type: str, out: np.ndarray,
+                      off: int) -> None:
+    """Fill columns off..off+m of out (len(METRICS), n) float64 with the metrics of the
+    m ``cells`` by the compiled kernels (:mod:`meshcheck.kernels.cells`: the same
+    operations as the numpy functions above, one pass per cell); rows of metrics not
+    defined for the type are left as they are.  Quadratic cells: corners only."""
+    from .kernels import cells as _kc
+
+    fam = family_of(cell_type)
+    edges = _KERNEL_EDGES
+    pts = np.ascontiguousarray(points, dtype=np.float64)
+    c = np.ascontiguousarray(cells, dtype=np.int64)   # the kernels read the corner columns only
+    if fam == "tet":
+        _kc.tet_quality(pts, c, out, off)
+    elif fam == "hex":
+        _kc.hex_quality(pts, c, edges["hexahedron"], _HEX_CORNERS, out, off)
+    elif fam == "wedge":
+        _kc.wedge_quality(pts, c, edges["wedge"], _WEDGE_CORNERS, out, off)
+    elif fam == "pyramid":
+        _kc.pyramid_quality(pts, c, edges["pyramid"], out, off)
+    elif fam == "tri":
+        _kc.tri_quality(pts, c, out, off)
+    else:
+        _kc.quad_quality(pts, c, out, off)
 
 
 @dataclass(frozen=True)
@@ -408,8 +448,15 @@ def mesh_quality(mesh: Mesh, chunk_size: int = 200_000) -> CellQuality:
     if chunk_size < 1:
         raise SettingsError(f"chunk_size must be positive, not {chunk_size}")
     n = mesh.n_cells
-    out = {k: np.full(n, np.nan) for k in METRICS}
     offsets = mesh.block_offsets
+    if kernels.use_compiled(n):
+        # one pass per cell over whole blocks (memory: the outputs only)
+        rows = np.full((len(METRICS), n), np.nan)
+        for blk, lo in zip(mesh.blocks, offsets[:-1]):
+            _compiled_quality(mesh.points, blk.cells, blk.type, rows, int(lo))
+        rows.setflags(write=False)
+        return CellQuality(dict(zip(METRICS, rows)))
+    out = {k: np.full(n, np.nan) for k in METRICS}
     pts_t = _points_t(mesh.points)
     for blk, off in zip(mesh.blocks, offsets[:-1]):
         for start in range(0, len(blk), chunk_size):

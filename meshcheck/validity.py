@@ -9,7 +9,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .jacobian import scaled_jacobian_min
+from . import kernels
+from .jacobian import _gradient_table, compiled_extremes, remember_quadratic, scaled_jacobian_min
 from .mesh import Mesh
 from .topology import Topology
 
@@ -55,7 +56,15 @@ class ValiditySettings:
 
 def min_scaled_jacobian(mesh: Mesh, chunk: int = 200_000) -> np.ndarray:
     """(n_cells,) minimum scaled Jacobian over corners and, for quadratic cells,
-    over quadrature points (dimensionless; negative = inverted somewhere)."""
+    over quadrature points (dimensionless; negative = inverted somewhere).
+
+    Large meshes take the compiled kernel (one pass per cell over corners and
+    quadrature points); for quadratic cells it also keeps the det J ratio and the
+    mid-node deviation for :func:`meshcheck.curvature.quadratic_geometry`, which
+    then needs no second pass.
+    """
+    if kernels.use_compiled(mesh.n_cells):
+        return _compiled_min_sj(mesh)
     out = []
     for b in mesh.blocks:
         vals = np.empty(len(b))
@@ -69,11 +78,27 @@ def min_scaled_jacobian(mesh: Mesh, chunk: int = 200_000) -> np.ndarray:
     return np.concatenate(out) if out else np.zeros(0)
 
 
+def _compiled_min_sj(mesh: Mesh) -> np.ndarray:
+    """min_scaled_jacobian by the compiled kernel (whole blocks, no chunks needed)."""
+    out = []
+    for b in mesh.blocks:
+        if b.info.quadratic:
+            table = _gradient_table(b.type, "corners", "quadrature")
+            first_q = len(_gradient_table(b.type, "corners"))
+            sj, ratio, dev = compiled_extremes(mesh.points, b.cells, table, first_q, b.info.edges)
+            remember_quadratic(mesh.points, b.cells, ratio, dev)
+        else:
+            table = _gradient_table(b.type, "corners")
+            sj = compiled_extremes(mesh.points, b.cells, table, None)[0]
+        out.append(sj)
+    return np.concatenate(out) if out else np.zeros(0)
+
+
 def _cells(code, severity, message, mask_or_ids, mesh: Mesh, s: ValiditySettings):
     ids = np.flatnonzero(mask_or_ids) if mask_or_ids.dtype == bool else mask_or_ids
     shown = ids[:s.max_listed]
     return Finding(code, severity, message, int(len(ids)), shown, "cell",
-                   mesh.centroids[shown] if len(shown) else np.zeros((0, 3)))
+                   mesh.centroids_of(shown))
 
 
 def _nodes(code, severity, message, ids, mesh: Mesh, s: ValiditySettings):
@@ -113,7 +138,7 @@ def check_validity(mesh: Mesh, topo: Topology, min_sj: np.ndarray,
         out.append(Finding("internal_cracks", BLOCKING,
                            "boundary faces lying on other boundary faces: an unmerged interface "
                            "that blocks the wave (merge coincident nodes)", int(len(f)),
-                           cells[:s.max_listed], "cell", mesh.centroids[cells[:s.max_listed]]))
+                           cells[:s.max_listed], "cell", mesh.centroids_of(cells[:s.max_listed])))
     if len(topo.duplicate_cells):
         out.append(_cells("duplicate_cells", BLOCKING, "cells repeated with the same corners",
                           topo.duplicate_cells[:, 1], mesh, s))
@@ -129,5 +154,5 @@ def check_validity(mesh: Mesh, topo: Topology, min_sj: np.ndarray,
         out.append(Finding("several_components", WARNING,
                            f"{topo.n_components} disconnected parts: no sound passes between them",
                            topo.n_components, first[:s.max_listed], "cell",
-                           mesh.centroids[first[:s.max_listed]]))
+                           mesh.centroids_of(first[:s.max_listed])))
     return out

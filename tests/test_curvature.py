@@ -7,9 +7,9 @@ import gmsh
 import numpy as np
 import pytest
 
-from meshcheck.curvature import (boundary_surface, check_curvature, chord_height,
-                                 enclosing_radius, quadratic_chord_height, quadratic_geometry,
-                                 surface_curvature)
+from meshcheck.curvature import (BoundarySurface, _face_midnode_deviation, boundary_surface,
+                                 check_curvature, chord_height, enclosing_radius,
+                                 quadratic_chord_height, quadratic_geometry, surface_curvature)
 from meshcheck.jacobian import quadrature_rule
 from meshcheck.mesh import CellBlock, Mesh
 from meshcheck.topology import build_topology
@@ -193,3 +193,85 @@ def test_moved_midnode_jacobian_variation_closed_form(eps):
     assert q.midnode_deviation[0] == pytest.approx(eps)
     assert q.jacobian_ratio[0] == pytest.approx(detj.min() / detj.max(), rel=1e-12)
     assert q.low == 1 and q.listed.tolist() == [0]
+
+
+def test_linear_mesh_faces_have_no_midnodes(sphere):
+    """Linear meshes skip the mid-node look-up: no face has mid-nodes, no deviation, and
+    the longest side is the brute-force one."""
+    _, mesh, topo = sphere
+    fids = np.flatnonzero(topo.faces.count == 1)
+    dev, has, longest = _face_midnode_deviation(mesh, topo, fids)
+    assert not has.any() and not dev.any()
+    nodes = topo.faces.nodes[fids]
+    assert (nodes[:, 3] < 0).all()
+    P = mesh.points
+    sides = [np.linalg.norm(P[nodes[:, (k + 1) % 3]] - P[nodes[:, k]], axis=1) for k in range(3)]
+    np.testing.assert_array_equal(longest, np.max(sides, axis=0))
+
+
+@pytest.mark.parametrize("kernels", ["numpy", "numba"])
+def test_moved_midnode_closed_form_on_both_paths(kernels, monkeypatch):
+    """The compiled quadratic_geometry (and the validity pass that keeps the det J ratio)
+    meets the closed form too."""
+    from meshcheck.validity import min_scaled_jacobian
+
+    monkeypatch.setenv("MESHCHECK_KERNELS", kernels)
+    eps = 0.1
+    ref = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1],
+                    [.5, 0, 0], [.5, .5, 0], [0, .5, 0], [0, 0, .5], [.5, 0, .5], [0, .5, .5]])
+    pts = ref.copy()
+    pts[4, 0] += eps
+    mesh = Mesh(pts, (CellBlock("tetra10", np.arange(10)[None].repeat(3, axis=0), np.ones(3)),))
+    min_scaled_jacobian(mesh)
+    q = quadratic_geometry(mesh, threshold=0.99)
+    r = quadrature_rule("tetra10")[0]
+    detj = 1 + 4 * eps * ((1 - r.sum(axis=1)) - r[:, 0])
+    np.testing.assert_allclose(q.midnode_deviation, eps, rtol=1e-12)
+    np.testing.assert_allclose(q.jacobian_ratio, detj.min() / detj.max(), rtol=1e-12)
+    assert q.low == 3 and q.listed.tolist() == [0, 1, 2]
+    np.testing.assert_allclose(q.listed_locations, 0.25, rtol=1e-15)
+
+
+def _geometry_cases(sphere, cylinder):
+    """Boundary surfaces of the gmsh sphere and cylinder, and a hand-made one with a
+    zero-area face, a face with a repeated vertex and an edge used by three faces."""
+    out = []
+    for _, mesh, topo in (sphere, cylinder):
+        out.append(boundary_surface(mesh, topo))
+    pts = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [1, 1, 0.2], [0.5, 0, 0], [0, 0, 1],
+                    [1, 0, 1], [0.3, 0.3, -1]], float)
+    tri = np.array([[0, 1, 2], [1, 3, 2], [0, 4, 1], [0, 1, 1], [0, 1, 5], [1, 6, 5],
+                    [2, 1, 7], [3, 1, 6]], np.int64)
+    z = np.zeros(len(tri), np.int64)
+    out.append(BoundarySurface(np.arange(len(pts)), pts, tri, z, z))
+    return out
+
+
+def test_surface_geometry_equals_trimesh(sphere, cylinder):
+    """Normals, areas, adjacency, adjacency angles and corner angles computed without
+    trimesh equal trimesh's, bit for bit (adjacent pairs compared as sorted rows)."""
+    from meshcheck.curvature import _surface_geometry, _trimesh_geometry
+
+    for surf in _geometry_cases(sphere, cylinder):
+        fn, area, adj, ang, corner = _surface_geometry(surf.points, surf.triangles)
+        tfn, tarea, tadj, tang, tcorner = _trimesh_geometry(surf)
+        np.testing.assert_array_equal(fn, tfn)
+        np.testing.assert_array_equal(area, tarea)
+        np.testing.assert_array_equal(corner, tcorner)
+        o, to = np.lexsort(adj.T[::-1]), np.lexsort(tadj.T[::-1])
+        np.testing.assert_array_equal(adj[o], tadj[to])
+        np.testing.assert_array_equal(ang[o], tang[to])
+    assert len(adj) > 0 and (fn == 0).all(axis=1).any() and (corner == 0).all(axis=1).any()
+
+
+def test_surface_curvature_unchanged_without_trimesh(sphere, cylinder, monkeypatch):
+    import meshcheck.curvature as cv
+
+    for surf in _geometry_cases(sphere, cylinder)[:2]:
+        ours = surface_curvature(surf, 50.0)
+        monkeypatch.setattr(cv, "_surface_geometry", lambda p, t, s=surf: cv._trimesh_geometry(s))
+        ref = surface_curvature(surf, 50.0)
+        monkeypatch.undo()
+        for name in ("k1", "k2", "patch", "area"):
+            np.testing.assert_array_equal(getattr(ours, name), getattr(ref, name), err_msg=name)
+        assert (ours.n_patches, ours.feature_edges) == (ref.n_patches, ref.feature_edges)

@@ -1,0 +1,254 @@
+"""The compiled per-cell kernels (meshcheck.kernels.cells) against the numpy reference.
+
+Every cell type of cells.CELL_TYPES, on randomly perturbed cells that include
+inverted, collapsed, flat, tiny, huge and non-finite ones: the compiled path
+(MESHCHECK_KERNELS=numba) must give the numpy path's values (MESHCHECK_KERNELS=numpy)
+to 1e-12 relative, with NaN and inf in the same places.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from meshcheck import curvature, jacobian, quality, validity
+from meshcheck.cells import CELL_TYPES
+from meshcheck.mesh import CellBlock, Mesh
+
+pytest.importorskip("numba")
+
+ALL_TYPES = sorted(CELL_TYPES)
+QUADRATIC = sorted(t for t, c in CELL_TYPES.items() if c.quadratic)
+RTOL = 1e-12
+
+
+def _mirror(cell_type):
+    """Node relabelling swapping the r and s parametric coordinates (a reflection)."""
+    ref = CELL_TYPES[cell_type].ref_coords
+    return np.array([int(np.flatnonzero(np.all(np.isclose(ref, s), axis=1))[0])
+                     for s in ref[:, [1, 0, 2]]])
+
+
+def _cells(cell_type, m=150, seed=0):
+    """(points (m * n_nodes, 3), cells (m, n_nodes)): randomly scaled, rotated and
+    perturbed reference cells, each with its own nodes, and the hard cases:
+    0-5 inverted (mirrored), 6 collapsed to a point, 7 two corners merged, 8 flat,
+    9 tiny (1e-9 m), 10 huge (1e6 m), 11 a NaN coordinate, 12 an infinite one,
+    13 strongly perturbed (often folded).  The compiled Jacobian kernel works in
+    blocks of 64 cells; cells 64.. (all finite, 64-75 the finite hard cases again)
+    take its sparse path."""
+    info = CELL_TYPES[cell_type]
+    rng = np.random.default_rng(seed + 97 * ALL_TYPES.index(cell_type))
+    ref = info.ref_coords
+    scale = rng.uniform(0.5, 2.0, size=(m, 1, 3))
+    X = (ref[None] + 0.06 * rng.normal(size=(m,) + ref.shape)) * scale
+    if info.dim == 3:
+        q, _ = np.linalg.qr(rng.normal(size=(3, 3)))
+        X = X @ (q * np.sign(np.linalg.det(q))).T
+    X[6] = X[6, :1]
+    X[7, 1] = X[7, 0]
+    X[8, :, 1 if info.dim == 2 else 2] = 0.5
+    X[9] *= 1e-9
+    X[10] *= 1e6
+    X[11, 0, 0] = np.nan
+    X[12, -1, 1] = np.inf
+    X[13] += 0.6 * rng.normal(size=ref.shape)
+    if m > 76:
+        X[64:75], X[75] = X[:11], X[13]                 # the finite hard cases again
+    X += rng.uniform(-50.0, 50.0, size=(m, 1, 3))
+    if info.dim == 2:
+        X[..., 2] = 0.0
+    cells = np.arange(m * info.n_nodes).reshape(m, info.n_nodes)
+    cells[:6] = cells[:6][:, _mirror(cell_type)]
+    if m > 76:
+        cells[64:70] = cells[64:70][:, _mirror(cell_type)]
+    return X.reshape(-1, 3), cells
+
+
+def _mesh(cell_type, **kw):
+    pts, cells = _cells(cell_type, **kw)
+    return Mesh(pts, (CellBlock(cell_type, cells, np.zeros(len(cells), np.int64)),),
+                dim=CELL_TYPES[cell_type].dim)
+
+
+def _both(monkeypatch, fn):
+    """fn() on the numpy path, then on the compiled path."""
+    out = []
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        with np.errstate(all="ignore"):
+            out.append(fn())
+    return out
+
+
+def assert_same(expected, got, what=""):
+    """Equal to RTOL relative; NaN, +inf and -inf in the same places."""
+    expected, got = np.asarray(expected, float), np.asarray(got, float)
+    assert expected.shape == got.shape, what
+    np.testing.assert_array_equal(np.isnan(got), np.isnan(expected), err_msg=f"{what}: NaN")
+    np.testing.assert_array_equal(np.isposinf(got), np.isposinf(expected), err_msg=f"{what}: +inf")
+    np.testing.assert_array_equal(np.isneginf(got), np.isneginf(expected), err_msg=f"{what}: -inf")
+    ok = np.isfinite(expected)
+    np.testing.assert_allclose(got[ok], expected[ok], rtol=RTOL, atol=0.0, err_msg=what)
+
+
+# ------------------------------------------------------------------ the fixtures cover the cases
+@pytest.mark.parametrize("cell_type", ALL_TYPES)
+def test_fixture_has_inverted_degenerate_and_nonfinite_cells(cell_type, monkeypatch):
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    mesh = _mesh(cell_type)
+    with np.errstate(all="ignore"):
+        sj = validity.min_scaled_jacobian(mesh)
+        er = quality.mesh_quality(mesh)["edge_ratio"]
+    assert np.all(sj[:6] < 0) and np.mean(sj[14:] > 0) > 0.75   # mirrored / mostly valid
+    assert er[6] == np.inf and er[7] == np.inf                  # collapsed, merged corners
+    assert abs(sj[8]) < 1e-9                                    # flat
+    assert np.isnan(er[11]) and np.isinf(mesh.points[mesh.blocks[0].cells[12]]).any()
+
+
+# ------------------------------------------------------------------ quality
+@pytest.mark.parametrize("cell_type", ALL_TYPES)
+def test_block_quality_compiled_equals_numpy(cell_type, monkeypatch):
+    pts, cells = _cells(cell_type)
+    ref, got = _both(monkeypatch, lambda: quality.block_quality(pts, cells, cell_type))
+    assert set(got) == set(quality.METRICS)
+    for k in quality.METRICS:
+        assert got[k].dtype == np.float64 and got[k].shape == (len(cells),)
+        assert_same(ref[k], got[k], f"{cell_type} {k}")
+
+
+@pytest.mark.parametrize("cell_type", ALL_TYPES)
+def test_mesh_quality_compiled_equals_numpy(cell_type, monkeypatch):
+    mesh = _mesh(cell_type, m=50, seed=3)
+    ref, got = _both(monkeypatch, lambda: quality.mesh_quality(mesh, chunk_size=7))
+    for k in quality.METRICS:
+        assert_same(ref[k], got[k], f"{cell_type} {k}")
+        assert not got[k].flags.writeable
+
+
+def _mixed_mesh(types, m=20):
+    blocks, pts, off = [], [], 0
+    for k, t in enumerate(types):
+        p, c = _cells(t, m=m, seed=k)
+        blocks.append(CellBlock(t, c + off, np.full(len(c), k)))
+        pts.append(p)
+        off += len(p)
+    return Mesh(np.vstack(pts), tuple(blocks))
+
+
+def test_mixed_mesh_quality_and_validity_compiled_equal_numpy(monkeypatch):
+    mesh = _mixed_mesh([t for t in ALL_TYPES if CELL_TYPES[t].dim == 3])
+    (q0, s0), (q1, s1) = _both(monkeypatch, lambda: (quality.mesh_quality(mesh),
+                                                     validity.min_scaled_jacobian(mesh)))
+    for k in quality.METRICS:
+        assert_same(q0[k], q1[k], k)
+    assert_same(s0, s1, "min scaled Jacobian")
+
+
+# ------------------------------------------------------------------ Jacobians
+@pytest.mark.parametrize("cell_type", ALL_TYPES)
+def test_min_scaled_jacobian_compiled_equals_numpy(cell_type, monkeypatch):
+    mesh = _mesh(cell_type)
+    ref, got = _both(monkeypatch, lambda: validity.min_scaled_jacobian(mesh))
+    assert_same(ref, got, cell_type)
+
+
+@pytest.mark.parametrize("where", ["corners", "nodes", "quadrature", "points"])
+@pytest.mark.parametrize("cell_type", ALL_TYPES)
+def test_scaled_jacobian_min_compiled_equals_numpy(cell_type, where, monkeypatch):
+    pts, cells = _cells(cell_type, seed=5)
+    w = np.random.default_rng(1).uniform(0.05, 0.3, size=(5, 3)) if where == "points" else where
+    ref, got = _both(monkeypatch, lambda: jacobian.scaled_jacobian_min(pts, cells, cell_type, w))
+    assert_same(ref, got, f"{cell_type} {where}")
+
+
+@pytest.mark.parametrize("cell_type", ["tetra", "quad9"])
+def test_no_sample_points_and_no_cells(cell_type, monkeypatch):
+    pts, cells = _cells(cell_type, m=20)
+    for c, w in ((cells, np.zeros((0, 3))), (cells[:0], "quadrature")):
+        ref, got = _both(monkeypatch, lambda: jacobian.scaled_jacobian_min(pts, c, cell_type, w))
+        assert_same(ref, got, "empty")
+    ref, got = _both(monkeypatch, lambda: quality.block_quality(pts, cells[:0], cell_type))
+    for k in quality.METRICS:
+        assert got[k].shape == ref[k].shape == (0,)
+
+
+def test_repeated_sample_points_are_dropped_once():
+    """A linear tet has one Jacobian: its four corners collapse to one gradient table row;
+    a tetra10's corners do not."""
+    assert len(jacobian._gradient_table("tetra", "corners")) == 1
+    assert len(jacobian._gradient_table("tetra10", "corners")) == 4
+    assert len(jacobian._gradient_table("tetra10", "corners", "quadrature")) == 4 + 27
+
+
+# ------------------------------------------------------------------ quadratic geometry
+@pytest.mark.parametrize("cell_type", QUADRATIC)
+def test_quadratic_geometry_compiled_equals_numpy(cell_type, monkeypatch):
+    mesh = _mesh(cell_type, seed=7)
+    ref, got = _both(monkeypatch, lambda: curvature.quadratic_geometry(mesh, threshold=0.6))
+    assert ref.low > 0
+    np.testing.assert_array_equal(got.cell_ids, ref.cell_ids)
+    assert_same(ref.midnode_deviation, got.midnode_deviation, "midnode deviation")
+    assert_same(ref.jacobian_ratio, got.jacobian_ratio, "det J ratio")
+    assert got.low == ref.low
+    np.testing.assert_array_equal(got.listed, ref.listed)
+    np.testing.assert_array_equal(got.listed_locations, ref.listed_locations)
+
+
+@pytest.mark.parametrize("cell_type", ["tetra10", "hexahedron20", "quad8"])
+def test_det_ratio_kept_by_validity_for_quadratic_geometry(cell_type, monkeypatch):
+    """The compiled validity check keeps the det J ratio and mid-node deviation of the
+    mesh's quadratic cells; quadratic_geometry then takes them (no second pass) and
+    equals the numpy reference."""
+    mesh = _mesh(cell_type, seed=11)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    with np.errstate(all="ignore"):
+        ref = curvature.quadratic_geometry(mesh)
+    from meshcheck.kernels import cells as kc
+
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    calls = []
+    real = kc.jacobian_extremes
+    monkeypatch.setattr(kc, "jacobian_extremes",
+                        lambda *a: calls.append((a[7], len(a[8]))) or real(*a))
+    validity.min_scaled_jacobian(mesh)
+    # one pass: corners and quadrature points, the ratio and the mid-nodes
+    n_corner_points = len(jacobian._gradient_table(cell_type, "corners"))
+    assert calls == [(n_corner_points, CELL_TYPES[cell_type].n_edges)]
+    got = curvature.quadratic_geometry(mesh)
+    assert len(calls) == 1                             # kept, not recomputed
+    assert_same(ref.jacobian_ratio, got.jacobian_ratio, "det J ratio")
+    assert_same(ref.midnode_deviation, got.midnode_deviation, "mid-node deviation")
+
+
+def test_nothing_kept_for_writable_points():
+    pts, cells = _cells("tetra10")
+    jacobian.remember_quadratic(pts, cells, np.zeros(len(cells)), np.zeros(len(cells)))
+    assert (id(pts), id(cells)) not in jacobian._QUADRATIC_MEMO
+
+
+def test_kept_values_are_dropped_with_the_mesh(monkeypatch):
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    mesh = _mesh("tetra10")
+    validity.min_scaled_jacobian(mesh)
+    key = (id(mesh.points), id(mesh.blocks[0].cells))
+    assert key in jacobian._QUADRATIC_MEMO
+    del mesh
+    import gc
+    gc.collect()
+    assert key not in jacobian._QUADRATIC_MEMO
+
+
+# ------------------------------------------------------------------ dispatch
+@pytest.mark.parametrize("mode, expected", [("numba", 1), ("numpy", 0), ("auto", 0)])
+def test_kernels_run_only_when_chosen(mode, expected, monkeypatch):
+    """The switch decides (auto: numpy below kernels.MIN_CELLS), and the comparisons above
+    do compare two different code paths."""
+    from meshcheck.kernels import cells as kc
+
+    calls = []
+    real = kc.tet_quality
+    monkeypatch.setattr(kc, "tet_quality", lambda *a: calls.append(1) or real(*a))
+    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+    with np.errstate(all="ignore"):
+        quality.mesh_quality(_mesh("tetra", m=20))
+    assert len(calls) == expected
