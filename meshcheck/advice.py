@@ -18,8 +18,9 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
-from .cost import condensed_dofs, lagrange_dofs, variable_order_dofs
-from .dispersion import usable_kh
+from . import kernels
+from .cost import _chunks, condensed_dofs, lagrange_dofs, variable_order_dofs
+from .dispersion import _segments, usable_kh
 from .errors import SettingsError
 from .mesh import Mesh
 from .threads import thread_map
@@ -251,8 +252,21 @@ def _alignment(mesh: Mesh, topo: Topology, kind: str) -> float:
     n = 3 (tetrahedra) or 2 (wedge triangles), clipped; 0 = isotropic, 1 = all parallel."""
     _, edges, n = _CORRECTED_EDGES[kind]
     T, count = np.zeros((3, 3)), 0
+    compiled = kernels.use_compiled(mesh.n_cells)
     for b, ce in zip(mesh.blocks, topo.edges.cell_edges):
         if b.info.linear != kind or not len(ce):
+            continue
+        if compiled:  # the same directions, one pass over the cells
+            from .kernels import advice as _ka
+            d = np.empty((len(ce), 3))
+            c0, c1, _ = edges.indices(ce.shape[1])
+            m = _ka.longest_directions(np.ascontiguousarray(ce), c0, c1, topo.edges.length,
+                                       np.ascontiguousarray(b.cells, dtype=np.int64),
+                                       np.ascontiguousarray(b.info.edges[:, :2], dtype=np.int64),
+                                       np.ascontiguousarray(mesh.points, dtype=float), d)
+            d = d[:m]
+            T += d.T @ d
+            count += len(d)
             continue
         ce = ce[:, edges]
         e = ce[np.arange(len(ce)), np.argmax(topo.edges.length[ce], axis=1)]
@@ -383,9 +397,12 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(good, edge_L / np.where(good, h, 1.0), 1.0)
     n_cells = mesh.n_cells
+    P = settings.allowed_order
+    if kernels.use_compiled(n_cells):
+        return _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L,
+                                h, corr, edge_c, edge_L, good, ratio, flow)
     cell_limit = np.empty((n_cells, pmax))
     edge_order = np.full(len(h), pmax + 1, dtype=np.int64)
-    P = settings.allowed_order
     edge_limit = None
     gov, exact = _governing_edges(topo, h, edge_c, edge_L)
     exact = np.union1d(exact, corr.mixed)  # cells whose edges may differ in factor
@@ -420,6 +437,107 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
                   edge_limit, edge_order, cell_order, target_size, refine, coarsen, flow)
 
 
+def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L, h, corr,
+                     edge_c, edge_L, good, ratio, flow) -> Advice:
+    """The tail of :func:`advise` with the kernels of :mod:`meshcheck.kernels.advice`:
+    the same arrays as the numpy code (one pass over the cells, one over the edges)."""
+    from .kernels import advice as _ka
+
+    P = settings.allowed_order
+    n_cells, n_e = mesh.n_cells, len(h)
+    blocks = [np.ascontiguousarray(ce) for ce in topo.edges.cell_edges]
+    offs = mesh.block_offsets
+    h = np.ascontiguousarray(h, dtype=float)
+    c = np.ascontiguousarray(edge_c, dtype=float)
+    L = np.ascontiguousarray(edge_L, dtype=float)
+    # the governing (longest) edge of every cell; cells whose edges differ in c or L, or
+    # in size factor, take the minimum over their edges
+    gov = np.empty(n_cells, np.int64)
+    odd = np.zeros(n_cells, bool)
+    uniform = (np.ptp(c) == 0 if n_e else True) and (np.ptp(L) == 0 if n_e else True)
+    par = n_e > 100_000
+    for ce, off in zip(blocks, offs):
+        thread_map(lambda r, ce=ce, off=off: _ka.governing_edges(ce, r[0], r[1], h, gov,
+                                                                 int(off)),
+                   _chunks(len(ce), 2 if par else 1), parallel=par)
+        if not uniform:
+            _ka.odd_cells(ce, h, c, L, odd, int(off))
+    exact = np.union1d(np.flatnonzero(odd), corr.mixed)
+    # size factors: code = bit 0 plain, bit j + 1 class j; A[code] = their maximum
+    code = corr.touched_plain.astype(np.int64)
+    A = np.zeros((1 << (1 + len(corr.classes)), pmax))
+    for j, (touched, _) in enumerate(corr.classes):
+        code |= touched.astype(np.int64) << (j + 1)
+    for row in range(len(A)):  # as SizeCorrection.at: plain 1, classes their factor
+        A[row] = np.where(row & 1, 1.0, 0.0)
+        for j, (_, a) in enumerate(corr.classes):
+            np.maximum(A[row], np.where((row >> (j + 1)) & 1, a[:pmax], 0.0), out=A[row])
+    segs = [_segments(table.t_max[p]) for p in range(pmax)]
+    base = np.ascontiguousarray([s[0] for s in segs], dtype=float)
+    step = np.ascontiguousarray([s[1] for s in segs], dtype=float)
+    n_r = table.log_r.size
+    scale, top = float((n_r - 1) / table.log_r[-1]), float(n_r - 1)
+    if not np.all(ratio > 0):  # also False for NaN (as UsableKh.max_kh)
+        raise SettingsError("L/h ratios must be > 0")
+    ratio = np.ascontiguousarray(ratio, dtype=float)
+    good = np.ascontiguousarray(good)
+    args = (h, c, ratio, good, code, A, base, step, scale, top)
+    cell_limit = np.empty((n_cells, pmax))
+    cell_order = np.empty(n_cells, np.int64)
+    refine = np.empty(n_cells, bool)
+    edge_order = np.empty(n_e, np.int64)
+    edge_limit = np.empty(n_e)
+
+    # the limits at every order of the cells' longest edges (about half the edges, each
+    # shared by about two cells), computed once per edge with the edges' orders
+    row = np.full(n_e, -1, np.int64)
+    row[gov] = 0
+    marked = np.flatnonzero(row == 0)
+    row[marked] = np.arange(len(marked))
+    F = np.empty((len(marked), pmax))
+
+    def edges(r):
+        _ka.edge_orders(r[0], r[1], *args, float(fmax), P, edge_order, edge_limit, row, F)
+
+    thread_map(edges, _chunks(n_e, 2 if par else 1), parallel=par)
+    thread_map(lambda r: _ka.gov_rows(gov, row, F, r[0], r[1], cell_limit),
+               _chunks(n_cells, 2 if par else 1), parallel=par)
+    if len(exact):
+        for ce, lo, hi in zip(blocks, offs[:-1], offs[1:]):
+            rows = exact[(exact >= lo) & (exact < hi)] - lo
+            if len(rows):
+                _ka.exact_limits(ce, rows, int(lo), *args, cell_limit)
+    thread_map(lambda r: _ka.finish_limits(cell_limit, r[0], r[1], float(fmax), P, cell_order,
+                                           refine), _chunks(n_cells, 2 if par else 1),
+               parallel=par)
+
+    def cell_max(values):
+        out = np.empty(n_cells)
+        v = np.ascontiguousarray(values, dtype=float)
+        for ce, off in zip(blocks, offs):
+            _ka.per_cell_max(ce, v, out, int(off))
+        return out
+
+    cell_size = h[gov]  # the longest edge (NaN if one is NaN, like np.maximum)
+    k = TWO_PI * fmax / cell_speed
+    if flow is not None:
+        k = k * cell_max(flow)
+    if n_cells and np.all(k == k[0]) and np.all(cell_L == cell_L[0]):
+        # one wavenumber and one distance: one size for all cells (elementwise the same)
+        size = np.full(n_cells, table.max_size(P, k[:1], cell_L[:1])[0])
+    else:
+        size = table.max_size(P, k, cell_L)
+    if len(corr.mixed):
+        a_cell = cell_max(corr.at(P))
+    else:  # all edges of a cell carry one factor: its longest edge's
+        a_cell = A[code[gov], P - 1]
+    target_size = size / a_cell
+    with np.errstate(divide="ignore", invalid="ignore"):
+        coarsen = target_size >= settings.coarsen_factor * cell_size
+    return Advice(settings, float(fmax), cell_limit, cell_size, cell_L, cell_speed,
+                  edge_limit, edge_order, cell_order, target_size, refine, coarsen, flow)
+
+
 @dataclass(frozen=True)
 class Sweep:
     """Advice over a list of frequencies.
@@ -447,15 +565,27 @@ def sweep(mesh: Mesh, topo: Topology, advice: Advice, frequencies: np.ndarray) -
     pmax = advice.pmax
     n = advice.cell_limit.shape[0]
     # above[p] = number of cells whose limit at order p+1 is below f
-    above = np.stack([np.searchsorted(np.sort(advice.cell_limit[:, p]), f, side="left")
-                      for p in range(pmax)], axis=1)
+    dofs = None
+    if kernels.use_compiled(n) and f.ndim == 1 and len(f) and np.all(np.isfinite(f)):
+        # one pass over the cells: histograms of their limits over the sorted frequencies
+        from .cost import _dofs_from_bins, _limit_bins
+        variable = s.order is None
+        order, hist, B = _limit_bins(advice.cell_limit, f, s.max_order - 1 if variable else 0)
+        above = np.empty((len(f), pmax), np.int64)
+        above[order] = np.cumsum(hist, axis=1)[:, :len(f)].T
+        if variable:
+            dofs = _dofs_from_bins(mesh, topo, B, order, mesh.dim == 3 and len(topo.faces) > 0)
+    else:
+        above = np.stack([np.searchsorted(np.sort(advice.cell_limit[:, p]), f, side="left")
+                          for p in range(pmax)], axis=1)
     counts = np.empty((len(f), pmax + 1), dtype=np.int64)
     counts[:, 0] = n - above[:, 0]
     counts[:, 1:pmax] = above[:, :-1] - above[:, 1:]
     counts[:, pmax] = above[:, -1]
     ready = above[:, s.allowed_order - 1] == 0
     if s.order is None:
-        dofs = variable_order_dofs(mesh, topo, advice.cell_limit, f, s.max_order)
+        if dofs is None:
+            dofs = variable_order_dofs(mesh, topo, advice.cell_limit, f, s.max_order)
         return Sweep(f, counts, ready, dofs)
     dofs = np.full(len(f), lagrange_dofs(mesh, topo, s.order), dtype=np.int64)
     return Sweep(f, counts, ready, dofs, condensed_dofs(mesh, topo, s.order))
@@ -490,22 +620,37 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
     if not len(ids):
         return []
     n = mesh.n_cells
+    compiled = kernels.use_compiled(n)
     if mesh.dim == 3:
-        inner = topo.faces.count >= 2
-        a, b = topo.faces.cells[inner, 0], topo.faces.cells[inner, 1]
+        if not compiled:
+            inner = topo.faces.count >= 2
+            a, b = topo.faces.cells[inner, 0], topo.faces.cells[inner, 1]
     else:
         inc = topo.edges.incidence
         st = topo.edges.incidence_starts
         a, b = np.repeat(inc[st], np.diff(np.append(st, len(inc)))), inc
-    keep = mask[a] & mask[b]
-    local = np.full(n, -1, np.int64)
-    local[ids] = np.arange(len(ids))
-    g = sparse.coo_matrix((np.ones(int(keep.sum()), np.int8), (local[a[keep]], local[b[keep]])),
-                          shape=(len(ids), len(ids)))
-    n_lab, lab = connected_components(g, directed=False)
+    if compiled:  # union-find, components numbered as connected_components numbers them
+        from .kernels import advice as _ka
+        lab = np.empty(len(ids), np.int64)
+        m = np.ascontiguousarray(mask, dtype=bool)
+        if mesh.dim == 3:
+            n_lab = _ka.label_flagged(m, np.ascontiguousarray(topo.faces.cells),
+                                      np.ascontiguousarray(topo.faces.count), 2, lab)
+        else:
+            n_lab = _ka.label_flagged(m, np.column_stack([a, b]), np.zeros(len(a), np.int64),
+                                      0, lab)
+    else:
+        keep = mask[a] & mask[b]
+        local = np.full(n, -1, np.int64)
+        local[ids] = np.arange(len(ids))
+        g = sparse.coo_matrix((np.ones(int(keep.sum()), np.int8),
+                               (local[a[keep]], local[b[keep]])), shape=(len(ids), len(ids)))
+        n_lab, lab = connected_components(g, directed=False)
     cnt = np.bincount(lab, minlength=n_lab)
     w = np.abs(topo.cell_volume[ids])
     vol = np.bincount(lab, weights=w, minlength=n_lab)
+    if compiled:
+        return _clusters_compiled(mesh, advice, ids, lab, cnt, w, vol, limit, max_ids)
     order = np.argsort(lab, kind="stable")
     starts = np.concatenate([[0], np.cumsum(cnt)])
     cen = mesh.centroids[ids]
@@ -520,4 +665,46 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
         out.append(Cluster(int(cnt[j]), float(vol[j]), c, x.min(0), x.max(0), size, target,
                            target / size if size > 0 else np.inf, sel[:max_ids],
                            tuple(int(t) for t in np.unique(mesh.region[sel]))))
+    return out
+
+
+def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit: int,
+                       max_ids: int) -> list[Cluster]:
+    """The clusters of :func:`clusters` from their labels, with one pass over the
+    flagged cells for the chosen clusters (kernel ``cluster_stats``)."""
+    from .kernels import advice as _ka
+
+    top = np.argsort(-cnt, kind="stable")[:limit]
+    s = len(top)
+    slot = np.full(len(cnt), -1, np.int64)
+    slot[top] = np.arange(s)
+    size, target = np.empty(s), np.empty(s)
+    lo, hi, wsum = np.empty((s, 3)), np.empty((s, 3)), np.empty((s, 3))
+    first = np.empty((s, max_ids), np.int64)
+    n_first = np.zeros(s, np.int64)
+    cen = np.ascontiguousarray(mesh.centroids, dtype=float)
+    _ka.cluster_stats(ids, lab, slot, np.ascontiguousarray(advice.cell_size, dtype=float),
+                      np.ascontiguousarray(advice.target_size, dtype=float), cen, w, size,
+                      target, lo, hi, wsum, first, n_first)
+    region = mesh.region
+    one_region = len(region) and region.min() == region.max()
+    members = None
+    out = []
+    for i, j in enumerate(top):
+        if vol[j] > 0 and one_region:
+            sel = None
+        else:  # the cells of the cluster (a zero volume or several regions)
+            if members is None:
+                order = np.empty(len(lab), np.int64)
+                _ka.group_by_label(lab, cnt.astype(np.int64), order)
+                starts = np.concatenate([[0], np.cumsum(cnt)])
+                members = (order, starts)
+            sel = ids[members[0][members[1][j]:members[1][j + 1]]]
+        c = wsum[i] / vol[j] if vol[j] > 0 else cen[sel].mean(0)
+        regions = (int(region[ids[0]]),) if one_region else \
+            tuple(int(t) for t in np.unique(region[sel]))
+        sz, tg = float(size[i]), float(target[i])
+        out.append(Cluster(int(cnt[j]), float(vol[j]), c, lo[i].copy(), hi[i].copy(), sz, tg,
+                           tg / sz if sz > 0 else np.inf, first[i, :n_first[i]].copy(),
+                           regions))
     return out

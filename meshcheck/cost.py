@@ -47,6 +47,7 @@ from pathlib import Path
 
 import numpy as np
 
+from . import kernels
 from .mesh import Mesh
 from .threads import thread_map
 from .topology import Topology
@@ -115,6 +116,9 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
     f = np.asarray(frequencies, dtype=float)
     faces = topo.faces
     three = mesh.dim == 3 and len(faces) > 0
+    if kernels.use_compiled(mesh.n_cells) and f.ndim == 1 and len(f) and \
+            np.all(np.isfinite(f)) and max_order - 1 <= np.shape(cell_limits)[1]:
+        return _variable_order_dofs_compiled(mesh, topo, cell_limits, f, max_order, three)
     if three:
         c0, c1 = faces.cells[:, 0], faces.cells[:, 1]
         two = c1 >= 0
@@ -142,6 +146,89 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
     for part in parts:
         total += part
     return total
+
+
+def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int):
+    """Histograms of the cells' limits over the sorted (finite) frequencies, with the
+    kernel :func:`meshcheck.kernels.advice.order_hist`.
+
+    Returns (order, hist, B): ``order`` sorts f (stable); hist (pmax, n_f + 1) int64,
+    ``cumsum(hist[p])[k]`` = cells whose limit at order p + 1 is below ``f[order[k]]``;
+    B (n_cells, W) int16 (int32 from 32000 frequencies) bin of each cell's limit at
+    orders 1..ncol (-1 for NaN), W = ncol rounded up to a multiple of 8, the columns
+    past ncol set to n_f.
+    """
+    from .kernels import advice as _ka
+
+    order = np.argsort(f, kind="stable")
+    fs = np.ascontiguousarray(f[order], dtype=float)
+    lim = np.ascontiguousarray(cell_limits, dtype=float)
+    hist = np.zeros((lim.shape[1], len(f) + 1), np.int64)
+    # bins fit int16 (n_f < 32767); padded to 8 or 16 columns of n_f (never counted)
+    dtype = np.int16 if len(f) < 32_000 else np.int32
+    B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f), dtype)
+    par = lim.shape[0] > 50_000
+    chunks = _chunks(lim.shape[0], 2 if par else 1)
+
+    def run(r):
+        part = np.zeros_like(hist)
+        _ka.order_hist(lim, fs, r[0], r[1], part, B, ncol)
+        return part
+
+    for part in thread_map(run, chunks, parallel=par):
+        hist += part
+    return order, hist, B
+
+
+def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray,
+                    three: bool) -> np.ndarray:
+    """(n_f,) int64 variable-order unknowns from the cells' bins B (see
+    :func:`_limit_bins`): vertices + edge and face unknowns by the maximum rule."""
+    from .kernels import advice as _ka
+
+    n_f = len(order)
+    edges = topo.edges
+    par = mesh.n_cells > 50_000
+    parts = 2 if par else 1
+    jobs = []
+    if len(edges) and B.shape[1]:
+        inc = np.ascontiguousarray(edges.incidence)
+        starts = np.ascontiguousarray(edges.incidence_starts)
+        for lo, hi in _chunks(len(edges), parts):
+            jobs.append(lambda hist, lo=lo, hi=hi:
+                        _ka.dof_hist(B, inc, starts, len(inc), lo, hi, hist))
+    if three and B.shape[1]:
+        fcells = np.ascontiguousarray(topo.faces.cells)
+        tri = np.ascontiguousarray(topo.faces.nodes[:, 3] < 0)
+        for lo, hi in _chunks(len(fcells), parts):
+            jobs.append(lambda hist, lo=lo, hi=hi:
+                        _ka.face_dof_hist(B, fcells, tri, lo, hi, hist))
+
+    def run(job):
+        hist = np.zeros(n_f + 1, np.int64)
+        job(hist)
+        return hist
+
+    hist = np.zeros(n_f + 1, np.int64)
+    for part in thread_map(run, jobs, parallel=par):
+        hist += part
+    total = np.empty(n_f, np.int64)
+    total[order] = _used_vertices(mesh) + np.cumsum(hist)[:n_f]
+    return total
+
+
+def _chunks(n: int, parts: int) -> list[tuple[int, int]]:
+    """(lo, hi) ranges splitting range(n) into at most ``parts`` pieces."""
+    cuts = np.linspace(0, n, max(1, min(parts, n)) + 1).astype(np.int64)
+    return [(int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
+
+
+def _variable_order_dofs_compiled(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
+                                  f: np.ndarray, max_order: int, three: bool) -> np.ndarray:
+    """:func:`variable_order_dofs` by histograms over the sorted frequencies (kernels of
+    :mod:`meshcheck.kernels.advice`): the same (n_f,) int64 counts."""
+    order, _, B = _limit_bins(cell_limits, f, max(max_order - 1, 0))
+    return _dofs_from_bins(mesh, topo, B, order, three)
 
 
 # ---------------------------------------------------------------------------

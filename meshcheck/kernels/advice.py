@@ -1,0 +1,511 @@
+"""Compiled kernels of the advice stage (:mod:`meshcheck.advice`, :mod:`meshcheck.cost`).
+
+Each kernel computes, with the same floating-point operations in the same order, what
+the numpy reference computes (tests/test_kernels_advice.py compares both):
+
+* :func:`governing_edges`, :func:`odd_cells`: a cell's longest edge (``np.argmax``
+  semantics: the first maximum, the first NaN if any) and the cells whose edges differ
+  in speed or distance (``advice._governing_edges``);
+* :func:`longest_directions`: unit directions of the cells' longest edges
+  (``advice._alignment``; the 3x3 sum stays ``d.T @ d`` in numpy);
+* :func:`edge_orders`, :func:`gov_rows`, :func:`exact_limits`, :func:`finish_limits`:
+  the frequency limits of edges and cells at every order (``advice.advise``): one pass
+  over the edges (all orders for the cells' longest edges), one over the cells, no
+  (n_edges,) temporaries per order;
+* :func:`per_cell_max`: ``Edges.per_cell(values, np.maximum)`` for one block;
+* :func:`order_hist`, :func:`dof_hist`, :func:`face_dof_hist`: histograms of the
+  cells' limits (and of the edges' and faces' smallest limits, weighted by the unknowns
+  they add) over the sorted sweep frequencies (``advice.sweep``,
+  ``cost.variable_order_dofs``): their cumulative sums are the counts the reference
+  gets from ``np.searchsorted`` on sorted limits, whatever the number of frequencies;
+* :func:`label_flagged`, :func:`cluster_stats`, :func:`group_by_label`: connected
+  components of the flagged cells by union-find over the face (2D: edge) adjacency,
+  numbered in the order of their smallest cell id like
+  ``scipy.sparse.csgraph.connected_components``, the per-cluster sizes, boxes and
+  weighted centroids, and the stable ``np.argsort`` of the labels (``advice.clusters``).
+
+Frequencies in Hz, lengths in m, speeds in m/s; cell and edge ids int64.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from . import njit
+
+TWO_PI = 2.0 * np.pi
+
+
+# ---------------------------------------------------------------------------
+# governing edges and alignment
+
+
+@njit
+def _argmax_edge(ce, i, c0, c1, h):
+    """Edge id of ``ce[i, c0:c1]`` with the largest h (np.argmax: first max, first NaN)."""
+    best = ce[i, c0]
+    hb = h[best]
+    if hb != hb:
+        return best
+    for j in range(c0 + 1, c1):
+        e = ce[i, j]
+        v = h[e]
+        if v != v:
+            return e
+        if v > hb:
+            best = e
+            hb = v
+    return best
+
+
+@njit
+def governing_edges(ce, lo, hi, h, gov, start):
+    """gov[start + i] = the longest edge of cell i of a block, lo <= i < hi.
+
+    ce : (m, k) int64 edge ids of the block's cells; h : (n_e,) float64 lengths, m;
+    gov : (n_cells,) int64 output.
+    """
+    k = ce.shape[1]
+    for i in range(lo, hi):
+        gov[start + i] = _argmax_edge(ce, i, 0, k, h)
+
+
+@njit
+def odd_cells(ce, h, c, L, odd, start):
+    """odd[start + i] = the edges of cell i differ in speed c or distance L, or one has a
+    non-finite length h (cells whose limit is the minimum over all their edges).
+
+    ce : (m, k) int64; h, c, L : (n_e,) float64; odd : (n_cells,) bool output.
+    """
+    m, k = ce.shape
+    for i in range(m):
+        e0 = ce[i, 0]
+        c0 = c[e0]
+        l0 = L[e0]
+        flag = not np.isfinite(h[e0])
+        for j in range(1, k):
+            e = ce[i, j]
+            if c[e] != c0 or L[e] != l0 or not np.isfinite(h[e]):
+                flag = True
+                break
+        odd[start + i] = flag
+
+
+@njit
+def longest_directions(ce, c0, c1, length, cells, local, points, out):
+    """Unit direction of each cell's longest edge among local edges c0..c1-1, from its
+    smaller to its larger node number (as ``Edges.nodes``).
+
+    ce : (m, k) int64 edge ids of a block's cells; length : (n_e,) float64, m;
+    cells : (m, n_nodes) int64 the block's nodes; local : (k, 2) int64 local nodes of
+    the local edges; points : (n_p, 3) float64, m; out : (m, 3) float64, filled from
+    the top with the directions whose components are finite (in cell order).
+    Returns how many.
+    """
+    m = ce.shape[0]
+    best = np.empty(m, np.int64)
+    for i in range(m):  # first pass: the gathers of the second do not wait on compares
+        j = c0
+        hb = length[ce[i, c0]]
+        if hb == hb:
+            for jj in range(c0 + 1, c1):  # np.argmax: first maximum, first NaN
+                v = length[ce[i, jj]]
+                if v != v:
+                    j = jj
+                    break
+                if v > hb:
+                    j = jj
+                    hb = v
+        best[i] = j
+    n = 0
+    for i in range(m):
+        j = best[i]
+        x = cells[i, local[j, 0]]
+        y = cells[i, local[j, 1]]
+        a = min(x, y)
+        b = max(x, y)
+        d0 = points[b, 0] - points[a, 0]
+        d1 = points[b, 1] - points[a, 1]
+        d2 = points[b, 2] - points[a, 2]
+        if not (np.isfinite(d0) and np.isfinite(d1) and np.isfinite(d2)):
+            continue
+        r = np.sqrt(d0 * d0 + d1 * d1 + d2 * d2)
+        if r < 1e-300:
+            r = 1e-300
+        out[n, 0] = d0 / r
+        out[n, 1] = d1 / r
+        out[n, 2] = d2 / r
+        n += 1
+    return n
+
+
+# ---------------------------------------------------------------------------
+# frequency limits per order
+
+
+@njit(inline="always")
+def _grid(re, a, scale, top):
+    """Grid segment i and position u in it of ln(re / a) (``UsableKh.max_kh``: the
+    same operations in the same order); re = L / h, a the size factor."""
+    u = np.log(re / a)
+    u *= scale
+    if u < 0.0:
+        u = 0.0
+    elif u > top:
+        u = top
+    i = int(u)
+    u -= i
+    return i, u
+
+
+@njit(inline="always")
+def _value(p, i, u, a, he, ce, base, step):
+    """Highest usable frequency (Hz) at order p + 1 of an edge of length he (m), speed
+    ce (m/s) and size factor a on grid segment i, position u: ``c * max_kh / (2 pi h
+    a)`` of ``advise``."""
+    kh = base[p, i] + u * step[p, i]
+    return ce * kh / (TWO_PI * he * a)
+
+
+@njit
+def _edge_limit(e, p, h, c, ratio, good, code, A, base, step, scale, top):
+    """Limit (Hz) of edge e at order p + 1 (0 if it is not ``good``)."""
+    if not good[e]:
+        return 0.0
+    a = A[code[e], p]
+    g, u = _grid(ratio[e], a, scale, top)
+    return _value(p, g, u, a, h[e], c[e], base, step)
+
+
+@njit
+def exact_limits(ce, rows, start, h, c, ratio, good, code, A, base, step, scale, top, out):
+    """out[start + r, p] = minimum over the edges of row r of a block (np.minimum
+    semantics) of their limits at order p + 1, for the given local rows."""
+    pmax = out.shape[1]
+    k = ce.shape[1]
+    for r in rows:
+        for p in range(pmax):
+            m = np.inf
+            for j in range(k):
+                v = _edge_limit(ce[r, j], p, h, c, ratio, good, code, A, base, step, scale,
+                                top)
+                if j == 0 or v < m or v != v:
+                    m = v
+                if m != m:
+                    break
+            out[start + r, p] = m
+
+
+@njit
+def finish_limits(out, lo, hi, fmax, P, cell_order, refine):
+    """Running maximum along the orders (np.maximum.accumulate), then
+    cell_order[i] = 1 + #orders whose limit is below fmax, refine[i] = limit at the
+    allowed order P below fmax, for cells lo <= i < hi."""
+    pmax = out.shape[1]
+    for i in range(lo, hi):
+        m = out[i, 0]
+        cnt = 1 if m < fmax else 0
+        for p in range(1, pmax):
+            v = out[i, p]
+            if m == m and not v <= m:
+                m = v
+            out[i, p] = m
+            if m < fmax:
+                cnt += 1
+        cell_order[i] = 1 + cnt
+        refine[i] = out[i, P - 1] < fmax
+
+
+@njit
+def edge_orders(lo, hi, h, c, ratio, good, code, A, base, step, scale, top, fmax, P,
+                edge_order, edge_limit, row, F):
+    """edge_order[e] = lowest order whose limit reaches fmax (pmax + 1 = none),
+    edge_limit[e] = limit at the allowed order P (Hz), for edges lo <= e < hi; the
+    edges with row[e] >= 0 (the cells' longest edges) also get their limits at every
+    order in F[row[e]] ((n_rows, pmax) float64, Hz; 0 for an edge that is not good).
+    The logarithm is taken again only when the factor changes with the order.
+    """
+    pmax = A.shape[1]
+    for e in range(lo, hi):
+        r = row[e]
+        if not good[e]:  # limit 0 at every order
+            edge_order[e] = pmax + 1 if fmax > 0.0 else 1
+            edge_limit[e] = 0.0
+            if r >= 0:
+                for p in range(pmax):
+                    F[r, p] = 0.0
+            continue
+        he, ce, re, k = h[e], c[e], ratio[e], code[e]
+        o = pmax + 1
+        at_p = -1.0
+        pa = -1.0
+        g, u = 0, 0.0
+        for p in range(pmax):
+            a = A[k, p]
+            if a != pa:
+                g, u = _grid(re, a, scale, top)
+                pa = a
+            f = _value(p, g, u, a, he, ce, base, step)
+            if r >= 0:
+                F[r, p] = f
+            if p == P - 1:
+                at_p = f
+            if f >= fmax and o > pmax:
+                o = p + 1
+                if r < 0 and p >= P - 1:
+                    break
+                if r < 0:  # the limit at P, then done
+                    a = A[k, P - 1]
+                    if a != pa:
+                        g, u = _grid(re, a, scale, top)
+                    at_p = _value(P - 1, g, u, a, he, ce, base, step)
+                    break
+        edge_order[e] = o
+        edge_limit[e] = at_p
+
+
+@njit
+def gov_rows(gov, row, F, lo, hi, out):
+    """out[i] = F[row[gov[i]]] for cells lo <= i < hi: each cell's limits are its
+    longest edge's (rows of :func:`edge_orders`)."""
+    pmax = out.shape[1]
+    for i in range(lo, hi):
+        r = row[gov[i]]
+        for p in range(pmax):
+            out[i, p] = F[r, p]
+
+
+@njit
+def per_cell_max(ce, values, out, start):
+    """out[start + i] = maximum of values over the edges of cell i (np.maximum.reduce:
+    NaN propagates).  ce : (m, k) int64; values : (n_e,) float64."""
+    m, k = ce.shape
+    for i in range(m):
+        x = values[ce[i, 0]]
+        for j in range(1, k):
+            v = values[ce[i, j]]
+            if x == x and not v <= x:
+                x = v
+        out[start + i] = x
+
+
+# ---------------------------------------------------------------------------
+# sweeps: histograms over the sorted frequencies
+
+
+@njit
+def _bin(x, fs, lo):
+    """Number of the sorted finite frequencies fs that are <= x (NaN -> len(fs)); the
+    caller knows the answer is at least lo."""
+    n = fs.shape[0]
+    if not x < fs[n - 1]:
+        return n
+    hi = n - 1
+    while lo < hi:
+        mid = (lo + hi) >> 1
+        if fs[mid] > x:
+            hi = mid
+        else:
+            lo = mid + 1
+    return lo
+
+
+@njit
+def order_hist(lim, fs, lo, hi, hist, B, ncol):
+    """hist[p, b] += 1 for every cell lo <= i < hi whose limit at order p + 1 has b sweep
+    frequencies at or below it: cumsum(hist[p])[k] = #cells with limit < fs[k];
+    B[i, q] = that b for the first ncol orders (-1 for a NaN limit, see
+    :func:`dof_hist`).
+
+    lim : (n_cells, pmax) float64, Hz; fs : (n_f,) sorted finite Hz;
+    hist : (pmax, n_f + 1) int64, accumulated; B : (n_cells, W) int16, W >= ncol.
+    """
+    pmax = lim.shape[1]
+    for i in range(lo, hi):
+        b = 0
+        px = -np.inf
+        for p in range(pmax):
+            x = lim[i, p]
+            b = _bin(x, fs, b if x >= px else 0)
+            px = x
+            hist[p, b] += 1
+            if p < ncol:
+                B[i, p] = b if x == x else -1
+
+
+@njit
+def dof_hist(B, inc, starts, n_inc, lo, hi, hist):
+    """Edge unknowns added above order q + 1, binned by frequency (maximum rule), for
+    edges lo <= e < hi: an edge has order > q + 1 at the frequencies above the smallest
+    limit of its cells, hist[min over its cells of B[c, q]] += 1 (a NaN limit, B = -1,
+    puts the edge at n_f = len(hist) - 1: never counted, like a NaN minimum).
+
+    B : (n_cells, W) int16 bins of :func:`order_hist`, W a multiple of 8, columns
+    past the orders counted set to n_f; inc, starts : the edges' cell incidence (CSR,
+    n_inc entries); hist : (n_f + 1,) int64 accumulated.
+    """
+    n_e = starts.shape[0]
+    n_f = hist.shape[0] - 1
+    for g in range(0, B.shape[1], 8):  # eight orders at a time, in registers
+        for e in range(lo, hi):
+            s = starts[e]
+            t = starts[e + 1] if e + 1 < n_e else n_inc
+            m0 = m1 = m2 = m3 = m4 = m5 = m6 = m7 = n_f
+            for j in range(s, t):
+                c = inc[j]
+                m0 = min(m0, B[c, g])
+                m1 = min(m1, B[c, g + 1])
+                m2 = min(m2, B[c, g + 2])
+                m3 = min(m3, B[c, g + 3])
+                m4 = min(m4, B[c, g + 4])
+                m5 = min(m5, B[c, g + 5])
+                m6 = min(m6, B[c, g + 6])
+                m7 = min(m7, B[c, g + 7])
+            hist[m0 if m0 >= 0 else n_f] += 1
+            hist[m1 if m1 >= 0 else n_f] += 1
+            hist[m2 if m2 >= 0 else n_f] += 1
+            hist[m3 if m3 >= 0 else n_f] += 1
+            hist[m4 if m4 >= 0 else n_f] += 1
+            hist[m5 if m5 >= 0 else n_f] += 1
+            hist[m6 if m6 >= 0 else n_f] += 1
+            hist[m7 if m7 >= 0 else n_f] += 1
+
+
+@njit
+def face_dof_hist(B, fcells, tri, lo, hi, hist):
+    """Face unknowns added above order q + 1, binned like :func:`dof_hist`: q per
+    triangle (tri True), 2 q + 1 per quadrilateral, at the smaller bin of the face's
+    cells (fcells (n_faces, 2) int64, -1 = no second cell), for faces lo <= f < hi."""
+    n_f = hist.shape[0] - 1
+    for f in range(lo, hi):
+        c0 = fcells[f, 0]
+        c1 = fcells[f, 1]
+        t = tri[f]
+        for q in range(B.shape[1]):
+            w = q if t else 2 * q + 1
+            b = np.int64(B[c0, q])
+            if c1 >= 0:
+                b = min(b, np.int64(B[c1, q]))
+            if w > 0:
+                hist[b if b >= 0 else n_f] += w
+
+
+# ---------------------------------------------------------------------------
+# clusters
+
+
+@njit
+def _find(parent, i):
+    r = i
+    while parent[r] != r:
+        r = parent[r]
+    while parent[i] != r:  # path compression
+        j = parent[i]
+        parent[i] = r
+        i = j
+    return r
+
+
+@njit
+def label_flagged(mask, pairs, count, need, lab):
+    """Connected components of the flagged cells through the pairs (pairs (n, 2) int64
+    global cell ids; pair j joins its cells when count[j] >= need, both are >= 0 and
+    flagged).  lab : (n_flagged,) int64 output, the component of every flagged cell in
+    increasing id order, numbered by their smallest cell id.  Returns the number."""
+    n = mask.shape[0]
+    parent = np.empty(n, np.int64)
+    for i in range(n):
+        parent[i] = i
+    for j in range(pairs.shape[0]):
+        if count[j] < need:
+            continue
+        a = pairs[j, 0]
+        b = pairs[j, 1]
+        if a < 0 or b < 0 or not mask[a] or not mask[b]:
+            continue
+        ra = _find(parent, a)
+        rb = _find(parent, b)
+        if ra != rb:
+            if ra < rb:
+                parent[rb] = ra
+            else:
+                parent[ra] = rb
+    root_lab = np.full(n, -1, np.int64)
+    n_lab = 0
+    k = 0
+    for i in range(n):
+        if not mask[i]:
+            continue
+        r = _find(parent, i)
+        if root_lab[r] < 0:
+            root_lab[r] = n_lab
+            n_lab += 1
+        lab[k] = root_lab[r]
+        k += 1
+    return n_lab
+
+
+@njit
+def group_by_label(lab, cnt, order):
+    """order = np.argsort(lab, kind="stable") by counting sort (cnt = bincount(lab))."""
+    n_lab = cnt.shape[0]
+    ptr = np.empty(n_lab, np.int64)
+    s = 0
+    for j in range(n_lab):
+        ptr[j] = s
+        s += cnt[j]
+    for i in range(lab.shape[0]):
+        j = lab[i]
+        order[ptr[j]] = i
+        ptr[j] += 1
+
+
+@njit
+def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, lo, hi,
+                  wsum, first, n_first):
+    """Per chosen cluster (slot[label] >= 0), over its cells in increasing id order:
+    longest edge ``size`` (max), smallest ``target`` (min), centroid box ``lo``/``hi``
+    (NaN propagates, as ndarray.max/min), ``wsum`` = sum of centroid * weight (the same
+    sequential sum as numpy's along axis 0), and its first cell ids.
+
+    ids : (k,) int64 flagged cells (increasing); lab : (k,) int64 their cluster;
+    slot : (n_lab,) int64; cell_size, target_size : (n_cells,) float64, m; cen :
+    (n_cells, 3) float64 centroids, m; w : (k,) float64 weights (|volume|); outputs
+    per slot: size, target (s,), lo, hi, wsum (s, 3), first (s, max_ids), n_first (s,).
+    """
+    max_ids = first.shape[1]
+    seen = np.zeros(size.shape[0], np.int64)
+    for k in range(ids.shape[0]):
+        s = slot[lab[k]]
+        if s < 0:
+            continue
+        c = ids[k]
+        v = cell_size[c]
+        t = target_size[c]
+        if seen[s] == 0:
+            size[s] = v
+            target[s] = t
+            for j in range(3):
+                x = cen[c, j]
+                lo[s, j] = x
+                hi[s, j] = x
+                wsum[s, j] = x * w[k]
+        else:
+            m = size[s]
+            if m == m and not v <= m:
+                size[s] = v
+            m = target[s]
+            if m == m and not t >= m:
+                target[s] = t
+            for j in range(3):
+                x = cen[c, j]
+                m = lo[s, j]
+                if m == m and not x >= m:
+                    lo[s, j] = x
+                m = hi[s, j]
+                if m == m and not x <= m:
+                    hi[s, j] = x
+                wsum[s, j] += x * w[k]
+        seen[s] += 1
+        if n_first[s] < max_ids:
+            first[s, n_first[s]] = c
+            n_first[s] += 1

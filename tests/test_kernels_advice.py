@@ -1,0 +1,273 @@
+"""Compiled kernels of the advice stage (meshcheck/kernels/advice.py) against the numpy
+reference (MESHCHECK_KERNELS=numpy): advise, sweep, variable-order unknowns, clusters and
+the mesh alignment of the 3D correction, on meshes generated in code (tetrahedra,
+quadratic tetrahedra, hexahedra, wedges, pyramids, hexahedra + wedges, 2D triangles and
+quadrilaterals), perturbed or exactly structured (ties between edge lengths), one or two
+media, with and without mean flow, fixed and variable order, with and without the 3D
+correction.  Integers and booleans must be equal; floats equal to 1e-12 relative (the
+kernels do the same operations in the same order, so they agree to the bit here; the
+tolerance leaves room for a libm that rounds a logarithm differently)."""
+import dataclasses
+
+import numpy as np
+import pytest
+
+pytest.importorskip("numba")
+
+import meshcheck.kernels.advice as KA  # noqa: E402
+from meshcheck import kernels  # noqa: E402
+from meshcheck.advice import AdviceSettings, _alignment, advise, clusters, sweep  # noqa: E402
+from meshcheck.cost import variable_order_dofs  # noqa: E402
+from meshcheck.mesh import CellBlock, Mesh  # noqa: E402
+from meshcheck.topology import build_topology  # noqa: E402
+from meshes import hex_box, tet10_box, tet_box  # noqa: E402
+from test_cost import mixed_hex_wedge, pyramid_box, quad_square, tri_square, wedge_box  # noqa: E402
+
+
+def _perturbed(mesh: Mesh, amount: float, seed: int = 0, two_media: bool = False) -> Mesh:
+    """The mesh with its nodes moved at random by up to ``amount`` m per axis (2D: in
+    the plane), and optionally a second region (x > 1/2) for a second medium."""
+    rng = np.random.default_rng(seed)
+    pts = mesh.points.copy()
+    axes = 3 if mesh.dim == 3 else 2
+    pts[:, :axes] += rng.uniform(-amount, amount, (len(pts), axes))
+    blocks = mesh.blocks
+    names = dict(mesh.region_names)
+    if two_media:
+        cen = mesh.centroids[:, 0]
+        blocks, start = [], 0
+        for b in mesh.blocks:
+            reg = np.where(cen[start:start + len(b)] > 0.5, 2, 1)
+            blocks.append(CellBlock(b.type, b.cells, reg))
+            start += len(b)
+        names = {1: "air", 2: "water"}
+    return Mesh(pts, tuple(blocks), names, mesh.dim)
+
+
+def _half_perturbed(mesh: Mesh, amount: float) -> Mesh:
+    """Nodes with x > 1/2 moved at random: the cubes left of it keep 12 edges of one
+    length (ties of the longest edge in three directions), the cells right of it not."""
+    moved = _perturbed(mesh, amount, 9)
+    pts = np.where(mesh.points[:, :1] > 0.5, moved.points, mesh.points)
+    return Mesh(pts, mesh.blocks, mesh.region_names, mesh.dim)
+
+
+MESHES = {
+    "tet": lambda: _perturbed(tet_box((5, 4, 3), size=(1.0, 0.8, 0.6)), 0.03),
+    "tet structured": lambda: tet_box((4, 3, 3), size=(1.0, 0.75, 0.75)),
+    "tet two media": lambda: _perturbed(tet_box((5, 4, 3), size=(1.0, 0.8, 0.6)), 0.03, 1,
+                                        two_media=True),
+    "tet10": lambda: _perturbed(tet10_box((3, 2, 2), size=(1.0, 0.7, 0.6)), 0.01, 8),
+    "hex": lambda: _perturbed(hex_box((5, 4, 3), size=(1.0, 0.8, 0.6)), 0.02, 2),
+    "hex structured": lambda: hex_box((4, 3, 3)),
+    "hex half structured": lambda: _half_perturbed(hex_box((6, 3, 3)), 0.02),
+    "wedge": lambda: _perturbed(wedge_box((4, 3, 2)), 0.02, 3),
+    "pyramid": lambda: _perturbed(pyramid_box((3, 2, 2)), 0.02, 4),
+    "hex+wedge": lambda: _perturbed(mixed_hex_wedge((4, 3, 2)), 0.02, 5, two_media=True),
+    "triangle 2D": lambda: _perturbed(tri_square((6, 5)), 0.02, 6),
+    "quad 2D": lambda: quad_square((6, 5)),
+}
+_BUILT = {}
+
+
+def _mesh(name):
+    if name not in _BUILT:
+        mesh = MESHES[name]()
+        _BUILT[name] = (mesh, build_topology(mesh))
+    return _BUILT[name]
+
+
+def _speeds(mesh):
+    return np.where(mesh.region == 2, 1481.0, 343.0)
+
+
+SETTINGS = {
+    "variable": AdviceSettings(),
+    "variable p<=3": AdviceSettings(max_order=3, target=0.05),
+    "fixed p=2": AdviceSettings(order=2),
+    "plain 1D": AdviceSettings(correction_3d=False, max_order=5),
+    "fixed p=1 distance": AdviceSettings(order=1, distance=3.0, correction_3d=False),
+}
+
+
+def _both(monkeypatch, fn):
+    """(numpy result, compiled result) of fn()."""
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = fn()
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    assert kernels.use_compiled(1)
+    return ref, fn()
+
+
+def _same(a, b, what):
+    a, b = np.asarray(a), np.asarray(b)
+    assert a.shape == b.shape and a.dtype == b.dtype, what
+    if a.dtype.kind == "f":
+        assert np.array_equal(np.isnan(a), np.isnan(b)), what
+        assert np.allclose(a, b, rtol=1e-12, atol=0.0, equal_nan=True), what
+    else:
+        assert np.array_equal(a, b), what
+
+
+ADVICE_FIELDS = ("cell_limit", "cell_size", "cell_distance", "cell_speed", "edge_limit",
+                 "edge_order", "cell_order", "target_size", "refine", "coarsen")
+
+
+def _fmax(mesh, topo, settings):
+    """An upper frequency at which some cells need refining and some do not."""
+    adv = advise(mesh, topo, _speeds(mesh), 1000.0, settings)
+    return float(np.median(adv.cell_limit[:, settings.allowed_order - 1]))
+
+
+@pytest.mark.parametrize("setting", list(SETTINGS))
+@pytest.mark.parametrize("name", list(MESHES))
+def test_advise_and_sweep_equal_the_numpy_reference(monkeypatch, name, setting):
+    mesh, topo = _mesh(name)
+    s = SETTINGS[setting]
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    fmax = _fmax(mesh, topo, s)
+    ref, got = _both(monkeypatch, lambda: advise(mesh, topo, _speeds(mesh), fmax, s))
+    if name not in ("tet structured", "hex structured", "quad 2D"):  # (all cells alike)
+        assert 0 < ref.refine.sum() < mesh.n_cells  # both outcomes present
+    for field in ADVICE_FIELDS:
+        _same(getattr(ref, field), getattr(got, field), field)
+    # frequencies unsorted, repeated, some equal to cell limits (ties at the bin edges)
+    rng = np.random.default_rng(7)
+    f = np.concatenate([rng.uniform(0.1, 2.0, 40) * fmax, [fmax, fmax],
+                        rng.choice(ref.cell_limit.ravel(), 12)])
+    rs, gs = _both(monkeypatch, lambda: sweep(mesh, topo, ref, f))
+    for field in ("frequencies", "order_counts", "ready", "dofs"):
+        _same(getattr(rs, field), getattr(gs, field), field)
+    assert rs.condensed_fixed == gs.condensed_fixed
+
+
+@pytest.mark.parametrize("name", ["tet", "hex", "hex+wedge", "triangle 2D"])
+def test_advise_with_mean_flow_equals_the_numpy_reference(monkeypatch, name):
+    mesh, topo = _mesh(name)
+    mach = np.zeros((mesh.n_cells, 3))
+    mach[:, 0], mach[:, 1] = 0.3, 0.1
+    if name == "hex+wedge":
+        mach[mesh.region == 2] = (0.0, 0.0, 0.2)
+    ref, got = _both(monkeypatch, lambda: advise(mesh, topo, _speeds(mesh), 600.0,
+                                                 AdviceSettings(), cell_mach=mach))
+    assert ref.edge_flow_factor is not None
+    for field in ADVICE_FIELDS:
+        _same(getattr(ref, field), getattr(got, field), field)
+
+
+@pytest.mark.parametrize("name", ["tet", "tet two media", "hex", "wedge", "hex+wedge",
+                                  "quad 2D"])
+def test_variable_order_dofs_equal_the_numpy_reference(monkeypatch, name):
+    # limits not monotone in the order, ties with the frequencies, NaN rows, and every
+    # maximum order: the histogram counts equal the sorted-search counts
+    mesh, topo = _mesh(name)
+    rng = np.random.default_rng(11)
+    lim = rng.uniform(100.0, 3000.0, (mesh.n_cells, 12))
+    lim[rng.random(lim.shape) < 0.2] = 1500.0
+    lim[rng.integers(0, mesh.n_cells, 3)] = np.nan
+    f = np.concatenate([np.linspace(50.0, 3500.0, 23)[::-1], [1500.0, 1500.0]])
+    for max_order in (1, 2, 5, 8, 9, 12):
+        ref, got = _both(monkeypatch, lambda: variable_order_dofs(mesh, topo, lim, f, max_order))
+        _same(ref, got, f"max_order {max_order}")
+    monotone = np.maximum.accumulate(np.nan_to_num(lim, nan=500.0), axis=1)
+    ref, got = _both(monkeypatch, lambda: variable_order_dofs(mesh, topo, monotone, f, 8))
+    _same(ref, got, "monotone")
+
+
+def test_sweep_of_limits_with_nan_and_many_frequencies(monkeypatch):
+    mesh, topo = _mesh("tet")
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    adv = advise(mesh, topo, _speeds(mesh), 500.0, AdviceSettings())
+    lim = adv.cell_limit.copy()
+    lim[::17, 3:] = np.nan
+    odd = dataclasses.replace(adv, cell_limit=lim)
+    for f in (np.linspace(10.0, 5000.0, 1000), np.array([500.0]), np.array([3e3, 1e2, 3e3])):
+        rs, gs = _both(monkeypatch, lambda: sweep(mesh, topo, odd, f))
+        for field in ("order_counts", "ready", "dofs"):
+            _same(rs.__dict__[field], gs.__dict__[field], field)
+
+
+def _clusters_equal(a, b):
+    assert len(a) == len(b)
+    for x, y in zip(a, b):
+        for field in ("cells", "ids", "regions"):
+            _same(getattr(x, field), getattr(y, field), field)
+        for field in ("volume", "centroid", "lo", "hi", "size", "target", "factor"):
+            _same(getattr(x, field), getattr(y, field), field)
+
+
+@pytest.mark.parametrize("name", ["tet", "tet two media", "hex", "hex+wedge", "pyramid",
+                                  "triangle 2D", "quad 2D"])
+def test_clusters_equal_the_numpy_reference(monkeypatch, name):
+    # random masks make many clusters of equal size: their order (by size, then by
+    # smallest cell id) and everything about them must be the reference's
+    mesh, topo = _mesh(name)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    adv = advise(mesh, topo, _speeds(mesh), _fmax(mesh, topo, AdviceSettings()))
+    rng = np.random.default_rng(3)
+    masks = [adv.refine, adv.coarsen & ~adv.refine, rng.random(mesh.n_cells) < 0.15,
+             rng.random(mesh.n_cells) < 0.6, np.ones(mesh.n_cells, bool)]
+    for mask in masks:
+        for limit, max_ids in ((50, 10), (4, 2)):
+            ref, got = _both(monkeypatch, lambda: clusters(mesh, topo, adv, mask, limit, max_ids))
+            _clusters_equal(ref, got)
+    # clusters of zero volume take the mean of their centroids
+    flat = dataclasses.replace(topo, cell_volume=np.where(rng.random(mesh.n_cells) < 0.5, 0.0,
+                                                          topo.cell_volume))
+    ref, got = _both(monkeypatch, lambda: clusters(mesh, flat, adv, masks[2]))
+    assert any(c.volume == 0 for c in ref)
+    _clusters_equal(ref, got)
+
+
+@pytest.mark.parametrize("name,kind", [("tet", "tetra"), ("tet structured", "tetra"),
+                                       ("tet10", "tetra"), ("wedge", "wedge"),
+                                       ("hex+wedge", "wedge"), ("hex structured", "hexahedron"),
+                                       ("hex half structured", "hexahedron")])
+def test_alignment_equals_the_numpy_reference(monkeypatch, name, kind):
+    mesh, topo = _mesh(name)
+    ref, got = _both(monkeypatch, lambda: _alignment(mesh, topo, kind))
+    assert ref == got
+
+
+def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
+    # np.argmax: the first of equal maxima, the first NaN if there is one
+    h = np.array([1.0, 2.0, 2.0, np.nan, 0.5, np.nan, 3.0])
+    ce = np.array([[0, 1, 2], [2, 1, 0], [0, 3, 6], [4, 4, 4], [6, 5, 3], [3, 0, 1]])
+    gov = np.empty(len(ce), np.int64)
+    KA.governing_edges(ce, 0, len(ce), h, gov, 0)
+    assert np.array_equal(gov, ce[np.arange(len(ce)), np.argmax(h[ce], axis=1)])
+    out = np.empty(len(ce))
+    KA.per_cell_max(ce, h, out, 0)
+    assert np.array_equal(out, np.maximum.reduce(h[ce], axis=1), equal_nan=True)
+
+
+def test_the_compiled_path_is_taken(monkeypatch):
+    # a comparison with itself would prove nothing: every kernel of the advice stage
+    # runs under MESHCHECK_KERNELS=numba and none under numpy
+    mesh, topo = _mesh("hex+wedge")  # two media, wedges: cells of mixed size factors
+    calls = {}
+    for name in ("governing_edges", "odd_cells", "longest_directions", "gov_rows",
+                 "exact_limits", "finish_limits", "edge_orders", "per_cell_max",
+                 "order_hist", "dof_hist", "face_dof_hist", "label_flagged", "cluster_stats"):
+        fn = getattr(KA, name)
+        monkeypatch.setattr(KA, name, lambda *a, _fn=fn, _n=name: (
+            calls.__setitem__(_n, calls.get(_n, 0) + 1), _fn(*a))[1])
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        calls.clear()
+        adv = advise(mesh, topo, _speeds(mesh), _fmax(mesh, topo, AdviceSettings()))
+        sweep(mesh, topo, adv, np.linspace(100.0, 2000.0, 9))
+        clusters(mesh, topo, adv, adv.refine)
+        if mode == "numpy":
+            assert not calls
+        else:
+            assert set(calls) == {"governing_edges", "odd_cells", "longest_directions",
+                                  "gov_rows", "exact_limits", "finish_limits",
+                                  "edge_orders", "per_cell_max", "order_hist", "dof_hist",
+                                  "face_dof_hist", "label_flagged", "cluster_stats"}
+
+
+def test_auto_mode_uses_numpy_for_small_meshes(monkeypatch):
+    monkeypatch.setenv("MESHCHECK_KERNELS", "auto")
+    assert not kernels.use_compiled(kernels.MIN_CELLS - 1)
+    assert kernels.use_compiled(kernels.MIN_CELLS)
