@@ -30,7 +30,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import dijkstra
-from scipy.spatial import cKDTree
 
 from .mesh import Mesh
 from .topology import Topology
@@ -102,6 +101,8 @@ def nearest_on_surface(points: np.ndarray, tri_xyz: np.ndarray,
         return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
     cen = tri_xyz.mean(axis=1)
     r = float(np.max(np.linalg.norm(tri_xyz - cen[:, None, :], axis=2)))
+    from scipy.spatial import cKDTree  # imported here: scipy.spatial takes 0.2 s to load
+
     tree = cKDTree(cen)
     dc, _ = tree.query(points)
     radius = dc * (1 + 1e-12) + r * (1 + 1e-12)
