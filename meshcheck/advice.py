@@ -13,6 +13,7 @@ edge as ``a * h`` with a 3D correction factor a fitted to real solves
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from scipy import sparse
@@ -117,10 +118,13 @@ class Advice:
     def pmax(self) -> int:
         return self.cell_limit.shape[1]
 
-    @property
+    @cached_property
     def mesh_limit(self) -> np.ndarray:
-        """(pmax,) highest usable frequency of the whole mesh per order, Hz."""
-        return self.cell_limit.min(axis=0) if len(self.cell_limit) else np.zeros(self.pmax)
+        """(pmax,) highest usable frequency of the whole mesh per order, Hz (computed once;
+        read-only)."""
+        out = self.cell_limit.min(axis=0) if len(self.cell_limit) else np.zeros(self.pmax)
+        out.setflags(write=False)
+        return out
 
     @property
     def signed_off(self) -> float:

@@ -637,7 +637,7 @@ def _scenario(mesh, topo, advice, field, frequencies, machine, fixed: int | None
 
 def job_cost(mesh: Mesh, topo: Topology, advice, frequencies, machine=None,
              fixed_orders=(1, 2), size_order: int | None = None, gradation: float = 0.3,
-             geometry_limit=None) -> JobCost:
+             geometry_limit=None, field=None) -> JobCost:
     """Quote a sweep: variable order and fixed orders on the supplied mesh, and the
     coarsening scenario (size field at the upper frequency for the allowed order, and
     for ``size_order`` if given) with its estimated cost and speed-up.
@@ -645,6 +645,7 @@ def job_cost(mesh: Mesh, topo: Topology, advice, frequencies, machine=None,
     machine : :class:`~meshcheck.calibration.MachineModel` (default: ``load_machine()``).
     geometry_limit : hook ``(mesh, topo) -> (n_points,)`` largest size the boundary
         allows, m (see :func:`meshcheck.sizefield.size_field`).
+    field : the size field of the allowed order with these settings, when already built.
     """
     from .calibration import load_machine
     from .sizefield import size_field
@@ -658,7 +659,8 @@ def job_cost(mesh: Mesh, topo: Topology, advice, frequencies, machine=None,
         orders.append(int(size_order))
     quotes = sweep_quotes(mesh, topo, advice, f, machine, orders, adj)
     by_name = {q.strategy: q for q in quotes}
-    field = size_field(mesh, topo, advice, None, gradation, geometry_limit)
+    if field is None:
+        field = size_field(mesh, topo, advice, None, gradation, geometry_limit)
     ref_name = f"fixed p={s.order}" if s.order else f"variable p<={s.max_order}"
     main = _scenario(mesh, topo, advice, field, f, machine, s.order, by_name.get(ref_name), adj)
     chosen = None
@@ -746,8 +748,10 @@ def audit_job_cost(res, machine=None) -> JobCost:
     hit = _CACHE.get(key)
     if hit is not None and hit[0]() is res and machine is None:
         return hit[1]
+    from .sizefield import audit_size_field
+
     job = job_cost(res.mesh, res.topology, res.advice, np.asarray(res.settings.frequencies),
-                   machine)
+                   machine, field=audit_size_field(res))
     if machine is None:
         _CACHE[key] = (weakref.ref(res, lambda _, k=key: _CACHE.pop(k, None)), job)
     return job

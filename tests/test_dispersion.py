@@ -635,3 +635,28 @@ def test_doc_epw_table(target, n):
         if len(cells) == 8 and cells[0] == f"{100 * target:g} %" and cells[1] == str(n):
             want = cells[2:]
     assert got == want
+
+
+def test_usable_kh_disk_cache_returns_the_computed_table(tmp_path, monkeypatch):
+    # the cached table is the computed one bit for bit; a damaged file is recomputed
+    monkeypatch.setenv("MESHCHECK_CACHE_DIR", str(tmp_path))
+    d._build_usable.cache_clear()
+    try:
+        fresh = d._compute_usable(0.02, 4)
+        first = d.usable_kh(0.02, 4)            # computed and stored
+        files = list(tmp_path.glob("usable_kh_*_p4_*.npy"))
+        assert len(files) == 1
+        d._build_usable.cache_clear()
+        again = d.usable_kh(0.02, 4)            # read back from the file
+        for tab in (first, again):
+            np.testing.assert_array_equal(tab.t_max, fresh.t_max)
+            np.testing.assert_array_equal(tab.log_r, fresh.log_r)
+        files[0].write_bytes(b"not a table")
+        d._build_usable.cache_clear()
+        np.testing.assert_array_equal(d.usable_kh(0.02, 4).t_max, fresh.t_max)
+        monkeypatch.setenv("MESHCHECK_CACHE_DIR", "off")
+        d._build_usable.cache_clear()
+        assert d._cache_file(0.02, 4) is None
+        np.testing.assert_array_equal(d.usable_kh(0.02, 4).t_max, fresh.t_max)
+    finally:
+        d._build_usable.cache_clear()
