@@ -3,6 +3,11 @@
 Edges and faces are found by sorting integer keys built from their sorted
 node numbers (no hashing, no Python loop over cells).  Edge lengths of
 quadratic cells are the arc lengths of the parabola through the mid-node.
+
+Large meshes (see :func:`meshcheck.kernels.use_compiled`) take the compiled
+kernels of :mod:`meshcheck.kernels.topology`, which give the same arrays (same
+numbering, order and dtypes) in a fraction of the time and memory; the numpy
+code here is their reference.
 """
 from __future__ import annotations
 
@@ -13,6 +18,7 @@ from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from . import kernels
 from .mesh import Mesh
 
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
@@ -207,6 +213,9 @@ def build_edges(mesh: Mesh) -> Edges:
     (cells x local edges) rows, int64 each; owners and mid-nodes are derived from
     the permutation instead of being stored per row.
     """
+    if kernels.use_compiled(mesh.n_cells):
+        _used_compiled(mesh)
+        return _build_edges_compiled(mesh)
     n = np.int64(mesh.n_points + 1)
     keys, widths, lengths = [], [], []
     for b in mesh.blocks:
@@ -371,6 +380,9 @@ def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
     edges : the mesh's :func:`build_edges`, if already built; it lets triangles be
     keyed by (edge, node) in few enough bits for the packed sort.
     """
+    if kernels.use_compiled(mesh.n_cells):
+        _used_compiled(mesh)
+        return _build_faces_compiled(mesh, edges)
     parts = [p for p in (_group_faces(mesh, 3, edges), _group_faces(mesh, 4, edges))
              if p is not None]
     if not parts:
@@ -412,6 +424,9 @@ def cell_volumes(mesh: Mesh, chunk_size: int = 200_000) -> np.ndarray:
     four triangles about their mean point (exact for planar faces).  Cells are
     taken ``chunk_size`` at a time, so the gathered coordinates stay small.
     """
+    if kernels.use_compiled(mesh.n_cells):
+        _used_compiled(mesh)
+        return _cell_volumes_compiled(mesh)
     out = np.empty(mesh.n_cells)
     for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
         corners = b.cells[:, :b.info.n_corners]
@@ -521,7 +536,11 @@ def _duplicate_nodes(points, used, edges: Edges, rel_tol: float) -> np.ndarray:
         return np.zeros((0, 2), np.int64)
     d = np.linalg.norm(points[ids[pairs[:, 0]]] - points[ids[pairs[:, 1]]], axis=1)
     keep = d <= rel_tol * np.minimum(h[pairs[:, 0]], h[pairs[:, 1]])
-    out = np.sort(ids[pairs[keep]], axis=1)
+    return _sorted_pairs(np.sort(ids[pairs[keep]], axis=1))
+
+
+def _sorted_pairs(out: np.ndarray) -> np.ndarray:
+    """(k, 2) int64 pairs (smaller first) in lexicographic order."""
     return out[np.lexsort((out[:, 1], out[:, 0]))]
 
 
@@ -549,14 +568,19 @@ def _duplicate_cells(mesh: Mesh) -> np.ndarray:
         if not len(rep):
             continue
         cand = np.flatnonzero(np.isin(h, rep))
-        sc = s[cand]
-        order, starts, inverse = _group_sorted(tuple(sc[:, k] for k in range(sc.shape[1] - 1, -1, -1)))
-        group_sorted = inverse[order]
-        repeat = np.ones(len(order), bool)
-        repeat[starts] = False
-        first = cand[order[starts[group_sorted[repeat]]]]
-        out.append(np.column_stack([first, cand[order[repeat]]]) + mesh.block_offsets[i])
+        out.append(_equal_rows(s[cand], cand) + mesh.block_offsets[i])
     return np.concatenate(out).astype(np.int64) if out else np.zeros((0, 2), np.int64)
+
+
+def _equal_rows(sc: np.ndarray, cand: np.ndarray) -> np.ndarray:
+    """(k, 2) pairs (first, repeat) of the candidate cells ``cand`` (c,) with equal
+    sorted corners ``sc`` (c, n_corners), groups in lexicographic order of the corners."""
+    order, starts, inverse = _group_sorted(tuple(sc[:, k] for k in range(sc.shape[1] - 1, -1, -1)))
+    group_sorted = inverse[order]
+    repeat = np.ones(len(order), bool)
+    repeat[starts] = False
+    first = cand[order[starts[group_sorted[repeat]]]]
+    return np.column_stack([first, cand[order[repeat]]])
 
 
 def _cracks(mesh: Mesh, faces: Faces, dup_pairs: np.ndarray) -> np.ndarray:
@@ -583,6 +607,8 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     rel_tol : two used nodes closer than rel_tol times the shorter of their
         shortest incident edges are duplicates (default 1e-6).
     """
+    if kernels.use_compiled(mesh.n_cells):
+        return _build_topology_compiled(mesh, rel_tol)
     edges = build_edges(mesh)
     used = np.zeros(mesh.n_points, bool)
     for b in mesh.blocks:
@@ -598,6 +624,308 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     comp = comp.astype(np.int64)
     comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
     lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
+    extent = np.linalg.norm(hi - lo, axis=1)
+    cracks = _cracks(mesh, faces, dup) if mesh.dim == 3 else np.zeros(0, np.int64)
+    return Topology(
+        edges=edges, faces=faces, component=comp, component_volume=comp_vol,
+        component_extent=extent, cell_volume=vol, unused_nodes=np.flatnonzero(~used),
+        duplicate_nodes=dup, duplicate_cells=dup_cells, crack_faces=cracks,
+        nonmanifold_faces=np.flatnonzero(faces.count > 2))
+
+
+# ---------------------------------------------------------------------------
+# the compiled path (meshcheck.kernels.topology): same arrays as the numpy code above
+
+#: bits of the packed (node, cell, local entity) integers of the compiled bucket sorts
+#: (tests lower it to take the unpacked branch)
+_PACK_BITS = 63
+
+#: a generic unit direction (no mesh plane is normal to it) for the slabs of close_pairs
+_SLAB_DIRECTION = np.array([0.7548776662466927, 0.5698402909980532, 0.3247179572447460])
+_SLAB_DIRECTION /= np.linalg.norm(_SLAB_DIRECTION) * (1 + 4 * np.finfo(float).eps)
+
+
+def _used_compiled(mesh: Mesh) -> np.ndarray:
+    """(n_points,) bool nodes referenced by a cell; IndexError for a node index out of
+    range (the kernels do not check bounds, so every compiled entry point calls this)."""
+    from .kernels import topology as kt
+
+    used = np.zeros(mesh.n_points, bool)
+    for b in mesh.blocks:
+        if not kt.mark_used(b.cells, used):
+            raise IndexError(f"{b.type} cell with a node index outside 0..{mesh.n_points - 1}")
+    return used
+
+
+def _row_layout(widths: list[int], lengths: list[int], offsets) -> tuple[np.ndarray, ...]:
+    """(bounds, widths, offsets) int64 arrays of consecutive blocks of rows (see
+    :mod:`meshcheck.kernels.topology`)."""
+    bounds = np.cumsum([0] + [w * m for w, m in zip(widths, lengths)]).astype(np.int64)
+    return (bounds, np.asarray(widths, np.int64).reshape(-1),
+            np.asarray(offsets, np.int64).reshape(-1))
+
+
+def _build_edges_compiled(mesh: Mesh) -> Edges:
+    """:func:`build_edges` by a counting sort of the local edges on their smaller node.
+
+    Scratch memory: (larger node, cell, local edge) of every local edge packed in one
+    int64 (which becomes the incidence; two arrays when the bits do not fit) and one
+    int64 per node."""
+    from .kernels import topology as kt
+
+    if not mesh.blocks:
+        z = np.zeros(0, np.int64)
+        return Edges(np.zeros((0, 2), np.int64), z, np.zeros(0), ())
+    n = mesh.n_points
+    loc = [(b.info.edges[:, 0].copy(), b.info.edges[:, 1].copy()) for b in mesh.blocks]
+    widths = [len(b.info.edges) for b in mesh.blocks]
+    lengths = [len(b) for b in mesh.blocks]
+    layout = _row_layout(widths, lengths, mesh.block_offsets[:-1])
+    ptr = np.zeros(n + 1, np.int64)
+    for b, (la, lb) in zip(mesh.blocks, loc):
+        kt.edge_count(b.cells, la, lb, ptr)
+    np.cumsum(ptr, out=ptr)
+    n_rows = int(ptr[-1])
+    fill = ptr[:-1].copy()
+    shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 4  # (cell, local edge < 16)
+    inverse = np.empty(n_rows, np.int64)
+    if n < 2**31 and int(n - 1).bit_length() + shift <= _PACK_BITS:
+        # larger node, cell and local edge packed in one int64, then the incidence
+        packed = np.empty(n_rows, np.int64)
+        for b, (la, lb), g0 in zip(mesh.blocks, loc, mesh.block_offsets):
+            kt.edge_fill_packed(b.cells, la, lb, int(g0), fill, packed, shift)
+        del fill
+        n_e = kt.count_distinct_packed(ptr, packed, shift, n)
+        nodes = np.empty((n_e, 2), np.int64)
+        starts = np.empty(n_e, np.int64)
+        kt.edge_emit_packed(ptr, packed, shift, n, nodes, starts, inverse, layout[0],
+                            layout[1], mesh.block_offsets)
+        incidence = packed
+    else:
+        bhi = np.empty((n_rows, 1), kt.index_dtype(n))
+        incidence = np.empty(n_rows, np.int64)
+        row0 = 0
+        for b, (la, lb), w in zip(mesh.blocks, loc, widths):
+            kt.edge_fill(b.cells, la, lb, row0, fill, bhi, incidence)
+            row0 += w * len(b)
+        del fill
+        n_e = kt.sort_buckets(ptr, bhi, incidence, n)
+        nodes = np.empty((n_e, 2), np.int64)
+        starts = np.empty(n_e, np.int64)
+        kt.edge_emit(ptr, bhi, incidence, nodes, starts, inverse, *layout)
+        del bhi
+    del ptr
+    umid = np.full(n_e, -1, np.int64)
+    cell_edges, pos = [], 0
+    for b, w, m in zip(mesh.blocks, widths, lengths):
+        ce = inverse[pos:pos + w * m]
+        cell_edges.append(ce.reshape(m, w))
+        if b.info.quadratic:
+            kt.edge_mid(b.cells, b.info.edges[:, 2].copy(), ce, umid)
+        pos += w * m
+    length = np.empty(n_e)
+    kt.edge_lengths(mesh.points, nodes, umid, _GL_S, _GL_W, length)
+    return Edges(nodes, umid, length, tuple(cell_edges), incidence, starts)
+
+
+def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None):
+    """:func:`_group_faces` by a counting sort of the local faces into buckets: triangles
+    by the edge of their two smallest nodes when ``edges`` are given, else by their
+    smallest node, quadrilaterals by their second smallest node (the orders of the
+    numpy keys), then a sort of every small bucket on the other nodes.
+
+    Scratch memory: for triangles with edges one int64 per local face and per edge;
+    otherwise the other sorted nodes and the row of every local face (int32 below
+    2**31) and one int64 per node."""
+    from .kernels import topology as kt
+
+    tables = _face_tables(mesh, size)
+    if not tables:
+        return None
+    n = mesh.n_points
+    blocks = [mesh.blocks[bi] for bi, _ in tables]
+    widths = [len(t) for _, t in tables]
+    lengths = [len(b) for b in blocks]
+    offsets = [mesh.block_offsets[bi] for bi, _ in tables]
+    shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 7  # (cell, local face < 8, code)
+    if (size == 3 and edges is not None and len(edges) and
+            int(n - 1).bit_length() + shift <= _PACK_BITS):
+        return _tri_by_edges(mesh, tables, edges, shift)
+    first, cells, count = _faces_by_node(mesh, tables, blocks, widths,
+                                         _row_layout(widths, lengths, offsets))
+    corners = np.full((len(first), 4), -1, np.int64)
+    row0 = 0
+    for b, (_, t), w in zip(blocks, tables, widths):
+        kt.face_corners(b.cells, t, row0, first, corners)
+        row0 += w * len(b)
+    return corners, cells, count
+
+
+def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
+    """(corners, cells, count) of the unique triangles, bucketed by the edge of their
+    two smallest nodes and sorted on packed integers (largest node << shift | cell << 7
+    | local face << 4 | order of the corners); the corners are rebuilt from the sorted
+    nodes."""
+    from .kernels import topology as kt
+
+    opps = []
+    for bi, t in tables:
+        info = mesh.blocks[bi].info
+        table = np.full((info.n_corners, info.n_corners), -1, np.int64)
+        ed = info.edges
+        table[ed[:, 0], ed[:, 1]] = np.arange(len(ed))
+        table[ed[:, 1], ed[:, 0]] = np.arange(len(ed))
+        opps.append(np.stack([table[t[:, 1], t[:, 2]], table[t[:, 2], t[:, 0]],
+                              table[t[:, 0], t[:, 1]]], axis=1))
+    n_rows = sum(len(t) * len(mesh.blocks[bi]) for bi, t in tables)
+    ptr = np.zeros(len(edges) + 1, kt.index_dtype(n_rows + 1))
+    for (bi, t), opp in zip(tables, opps):
+        kt.tri_count_edges(mesh.blocks[bi].cells, t, opp, edges.cell_edges[bi], ptr)
+    np.cumsum(ptr, out=ptr)
+    packed = np.empty(int(ptr[-1]), np.int64)
+    fill = ptr[:-1].copy()
+    for (bi, t), opp in zip(tables, opps):
+        kt.tri_fill_edges(mesh.blocks[bi].cells, t, opp, edges.cell_edges[bi],
+                          int(mesh.block_offsets[bi]), fill, packed, shift)
+    del fill
+    n_f = kt.sort_packed(ptr, packed, shift)
+    corners = np.empty((n_f, 4), np.int64)
+    cells = np.empty((n_f, 2), np.int64)
+    count = np.empty(n_f, np.int64)
+    kt.tri_emit_packed(ptr, packed, shift, edges.nodes, corners, cells, count)
+    return corners, cells, count
+
+
+def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
+    """(first row, cells, count) of the unique faces, bucketed by one node (smallest of
+    a triangle, second smallest of a quadrilateral) and sorted on the others."""
+    from .kernels import topology as kt
+
+    n = mesh.n_points
+    size = tables[0][1].shape[1]
+    ptr = np.zeros(n + 1, np.int64)
+    for b, (_, t) in zip(blocks, tables):
+        kt.face_count(b.cells, t, ptr)
+    np.cumsum(ptr, out=ptr)
+    n_rows = int(ptr[-1])
+    bkey = np.empty((n_rows, size - 1), kt.index_dtype(n))
+    brow = np.empty(n_rows, kt.index_dtype(n_rows))
+    fill = ptr[:-1].copy()
+    row0 = 0
+    for b, (_, t), w in zip(blocks, tables, widths):
+        kt.face_fill(b.cells, t, row0, fill, bkey, brow)
+        row0 += w * len(b)
+    del fill
+    n_f = kt.sort_buckets(ptr, bkey, brow, n)
+    first = np.empty(n_f, np.int64)
+    cells = np.empty((n_f, 2), np.int64)
+    count = np.empty(n_f, np.int64)
+    kt.face_emit(ptr, bkey, brow, first, cells, count, *layout)
+    return first, cells, count
+
+
+def _build_faces_compiled(mesh: Mesh, edges: Edges | None = None) -> Faces:
+    parts = [p for p in (_group_faces_compiled(mesh, 3, edges), _group_faces_compiled(mesh, 4))
+             if p is not None]
+    if not parts:
+        z = np.zeros(0, np.int64)
+        return Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), z)
+    if len(parts) == 1:
+        return Faces(*parts[0])
+    return Faces(*(np.concatenate([p[k] for p in parts]) for k in range(3)))
+
+
+def _cell_volumes_compiled(mesh: Mesh) -> np.ndarray:
+    """:func:`cell_volumes`, one compiled loop over the cells of each block."""
+    from .kernels import topology as kt
+
+    out = np.empty(mesh.n_cells)
+    for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
+        info, o = b.info, out[off:off + len(b)]
+        if info.dim == 2:
+            kt.areas_polygon(mesh.points, b.cells, info.n_corners, o)
+        elif info.linear == "tetra":
+            kt.volumes_tetra(mesh.points, b.cells, o)
+        else:
+            faces = np.array([list(f) + [-1] * (4 - len(f)) for f in info.faces], np.int64)
+            kt.volumes_faces(mesh.points, b.cells, faces, o)
+    return out
+
+
+def _duplicate_nodes_compiled(points, used, edges: Edges, rel_tol: float) -> np.ndarray:
+    """:func:`_duplicate_nodes` with the pairs found by sweeping slabs (no k-d tree).
+
+    Same pairs, except (in principle) one at a distance within a rounding error of the
+    search radius, which the k-d tree measures its own way."""
+    from .kernels import topology as kt
+
+    if len(edges) == 0:
+        return np.zeros((0, 2), np.int64)
+    hmin = np.full(len(points), np.inf)
+    kt.min_edge_at_nodes(edges.nodes, edges.length, hmin)
+    pairs = kt.close_pairs(points, used, hmin, float(rel_tol), _SLAB_DIRECTION)
+    return _sorted_pairs(pairs) if len(pairs) else np.zeros((0, 2), np.int64)
+
+
+def _duplicate_cells_compiled(mesh: Mesh) -> np.ndarray:
+    """:func:`_duplicate_cells` with the hashes and their repeats found in compiled loops."""
+    from .kernels import topology as kt
+
+    out = []
+    for i, b in enumerate(mesh.blocks):
+        k = b.info.n_corners
+        if len(b) < 2:
+            continue
+        h = np.empty(len(b), np.uint64)
+        kt.corner_hash(b.cells, k, _HASH_MULT[:k].copy(), h)
+        cand = np.flatnonzero(kt.repeated(h))
+        del h
+        if not len(cand):
+            continue
+        sc = np.sort(b.cells[cand, :k], axis=1)
+        out.append(_equal_rows(sc, cand) + mesh.block_offsets[i])
+    return np.concatenate(out).astype(np.int64) if out else np.zeros((0, 2), np.int64)
+
+
+def _per_label_bbox_compiled(points, mesh: Mesh, label: np.ndarray, n_label: int):
+    """:func:`_per_label_bbox` in one compiled pass over the corners of each block."""
+    from .kernels import topology as kt
+
+    if n_label == 1:
+        bb = mesh.bounding_box
+        return bb[:1].copy(), bb[1:].copy()
+    lo = np.full((n_label, 3), np.inf)
+    hi = np.full((n_label, 3), -np.inf)
+    for i, b in enumerate(mesh.blocks):
+        kt.label_bbox(points, b.cells, b.info.n_corners,
+                      label[mesh.block_offsets[i]:mesh.block_offsets[i + 1]], lo, hi)
+    return lo, hi
+
+
+def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
+    """:func:`build_topology` with the kernels of :mod:`meshcheck.kernels.topology`."""
+    from .kernels import topology as kt
+
+    used = _used_compiled(mesh)
+    edges = _build_edges_compiled(mesh)
+    if mesh.dim == 3:
+        faces = _build_faces_compiled(mesh, edges)
+    else:
+        faces = Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64),
+                      np.zeros(0, np.int64))
+    vol = _cell_volumes_compiled(mesh)
+    dup = _duplicate_nodes_compiled(mesh.points, used, edges, rel_tol)
+    dup_cells = _duplicate_cells_compiled(mesh)
+    parent = np.arange(mesh.n_cells, dtype=kt.index_dtype(mesh.n_cells))
+    if mesh.dim == 3:
+        n_comp, comp = kt.components_faces(parent, faces.cells, faces.count)
+    elif len(edges.cell_edges):
+        n_comp, comp = kt.components_edges(parent, edges.incidence, edges.incidence_starts)
+    else:
+        n_comp, comp = 0, np.zeros(0, np.int64)
+    del parent
+    comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
+    lo, hi = _per_label_bbox_compiled(mesh.points, mesh, comp, n_comp)
     extent = np.linalg.norm(hi - lo, axis=1)
     cracks = _cracks(mesh, faces, dup) if mesh.dim == 3 else np.zeros(0, np.int64)
     return Topology(

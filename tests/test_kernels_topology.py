@@ -1,0 +1,371 @@
+"""Compiled topology kernels (meshcheck.kernels.topology) against the numpy reference.
+
+Every field of build_topology is computed twice, MESHCHECK_KERNELS=numpy and =numba,
+on meshes generated here: each cell kind, mixed blocks, random connectivity (shared
+and non-manifold faces, hub nodes), duplicate nodes and cells, cracks, several
+components, unused nodes, degenerate cells.  Integer arrays must be equal with the
+same dtype, floats equal to 1e-12 relative.
+"""
+import numpy as np
+import pytest
+
+pytest.importorskip("numba")
+
+from meshcheck import topology as T  # noqa: E402
+from meshcheck.cells import CELL_TYPES  # noqa: E402
+from meshcheck.mesh import CellBlock, Mesh  # noqa: E402
+from meshes import grid_hexes, grid_points, hex_box, tet_box  # noqa: E402
+
+RTOL = 1e-12
+
+# --------------------------------------------------------------------------- meshes
+
+# hexahedron -> 2 wedges (prisms along z) and -> 6 pyramids about an added centre node
+_HEX_TO_WEDGES = np.array([[0, 1, 2, 4, 5, 6], [0, 2, 3, 4, 6, 7]])
+_HEX_FACES = [(0, 3, 2, 1), (4, 5, 6, 7), (0, 1, 5, 4), (1, 2, 6, 5), (2, 3, 7, 6), (3, 0, 4, 7)]
+
+
+def _linear_cells(kind: str, n=(3, 2, 2), size=(1.0, 0.8, 0.6), origin=(0.0, 0.0, 0.0), jitter=0.0,
+                  seed=0):
+    """(points, cells) of a structured box of linear cells of ``kind`` (3D)."""
+    pts = grid_points(n, size, origin)
+    if jitter:
+        h = min(s / k for s, k in zip(size, n))
+        pts = pts + np.random.default_rng(seed).uniform(-jitter * h, jitter * h, pts.shape)
+    hexes = grid_hexes(n)
+    if kind == "hexahedron":
+        return pts, hexes
+    if kind == "tetra":
+        from meshes import KUHN
+        return pts, hexes[:, KUHN].reshape(-1, 4)
+    if kind == "wedge":
+        return pts, hexes[:, _HEX_TO_WEDGES].reshape(-1, 6)
+    if kind == "pyramid":
+        centres = pts[hexes].mean(axis=1)
+        cid = len(pts) + np.arange(len(hexes))
+        cells = [np.column_stack([hexes[:, list(f[::-1])], cid]) for f in _HEX_FACES]
+        return np.vstack([pts, centres]), np.stack(cells, axis=1).reshape(-1, 5)
+    raise ValueError(kind)
+
+
+def _plane_cells(kind: str, n=(4, 3), jitter=0.1, seed=0):
+    """(points, cells) of a plane grid (z = 0) of triangles or quads."""
+    nx, ny = n
+    x, y = np.meshgrid(np.linspace(0, 1, nx + 1), np.linspace(0, 0.7, ny + 1), indexing="ij")
+    pts = np.column_stack([x.ravel(), y.ravel(), np.zeros(x.size)])
+    pts[:, :2] += np.random.default_rng(seed).uniform(-0.2 / nx, 0.2 / nx, (len(pts), 2)) * jitter
+    idx = np.arange(len(pts)).reshape(nx + 1, ny + 1)
+    q = np.column_stack([idx[:-1, :-1].ravel(), idx[1:, :-1].ravel(), idx[1:, 1:].ravel(),
+                         idx[:-1, 1:].ravel()])
+    if kind == "quad":
+        return pts, q
+    return pts, q[:, [[0, 1, 2], [0, 2, 3]]].reshape(-1, 3)
+
+
+def _add_high_order(pts: np.ndarray, cells: np.ndarray, kind: str, bow=0.05, seed=1):
+    """Quadratic cells of ``kind`` on linear cells: one shared (bowed) mid-node per
+    unique edge, then one node per cell for every further node (face and volume
+    centres, at the corner mean, so neighbours' coincide: duplicate nodes)."""
+    info = CELL_TYPES[kind]
+    e = info.edges
+    a, b = cells[:, e[:, 0]], cells[:, e[:, 1]]
+    key = np.minimum(a, b) * len(pts) + np.maximum(a, b)
+    uniq, inv = np.unique(key.ravel(), return_inverse=True)
+    ua, ub = uniq // len(pts), uniq % len(pts)
+    rng = np.random.default_rng(seed)
+    mids = 0.5 * (pts[ua] + pts[ub]) + rng.uniform(-bow, bow, (len(uniq), 3)) * \
+        np.linalg.norm(pts[ub] - pts[ua], axis=1)[:, None]
+    if info.dim == 2:
+        mids[:, 2] = 0.0
+    out = [cells, len(pts) + inv.reshape(a.shape)]
+    new = [pts, mids]
+    extra = info.n_nodes - info.n_corners - len(e)
+    if extra:
+        centre = pts[cells].mean(axis=1)
+        start = len(pts) + len(mids)
+        for k in range(extra):
+            out.append((start + k * len(cells) + np.arange(len(cells)))[:, None])
+            new.append(centre)
+    return np.vstack(new), np.hstack(out)
+
+
+def _kind_mesh(kind: str, **kw) -> Mesh:
+    info = CELL_TYPES[kind]
+    if info.dim == 2:
+        pts, cells = _plane_cells(info.linear)
+    else:
+        pts, cells = _linear_cells(info.linear, jitter=0.15, **kw)
+    if info.quadratic:
+        pts, cells = _add_high_order(pts, cells, kind)
+    return Mesh(pts, (CellBlock(kind, cells, np.ones(len(cells), np.int64)),), dim=info.dim)
+
+
+def _random_mesh(seed: int, n_nodes: int = 40) -> Mesh:
+    """Cells of the four 3D kinds on a small node pool: shared, non-manifold and
+    repeated faces, nodes in hundreds of cells (buckets sorted by argsort)."""
+    rng = np.random.default_rng(seed)
+    pts = rng.random((n_nodes + 3, 3))
+    blocks = []
+    for kind, k, m in (("tetra", 4, 120), ("pyramid", 5, 25), ("wedge", 6, 25),
+                       ("hexahedron", 8, 15)):
+        cells = np.array([rng.choice(n_nodes, k, replace=False) for _ in range(m)])
+        cells = np.vstack([cells, cells[: m // 3][:, ::-1]])
+        blocks.append(CellBlock(kind, cells, np.ones(len(cells), np.int64)))
+    return Mesh(pts, tuple(blocks))  # the last 3 nodes unused
+
+
+def _mixed_mesh() -> Mesh:
+    """Hexes, wedges, pyramids and tets side by side (boxes sharing no nodes, so
+    unmerged interfaces), a repeated hex, a tetra10 box apart: several components."""
+    pts, blocks = [], []
+    n0 = 0
+    for i, kind in enumerate(["hexahedron", "wedge", "pyramid", "tetra"]):
+        p, c = _linear_cells(kind, n=(2, 2, 2), size=(1.0, 1.0, 1.0), origin=(float(i), 0, 0))
+        if kind == "hexahedron":
+            c = np.vstack([c, c[:1]])
+        pts.append(p)
+        blocks.append(CellBlock(kind, c + n0, np.full(len(c), i + 1)))
+        n0 += len(p)
+    p, c = _linear_cells("tetra", n=(2, 1, 1), origin=(0.0, 5.0, 0.0))
+    p, c = _add_high_order(p, c, "tetra10")
+    pts.append(p)
+    blocks.append(CellBlock("tetra10", c + n0, np.full(len(c), 9)))
+    return Mesh(np.vstack(pts), tuple(blocks))
+
+
+def _defect_mesh(seed: int) -> Mesh:
+    """Two hex boxes with an unmerged interface whose copies are moved by about the
+    duplicate tolerance (some pairs in, some out), a duplicated cell, a degenerate
+    (collapsed) hex, an unused node and a separate third box."""
+    rng = np.random.default_rng(seed)
+    a = hex_box((3, 2, 2))
+    b = hex_box((3, 2, 2), origin=(1.0, 0.0, 0.0))
+    c = hex_box((1, 1, 1), origin=(4.0, 0.0, 0.0))
+    pb = b.points.copy()
+    on = np.flatnonzero(np.isclose(pb[:, 0], 1.0))  # 3 x 3 interface nodes
+    h = 1.0 / 3.0
+    pb[on[:3], 1] += rng.uniform(0, 2e-6 * h, 3)  # moved about the tolerance
+    pb[on[3:6], 1] += rng.uniform(0, 0.9e-6 * h, 3)  # moved within it
+    pts = np.vstack([a.points, pb, c.points, [[9.0, 9.0, 9.0]]])
+    cells = np.vstack([a.blocks[0].cells, b.blocks[0].cells + len(a.points),
+                       c.blocks[0].cells + len(a.points) + len(b.points)])
+    cells = np.vstack([cells, cells[3:4], cells[:1]])
+    cells[-1, 4:] = cells[-1, :4]  # collapsed: top face on the bottom one
+    return Mesh(pts, (CellBlock("hexahedron", cells, np.ones(len(cells), np.int64)),))
+
+
+def _hub_mesh(k: int = 120) -> Mesh:
+    """Tetrahedra fanned about the edge 0-1 and about node 0 (a hub): buckets of more
+    than a hundred rows and of more than a hundred distinct neighbours (the sorting
+    branches for long buckets)."""
+    t = np.linspace(0, 2 * np.pi, k, endpoint=False)
+    ring = np.column_stack([np.cos(t), np.sin(t), 0.3 * np.sin(3 * t)])
+    pts = np.vstack([[0, 0, -1.0], [0, 0, 1.0], ring, ring * 2 + [0, 0, 0.5]])
+    i = np.arange(k)
+    around_edge = np.column_stack([np.zeros(k, int), np.ones(k, int), 2 + i, 2 + (i + 1) % k])
+    around_node = np.column_stack([np.zeros(k, int), 2 + i, 2 + k + i, 2 + k + (i + 1) % k])
+    cells = np.vstack([around_edge, around_node])
+    return Mesh(pts, (CellBlock("tetra", cells, np.ones(len(cells), np.int64)),))
+
+
+MESHES = {
+    "hub": _hub_mesh,
+    **{kind: (lambda kind=kind: _kind_mesh(kind)) for kind in CELL_TYPES},
+    "random-0": lambda: _random_mesh(0),
+    "random-1": lambda: _random_mesh(1),
+    "random-2": lambda: _random_mesh(2, n_nodes=12),
+    "mixed": _mixed_mesh,
+    "defects-0": lambda: _defect_mesh(0),
+    "defects-1": lambda: _defect_mesh(1),
+    "tet-box-7": lambda: tet_box((7, 5, 4)),
+}
+
+
+# --------------------------------------------------------------------------- comparison
+
+
+def _both(fn, mesh, monkeypatch, *args):
+    """fn(mesh) on the numpy path, then on the compiled one (with the numpy sorts,
+    k-d tree and graph labelling disabled, so the kernels are what runs)."""
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = fn(mesh, *args)
+    with monkeypatch.context() as m:
+        m.setenv("MESHCHECK_KERNELS", "numba")
+
+        def boom(*a, **k):
+            raise AssertionError("numpy reference called on the compiled path")
+        for name in ("_sorted_groups", "_group_faces", "_block_volumes", "_components",
+                     "_per_label_bbox", "_duplicate_nodes", "cKDTree"):
+            m.setattr(T, name, boom)
+        got = fn(mesh, *args)
+    return ref, got
+
+
+def _same_int(ref, got, what):
+    assert got.dtype == ref.dtype, what
+    assert got.shape == ref.shape, what
+    assert np.array_equal(got, ref), what
+
+
+def _same_float(ref, got, what):
+    assert got.dtype == ref.dtype, what
+    np.testing.assert_allclose(got, ref, rtol=RTOL, atol=0, equal_nan=True, err_msg=what)
+
+
+def _same_edges(ref, got):
+    for f in ("nodes", "mid", "incidence", "incidence_starts"):
+        _same_int(getattr(ref, f), getattr(got, f), f"edges.{f}")
+    _same_float(ref.length, got.length, "edges.length")
+    assert len(ref.cell_edges) == len(got.cell_edges)
+    for r, g in zip(ref.cell_edges, got.cell_edges):
+        _same_int(r, g, "edges.cell_edges")
+
+
+def _same_faces(ref, got):
+    for f in ("nodes", "cells", "count"):
+        _same_int(getattr(ref, f), getattr(got, f), f"faces.{f}")
+
+
+def _same_topology(ref, got):
+    _same_edges(ref.edges, got.edges)
+    _same_faces(ref.faces, got.faces)
+    assert ref.n_components == got.n_components
+    for f in ("component", "unused_nodes", "duplicate_nodes", "duplicate_cells",
+              "crack_faces", "nonmanifold_faces"):
+        _same_int(getattr(ref, f), getattr(got, f), f)
+    for f in ("component_volume", "component_extent", "cell_volume"):
+        _same_float(getattr(ref, f), getattr(got, f), f)
+
+
+# --------------------------------------------------------------------------- tests
+
+
+@pytest.mark.parametrize("name", list(MESHES))
+def test_compiled_topology_equals_numpy(name, monkeypatch):
+    mesh = MESHES[name]()
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    _same_topology(ref, got)
+    assert len(ref.edges) > 0 and len(ref.faces) == (0 if mesh.dim == 2 else len(ref.faces))
+
+
+def test_fixtures_cover_the_defects_and_paths(monkeypatch):
+    # the comparisons above are only as good as the meshes: make sure they hold what
+    # they are meant to (each defect present, and buckets long enough for the argsort
+    # branch of the kernels as well as short ones for insertion)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    d = T.build_topology(MESHES["defects-0"]())
+    assert 6 <= len(d.duplicate_nodes) < 9 and len(d.crack_faces) > 0
+    assert len(d.duplicate_cells) == 1 and d.n_components == 3 and len(d.unused_nodes) == 1
+    r = T.build_topology(MESHES["random-0"]())
+    assert len(r.nonmanifold_faces) > 0 and len(r.duplicate_cells) > 0
+    # local edges per smaller node, local triangles per smallest node: bucket sizes
+    per_edge = np.diff(np.r_[r.edges.incidence_starts, len(r.edges.incidence)])
+    assert np.bincount(r.edges.nodes[:, 0], weights=per_edge).max() > 32
+    tri = r.faces.nodes[:, 3] < 0
+    assert np.bincount(r.faces.nodes[tri, :3].min(axis=1), weights=r.faces.count[tri]).max() > 32
+    assert np.bincount(r.edges.nodes[:, 0], weights=per_edge).min() <= 32
+    # the hub: more than 48 rows in the bucket of one edge (triangles) and more than
+    # 48 distinct larger neighbours of one node (edges)
+    hub = T.build_topology(MESHES["hub"]())
+    tri = hub.faces.nodes[:, 3] < 0
+    s = np.sort(hub.faces.nodes[tri, :3], axis=1)
+    _, per_edge_tris = np.unique(s[:, :2], axis=0, return_counts=True)
+    assert per_edge_tris.max() > 48 and np.bincount(hub.edges.nodes[:, 0]).max() > 48
+    m = T.build_topology(MESHES["mixed"]())
+    assert m.n_components == 5 and len(m.duplicate_nodes) > 0 and len(m.crack_faces) > 0
+    assert T.build_topology(MESHES["hexahedron27"]()).duplicate_nodes.shape[0] > 0
+
+
+@pytest.mark.parametrize("name", ["tetra", "wedge15", "pyramid", "quad9", "random-1", "mixed",
+                                  "hub"])
+def test_public_builders_dispatch_and_agree(name, monkeypatch):
+    mesh = MESHES[name]()
+    ref, got = _both(T.build_edges, mesh, monkeypatch)
+    _same_edges(ref, got)
+    ref, got = _both(T.build_faces, mesh, monkeypatch)
+    _same_faces(ref, got)
+    ref, got = _both(T.cell_volumes, mesh, monkeypatch)
+    _same_float(ref, got, "cell_volumes")
+
+
+def test_nan_coordinates_and_wide_int_scratch(monkeypatch):
+    # a used node with a NaN coordinate (volumes, extents, duplicates skip it the same
+    # way), on two components; scratch arrays forced to int64 (the > 2**31 branch)
+    from meshcheck.kernels import topology as kt
+
+    monkeypatch.setattr(kt, "index_dtype", lambda n: np.int64)
+    a = hex_box((2, 2, 1))
+    b = hex_box((2, 2, 1), origin=(3.0, 0.0, 0.0))
+    pts = np.vstack([a.points, b.points])
+    pts[5, 2] = np.nan
+    cells = np.vstack([a.blocks[0].cells, b.blocks[0].cells + len(a.points)])
+    mesh = Mesh(pts, (CellBlock("hexahedron", cells, np.ones(len(cells), np.int64)),))
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    _same_topology(ref, got)
+    assert ref.n_components == 2 and np.isnan(ref.cell_volume).any()
+
+
+def test_duplicate_nodes_of_a_structured_grid_with_close_copies(monkeypatch):
+    # a structured grid (many nodes on every plane x = const: the slab sweep must not
+    # rely on distinct coordinates) with a quarter of its nodes copied at distances
+    # spread about the tolerance, the copies used by a second, shifted cell set
+    rng = np.random.default_rng(3)
+    base = hex_box((6, 5, 4))
+    pts = base.points
+    pick = rng.choice(len(pts), len(pts) // 4, replace=False)
+    h = 1.0 / 6.0
+    direction = rng.normal(size=(len(pick), 3))
+    direction /= np.linalg.norm(direction, axis=1)[:, None]
+    copies = pts[pick] + direction * rng.uniform(0.0, 2e-6 * h, len(pick))[:, None]
+    remap = np.arange(len(pts))
+    remap[pick] = len(pts) + np.arange(len(pick))
+    cells = base.blocks[0].cells
+    mesh = Mesh(np.vstack([pts, copies]),
+                (CellBlock("hexahedron", np.vstack([cells, remap[cells]]),
+                           np.ones(2 * len(cells), np.int64)),))
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    _same_topology(ref, got)
+    assert 0 < len(ref.duplicate_nodes) < len(pick)  # some pairs in, some out
+
+
+def test_node_index_out_of_range_raises(monkeypatch):
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    m = tet_box((1, 1, 1))
+    cells = m.blocks[0].cells.copy()
+    cells[2, 1] = len(m.points)
+    bad = Mesh(m.points, (CellBlock("tetra", cells, np.ones(len(cells), np.int64)),))
+    for fn in (T.build_topology, T.build_edges, T.build_faces, T.cell_volumes):
+        with pytest.raises(IndexError):
+            fn(bad)
+
+
+def test_empty_mesh(monkeypatch):
+    mesh = Mesh(np.zeros((3, 3)), ())
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    assert got.edges.incidence is None and ref.edges.incidence is None
+    assert got.n_components == ref.n_components == 0
+    _same_faces(ref.faces, got.faces)
+    _same_int(ref.unused_nodes, got.unused_nodes, "unused")
+
+
+@pytest.mark.parametrize("name", ["tetra10", "random-0", "mixed", "defects-1", "hub"])
+def test_unpacked_buckets_equal_numpy(name, monkeypatch):
+    # (node, row) pairs too wide for one int64 take separate key and row arrays: force it
+    monkeypatch.setattr(T, "_PACK_BITS", 0)
+    mesh = MESHES[name]()
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    _same_topology(ref, got)
+
+
+def test_small_meshes_do_not_load_numba():
+    # auto mode: below MIN_CELLS the numpy path runs and numba is never imported
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    code = ("import sys; from meshes import tet_box; from meshcheck.topology import "
+            "build_topology; build_topology(tet_box((3, 3, 3))); "
+            "assert 'numba' not in sys.modules, 'numba loaded'")
+    env = {k: v for k, v in __import__("os").environ.items() if k != "MESHCHECK_KERNELS"}
+    subprocess.run([sys.executable, "-c", code], check=True, env=env,
+                   cwd=Path(__file__).parent)
