@@ -16,7 +16,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
-from scipy.spatial import cKDTree
 
 from . import kernels
 from .mesh import Mesh
@@ -530,6 +529,8 @@ def _duplicate_nodes(points, used, edges: Edges, rel_tol: float) -> np.ndarray:
     if not len(h_fin):
         return np.zeros((0, 2), np.int64)
     radius = rel_tol * float(h_fin.max())
+    from scipy.spatial import cKDTree  # imported here: scipy.spatial takes 0.2 s to load
+
     tree = cKDTree(points[ids])
     pairs = tree.query_pairs(radius, output_type="ndarray")
     if not len(pairs):

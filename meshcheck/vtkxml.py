@@ -79,7 +79,8 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
               cell_data: dict[str, np.ndarray] | None = None,
               point_data: dict[str, np.ndarray] | None = None, level: int = 1) -> Path:
     """Write points (n, 3), cell blocks [(meshio type, (m, k) int)], and per-cell / per-point
-    arrays (concatenated over the blocks, (n_cells,) or (n_cells, c)) as a .vtu file."""
+    arrays (concatenated over the blocks, (n_cells,) or (n_cells, c)) as a .vtu file.
+    ``level``: zlib level, 0 for stored blocks (no compression work; same layout)."""
     path = Path(path)
     points = np.asarray(points, dtype=np.float64)
     n_pts = len(points)

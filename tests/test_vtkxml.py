@@ -104,3 +104,22 @@ def test_many_small_arrays_keep_their_names(tmp_path):
     r.Update()
     for k, v in cd.items():
         assert np.array_equal(vtk_to_numpy(r.GetOutput().GetCellData().GetArray(k)), v), k
+
+
+def test_stored_blocks_read_back_by_meshio_and_vtk(tmp_path):
+    # level 0 (the report's choice above a million cells): same layout, no compression
+    mesh = hex_box((3, 3, 3))
+    b = mesh.blocks[0]
+    v = np.linspace(0, 1, len(b))
+    small = write_vtu(tmp_path / "z.vtu", mesh.points, [(b.type, b.cells)], cell_data={"v": v})
+    stored = write_vtu(tmp_path / "s.vtu", mesh.points, [(b.type, b.cells)], cell_data={"v": v},
+                       level=0)
+    assert stored.stat().st_size > small.stat().st_size
+    back = meshio.read(stored)
+    assert np.array_equal(back.cells[0].data, b.cells) and np.array_equal(back.cell_data["v"][0], v)
+    vtk = pytest.importorskip("vtk")
+    from vtk.util.numpy_support import vtk_to_numpy
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(stored))
+    r.Update()
+    assert np.array_equal(vtk_to_numpy(r.GetOutput().GetCellData().GetArray("v")), v)
