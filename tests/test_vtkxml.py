@@ -107,7 +107,7 @@ def test_many_small_arrays_keep_their_names(tmp_path):
 
 
 def test_stored_blocks_read_back_by_meshio_and_vtk(tmp_path):
-    # level 0 (the report's choice above a million cells): same layout, no compression
+    # level 0 (the report's choice above half a million cells): same layout, no compression
     mesh = hex_box((3, 3, 3))
     b = mesh.blocks[0]
     v = np.linspace(0, 1, len(b))
