@@ -20,9 +20,11 @@ import os
 
 __all__ = ["MIN_CELLS", "available", "use_compiled", "njit"]
 
-#: smallest mesh (cells) for which ``auto`` takes the compiled kernels: below it the
-#: numpy path takes well under a second and loading numba (about 0.5 s) does not pay
-MIN_CELLS = 50_000
+#: smallest mesh (cells) for which ``auto`` takes the compiled kernels. Loading numba and
+#: the cached kernels costs about 1 s per process; measured analysis times (2 cores,
+#: benchmarks/bench_audit.py) are about 0.84 s + 4.1 us/cell compiled against 8.2 us/cell
+#: with numpy, equal near 230,000 cells
+MIN_CELLS = 250_000
 
 
 @functools.lru_cache(maxsize=None)
