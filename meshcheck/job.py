@@ -518,7 +518,10 @@ def resolve_media(mesh: Mesh, job: Job | None = None, temperature: float = 20.0,
                                     float(attenuation_per_wavelength(c)), flow, mach, spec.role,
                                     surrounds, src)
     cs = np.empty(mesh.n_cells)
-    cm = np.zeros((mesh.n_cells, 3))
+    flowing = any(any(r.mach) for r in regions.values())
+    # without flow a read-only broadcast of zeros (no (n_cells, 3) array held)
+    cm = np.zeros((mesh.n_cells, 3)) if flowing else np.broadcast_to(np.zeros(3),
+                                                                      (mesh.n_cells, 3))
     for tag, r in regions.items():
         sel = mesh.region == tag
         cs[sel] = r.effective_speed
