@@ -85,9 +85,10 @@ def _quality(res: AuditResult, scale: float, n_worst: int = 10) -> dict:
         bad = METRIC_BAD.get(name, "high")
         worst = ids[_smallest(v if bad == "low" else -v, n_worst)]
         flags = res.quality_flags.get(name, np.zeros(len(values), bool))
+        p05, p95 = np.percentile(v, [5, 95])  # one partition for both
         out[name] = {
-            "cells": int(ok.sum()), "min": float(v.min()), "p05": float(np.percentile(v, 5)),
-            "median": float(np.median(v)), "p95": float(np.percentile(v, 95)),
+            "cells": int(ok.sum()), "min": float(v.min()), "p05": float(p05),
+            "median": float(np.median(v)), "p95": float(p95),
             "max": float(v.max()), "out_of_range": int(flags.sum()), "worse_when": bad,
             "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
             "worst": [{"cell": int(i), "value": float(values[i]),
