@@ -17,7 +17,9 @@ the smallest field below the targets whose growth rate is at most beta (the
 "H-variation" control of Borouchaki, Hecht & Frey, "Mesh gradation control",
 IJNME 43 (1998) 1143-1165; cited from memory), solved exactly by one Dijkstra
 search from a virtual source joined to every node j by an edge of length
-h_j / beta (h_i = beta x distance).  beta = 0.3 (neighbouring cells differ by
+h_j / beta (h_i = beta x distance).  On meshes of :data:`meshcheck.kernels.MIN_CELLS`
+cells or more the node minima, this search and the cell density of the count run as
+compiled kernels (:mod:`meshcheck.kernels.sizefield`, same results).  beta = 0.3 (neighbouring cells differ by
 about 30 %) is common practice, no source.
 
 Mesher size.  gmsh's unstructured tetrahedra are longer than the size asked
@@ -60,6 +62,7 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import dijkstra
 
+from . import kernels
 from .errors import SettingsError
 from .mesh import Mesh
 from .topology import Topology
@@ -88,20 +91,36 @@ def _corners(mesh: Mesh):
 def node_min(mesh: Mesh, topo: Topology, cell_values: np.ndarray) -> np.ndarray:
     """(n_points,) smallest value of the cells around each corner node; mid-nodes of
     quadratic cells get the mean of their edge's ends; nodes of no cell get nan."""
-    out = np.full(mesh.n_points, np.inf)
-    v = np.asarray(cell_values, dtype=float)
-    for (b, c), off in zip(_corners(mesh), mesh.block_offsets[:-1]):
-        vals = np.repeat(v[off:off + len(b)], c.shape[1])
-        np.minimum.at(out, c.ravel(), vals)
-    used = np.isfinite(out)
-    for b in mesh.blocks:
-        if b.info.quadratic:
-            e = b.info.edges
-            mid = b.cells[:, e[:, 2]].ravel()
-            out[mid] = 0.5 * (out[b.cells[:, e[:, 0]].ravel()] + out[b.cells[:, e[:, 1]].ravel()])
-            used[mid] = True
-    out[~used] = np.nan
-    return out
+    return _node_mins(mesh, [cell_values])[0]
+
+
+def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
+    """:func:`node_min` of several (n_cells,) fields (compiled: one pass over the cells)."""
+    vs = [np.asarray(v, dtype=float) for v in fields]
+    outs = np.full((len(vs), mesh.n_points), np.inf)
+    if kernels.use_compiled(mesh.n_cells):
+        from .kernels import sizefield as _ks
+        v2 = np.stack(vs) if vs else np.zeros((0, mesh.n_cells))
+        for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
+            _ks.node_min_block(outs, b.cells, b.info.n_corners, v2[:, off:off + len(b)])
+    else:
+        for out, v in zip(outs, vs):
+            for (b, c), off in zip(_corners(mesh), mesh.block_offsets[:-1]):
+                vals = np.repeat(v[off:off + len(b)], c.shape[1])
+                np.minimum.at(out, c.ravel(), vals)
+    res = []
+    for out in outs:
+        used = np.isfinite(out)
+        for b in mesh.blocks:
+            if b.info.quadratic:
+                e = b.info.edges
+                mid = b.cells[:, e[:, 2]].ravel()
+                out[mid] = 0.5 * (out[b.cells[:, e[:, 0]].ravel()]
+                                  + out[b.cells[:, e[:, 1]].ravel()])
+                used[mid] = True
+        out[~used] = np.nan
+        res.append(out)
+    return res
 
 
 def cell_target_size(advice, order: int, mesh: Mesh, topo: Topology) -> np.ndarray:
@@ -135,17 +154,21 @@ def limit_gradation(mesh: Mesh, topo: Topology, size: np.ndarray, gradation: flo
         raise SettingsError(f"size gradation {gradation} must be positive (e.g. 0.3)")
     n = mesh.n_points
     h = np.asarray(size, dtype=float)
-    src = np.flatnonzero(np.isfinite(h))
-    a, b = topo.edges.nodes[:, 0], topo.edges.nodes[:, 1]
     w = np.asarray(topo.edges.length, dtype=float)
-    ok = np.isfinite(w) & (w > 0)
-    rows = np.concatenate([a[ok], b[ok], np.full(len(src), n)])
-    cols = np.concatenate([b[ok], a[ok], src])
-    vals = np.concatenate([w[ok], w[ok], h[src] / gradation])
-    # zero-length source edges are dropped by csgraph; keep them tiny instead
-    vals = np.maximum(vals, 1e-300)
-    g = sparse.csr_matrix((vals, (rows, cols)), shape=(n + 1, n + 1))
-    dist = dijkstra(g, directed=True, indices=n)[:n]
+    if kernels.use_compiled(mesh.n_cells):
+        from .kernels import sizefield as _ks
+        dist = _ks.gradation_distances(n, topo.edges.nodes, w, h, float(gradation))
+    else:
+        a, b = topo.edges.nodes[:, 0], topo.edges.nodes[:, 1]
+        src = np.flatnonzero(np.isfinite(h))
+        ok = np.isfinite(w) & (w > 0)
+        rows = np.concatenate([a[ok], b[ok], np.full(len(src), n)])
+        cols = np.concatenate([b[ok], a[ok], src])
+        vals = np.concatenate([w[ok], w[ok], h[src] / gradation])
+        # zero-length source edges are dropped by csgraph; keep them tiny instead
+        vals = np.maximum(vals, 1e-300)
+        g = sparse.csr_matrix((vals, (rows, cols)), shape=(n + 1, n + 1))
+        dist = dijkstra(g, directed=True, indices=n)[:n]
     out = gradation * dist
     out[~np.isfinite(out)] = np.nan
     # mid-nodes (not on any edge as a corner) keep the mean of their edge ends
@@ -192,9 +215,15 @@ def _cell_density(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> np.nda
     """(n_cells,) regular cells per unit volume (area) at the corner mean of h^-d."""
     dens = []
     e = 3 if mesh.dim == 3 else 2
-    for b, c in _corners(mesh):
-        with np.errstate(divide="ignore", invalid="ignore"):
-            dens.append(np.nanmean(mesher_size[c] ** -float(e), axis=1))
+    if kernels.use_compiled(mesh.n_cells):
+        from .kernels import sizefield as _ks
+        with np.errstate(divide="ignore", invalid="ignore"):  # the same powers, per node
+            hp = np.ascontiguousarray(np.asarray(mesher_size, dtype=float) ** -float(e))
+        dens = [_ks.corner_nanmean(b.cells, b.info.n_corners, hp) for b in mesh.blocks]
+    else:
+        for b, c in _corners(mesh):
+            with np.errstate(divide="ignore", invalid="ignore"):
+                dens.append(np.nanmean(mesher_size[c] ** -float(e), axis=1))
     unit = REGULAR_TET if mesh.dim == 3 else 4.0 / math.sqrt(3.0)
     return unit * (np.concatenate(dens) if dens else np.zeros(0))
 
@@ -250,8 +279,9 @@ def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
     p = advice.settings.allowed_order if order is None else int(order)
     cell_t = cell_target_size(advice, p, mesh, topo)
     cap = topo.cell_extent() if h_max is None else np.full(mesh.n_cells, float(h_max))
-    target = node_min(mesh, topo, np.where(np.isfinite(cell_t), cell_t, cap))
-    raw = np.minimum(target, node_min(mesh, topo, cap))
+    target, cap_node, current = _node_mins(mesh, [np.where(np.isfinite(cell_t), cell_t, cap),
+                                                  cap, advice.cell_size])
+    raw = np.minimum(target, cap_node)
     geo = np.full(mesh.n_points, np.inf)
     if geometry_limit is not None:
         geo = np.asarray(geometry_limit(mesh, topo), dtype=float)
@@ -260,7 +290,6 @@ def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
         raw = np.minimum(raw, np.where(np.isnan(geo), np.inf, geo))
     size = limit_gradation(mesh, topo, raw, gradation)
     mesher = size / float(edge_factor)
-    current = node_min(mesh, topo, advice.cell_size)
     n_est = estimate_cells(mesh, topo, mesher) if mesh.dim in (2, 3) else float("nan")
     return SizeField(p, float(advice.fmax), float(gradation), float(edge_factor), target, geo,
                      size, mesher, current, n_est)

@@ -8,8 +8,11 @@ Formats", XML formats) with the arrays in an ``AppendedData`` section in
 block layout (a header of UInt64 words: number of blocks, block size, size of
 the last block, compressed size of each block, then the compressed blocks).
 Arrays are compressed one at a time, block by block on all cores, straight from
-the caller's memory and written as they are done: memory stays at one array's
-compressed bytes.  Connectivity is written as Int32 when the node count allows.  (Raw
+the caller's memory; memory stays at one array's compressed bytes.  At level 0
+(large meshes) nothing is compressed: the file has no compressor and each array is
+its UInt64 byte count and raw bytes as one base64 stream, encoded in pieces.  The
+base64 text goes to a writer thread as it is made, so the writes overlap the
+encoding.  Connectivity is written as Int32 when the node count allows.  (Raw
 appended data would save the base64 step, but meshio 5.3's reader of raw data
 renumbers the offsets as it goes and can then mistake one array for another.)
 Node orders are meshio's, which are VTK's.  The output is tested by re-reading
@@ -18,7 +21,10 @@ it with meshio and with VTK's own reader.
 from __future__ import annotations
 
 import base64
+import binascii
 import os
+import queue
+import threading
 import zlib
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -36,6 +42,7 @@ _VTK_TYPE = {np.dtype(np.int8): "Int8", np.dtype(np.uint8): "UInt8",
              np.dtype(np.int32): "Int32", np.dtype(np.int64): "Int64",
              np.dtype(np.float32): "Float32", np.dtype(np.float64): "Float64"}
 _BLOCK = 1 << 21  # bytes per compressed block (blocks are compressed in parallel)
+_CHUNK = 3 << 20  # bytes per base64 piece of an uncompressed array (a multiple of 3)
 _SLOT = 32  # characters reserved in each DataArray tag for ``offset="..."`` and blank padding
 
 
@@ -75,29 +82,61 @@ def _slot_text(slot: int) -> str:
     return f"@slot{slot}@".ljust(_SLOT, "@")
 
 
+def _stored(arr: np.ndarray):
+    """Base64 pieces of one uncompressed array: a UInt64 byte count and the raw bytes as
+    one base64 stream (VTK's layout without a compressor), encoded in pieces of
+    :data:`_CHUNK` bytes (a multiple of 3, so the pieces join into that one stream)."""
+    raw = memoryview(arr.reshape(-1).view(np.uint8))
+    n = len(raw)
+    head = np.array([n], dtype="<u8").tobytes()
+    yield binascii.b2a_base64(head + bytes(raw[:1]), newline=False)  # 9 bytes: no padding
+    for i in range(1, n, _CHUNK):
+        yield binascii.b2a_base64(raw[i:i + _CHUNK], newline=False)
+
+
+def _deflated(arr: np.ndarray, level: int, pool):
+    """Base64 pieces of one array in the vtkZLibDataCompressor layout (header, then the
+    compressed blocks as one stream)."""
+    header, comp = _compressed(arr, level, pool)
+    yield base64.b64encode(header)
+    yield base64.b64encode(b"".join(comp))
+
+
 def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.ndarray]],
               cell_data: dict[str, np.ndarray] | None = None,
               point_data: dict[str, np.ndarray] | None = None, level: int = 1) -> Path:
     """Write points (n, 3), cell blocks [(meshio type, (m, k) int)], and per-cell / per-point
     arrays (concatenated over the blocks, (n_cells,) or (n_cells, c)) as a .vtu file.
-    ``level``: zlib level, 0 for stored blocks (no compression work; same layout)."""
+    ``level``: zlib level 1..9, or 0 for no compression (the file then has no compressor:
+    each array is its UInt64 byte count and raw bytes in one base64 stream).
+
+    The base64 text is handed to a writer thread as it is made, so the file writes (which
+    release the GIL) overlap the encoding."""
     path = Path(path)
     points = np.asarray(points, dtype=np.float64)
     n_pts = len(points)
     idx = np.int32 if n_pts < 2**31 else np.int64
-    conn = np.concatenate([np.asarray(c).astype(idx, copy=False).ravel() for _, c in blocks]) \
-        if blocks else np.zeros(0, idx)
-    sizes = [np.full(len(c), np.asarray(c).shape[1], np.int64) for _, c in blocks]
-    offsets = np.cumsum(np.concatenate(sizes)) if blocks else np.zeros(0, np.int64)
-    if len(offsets) and offsets[-1] < 2**31:
-        offsets = offsets.astype(np.int32)
+    if len(blocks) == 1:  # one cast, no concatenation
+        conn = np.asarray(blocks[0][1]).astype(idx, copy=False).reshape(-1)
+    else:
+        conn = np.concatenate([np.asarray(c).astype(idx, copy=False).ravel() for _, c in blocks]) \
+            if blocks else np.zeros(0, idx)
+    n_conn = len(conn)
+    off_t = np.int32 if n_conn < 2**31 else np.int64
+    offsets = np.empty(sum(len(c) for _, c in blocks), off_t)
+    at, end = 0, 0
+    for _, c in blocks:
+        k = np.asarray(c).shape[1]
+        offsets[at:at + len(c)] = np.arange(end + k, end + k * len(c) + 1, k, dtype=off_t)
+        at, end = at + len(c), end + k * len(c)
     types = np.concatenate([np.full(len(c), VTK_CELL_TYPES[t], np.uint8) for t, c in blocks]) \
         if blocks else np.zeros(0, np.uint8)
     n_cells = len(types)
 
     arrays: list[tuple[str, np.ndarray, int]] = []  # (name, values, components)
+    comp = ' compressor="vtkZLibDataCompressor"' if level > 0 else ""
     xml = ['<?xml version="1.0"?>\n<VTKFile type="UnstructuredGrid" version="1.0" '
-           'byte_order="LittleEndian" header_type="UInt64" compressor="vtkZLibDataCompressor">\n'
+           f'byte_order="LittleEndian" header_type="UInt64"{comp}>\n'
            f'<UnstructuredGrid>\n<Piece NumberOfPoints="{n_pts}" '
            f'NumberOfCells="{n_cells}">\n']
 
@@ -127,15 +166,42 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     where = [head.index(_slot_text(k).encode()) for k in range(len(arrays))]
     head = bytearray(head)
     workers = max(1, min(os.cpu_count() or 1, 8))
+    pending: queue.Queue = queue.Queue(maxsize=8)  # at most 8 pieces (32 MiB) in flight
+    failed: list[BaseException] = []
+
+    def drain(fh):
+        try:
+            while (piece := pending.get()) is not None:
+                fh.write(piece)
+        except BaseException as exc:  # reported by the producer
+            failed.append(exc)
+
+    def send(piece, writer):
+        while writer.is_alive():
+            try:
+                pending.put(piece, timeout=0.1)
+                return
+            except queue.Full:
+                continue
+        if failed:
+            raise failed[0]
+
     with open(path, "wb") as fh, ThreadPoolExecutor(max_workers=workers) as pool:
         fh.write(head)
-        start = fh.tell()
-        for k, (_, values, _) in enumerate(arrays):
-            at = fh.tell() - start
-            head[where[k]:where[k] + _SLOT] = f'offset="{at}"'.ljust(_SLOT).encode()
-            header, comp = _compressed(values, level, pool)
-            fh.write(base64.b64encode(header))
-            fh.write(base64.b64encode(b"".join(comp)))
+        writer = threading.Thread(target=drain, args=(fh,), daemon=True)
+        writer.start()
+        try:
+            at = 0
+            for k, (_, values, _) in enumerate(arrays):
+                head[where[k]:where[k] + _SLOT] = f'offset="{at}"'.ljust(_SLOT).encode()
+                for piece in (_deflated(values, level, pool) if level > 0 else _stored(values)):
+                    send(piece, writer)
+                    at += len(piece)
+        finally:
+            send(None, writer)
+            writer.join()
+        if failed:
+            raise failed[0]
         fh.write(b"\n</AppendedData>\n</VTKFile>\n")
         fh.seek(0)
         fh.write(head)  # the offsets, now known (same length as before)

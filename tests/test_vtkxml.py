@@ -54,9 +54,11 @@ def test_multi_block_compression(tmp_path):
     assert np.array_equal(back.cells[0].data, cells)
 
 
-def test_vtk_reader_reads_multi_block_arrays_and_mixed_cells(tmp_path):
-    # arrays over several compressed blocks, two cell types, point and cell data, all read
-    # back by VTK's own XML reader (appended raw data, offsets filled in after writing)
+@pytest.mark.parametrize("level", [1, 0], ids=["zlib", "uncompressed"])
+def test_vtk_reader_reads_multi_block_arrays_and_mixed_cells(tmp_path, level):
+    # arrays over several compressed blocks (level 1) or several base64 pieces (level 0,
+    # 3 MiB each), two cell types, point and cell data, all read back by VTK's own XML
+    # reader and by meshio (offsets filled in after writing)
     vtk = pytest.importorskip("vtk")
     from vtk.util.numpy_support import vtk_to_numpy
     rng = np.random.default_rng(3)
@@ -67,7 +69,8 @@ def test_vtk_reader_reads_multi_block_arrays_and_mixed_cells(tmp_path):
     cd = {"a": rng.random(300_000), "b": np.arange(300_000, dtype=np.int32),
           "vec": rng.random((300_000, 3)).astype(np.float32)}
     path = write_vtu(tmp_path / "mixed.vtu", pts, [("tetra", tets), ("hexahedron", hexes)],
-                     cell_data=cd, point_data={"p": rng.random(n)})
+                     cell_data=cd, point_data={"p": rng.random(n)}, level=level)
+    assert (b"vtkZLibDataCompressor" in path.read_bytes()[:400]) == (level > 0)
     r = vtk.vtkXMLUnstructuredGridReader()
     r.SetFileName(str(path))
     r.Update()
@@ -77,6 +80,9 @@ def test_vtk_reader_reads_multi_block_arrays_and_mixed_cells(tmp_path):
     conn = vtk_to_numpy(g.GetCells().GetConnectivityArray())
     assert np.array_equal(conn, np.concatenate([tets.ravel(), hexes.ravel()]))
     assert g.GetCellType(0) == 10 and g.GetCellType(299_999) == 12
+    offs = vtk_to_numpy(g.GetCells().GetOffsetsArray())
+    assert np.array_equal(offs, np.concatenate([[0], 4 * np.arange(1, 200_001),
+                                                800_000 + 8 * np.arange(1, 100_001)]))
     for k, v in cd.items():
         assert np.array_equal(vtk_to_numpy(g.GetCellData().GetArray(k)), v)
     back = meshio.read(path)
@@ -123,3 +129,45 @@ def test_stored_blocks_read_back_by_meshio_and_vtk(tmp_path):
     r.SetFileName(str(stored))
     r.Update()
     assert np.array_equal(vtk_to_numpy(r.GetOutput().GetCellData().GetArray("v")), v)
+
+
+@pytest.mark.parametrize("m", [1, 2, 3, 4])
+def test_uncompressed_arrays_of_every_length_mod_3(tmp_path, m):
+    # level 0: each array is base64(UInt64 count + bytes) in one stream, with or without
+    # padding at its end (8 + bytes = 0, 1, 2 mod 3), empty arrays too; read by both readers
+    rng = np.random.default_rng(m)
+    pts = rng.random((m + 3, 3))
+    cells = np.array([np.arange(k, k + 4) for k in range(m)])
+    cd = {"i8": np.arange(m, dtype=np.int8) - 3, "f32": rng.random(m).astype(np.float32),
+          "i8b": (np.arange(m) % 2).astype(np.int8), "vec": rng.random((m, 3))}
+    pd = {"u8": np.arange(m + 3, dtype=np.uint8), "p": rng.random(m + 3)}
+    path = write_vtu(tmp_path / "u.vtu", pts, [("tetra", cells)], cell_data=cd,
+                     point_data=pd, level=0)
+    back = meshio.read(path)
+    assert np.array_equal(back.points, pts) and np.array_equal(back.cells[0].data, cells)
+    for k, v in cd.items():
+        assert np.array_equal(back.cell_data[k][0], v), k
+    for k, v in pd.items():
+        assert np.array_equal(back.point_data[k], v), k
+    vtk = pytest.importorskip("vtk")
+    from vtk.util.numpy_support import vtk_to_numpy
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    g = r.GetOutput()
+    assert np.array_equal(vtk_to_numpy(g.GetPoints().GetData()), pts)
+    for k, v in cd.items():
+        assert np.array_equal(vtk_to_numpy(g.GetCellData().GetArray(k)), v), k
+    for k, v in pd.items():
+        assert np.array_equal(vtk_to_numpy(g.GetPointData().GetArray(k)), v), k
+
+
+@pytest.mark.parametrize("level", [1, 0])
+def test_empty_grid(tmp_path, level):
+    # empty arrays (8-byte header only; meshio 5.3 cannot read a grid without cells)
+    vtk = pytest.importorskip("vtk")
+    path = write_vtu(tmp_path / "e.vtu", np.zeros((0, 3)), [], level=level)
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    assert r.GetOutput().GetNumberOfPoints() == 0 and r.GetOutput().GetNumberOfCells() == 0
