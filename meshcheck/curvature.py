@@ -367,18 +367,28 @@ def check_curvature(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: fl
     surf = boundary_surface(mesh, topo)
     if not len(surf.triangles):
         return None
+    one_each = bool((np.diff(surf.face) > 0).all())
+    if one_each:
+        # one triangle per face in ascending order (no quadrilaterals): the unique faces
+        # are the triangles' and np.maximum.at on zeros is an elementwise maximum
+        fids, inv = surf.face, None
+    else:
+        fids, inv = np.unique(surf.face, return_inverse=True)
+
     curv = surface_curvature(surf, feature_angle)
-    X = surf.points[surf.triangles]
-    rho_t = enclosing_radius(X)
+    rho_t = enclosing_radius(surf.points[surf.triangles])
+    dev, has_mid, longest = _face_midnode_deviation(mesh, topo, fids)
     kap_t = np.where(np.isfinite(curv.kmax), curv.kmax, 0.0)
-    fids, inv = np.unique(surf.face, return_inverse=True)
-    kappa = np.zeros(len(fids))
-    rho = np.zeros(len(fids))
-    np.maximum.at(kappa, inv, kap_t)
-    np.maximum.at(rho, inv, rho_t)
+    if one_each:
+        kappa = np.maximum(np.zeros(len(fids)), kap_t)
+        rho = np.maximum(np.zeros(len(fids)), rho_t)
+    else:
+        kappa = np.zeros(len(fids))
+        rho = np.zeros(len(fids))
+        np.maximum.at(kappa, inv, kap_t)
+        np.maximum.at(rho, inv, rho_t)
     s_lin = chord_height(rho, kappa)
     s_quad = np.minimum(quadratic_chord_height(rho, kappa), s_lin)
-    dev, has_mid, longest = _face_midnode_deviation(mesh, topo, fids)
     expected_edge = chord_height(0.5 * longest, kappa)  # sagitta of the longest side
     curved = has_mid & (dev > 0.1 * expected_edge) & (expected_edge > 0)
     cells = topo.faces.cells[fids, 0]

@@ -275,3 +275,58 @@ def test_surface_curvature_unchanged_without_trimesh(sphere, cylinder, monkeypat
         for name in ("k1", "k2", "patch", "area"):
             np.testing.assert_array_equal(getattr(ours, name), getattr(ref, name), err_msg=name)
         assert (ours.n_patches, ours.feature_edges) == (ref.n_patches, ref.feature_edges)
+
+
+def _curvature_reference(mesh, topo, speed):
+    """kappa and rho per boundary face by the general formula (np.unique of the faces of
+    the triangles, maximum over each face's triangles), the reference of the shortcut
+    check_curvature takes when every face is one triangle."""
+    surf = boundary_surface(mesh, topo)
+    curv = surface_curvature(surf, 50.0)
+    rho_t = enclosing_radius(surf.points[surf.triangles])
+    kap_t = np.where(np.isfinite(curv.kmax), curv.kmax, 0.0)
+    fids, inv = np.unique(surf.face, return_inverse=True)
+    kappa, rho = np.zeros(len(fids)), np.zeros(len(fids))
+    np.maximum.at(kappa, inv, kap_t)
+    np.maximum.at(rho, inv, rho_t)
+    return fids, kappa, rho
+
+
+def _hex_cylinder():
+    """A structured hexahedral ring about the z axis (curved outer and inner walls,
+    quadrilateral boundary faces: two triangles per face)."""
+    nr, nt, nz = 3, 24, 2
+    r = np.linspace(0.2, 0.5, nr + 1)
+    t = np.linspace(0, 2 * np.pi, nt, endpoint=False)
+    z = np.linspace(0, 0.3, nz + 1)
+    R, Tt, Z = np.meshgrid(r, t, z, indexing="ij")
+    pts = np.column_stack([(R * np.cos(Tt)).ravel(), (R * np.sin(Tt)).ravel(), Z.ravel()])
+
+    def nid(i, j, k):
+        return (i * nt + j % nt) * (nz + 1) + k
+    cells = [[nid(i, j, k), nid(i + 1, j, k), nid(i + 1, j + 1, k), nid(i, j + 1, k),
+              nid(i, j, k + 1), nid(i + 1, j, k + 1), nid(i + 1, j + 1, k + 1),
+              nid(i, j + 1, k + 1)] for i in range(nr) for j in range(nt) for k in range(nz)]
+    cells = np.array(cells, np.int64)
+    return Mesh(pts, (CellBlock("hexahedron", cells, np.ones(len(cells))),))
+
+
+@pytest.mark.parametrize("case", ["tetra", "hexahedron"])
+def test_per_face_curvature_equals_the_general_formula(case, sphere):
+    """Triangles only (the elementwise shortcut) and quadrilaterals (two triangles per
+    face, the unique and maximum.at path): kappa and rho per face equal the formula,
+    bitwise, and the quadrilateral case does take the other branch."""
+    if case == "tetra":
+        _, mesh, topo = sphere
+    else:
+        mesh = _hex_cylinder()
+        topo = build_topology(mesh)
+    speed = np.full(mesh.n_cells, 343.0)
+    cb = check_curvature(mesh, topo, speed, 2000.0, 0.01)
+    fids, kappa, rho = _curvature_reference(mesh, topo, speed)
+    np.testing.assert_array_equal(cb.face_ids, fids)
+    np.testing.assert_array_equal(cb.kappa, kappa)
+    np.testing.assert_array_equal(cb.rho, rho)
+    assert (kappa > 0).any()
+    surf = boundary_surface(mesh, topo)
+    assert (np.diff(surf.face) > 0).all() == (case == "tetra")

@@ -78,3 +78,84 @@ def test_quads_in_2d_neighbours_share_an_edge():
     res = size_jumps(mesh, build_topology(mesh), ratio=1.5)
     # quad mean edge (2 dx + 2 dy) / 4: 0.1 | 0.1 -> 0.25 between x = 0.2 and 0.6
     assert res.count == 2 and res.ratios[0] == pytest.approx(0.25 / 0.1)
+
+
+def _random_sizes_mesh(kind, seed):
+    """A tensor grid of jittered, randomly graded spacings (tetrahedra or hexahedra),
+    cells shuffled, so sizes jump across many faces with distinct ratios."""
+    rng = np.random.default_rng(seed)
+    xs, ys, zs = (np.cumsum(np.r_[0, rng.uniform(0.02, 0.2, n)]) for n in (7, 5, 4))
+    mesh = _tensor(xs, ys, zs, tets=(kind == "tetra"))
+    b = mesh.blocks[0]
+    cells = b.cells[rng.permutation(len(b))]
+    return Mesh(mesh.points, (CellBlock(b.type, cells, np.ones(len(cells))),))
+
+
+def _mixed_sizes_mesh():
+    """Hexahedra and, beside them, tetrahedra of a second grid (two blocks, 6 and 12 edges
+    per cell: both summation orders of the compiled mean)."""
+    a = _random_sizes_mesh("hexahedron", 5)
+    b = _random_sizes_mesh("tetra", 6)
+    n = len(a.points)
+    return Mesh(np.vstack([a.points, b.points + [10.0, 0, 0]]),
+                (a.blocks[0], CellBlock("tetra", b.blocks[0].cells + n,
+                                        np.ones(len(b.blocks[0])))))
+
+
+@pytest.mark.parametrize("case", ["tetra-0", "tetra-1", "hexahedron-0", "hexahedron-1", "mixed"])
+@pytest.mark.parametrize("ratio", [1.2, 1.6, 50.0])
+def test_compiled_size_jumps_equal_numpy(case, ratio, monkeypatch):
+    """Compiled cell sizes and size jumps (MESHCHECK_KERNELS=numba) against the numpy
+    reference: sizes bitwise, the same count, largest ratio, listed pairs and values."""
+    if case == "mixed":
+        mesh = _mixed_sizes_mesh()
+    else:
+        kind, seed = case.split("-")
+        mesh = _random_sizes_mesh(kind, int(seed))
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    topo = build_topology(mesh)
+    ref_size = cell_sizes(topo)
+    ref = size_jumps(mesh, topo, ratio=ratio, max_listed=7)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    from meshcheck import gradation
+
+    def boom(*a, **k):
+        raise AssertionError("numpy pairs built on the compiled path")
+    monkeypatch.setattr(gradation, "neighbour_pairs", boom)
+    got_size = cell_sizes(topo)
+    got = size_jumps(mesh, topo, ratio=ratio, max_listed=7)
+    np.testing.assert_array_equal(got_size, ref_size)
+    assert got.count == ref.count and got.max_ratio == ref.max_ratio and got.ratio == ref.ratio
+    for f in ("pairs", "ratios", "locations", "sizes"):
+        a, b = getattr(ref, f), getattr(got, f)
+        assert a.dtype == b.dtype and a.shape == b.shape, f
+        np.testing.assert_array_equal(b, a, err_msg=f)
+    if ratio < 50:
+        assert ref.count > 7  # more jumps than listed: the order of the list is tested
+    else:
+        assert ref.count == 0 and ref.max_ratio > 1
+
+
+def test_compiled_size_jumps_nan_zero_and_no_pairs(monkeypatch):
+    """A NaN size and a zero size (inf ratio) on both paths; a lone cell has no pairs."""
+    mesh = _random_sizes_mesh("hexahedron", 2)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    topo = build_topology(mesh)
+    length = topo.edges.length.copy()
+    length[topo.edges.cell_edges[0][3]] = 0.0      # cell 3: size 0
+    length[topo.edges.cell_edges[0][11, 0]] = np.nan  # cell 11: size NaN
+    import dataclasses
+    topo = dataclasses.replace(topo, edges=dataclasses.replace(topo.edges, length=length))
+    out = {}
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        out[mode] = size_jumps(mesh, topo, ratio=1.5, max_listed=5)
+    a, b = out["numpy"], out["numba"]
+    assert np.isinf(a.ratios[0]) and a.count == b.count and a.max_ratio == b.max_ratio
+    for f in ("pairs", "ratios", "locations", "sizes"):
+        np.testing.assert_array_equal(getattr(b, f), getattr(a, f), err_msg=f)
+    one = Mesh(mesh.points, (CellBlock("hexahedron", mesh.blocks[0].cells[:1], np.ones(1)),))
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        r = size_jumps(one, build_topology(one))
+        assert r.count == 0 and r.max_ratio == 1.0 and r.pairs.shape == (0, 2)

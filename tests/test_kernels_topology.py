@@ -195,8 +195,11 @@ def _both(fn, mesh, monkeypatch, *args):
         def boom(*a, **k):
             raise AssertionError("numpy reference called on the compiled path")
         for name in ("_sorted_groups", "_group_faces", "_block_volumes", "_components",
-                     "_per_label_bbox", "_duplicate_nodes", "cKDTree"):
+                     "_per_label_bbox", "_duplicate_nodes"):
             m.setattr(T, name, boom)
+        import scipy.spatial  # the numpy path imports its k-d tree from there, lazily
+
+        m.setattr(scipy.spatial, "cKDTree", boom)
         got = fn(mesh, *args)
     return ref, got
 
@@ -355,6 +358,52 @@ def test_unpacked_buckets_equal_numpy(name, monkeypatch):
     mesh = MESHES[name]()
     ref, got = _both(T.build_topology, mesh, monkeypatch)
     _same_topology(ref, got)
+
+
+@pytest.mark.parametrize("fanout", [1, 3])
+@pytest.mark.parametrize("name", ["tetra", "tetra10", "random-0", "mixed", "defects-1", "hub",
+                                  "pyramid", "quad9"])
+def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
+    # large meshes drop rows into coarse buckets first (edges, triangles) and write the
+    # edge numbers of the rows block by block: force those branches on small meshes,
+    # with 2 and 8 coarse buckets, and check they ran
+    from meshcheck.kernels import topology as kt
+
+    monkeypatch.setattr(T, "_FANOUT_BITS", fanout)
+    monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
+    calls = {"coarse_refine": [], "edge_emit_packed": []}
+    for fn in calls:
+        real = getattr(kt, fn)
+
+        def spy(*a, _real=real, _fn=fn):
+            calls[_fn].append(a[-1])
+            return _real(*a)
+        monkeypatch.setattr(kt, fn, spy)
+    mesh = MESHES[name]()
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    _same_topology(ref, got)
+    has_tri = any(len(f) == 3 for b in mesh.blocks if b.info.dim == 3 for f in b.info.faces)
+    assert len(calls["coarse_refine"]) == 1 + has_tri
+    assert len(calls["edge_emit_packed"]) == 1 and calls["edge_emit_packed"][0] > 0  # k2
+
+
+def test_coarse_bits_and_unscramble():
+    from meshcheck.kernels import topology as kt
+
+    assert T._coarse_bits(10) == 0 and T._coarse_bits(810_000) == 10
+    assert T._coarse_bits(28_600_000) == 15
+    rng = np.random.default_rng(3)
+    for n, k2 in ((1000, 4), (1024, 5), (7, 3)):
+        val = rng.integers(0, 1 << 40, n)
+        rows = rng.permutation(n)
+        # entries appended per block of 2**k2 rows, in the order of ``rows``
+        buf = np.empty(n, np.int64)
+        fill = np.arange(0, n + (1 << k2), 1 << k2)
+        for r in rows:
+            buf[fill[r >> k2]] = (val[r] << k2) | (r & ((1 << k2) - 1))
+            fill[r >> k2] += 1
+        kt.unscramble(buf, k2)
+        np.testing.assert_array_equal(buf, val)
 
 
 def test_small_meshes_do_not_load_numba():

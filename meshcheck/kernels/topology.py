@@ -510,12 +510,22 @@ def count_distinct_packed(ptr, packed, shift, n_values):
 
 @njit
 def edge_emit_packed(ptr, packed, shift, n_values, nodes, starts, inverse,
-                     bounds, widths, offsets):
+                     bounds, widths, offsets, k2):
     """:func:`edge_emit` from the unsorted packed buckets of :func:`edge_fill_packed`,
     each grouped by larger node in three passes (distinct values, counts, stable
     scatter) through a slot per node; ``packed`` is overwritten with the incidence.
-    offsets (n_blocks + 1,): first global cell id of every block, then the cell count."""
+    offsets (n_blocks + 1,): first global cell id of every block, then the cell count.
+
+    k2 > 0: ``inverse`` is written in two steps (:func:`unscramble`): (edge << k2 | row
+    mod 2**k2) appended to the block of 2**k2 rows holding the row, then every block
+    put in place, so the scattered writes stay within few streams and one small block
+    (edge ids below 2**(63 - k2))."""
     mask = (np.int64(1) << shift) - 1
+    rmask = (np.int64(1) << k2) - 1
+    n_rows = inverse.shape[0]
+    rfill = np.empty(((n_rows - 1) >> k2) + 2 if k2 > 0 else 1, np.int64)
+    for c in range(rfill.shape[0]):
+        rfill[c] = c << k2
     longest = 0
     for b in range(ptr.shape[0] - 1):
         longest = max(longest, ptr[b + 1] - ptr[b])
@@ -569,10 +579,128 @@ def edge_emit_packed(ptr, packed, shift, n_values, nodes, starts, inverse,
             p = pos[j]
             pos[j] = p + 1
             packed[p] = g
-            inverse[bounds[blk] + (g - offsets[blk]) * widths[blk] + (v & 15)] = e0 + j
+            r = bounds[blk] + (g - offsets[blk]) * widths[blk] + (v & 15)
+            if k2 == 0:
+                inverse[r] = e0 + j
+            else:  # into the block of 2**k2 rows holding r, unscrambled below
+                q = rfill[r >> k2]
+                rfill[r >> k2] = q + 1
+                inverse[q] = ((e0 + j) << k2) | (r & rmask)
         for j in range(d):
             slot[vals[j]] = -1
         e0 += d
+    if k2 > 0:
+        unscramble(inverse, k2)
+
+
+@njit
+def unscramble(inverse, k2):
+    """Put every block of 2**k2 entries of ``inverse`` (n,) int64 in place: an entry
+    (value << k2) | (index mod 2**k2) of block c goes to c * 2**k2 + index mod 2**k2
+    as value (the block holds exactly the indices c * 2**k2 .. (c + 1) * 2**k2 - 1)."""
+    width = np.int64(1) << k2
+    mask = width - 1
+    n = inverse.shape[0]
+    tmp = np.empty(width, np.int64)
+    for base in range(0, n, width):
+        m = min(width, n - base)
+        for i in range(m):
+            tmp[i] = inverse[base + i]
+        for i in range(m):
+            x = tmp[i]
+            inverse[base + (x & mask)] = x >> k2
+
+
+# ---------------------------------------------------------------------------
+# two-level bucket fill (most-significant-digit radix): the rows are first dropped in
+# coarse buckets of 2**k fine buckets (few write streams: they stay in cache), each
+# carrying its fine bucket mod 2**k in its low bits, then every coarse bucket is
+# counted and scattered into its fine buckets within a small range of memory.  Same
+# result as the one-level fill (stable: rows ascending in every bucket).
+
+
+@njit
+def edge_coarse_count(cells, la, lb, k, ccnt):
+    """ccnt[(lo >> k) + 1] += 1 for every local edge, lo its smaller node."""
+    for c in range(cells.shape[0]):
+        for j in range(la.shape[0]):
+            a = cells[c, la[j]]
+            b = cells[c, lb[j]]
+            ccnt[(min(a, b) >> k) + 1] += 1
+
+
+@njit
+def edge_coarse_fill(cells, la, lb, g0, k, cfill, tmp, shift):
+    """:func:`edge_fill_packed` into coarse buckets of 2**k nodes: tmp[cfill[lo >> k]]
+    = (packed value << k) | (lo mod 2**k), cfill advancing."""
+    w = la.shape[0]
+    low = (np.int64(1) << k) - 1
+    for c in range(cells.shape[0]):
+        for j in range(w):
+            a = cells[c, la[j]]
+            b = cells[c, lb[j]]
+            lo = min(a, b)
+            v = (max(a, b) << shift) | ((g0 + c) << 4) | j
+            p = cfill[lo >> k]
+            cfill[lo >> k] = p + 1
+            tmp[p] = (v << k) | (lo & low)
+
+
+@njit
+def coarse_refine(cptr, tmp, k, ptr, out):
+    """Scatter every coarse bucket cptr[c]:cptr[c + 1] of ``tmp`` (entries (value << k) |
+    fine bucket mod 2**k) into its fine buckets c * 2**k + i of ``out`` (values, rows
+    in order), filling the fine bucket starts ptr (n_buckets + 1,) on the way."""
+    nb = ptr.shape[0] - 1
+    width = np.int64(1) << k
+    low = width - 1
+    cnt = np.empty(width + 1, np.int64)
+    for c in range(cptr.shape[0] - 1):
+        s = cptr[c]
+        e = cptr[c + 1]
+        base = c << k
+        nf = min(width, nb - base)
+        if nf <= 0:
+            continue
+        for j in range(nf + 1):
+            cnt[j] = 0
+        for i in range(s, e):
+            cnt[(tmp[i] & low) + 1] += 1
+        cnt[0] = s
+        for j in range(nf):
+            cnt[j + 1] += cnt[j]
+            ptr[base + j] = cnt[j]
+        for i in range(s, e):
+            x = tmp[i]
+            f = x & low
+            p = cnt[f]
+            cnt[f] = p + 1
+            out[p] = x >> k
+    ptr[nb] = cptr[cptr.shape[0] - 1]
+
+
+@njit
+def tri_coarse_count(cells, table, opp, ce, k, ccnt):
+    """ccnt[(edge >> k) + 1] += 1 for every local triangle (see :func:`tri_count_edges`)."""
+    for c in range(cells.shape[0]):
+        for j in range(table.shape[0]):
+            e, top, code = _tri_edge(cells, c, table, opp, ce, j)
+            ccnt[(e >> k) + 1] += 1
+
+
+@njit
+def tri_coarse_fill(cells, table, opp, ce, g0, k, cfill, tmp, shift):
+    """:func:`tri_fill_edges` into coarse buckets of 2**k edges: tmp[cfill[edge >> k]] =
+    (packed value << k) | (edge mod 2**k), cfill advancing."""
+    w = table.shape[0]
+    low = (np.int64(1) << k) - 1
+    for c in range(cells.shape[0]):
+        for j in range(w):
+            e, top, code = _tri_edge(cells, c, table, opp, ce, j)
+            v = (top << shift) | ((g0 + c) << 7) | (j << 4) | code
+            p = cfill[e >> k]
+            cfill[e >> k] = p + 1
+            tmp[p] = (v << k) | (e & low)
 
 
 @njit
@@ -811,34 +939,6 @@ def corner_hash(cells, k, mult, out):
             h += np.uint64(s[i]) * mult[i]
         h ^= h >> np.uint64(29)
         out[c] = h
-
-
-@njit
-def repeated(h):
-    """(n,) bool: h[i] occurs more than once in h (uint64), by open addressing."""
-    n = h.shape[0]
-    size = 1
-    while size < 2 * n:
-        size *= 2
-    mask = np.uint64(size - 1)
-    keys = np.empty(size, np.uint64)
-    state = np.zeros(size, np.uint8)  # 0 empty, 1 seen once, 2 seen more
-    slot = np.empty(n, np.int64)
-    for i in range(n):
-        x = h[i]
-        j = ((x * np.uint64(0x9E3779B97F4A7C15)) >> np.uint64(20)) & mask
-        while state[j] != 0 and keys[j] != x:
-            j = (j + np.uint64(1)) & mask
-        if state[j] == 0:
-            keys[j] = x
-            state[j] = 1
-        else:
-            state[j] = 2
-        slot[i] = j
-    out = np.empty(n, np.bool_)
-    for i in range(n):
-        out[i] = state[slot[i]] == 2
-    return out
 
 
 @njit
