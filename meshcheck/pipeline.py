@@ -220,13 +220,20 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
     chk = media.checks
     n = chk.max_listed
     out: list[Finding] = []
-    grad = size_jumps(mesh, topo, chk.gradation_ratio, n)
+    # the boundary-curvature check on a second core beside the size jumps (large meshes)
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        def curvature():
+            return check_curvature(mesh, topo, media.cell_speed, settings.fmax,
+                                   settings.advice.target, chk.feature_angle, n)
+
+        side = (pool.submit(curvature) if mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
+                else None)
+        grad = size_jumps(mesh, topo, chk.gradation_ratio, n)
+        curv = side.result() if side is not None else curvature()
     if grad.count:
         out.append(Finding("size_jumps", WARNING, f"neighbouring cells whose sizes differ by more "
                            f"than x{grad.ratio:g} (largest x{grad.max_ratio:.3g})", grad.count,
                            grad.pairs[:, 1], "cell", grad.locations))
-    curv = check_curvature(mesh, topo, media.cell_speed, settings.fmax, settings.advice.target,
-                           chk.feature_angle, n)
     if curv is not None and curv.misfit.any():
         out.append(Finding("curved_boundary_straight_faces", WARNING,
                            f"straight-sided boundary faces depart from the curved surface by more "

@@ -19,4 +19,9 @@ def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch):
         assert np.array_equal(par.quality[name], ser.quality[name], equal_nan=True), name
     assert [f.code for f in par.findings] == [f.code for f in ser.findings]
     assert np.array_equal(par.advice.cell_limit, ser.advice.cell_limit)
+    # the curvature check (beside the size jumps) and the size jumps themselves
+    for field in ("face_ids", "kappa", "rho", "chord_height", "misfit", "listed_cells"):
+        assert np.array_equal(getattr(par.curvature, field), getattr(ser.curvature, field),
+                              equal_nan=True), field
+    assert np.array_equal(par.gradation.pairs, ser.gradation.pairs)
     assert par.timings["analysis"] > 0
