@@ -27,7 +27,8 @@ from .mesh import Mesh
 from .threads import thread_map
 from .topology import Topology
 
-__all__ = ["AdviceSettings", "Advice", "Cluster", "Sweep", "advise", "sweep", "clusters"]
+__all__ = ["AdviceSettings", "Advice", "Cluster", "Sweep", "advise", "sweep", "clusters",
+           "region_runs"]
 
 TWO_PI = 2.0 * np.pi
 
@@ -132,6 +133,10 @@ class Advice:
 
     def region_limit(self, region: np.ndarray) -> dict[int, np.ndarray]:
         """Region tag -> (pmax,) highest usable frequency per order, Hz."""
+        runs = region_runs(region)
+        if runs is not None:  # regions in a few runs of cells: minima over views
+            return {tag: np.minimum.reduce([self.cell_limit[lo:hi].min(axis=0)
+                                            for lo, hi in r]) for tag, r in runs.items()}
         out = {}
         for tag in np.unique(region):
             out[int(tag)] = self.cell_limit[region == tag].min(axis=0)
@@ -141,6 +146,25 @@ class Advice:
     def coarsen_ratio(self) -> np.ndarray:
         """(n_cells,) target size / current longest edge (above 1: could be coarser)."""
         return self.target_size / self.cell_size
+
+
+def region_runs(region: np.ndarray, max_runs: int = 256) -> dict[int, list] | None:
+    """Region tag -> [(lo, hi), ...] the runs of consecutive cells carrying it, in cell
+    order (tags ascending), when the (n_cells,) int64 tags form at most ``max_runs`` runs
+    (cells are usually grouped by region); None otherwise.  ``np.concatenate`` of
+    ``x[lo:hi]`` over a tag's runs equals ``x[region == tag]``."""
+    region = np.asarray(region)
+    if not len(region):
+        return {}
+    cuts = np.flatnonzero(region[1:] != region[:-1]) + 1
+    if len(cuts) >= max_runs:
+        return None
+    starts = np.concatenate([[0], cuts]).tolist()
+    ends = np.concatenate([cuts, [len(region)]]).tolist()
+    out: dict[int, list] = {}
+    for lo, hi in zip(starts, ends):
+        out.setdefault(int(region[lo]), []).append((lo, hi))
+    return dict(sorted(out.items()))
 
 
 def _edge_values(topo: Topology, cell_values: np.ndarray, reduce) -> np.ndarray:
@@ -264,11 +288,19 @@ def _alignment(mesh: Mesh, topo: Topology, kind: str) -> float:
             from .kernels import advice as _ka
             d = np.empty((len(ce), 3))
             c0, c1, _ = edges.indices(ce.shape[1])
-            m = _ka.longest_directions(np.ascontiguousarray(ce), c0, c1, topo.edges.length,
-                                       np.ascontiguousarray(b.cells, dtype=np.int64),
-                                       np.ascontiguousarray(b.info.edges[:, :2], dtype=np.int64),
-                                       np.ascontiguousarray(mesh.points, dtype=float), d)
-            d = d[:m]
+            ce = np.ascontiguousarray(ce)
+            cells = np.ascontiguousarray(b.cells, dtype=np.int64)
+            local = np.ascontiguousarray(b.info.edges[:, :2], dtype=np.int64)
+            pts = np.ascontiguousarray(mesh.points, dtype=float)
+            # in chunks on the cores, each filling its rows of d from the top
+            ranges = _chunks(len(ce), 2 if len(ce) > 100_000 else 1)
+            got = thread_map(lambda r: _ka.longest_directions(
+                ce[r[0]:r[1]], c0, c1, topo.edges.length, cells[r[0]:r[1]], local, pts,
+                d[r[0]:r[1]]), ranges, parallel=len(ranges) > 1)
+            if all(m == hi - lo for m, (lo, hi) in zip(got, ranges)):
+                pass  # every direction finite: d is complete
+            else:
+                d = np.concatenate([d[lo:lo + m] for m, (lo, hi) in zip(got, ranges)])
             T += d.T @ d
             count += len(d)
             continue
@@ -504,16 +536,22 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
         _ka.edge_orders(r[0], r[1], *args, float(fmax), P, edge_order, edge_limit, row, F)
 
     thread_map(edges, _chunks(n_e, 2 if par else 1), parallel=par)
-    thread_map(lambda r: _ka.gov_rows(gov, row, F, r[0], r[1], cell_limit),
+    # each cell's limits, longest edge and its size factor; with no cell taking the
+    # minimum over its edges the same pass finishes the limits (running maximum, orders)
+    cell_size, a_gov = np.empty(n_cells), np.empty(n_cells)
+    finish = not len(exact)
+    thread_map(lambda r: _ka.gov_rows(gov, row, F, r[0], r[1], cell_limit, h, code, A,
+                                      cell_size, a_gov, finish, float(fmax), P, cell_order,
+                                      refine),
                _chunks(n_cells, 2 if par else 1), parallel=par)
-    if len(exact):
+    if not finish:
         for ce, lo, hi in zip(blocks, offs[:-1], offs[1:]):
             rows = exact[(exact >= lo) & (exact < hi)] - lo
             if len(rows):
                 _ka.exact_limits(ce, rows, int(lo), *args, cell_limit)
-    thread_map(lambda r: _ka.finish_limits(cell_limit, r[0], r[1], float(fmax), P, cell_order,
-                                           refine), _chunks(n_cells, 2 if par else 1),
-               parallel=par)
+        thread_map(lambda r: _ka.finish_limits(cell_limit, r[0], r[1], float(fmax), P,
+                                               cell_order, refine),
+                   _chunks(n_cells, 2 if par else 1), parallel=par)
 
     def cell_max(values):
         out = np.empty(n_cells)
@@ -522,7 +560,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
             _ka.per_cell_max(ce, v, out, int(off))
         return out
 
-    cell_size = h[gov]  # the longest edge (NaN if one is NaN, like np.maximum)
+    # cell_size = h[gov], the longest edge (NaN if one is NaN, like np.maximum)
     k = TWO_PI * fmax / cell_speed
     if flow is not None:
         k = k * cell_max(flow)
@@ -533,8 +571,8 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
         size = table.max_size(P, k, cell_L)
     if len(corr.mixed):
         a_cell = cell_max(corr.at(P))
-    else:  # all edges of a cell carry one factor: its longest edge's
-        a_cell = A[code[gov], P - 1]
+    else:  # all edges of a cell carry one factor: its longest edge's, A[code[gov], P - 1]
+        a_cell = a_gov
     target_size = size / a_cell
     with np.errstate(divide="ignore", invalid="ignore"):
         coarsen = target_size >= settings.coarsen_factor * cell_size

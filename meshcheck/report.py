@@ -9,12 +9,15 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
 
 from . import __version__
+from .advice import region_runs
 from .pipeline import AuditResult
+from .threads import thread_map
 from . import vtkxml
 from .units import UNIT_FACTORS
 
@@ -74,22 +77,22 @@ def _cluster(c, scale: float) -> dict:
 
 
 def _quality(res: AuditResult, scale: float, n_worst: int = 10) -> dict:
-    out = {}
     lim = res.settings.quality
-    for name, values in res.quality.metrics.items():
-        ok = np.isfinite(values)
-        if not ok.any():
+    names = [n for n, v in res.quality.metrics.items()]
+    # the metrics are independent (partitions and reductions release the GIL): on the cores
+    stats = thread_map(lambda n: _metric_stats(res.quality.metrics[n], METRIC_BAD.get(n, "high"),
+                                               n_worst),
+                       names, parallel=res.mesh.n_cells > 200_000)
+    out = {}
+    for name, st in zip(names, stats):
+        if st is None:
             continue
-        v = values[ok]
-        ids = np.flatnonzero(ok)
-        bad = METRIC_BAD.get(name, "high")
-        worst = ids[_smallest(v if bad == "low" else -v, n_worst)]
-        flags = res.quality_flags.get(name, np.zeros(len(values), bool))
-        p05, p95 = np.percentile(v, [5, 95])  # one partition for both
+        values = res.quality.metrics[name]
+        worst, bad = st.pop("worst"), METRIC_BAD.get(name, "high")
+        flags = res.quality_flags.get(name)
         out[name] = {
-            "cells": int(ok.sum()), "min": float(v.min()), "p05": float(p05),
-            "median": float(np.median(v)), "p95": float(p95),
-            "max": float(v.max()), "out_of_range": int(flags.sum()), "worse_when": bad,
+            **st, "out_of_range": int(np.count_nonzero(flags)) if flags is not None else 0,
+            "worse_when": bad,
             "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
             "worst": [{"cell": int(i), "value": float(values[i]),
                        "type": res.mesh.cell_type_of(int(i)),
@@ -98,6 +101,29 @@ def _quality(res: AuditResult, scale: float, n_worst: int = 10) -> dict:
                       for i, c in zip(worst, res.mesh.centroids_of(worst))],
         }
     return out
+
+
+def _metric_stats(values: np.ndarray, bad: str, n_worst: int) -> dict | None:
+    """Cells, min, 5th percentile, median, 95th percentile and max of the finite values
+    of one quality metric ((n_cells,) float64), and the ids of the ``n_worst`` worst cells
+    (``bad`` "low" or "high"); None when no value is finite.  One partition gives the
+    three quantiles (the same values as ``np.percentile`` and ``np.median``)."""
+    ok = np.isfinite(values)
+    n_ok = int(np.count_nonzero(ok))
+    if not n_ok:
+        return None
+    every = n_ok == len(values)
+    v = values.copy() if every else values[ok]
+    pos = _smallest(v, n_worst) if bad == "low" else _largest(v, n_worst)
+    worst = pos if every else np.flatnonzero(ok)[pos]
+    lo, hi = float(v.min()), float(v.max())
+    # np.percentile partitions v in place at the neighbours of the three quantiles, among
+    # them np.median's middle elements (n // 2 - 1 and n // 2, or n // 2)
+    p05, _, p95 = np.percentile(v, [5, 50, 95], overwrite_input=True)
+    mid = n_ok // 2
+    median = np.mean(v[mid - 1:mid + 1] if n_ok % 2 == 0 else v[mid:mid + 1])
+    return {"cells": n_ok, "min": lo, "p05": float(p05), "median": float(median),
+            "p95": float(p95), "max": hi, "worst": worst}
 
 
 def _smallest(v: np.ndarray, k: int) -> np.ndarray:
@@ -110,6 +136,33 @@ def _smallest(v: np.ndarray, k: int) -> np.ndarray:
     return cand[np.lexsort((cand, v[cand]))][:k]
 
 
+def _largest(v: np.ndarray, k: int) -> np.ndarray:
+    """``_smallest(-v, k)`` without the negated copy: indices of the k largest values of
+    v, descending, ties by index."""
+    if len(v) <= k:
+        return np.lexsort((np.arange(len(v)), -v))
+    cut = np.partition(v, len(v) - k)[len(v) - k]
+    cand = np.flatnonzero(v >= cut)
+    return cand[np.lexsort((cand, -v[cand]))][:k]
+
+
+def _region_cells(region: np.ndarray, cell_volume: np.ndarray, region_lim: dict):
+    """(tag, limits, cells, first cell id, volume m^3) per region of ``region_lim``: the
+    count, first cell and sum of |volume| of the cells of the tag (the sum over
+    ``cell_volume[region == tag]``, from views when the regions form a few runs)."""
+    runs = region_runs(region)
+    for tag, lim in region_lim.items():
+        if runs is not None:
+            r = runs[tag]
+            vals = (cell_volume[r[0][0]:r[0][1]] if len(r) == 1 else
+                    np.concatenate([cell_volume[lo:hi] for lo, hi in r]))
+            yield tag, lim, sum(hi - lo for lo, hi in r), r[0][0], float(np.abs(vals).sum())
+        else:
+            sel = region == tag
+            yield (tag, lim, int(np.count_nonzero(sel)), int(np.argmax(sel)),
+                   float(np.abs(cell_volume[sel]).sum()))
+
+
 def to_dict(res: AuditResult, cost: bool = True) -> dict:
     """The JSON report as plain Python data; ``cost`` False leaves out the quote of the
     sweep (the section is then null and ``assumptions.cost_quote`` says so)."""
@@ -117,14 +170,15 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
     scale = UNIT_FACTORS.get(m.unit, 1.0)
     pmax = a.pmax
     orders = list(range(1, pmax + 1))
+    # the file's checksum on a second thread (reading and hashing release the GIL)
+    pool = ThreadPoolExecutor(max_workers=1)
+    sha = pool.submit(_sha256, m.source)
+    pool.shutdown(wait=False)
     region_lim = a.region_limit(m.region)
-    speeds = {int(t): float(a.cell_speed[m.region == t][0]) for t in region_lim}
     regions = []
-    for tag, lim in region_lim.items():
-        sel = m.region == tag
-        regions.append({"tag": tag, "name": m.region_name(tag), "cells": int(sel.sum()),
-                        "volume_m3": float(np.abs(topo.cell_volume[sel]).sum()),
-                        "sound_speed_m_s": speeds[tag],
+    for tag, lim, cells, first, vol in _region_cells(m.region, topo.cell_volume, region_lim):
+        regions.append({"tag": tag, "name": m.region_name(tag), "cells": cells,
+                        "volume_m3": vol, "sound_speed_m_s": float(a.cell_speed[first]),
                         "limit_hz_per_order": {str(p): _f(lim[p - 1]) for p in orders}})
     counts = {b.type: len(b) for b in m.blocks}
     P = s.advice.allowed_order
@@ -139,7 +193,7 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
     return {
         "schema": SCHEMA, "schema_version": SCHEMA_VERSION, "meshcheck_version": __version__,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "input": {"file": m.source, "sha256": _sha256(m.source), "unit": m.unit,
+        "input": {"file": m.source, "sha256": sha.result(), "unit": m.unit,
                   "dimension": m.dim, "points": m.n_points, "cells": counts,
                   "bounding_box": (m.bounding_box / scale).tolist(), "regions": regions},
         "assumptions": {
@@ -439,8 +493,9 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
             "target_size": (a.target_size / scale).astype(f32),
             "coarsen_ratio": a.coarsen_ratio.astype(f32)}
     top = res.settings.advice.max_order
+    lim = np.ascontiguousarray(a.cell_limit[:, :top].T, dtype=f32)  # one cast, rows contiguous
     for p in range(1, top + 1):
-        data[f"limit_hz_p{p}"] = a.cell_limit[:, p - 1].astype(f32)
+        data[f"limit_hz_p{p}"] = lim[p - 1]
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
             data[f"quality_{name}"] = values.astype(f32)

@@ -241,16 +241,24 @@ def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
     assert np.array_equal(out, np.maximum.reduce(h[ce], axis=1), equal_nan=True)
 
 
-def test_the_compiled_path_is_taken(monkeypatch):
+KERNELS = ("governing_edges", "odd_cells", "longest_directions", "gov_rows", "exact_limits",
+           "finish_limits", "edge_orders", "per_cell_max", "order_hist", "dof_hist",
+           "face_dof_hist", "label_flagged", "cluster_stats")
+
+
+@pytest.mark.parametrize("name,expected", [
+    # two media, wedges: cells of mixed size factors, limits finished after the exact ones
+    ("hex+wedge", set(KERNELS)),
+    # one medium, one kind: the cell pass finishes the limits itself
+    ("tet", set(KERNELS) - {"odd_cells", "exact_limits", "finish_limits", "per_cell_max"})])
+def test_the_compiled_path_is_taken(monkeypatch, name, expected):
     # a comparison with itself would prove nothing: every kernel of the advice stage
     # runs under MESHCHECK_KERNELS=numba and none under numpy
-    mesh, topo = _mesh("hex+wedge")  # two media, wedges: cells of mixed size factors
+    mesh, topo = _mesh(name)
     calls = {}
-    for name in ("governing_edges", "odd_cells", "longest_directions", "gov_rows",
-                 "exact_limits", "finish_limits", "edge_orders", "per_cell_max",
-                 "order_hist", "dof_hist", "face_dof_hist", "label_flagged", "cluster_stats"):
-        fn = getattr(KA, name)
-        monkeypatch.setattr(KA, name, lambda *a, _fn=fn, _n=name: (
+    for kname in KERNELS:
+        fn = getattr(KA, kname)
+        monkeypatch.setattr(KA, kname, lambda *a, _fn=fn, _n=kname: (
             calls.__setitem__(_n, calls.get(_n, 0) + 1), _fn(*a))[1])
     for mode in ("numpy", "numba"):
         monkeypatch.setenv("MESHCHECK_KERNELS", mode)
@@ -261,10 +269,7 @@ def test_the_compiled_path_is_taken(monkeypatch):
         if mode == "numpy":
             assert not calls
         else:
-            assert set(calls) == {"governing_edges", "odd_cells", "longest_directions",
-                                  "gov_rows", "exact_limits", "finish_limits",
-                                  "edge_orders", "per_cell_max", "order_hist", "dof_hist",
-                                  "face_dof_hist", "label_flagged", "cluster_stats"}
+            assert set(calls) == expected
 
 
 def test_auto_mode_uses_numpy_for_small_meshes(monkeypatch):

@@ -1,11 +1,14 @@
-"""The JSON and Markdown reports state whether the 3D correction of the 1D model is applied."""
+"""The JSON and Markdown reports state whether the 3D correction of the 1D model is applied;
+the report's statistics equal their numpy references."""
 import json
+from types import SimpleNamespace
 
+import numpy as np
 import pytest
 
-from meshcheck.advice import AdviceSettings
+from meshcheck.advice import Advice, AdviceSettings, region_runs
 from meshcheck.pipeline import AuditSettings, audit
-from meshcheck.report import CORRECTION_3D, to_dict, write_markdown
+from meshcheck.report import CORRECTION_3D, _metric_stats, _region_cells, to_dict, write_markdown
 from meshes import tet_box
 
 
@@ -44,3 +47,62 @@ def test_markdown_states_the_correction(reports, corr):
     word = "applied" if corr else "not applied"
     assert f"3D correction of the 1D model {word}." in md  # the assumptions line
     assert f"- 3D correction of the 1D model: {CORRECTION_3D[corr]}." in md  # the method
+
+
+def _reference_stats(values, bad, k):
+    """What the report computed before one partition served all quantiles."""
+    from meshcheck.report import _smallest
+    ok = np.isfinite(values)
+    v = values[ok]
+    ids = np.flatnonzero(ok)
+    worst = ids[_smallest(v if bad == "low" else -v, k)]
+    p05, p95 = np.percentile(v, [5, 95])
+    return {"cells": int(ok.sum()), "min": float(v.min()), "p05": float(p05),
+            "median": float(np.median(v)), "p95": float(p95), "max": float(v.max()),
+            "worst": worst}
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 10, 11, 1000, 1001])
+@pytest.mark.parametrize("bad", ["low", "high"])
+def test_metric_stats_equal_numpys_percentile_median_and_sort(n, bad):
+    rng = np.random.default_rng(n)
+    for trial in range(4):
+        v = rng.normal(size=n)
+        if trial >= 1:  # ties
+            v = np.round(v, 1)
+        if trial >= 2 and n > 2:  # non-finite values are left out
+            v[rng.integers(0, n, max(1, n // 5))] = [np.nan, np.inf, -np.inf][trial % 3]
+        if trial == 3:
+            v[:] = np.nan if n < 3 else v
+        got = _metric_stats(v, bad, 10)
+        if not np.isfinite(v).any():
+            assert got is None
+            continue
+        ref = _reference_stats(v, bad, 10)
+        assert np.array_equal(got.pop("worst"), ref.pop("worst"))
+        assert got == ref  # floats to the bit
+        # a sorted copy states the same
+        s = np.sort(v[np.isfinite(v)])
+        assert got["min"] == s[0] and got["max"] == s[-1]
+
+
+@pytest.mark.parametrize("layout", ["one", "runs", "scattered"])
+def test_region_limits_cells_and_volumes_equal_the_masked_reference(layout):
+    rng = np.random.default_rng(5)
+    n = 3000
+    region = {"one": np.full(n, 4), "runs": np.repeat([3, 1, 3, 2], [700, 900, 400, 1000]),
+              "scattered": rng.integers(1, 4, n)}[layout]
+    runs = region_runs(region)
+    assert (runs is None) == (layout == "scattered")
+    lim = np.maximum.accumulate(rng.uniform(10.0, 1e3, (n, 5)), axis=1)
+    vol = rng.normal(size=n) * 1e-6
+    adv = SimpleNamespace(cell_limit=lim)
+    got = Advice.region_limit(adv, region)
+    tags = np.unique(region)
+    assert list(got) == tags.tolist()
+    for tag, cells_, first, v in [(t, c, f, x) for t, _, c, f, x in
+                                  _region_cells(region, vol, got)]:
+        sel = region == tag
+        assert np.array_equal(got[tag], lim[sel].min(axis=0))
+        assert cells_ == sel.sum() and first == np.flatnonzero(sel)[0]
+        assert v == float(np.abs(vol[sel]).sum())  # the same sum, to the bit

@@ -195,24 +195,31 @@ def exact_limits(ce, rows, start, h, c, ratio, good, code, A, base, step, scale,
             out[start + r, p] = m
 
 
+@njit(inline="always")
+def _finish_row(out, i, fmax, P, cell_order, refine):
+    """Running maximum of row i along the orders (np.maximum.accumulate, NaN
+    propagating), cell_order[i] and refine[i] (see :func:`finish_limits`)."""
+    pmax = out.shape[1]
+    m = out[i, 0]
+    cnt = 1 if m < fmax else 0
+    for p in range(1, pmax):
+        v = out[i, p]
+        if m == m and not v <= m:
+            m = v
+        out[i, p] = m
+        if m < fmax:
+            cnt += 1
+    cell_order[i] = 1 + cnt
+    refine[i] = out[i, P - 1] < fmax
+
+
 @njit
 def finish_limits(out, lo, hi, fmax, P, cell_order, refine):
     """Running maximum along the orders (np.maximum.accumulate), then
     cell_order[i] = 1 + #orders whose limit is below fmax, refine[i] = limit at the
     allowed order P below fmax, for cells lo <= i < hi."""
-    pmax = out.shape[1]
     for i in range(lo, hi):
-        m = out[i, 0]
-        cnt = 1 if m < fmax else 0
-        for p in range(1, pmax):
-            v = out[i, p]
-            if m == m and not v <= m:
-                m = v
-            out[i, p] = m
-            if m < fmax:
-                cnt += 1
-        cell_order[i] = 1 + cnt
-        refine[i] = out[i, P - 1] < fmax
+        _finish_row(out, i, fmax, P, cell_order, refine)
 
 
 @njit
@@ -264,14 +271,23 @@ def edge_orders(lo, hi, h, c, ratio, good, code, A, base, step, scale, top, fmax
 
 
 @njit
-def gov_rows(gov, row, F, lo, hi, out):
+def gov_rows(gov, row, F, lo, hi, out, h, code, A, size, a_gov, finish, fmax, P, cell_order,
+             refine):
     """out[i] = F[row[gov[i]]] for cells lo <= i < hi: each cell's limits are its
-    longest edge's (rows of :func:`edge_orders`)."""
+    longest edge's (rows of :func:`edge_orders`); size[i] = h[gov[i]] (m) and
+    a_gov[i] = A[code[gov[i]], P - 1] (its size factor at the allowed order); with
+    ``finish`` (no cell takes the minimum over its edges) also :func:`finish_limits` in
+    the same pass."""
     pmax = out.shape[1]
     for i in range(lo, hi):
-        r = row[gov[i]]
+        e = gov[i]
+        r = row[e]
         for p in range(pmax):
             out[i, p] = F[r, p]
+        size[i] = h[e]
+        a_gov[i] = A[code[e], P - 1]
+        if finish:
+            _finish_row(out, i, fmax, P, cell_order, refine)
 
 
 @njit
