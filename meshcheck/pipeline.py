@@ -24,7 +24,7 @@ from .layers import LayerCheck, check_layer
 from .mesh import Mesh
 from .quality import CellQuality, QualityLimits, mesh_quality, out_of_range
 from .reading import read_mesh
-from .threads import MAX_WORKERS
+from .threads import MAX_WORKERS, thread_map
 from .topology import Topology, build_topology
 from .validity import (BLOCKING, NOTE, Finding, ValiditySettings, check_validity,
                        min_scaled_jacobian)
@@ -198,9 +198,12 @@ def audit(mesh: Mesh, settings: AuditSettings,
     media = media_of(mesh, settings)
     adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
                  cell_mach=media.cell_mach if media.has_flow else None)
-    sw = sweep(mesh, topo, adv, np.asarray(settings.frequencies))
-    ref = clusters(mesh, topo, adv, adv.refine)
-    coa = clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)
+    # the sweep and the two cluster searches are independent once the advice is known
+    sw, ref, coa = thread_map(lambda job: job(), [
+        lambda: sweep(mesh, topo, adv, np.asarray(settings.frequencies)),
+        lambda: clusters(mesh, topo, adv, adv.refine),
+        lambda: clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)],
+        parallel=mesh.n_cells > OVERLAP_CELLS)
     done("advice")
     stage("geometry")
     extra = _geometry_checks(mesh, topo, media, adv, settings)

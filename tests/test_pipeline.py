@@ -24,4 +24,10 @@ def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch):
         assert np.array_equal(getattr(par.curvature, field), getattr(ser.curvature, field),
                               equal_nan=True), field
     assert np.array_equal(par.gradation.pairs, ser.gradation.pairs)
+    # the sweep and the cluster searches (run side by side on large meshes)
+    assert np.array_equal(par.sweep.dofs, ser.sweep.dofs)
+    assert np.array_equal(par.sweep.order_counts, ser.sweep.order_counts)
+    for a, b in ((par.refine_clusters, ser.refine_clusters),
+                 (par.coarsen_clusters, ser.coarsen_clusters)):
+        assert [(c.cells, c.volume) for c in a] == [(c.cells, c.volume) for c in b]
     assert par.timings["analysis"] > 0
