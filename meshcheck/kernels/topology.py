@@ -112,6 +112,21 @@ def _sift(a, s, root, n):
 
 
 @njit
+def _sort_head(values, d):
+    """Sort ``values[:d]`` ascending in place: insertion sort when short, heapsort otherwise."""
+    if d <= 4 * _INSERTION_MAX:
+        for i in range(1, d):
+            v = values[i]
+            j = i - 1
+            while j >= 0 and values[j] > v:
+                values[j + 1] = values[j]
+                j -= 1
+            values[j + 1] = v
+    else:
+        _heapsort(values, 0, d)
+
+
+@njit
 def _heapsort(a, s, e):
     """Sort a[s:e] ascending in place, O(k log k) (not stable: for distinct values;
     a hand-written sort compiles in a fraction of the time of numba's np.sort)."""
@@ -209,16 +224,7 @@ def sort_buckets(ptr, key, row, n_values):
                     slot[v] = 0
                     values[d] = v
                     d += 1
-            if d <= 4 * _INSERTION_MAX:
-                for i in range(1, d):
-                    v = values[i]
-                    j = i - 1
-                    while j >= 0 and values[j] > v:
-                        values[j + 1] = values[j]
-                        j -= 1
-                    values[j + 1] = v
-            else:
-                _heapsort(values, 0, d)
+            _sort_head(values, d)
             vs = values
             for j in range(d):
                 slot[vs[j]] = j
@@ -548,16 +554,7 @@ def edge_emit_packed(ptr, packed, shift, n_values, nodes, starts, inverse,
                 slot[h] = 0
                 vals[d] = h
                 d += 1
-        if d <= 4 * _INSERTION_MAX:
-            for i in range(1, d):
-                v = vals[i]
-                j = i - 1
-                while j >= 0 and vals[j] > v:
-                    vals[j + 1] = vals[j]
-                    j -= 1
-                vals[j + 1] = v
-        else:
-            _heapsort(vals, 0, d)
+        _sort_head(vals, d)
         for j in range(d):
             slot[vals[j]] = j
             pos[j + 1] = 0
