@@ -384,6 +384,11 @@ def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
         return _build_faces_compiled(mesh, edges)
     parts = [p for p in (_group_faces(mesh, 3, edges), _group_faces(mesh, 4, edges))
              if p is not None]
+    return _faces_of(parts)
+
+
+def _faces_of(parts) -> Faces:
+    """Faces from the (nodes, cells, count) groups of triangles and quadrilaterals."""
     if not parts:
         z = np.zeros(0, np.int64)
         return Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), z)
@@ -886,12 +891,7 @@ def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
 def _build_faces_compiled(mesh: Mesh, edges: Edges | None = None) -> Faces:
     parts = [p for p in (_group_faces_compiled(mesh, 3, edges), _group_faces_compiled(mesh, 4))
              if p is not None]
-    if not parts:
-        z = np.zeros(0, np.int64)
-        return Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), z)
-    if len(parts) == 1:
-        return Faces(*parts[0])
-    return Faces(*(np.concatenate([p[k] for p in parts]) for k in range(3)))
+    return _faces_of(parts)
 
 
 def _cell_volumes_compiled(mesh: Mesh) -> np.ndarray:
