@@ -4,6 +4,10 @@ Edges and faces are found by sorting integer keys built from their sorted
 node numbers (no hashing, no Python loop over cells).  Edge lengths of
 quadratic cells are the arc lengths of the parabola through the mid-node.
 
+Index arrays (edge and face nodes, cell edges, incidence, face cells and counts) are
+int32 whenever every index fits (:func:`index_type`): half the memory of int64 for
+the largest arrays of an audit.  Build keys from them in int64 (``a * np.int64(n)``).
+
 Large meshes (see :func:`meshcheck.kernels.use_compiled`) take the compiled
 kernels of :mod:`meshcheck.kernels.topology`, which give the same arrays (same
 numbering, order and dtypes) in a fraction of the time and memory; the numpy
@@ -21,7 +25,13 @@ from . import kernels
 from .mesh import Mesh
 
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
-           "build_topology", "edge_lengths"]
+           "build_topology", "edge_lengths", "index_type"]
+
+
+def index_type(n: int) -> np.dtype:
+    """dtype of the topology's index arrays for indices below ``n``: int32 when they
+    fit (``n <= 2**31 - 1``), else int64."""
+    return np.dtype(np.int32) if n <= 2**31 - 1 else np.dtype(np.int64)
 
 # 12-point Gauss-Legendre rule on [0, 1] for the arc length of a quadratic edge
 _GL_X, _GL_WT = np.polynomial.legendre.leggauss(12)
@@ -132,12 +142,13 @@ def edge_lengths(points: np.ndarray, a: np.ndarray, b: np.ndarray,
 class Edges:
     """Unique edges of a mesh.
 
-    nodes : (n_e, 2) int64 corner nodes (smaller first).
-    mid : (n_e,) int64 mid-node of quadratic edges, -1 for straight ones.
+    nodes : (n_e, 2) corner nodes (smaller first).
+    mid : (n_e,) mid-node of quadratic edges, -1 for straight ones.
     length : (n_e,) float64 metres (arc length for quadratic edges).
-    cell_edges : per block, (m, n_local_edges) int64 unique-edge id of each local edge.
-    incidence : (sum m * n_local_edges,) int64 global cell id of every local edge,
+    cell_edges : per block, (m, n_local_edges) unique-edge id of each local edge.
+    incidence : (sum m * n_local_edges,) global cell id of every local edge,
         sorted by unique edge; ``incidence_starts[e]`` is where edge e begins.
+    Integer arrays are of :func:`index_type` (int32 unless an index exceeds it).
     """
 
     nodes: np.ndarray
@@ -230,8 +241,7 @@ def build_edges(mesh: Mesh) -> Edges:
         widths.append(e.shape[0])
         lengths.append(len(b))
     if not keys:
-        z = np.zeros(0, np.int64)
-        return Edges(np.zeros((0, 2), np.int64), z, np.zeros(0), ())
+        return _no_edges(mesh)
     key = keys[0] if len(keys) == 1 else np.concatenate(keys)
     del keys
     order, starts, inverse, ukey = _sorted_groups(key, int(n) * int(n))
@@ -240,7 +250,11 @@ def build_edges(mesh: Mesh) -> Edges:
     np.floor_divide(ukey, n, out=nodes[:, 0])
     np.remainder(ukey, n, out=nodes[:, 1])
     del ukey
-    umid = np.full(len(starts), -1, np.int64)
+    n_e = len(starts)
+    node_t = index_type(mesh.n_points)
+    nodes = nodes.astype(node_t)
+    inverse = inverse.astype(index_type(n_e))
+    umid = np.full(n_e, -1, node_t)
     cell_edges, pos = [], 0
     for b, w, m in zip(mesh.blocks, widths, lengths):
         ce = inverse[pos:pos + w * m].reshape(m, w)
@@ -250,18 +264,28 @@ def build_edges(mesh: Mesh) -> Edges:
         pos += w * m
     length = edge_lengths(mesh.points, nodes[:, 0], nodes[:, 1], umid)
     incidence = _row_owner(order, widths, lengths, mesh.block_offsets[:-1])
-    return Edges(nodes, umid, length, tuple(cell_edges), incidence, starts)
+    return Edges(nodes, umid, length, tuple(cell_edges),
+                 incidence.astype(index_type(mesh.n_cells)),
+                 starts.astype(index_type(len(order))))
+
+
+def _no_edges(mesh: Mesh) -> Edges:
+    """The edges of a mesh without cells (index arrays of :func:`index_type`)."""
+    t = index_type(mesh.n_points)
+    return Edges(np.zeros((0, 2), t), np.zeros(0, t), np.zeros(0), (), np.zeros(0, t),
+                 np.zeros(0, t))
 
 
 @dataclass(frozen=True)
 class Faces:
     """Unique faces (triangles and quadrilaterals) of a volume mesh.
 
-    nodes : (n_f, 4) int64 corners in the outward orientation of ``cells[:, 0]``
+    nodes : (n_f, 4) corners in the outward orientation of ``cells[:, 0]``
         (-1 in the last column for triangles).
-    cells : (n_f, 2) int64 global ids of the cells on each side (-1 for none).
-    count : (n_f,) int64 number of cells sharing the face (1 boundary, 2 interior,
+    cells : (n_f, 2) global ids of the cells on each side (-1 for none).
+    count : (n_f,) int32 number of cells sharing the face (1 boundary, 2 interior,
         more = non-manifold).
+    nodes and cells are of :func:`index_type` (int32 unless an index exceeds it).
     """
 
     nodes: np.ndarray
@@ -316,7 +340,7 @@ def _tri_keys(mesh: Mesh, tables, edges: Edges | None):
             opposite = np.stack([table[t[:, 1], t[:, 2]], table[t[:, 2], t[:, 0]],
                                  table[t[:, 0], t[:, 1]]], axis=1)  # (f, 3)
             le = opposite[np.arange(len(t)), imax]
-            k = np.take_along_axis(edges.cell_edges[bi], le, axis=1)
+            k = np.take_along_axis(edges.cell_edges[bi], le, axis=1).astype(np.int64)
             k *= n
             k += np.maximum(np.maximum(x, y), z)
         else:
@@ -369,7 +393,8 @@ def _group_faces(mesh: Mesh, size: int, edges: Edges | None):
         cl = mesh.blocks[bi].cells
         flat = (r // widths[i] * cl.shape[1])[:, None] + t[r % widths[i]]
         corners[sel, :size] = np.take(cl.reshape(-1), flat)
-    return corners, cells, count.astype(np.int64)
+    return (corners.astype(index_type(mesh.n_points)), cells.astype(index_type(mesh.n_cells)),
+            count.astype(np.int32))
 
 
 def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
@@ -384,14 +409,19 @@ def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
         return _build_faces_compiled(mesh, edges)
     parts = [p for p in (_group_faces(mesh, 3, edges), _group_faces(mesh, 4, edges))
              if p is not None]
-    return _faces_of(parts)
+    return _faces_of(mesh, parts)
 
 
-def _faces_of(parts) -> Faces:
+def no_faces(mesh: Mesh) -> Faces:
+    """The faces of a mesh without volume cells (arrays of :func:`index_type`)."""
+    return Faces(np.zeros((0, 4), index_type(mesh.n_points)),
+                 np.zeros((0, 2), index_type(mesh.n_cells)), np.zeros(0, np.int32))
+
+
+def _faces_of(mesh: Mesh, parts) -> Faces:
     """Faces from the (nodes, cells, count) groups of triangles and quadrilaterals."""
     if not parts:
-        z = np.zeros(0, np.int64)
-        return Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), z)
+        return no_faces(mesh)
     if len(parts) == 1:
         return Faces(*parts[0])
     return Faces(*(np.concatenate([p[k] for p in parts]) for k in range(3)))
@@ -619,7 +649,7 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     used = np.zeros(mesh.n_points, bool)
     for b in mesh.blocks:
         used[b.cells] = True
-    empty = Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64), np.zeros(0, np.int64))
+    empty = no_faces(mesh)
     # (run one after the other: on threads they added 160 MiB of peak memory on 1M
     # tetrahedra for no measurable gain, the sorts being bound by memory bandwidth)
     faces = build_faces(mesh, edges) if mesh.dim == 3 else empty
@@ -697,9 +727,9 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
     from .kernels import topology as kt
 
     if not mesh.blocks:
-        z = np.zeros(0, np.int64)
-        return Edges(np.zeros((0, 2), np.int64), z, np.zeros(0), ())
+        return _no_edges(mesh)
     n = mesh.n_points
+    node_t = index_type(n)
     loc = [(b.info.edges[:, 0].copy(), b.info.edges[:, 1].copy()) for b in mesh.blocks]
     widths = [len(b.info.edges) for b in mesh.blocks]
     lengths = [len(b) for b in mesh.blocks]
@@ -733,14 +763,15 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
                 kt.edge_fill_packed(b.cells, la, lb, int(g0), fill, packed, shift)
             del fill
         n_e = kt.count_distinct_packed(ptr, packed, shift, n)
-        nodes = np.empty((n_e, 2), np.int64)
-        starts = np.empty(n_e, np.int64)
+        nodes = np.empty((n_e, 2), node_t)
+        starts = np.empty(n_e, index_type(n_rows))
         k2 = _coarse_bits(n_rows)
         if int(n_e).bit_length() + k2 > 63:
             k2 = 0
         kt.edge_emit_packed(ptr, packed, shift, n, nodes, starts, inverse, layout[0],
                             layout[1], mesh.block_offsets, k2)
         incidence = packed
+        del packed
     else:
         ptr = np.zeros(n + 1, np.int64)
         for b, (la, lb) in zip(mesh.blocks, loc):
@@ -755,12 +786,15 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
             row0 += w * len(b)
         del fill
         n_e = kt.sort_buckets(ptr, bhi, incidence, n)
-        nodes = np.empty((n_e, 2), np.int64)
-        starts = np.empty(n_e, np.int64)
+        nodes = np.empty((n_e, 2), node_t)
+        starts = np.empty(n_e, index_type(n_rows))
         kt.edge_emit(ptr, bhi, incidence, nodes, starts, inverse, *layout)
         del bhi
     del ptr
-    umid = np.full(n_e, -1, np.int64)
+    # the int64 scratch arrays narrowed to the index type, one at a time
+    inverse = inverse.astype(index_type(n_e), copy=False)
+    incidence = incidence.astype(index_type(mesh.n_cells), copy=False)
+    umid = np.full(n_e, -1, node_t)
     cell_edges, pos = [], 0
     for b, w, m in zip(mesh.blocks, widths, lengths):
         ce = inverse[pos:pos + w * m]
@@ -798,7 +832,7 @@ def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None):
         return _tri_by_edges(mesh, tables, edges, shift)
     first, cells, count = _faces_by_node(mesh, tables, blocks, widths,
                                          _row_layout(widths, lengths, offsets))
-    corners = np.full((len(first), 4), -1, np.int64)
+    corners = np.full((len(first), 4), -1, index_type(n))
     row0 = 0
     for b, (_, t), w in zip(blocks, tables, widths):
         kt.face_corners(b.cells, t, row0, first, corners)
@@ -853,9 +887,9 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
                               int(mesh.block_offsets[bi]), fill, packed, shift)
         del fill
     n_f = kt.sort_packed(ptr, packed, shift)
-    corners = np.empty((n_f, 4), np.int64)
-    cells = np.empty((n_f, 2), np.int64)
-    count = np.empty(n_f, np.int64)
+    corners = np.empty((n_f, 4), index_type(mesh.n_points))
+    cells = np.empty((n_f, 2), index_type(mesh.n_cells))
+    count = np.empty(n_f, np.int32)
     kt.tri_emit_packed(ptr, packed, shift, edges.nodes, corners, cells, count)
     return corners, cells, count
 
@@ -882,8 +916,8 @@ def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
     del fill
     n_f = kt.sort_buckets(ptr, bkey, brow, n)
     first = np.empty(n_f, np.int64)
-    cells = np.empty((n_f, 2), np.int64)
-    count = np.empty(n_f, np.int64)
+    cells = np.empty((n_f, 2), index_type(mesh.n_cells))
+    count = np.empty(n_f, np.int32)
     kt.face_emit(ptr, bkey, brow, first, cells, count, *layout)
     return first, cells, count
 
@@ -891,7 +925,7 @@ def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
 def _build_faces_compiled(mesh: Mesh, edges: Edges | None = None) -> Faces:
     parts = [p for p in (_group_faces_compiled(mesh, 3, edges), _group_faces_compiled(mesh, 4))
              if p is not None]
-    return _faces_of(parts)
+    return _faces_of(mesh, parts)
 
 
 def _cell_volumes_compiled(mesh: Mesh) -> np.ndarray:
@@ -975,8 +1009,7 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
     if mesh.dim == 3:
         faces = _build_faces_compiled(mesh, edges)
     else:
-        faces = Faces(np.zeros((0, 4), np.int64), np.zeros((0, 2), np.int64),
-                      np.zeros(0, np.int64))
+        faces = no_faces(mesh)
     vol = _cell_volumes_compiled(mesh)
     dup = _duplicate_nodes_compiled(mesh.points, used, edges, rel_tol)
     dup_cells = _duplicate_cells_compiled(mesh)

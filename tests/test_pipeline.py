@@ -1,9 +1,10 @@
 """The audit pipeline: overlapping stages give the serial result."""
 import numpy as np
+import pytest
 
 from meshcheck import pipeline
 from meshcheck.pipeline import AuditSettings, audit
-from meshes import tet_box
+from meshes import hex_box, tet10_box, tet_box
 
 
 def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch):
@@ -31,3 +32,49 @@ def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch):
                  (par.coarsen_clusters, ser.coarsen_clusters)):
         assert [(c.cells, c.volume) for c in a] == [(c.cells, c.volume) for c in b]
     assert par.timings["analysis"] > 0
+
+
+def _spread(mesh, stride):
+    """The mesh with node i renumbered i * stride (order kept); the unused nodes between
+    sit on node 0, so the bounding box is unchanged."""
+    from meshcheck.mesh import CellBlock, Mesh
+
+    pts = np.repeat(mesh.points[:1], mesh.n_points * stride, axis=0)
+    pts[::stride] = mesh.points
+    blocks = tuple(CellBlock(b.type, b.cells * stride, b.region) for b in mesh.blocks)
+    return Mesh(pts, blocks, mesh.region_names, mesh.dim, mesh.source, mesh.unit)
+
+
+@pytest.mark.parametrize("path", ["numpy", "numba"])
+@pytest.mark.parametrize("kind", ["tetra10", "hexahedron"])
+def test_node_numbers_past_the_int32_key_range_give_the_same_audit(kind, path, monkeypatch):
+    # the topology's index arrays are int32: keys such as a * (n + 1) + b built from them
+    # overflow int32 once n > 46,340; spreading the node numbers over 0..~10**5 makes such
+    # keys wrap many times (and lose their order), and the audit and the cost quote must
+    # not change
+    from meshcheck.cost import job_cost, job_cost_dict
+
+    monkeypatch.setenv("MESHCHECK_KERNELS", path)
+    mesh = tet10_box((3, 2, 2)) if kind == "tetra10" else hex_box((4, 3, 3))
+    stride = 100_000 // mesh.n_points
+    far = _spread(mesh, stride)
+    assert far.n_points ** 2 > 2**33
+    settings = AuditSettings((300.0, 600.0, 900.0))
+    a, b = audit(mesh, settings), audit(far, settings)
+    assert b.topology.edges.nodes.dtype == np.int32
+    assert np.array_equal(a.topology.edges.nodes * stride, b.topology.edges.nodes)
+    assert np.array_equal(a.topology.faces.cells, b.topology.faces.cells)
+    assert np.array_equal(a.topology.edges.length, b.topology.edges.length)
+    assert [f.code for f in a.findings] == [f.code for f in b.findings
+                                            if f.code != "unused_nodes"]
+    assert np.array_equal(a.advice.cell_limit, b.advice.cell_limit)
+    assert np.array_equal(a.sweep.dofs, b.sweep.dofs)
+    if kind == "tetra10":
+        assert np.array_equal(a.curvature.kappa, b.curvature.kappa, equal_nan=True)
+        assert a.quadratic.low == b.quadratic.low
+    else:
+        assert np.array_equal(a.directional.orders, b.directional.orders)
+    freqs = settings.frequencies
+    ca = job_cost_dict(job_cost(mesh, a.topology, a.advice, freqs))
+    cb = job_cost_dict(job_cost(far, b.topology, b.advice, freqs))
+    assert ca == cb

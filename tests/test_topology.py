@@ -227,3 +227,27 @@ def test_warped_hex_volume_equals_the_four_triangle_split():
             ref += np.einsum("ij,ij->i", c, np.cross(a + c, b + c))
     np.testing.assert_allclose(cell_volumes(mesh), ref / 6.0, rtol=1e-12)
     assert cell_volumes(mesh).sum() == pytest.approx(np.abs(ref / 6.0).sum(), rel=1e-12)
+
+
+def test_index_type_is_int32_while_indices_fit():
+    from meshcheck.topology import index_type
+
+    assert index_type(0) == index_type(2**31 - 1) == np.int32
+    assert index_type(2**31) == np.int64
+
+
+@pytest.mark.parametrize("path", ["numpy", "numba"])
+def test_index_arrays_are_int32(path, monkeypatch):
+    # int32 index arrays halve the memory of the largest arrays of an audit
+    monkeypatch.setenv("MESHCHECK_KERNELS", path)
+    mesh = tet10_box((2, 2, 1))
+    topo = build_topology(mesh)
+    e, f = topo.edges, topo.faces
+    for a in (e.nodes, e.mid, e.incidence, e.incidence_starts, *e.cell_edges, f.nodes,
+              f.cells, f.count):
+        assert a.dtype == np.int32
+    # the same edges as a Python set of node pairs built from the int64 cells
+    cells = mesh.blocks[0].cells
+    pairs = {tuple(sorted((int(c[a]), int(c[b])))) for c in cells
+             for a, b, _ in mesh.blocks[0].info.edges}
+    assert {tuple(map(int, r)) for r in e.nodes} == pairs
