@@ -201,6 +201,12 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
          speed, temperature, region_speed, distance, out: Optional[Path], quiet: bool,
          job: Optional[Path] = None, allow_outside: bool = False,
          correction_3d: bool = True, reports: str = "all", cost: bool = True) -> int:
+    from . import kernels
+
+    try:  # numba's set-up overlaps the imports and the reading of a large mesh
+        kernels.warm_up_async(mesh_path.stat().st_size)
+    except OSError:
+        pass  # read_mesh reports the file
     from .advice import AdviceSettings
     from .job import load_job
     from .pipeline import AuditSettings, audit

@@ -420,3 +420,23 @@ def test_small_meshes_do_not_load_numba():
     env = {k: v for k, v in __import__("os").environ.items() if k != "MESHCHECK_KERNELS"}
     subprocess.run([sys.executable, "-c", code], check=True, env=env,
                    cwd=Path(__file__).parent)
+
+
+def test_warm_up_loads_numba_only_for_large_files():
+    # the CLI starts loading numba on a thread for input files of WARM_UP_BYTES or more;
+    # never for smaller files or in numpy mode (run in fresh processes: numba unloaded)
+    import os
+    import subprocess
+    import sys
+
+    code = ("import sys; from meshcheck import kernels as k; "
+            "t = k.warm_up_async(int(sys.argv[1])); "
+            "t is None or t.join(); "
+            "print(t is not None, 'numba' in sys.modules)")
+    env = {k: v for k, v in os.environ.items() if k != "MESHCHECK_KERNELS"}
+    from meshcheck.kernels import WARM_UP_BYTES as big
+    for size, extra, want in ((big, {}, "True True"), (big - 1, {}, "False False"),
+                              (big, {"MESHCHECK_KERNELS": "numpy"}, "False False")):
+        out = subprocess.run([sys.executable, "-c", code, str(size)], check=True,
+                             env={**env, **extra}, capture_output=True, text=True)
+        assert out.stdout.split() == want.split(), (size, extra, out.stdout)

@@ -18,7 +18,7 @@ import functools
 import importlib.util
 import os
 
-__all__ = ["MIN_CELLS", "available", "use_compiled", "njit"]
+__all__ = ["MIN_CELLS", "available", "use_compiled", "njit", "warm_up_async"]
 
 #: smallest mesh (cells) for which ``auto`` takes the compiled kernels. Loading numba and
 #: the cached kernels costs about 1 s per process; measured analysis times (2 cores,
@@ -48,6 +48,40 @@ def use_compiled(n_items: int) -> bool:
     if m == "numpy" or not available():
         return False
     return m == "numba" or n_items >= MIN_CELLS
+
+
+#: input files of at least this many bytes start loading numba while they are read
+#: (about 16 bytes per tetrahedron in binary MSH, more in text formats: 250,000 cells
+#: take 4-30 MB)
+WARM_UP_BYTES = 16 << 20
+
+
+def _warm_up() -> None:
+    """Import numba and load one cached kernel (numba's code generator is set up once
+    per process, about 0.4 s, mostly outside the GIL)."""
+    import numpy as np
+
+    from . import topology as kt
+
+    kt.mark_used(np.zeros((1, 1), np.int64), np.zeros(1, bool))
+
+
+def warm_up_async(file_bytes: int):
+    """Start loading numba on a daemon thread when a file of ``file_bytes`` bytes is
+    likely to take the compiled kernels; returns the thread, or None."""
+    if mode() == "numpy" or file_bytes < WARM_UP_BYTES or not available():
+        return None
+    import threading
+
+    def run():
+        try:
+            _warm_up()
+        except Exception:  # the kernels' own first use reports any real problem
+            pass
+
+    t = threading.Thread(target=run, name="meshcheck-warm-up", daemon=True)
+    t.start()
+    return t
 
 
 def njit(fn=None, **options):
