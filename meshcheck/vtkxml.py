@@ -10,11 +10,14 @@ the last block, compressed size of each block, then the compressed blocks).
 Arrays are compressed one at a time, block by block on all cores, straight from
 the caller's memory; memory stays at one array's compressed bytes.  At level 0
 (large meshes) nothing is compressed: the file has no compressor and each array is
-its UInt64 byte count and raw bytes as one base64 stream, encoded in pieces.  The
-base64 text goes to a writer thread as it is made, so the writes overlap the
-encoding.  Connectivity is written as Int32 when the node count allows.  (Raw
-appended data would save the base64 step, but meshio 5.3's reader of raw data
-renumbers the offsets as it goes and can then mistake one array for another.)
+its UInt64 byte count and raw bytes as one base64 stream, encoded in pieces: by
+``binascii`` (the reference, which holds the GIL), or on the compiled path
+(:func:`meshcheck.kernels.use_compiled`) by :mod:`meshcheck.kernels.b64` on all cores
+into a few reused buffers, byte for byte the same file.  The base64 text goes to a
+writer thread as it is made, so the writes overlap the encoding.  Connectivity is
+written as Int32 when the node count allows.  (Raw appended data would save the
+base64 step, but meshio 5.3's reader of raw data renumbers the offsets as it goes
+and can then mistake one array for another.)
 Node orders are meshio's, which are VTK's.  The output is tested by re-reading
 it with meshio and with VTK's own reader.
 """
@@ -32,6 +35,8 @@ from xml.sax.saxutils import quoteattr
 
 import numpy as np
 
+from .kernels import use_compiled
+
 __all__ = ["write_vtu", "VTK_CELL_TYPES"]
 
 #: meshio cell type -> VTK cell type id (vtkCellType.h)
@@ -43,6 +48,7 @@ _VTK_TYPE = {np.dtype(np.int8): "Int8", np.dtype(np.uint8): "UInt8",
              np.dtype(np.float32): "Float32", np.dtype(np.float64): "Float64"}
 _BLOCK = 1 << 21  # bytes per compressed block (blocks are compressed in parallel)
 _CHUNK = 3 << 20  # bytes per base64 piece of an uncompressed array (a multiple of 3)
+_BUFFERS = 6  # base64 buffers of the compiled level-0 path (6 x 4 MiB in flight at most)
 _SLOT = 32  # characters reserved in each DataArray tag for ``offset="..."`` and blank padding
 
 
@@ -92,6 +98,49 @@ def _stored(arr: np.ndarray):
     yield binascii.b2a_base64(head + bytes(raw[:1]), newline=False)  # 9 bytes: no padding
     for i in range(1, n, _CHUNK):
         yield binascii.b2a_base64(raw[i:i + _CHUNK], newline=False)
+
+
+class _Pieces:
+    """The compiled twin of :func:`_stored`: the same base64 stream, its pieces encoded by
+    :func:`meshcheck.kernels.b64.encode_into` (which releases the GIL) on the pool's
+    threads, into :data:`_BUFFERS` preallocated buffers of 4/3 :data:`_CHUNK` bytes that the
+    writer thread hands back once written (so memory stays at those buffers)."""
+
+    def __init__(self, pool):
+        from .kernels import b64  # loads numba: only on the compiled path
+        self.b64, self.pool = b64, pool
+        self.alive = lambda: True  # the writer thread's is_alive, once it runs
+        self.free: queue.Queue = queue.Queue()
+        for _ in range(_BUFFERS):
+            self.free.put(np.empty(b64.encoded_length(_CHUNK), np.uint8))
+
+    def _buffer(self) -> np.ndarray:
+        while self.alive():
+            try:
+                return self.free.get(timeout=0.1)
+            except queue.Empty:
+                continue
+        raise _WriterStopped
+
+    def stored(self, arr: np.ndarray):
+        """(characters, piece) of one uncompressed array, as :func:`_stored`: a piece is
+        bytes (the first 9 bytes, by binascii) or (future of the text, its buffer)."""
+        raw = arr.reshape(-1).view(np.uint8)
+        n = len(raw)
+        head = np.array([n], dtype="<u8").tobytes()
+        first = binascii.b2a_base64(head + raw[:1].tobytes(), newline=False)
+        yield len(first), first
+        for i in range(1, n, _CHUNK):
+            src, buf = raw[i:i + _CHUNK], self._buffer()
+            yield (self.b64.encoded_length(len(src)),
+                   (self.pool.submit(self.b64.encode, src, buf), buf))
+
+    def release(self, buf: np.ndarray) -> None:
+        self.free.put(buf)
+
+
+class _WriterStopped(Exception):
+    """The writer thread stopped (its error is raised instead)."""
 
 
 def _deflated(arr: np.ndarray, level: int, pool):
@@ -172,7 +221,11 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     def drain(fh):
         try:
             while (piece := pending.get()) is not None:
-                fh.write(piece)
+                if isinstance(piece, tuple):  # (future of a compiled piece, its buffer)
+                    fh.write(piece[0].result())
+                    pieces.release(piece[1])
+                else:
+                    fh.write(piece)
         except BaseException as exc:  # reported by the producer
             failed.append(exc)
 
@@ -186,17 +239,29 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
         if failed:
             raise failed[0]
 
+    compiled = level == 0 and use_compiled(n_cells)
     with open(path, "wb") as fh, ThreadPoolExecutor(max_workers=workers) as pool:
+        pieces = _Pieces(pool) if compiled else None  # level 0 on both cores
         fh.write(head)
         writer = threading.Thread(target=drain, args=(fh,), daemon=True)
         writer.start()
+        if pieces is not None:
+            pieces.alive = writer.is_alive
         try:
             at = 0
             for k, (_, values, _) in enumerate(arrays):
                 head[where[k]:where[k] + _SLOT] = f'offset="{at}"'.ljust(_SLOT).encode()
-                for piece in (_deflated(values, level, pool) if level > 0 else _stored(values)):
+                if level > 0:
+                    stream = ((len(p), p) for p in _deflated(values, level, pool))
+                elif pieces is None:
+                    stream = ((len(p), p) for p in _stored(values))
+                else:
+                    stream = pieces.stored(values)
+                for size, piece in stream:
                     send(piece, writer)
-                    at += len(piece)
+                    at += size
+        except _WriterStopped:
+            pass  # its error is raised below
         finally:
             send(None, writer)
             writer.join()

@@ -1,4 +1,6 @@
 """Our VTU writer read back by meshio and by VTK's own XML reader."""
+import base64
+
 import meshio
 import numpy as np
 import pytest
@@ -171,3 +173,141 @@ def test_empty_grid(tmp_path, level):
     r.SetFileName(str(path))
     r.Update()
     assert r.GetOutput().GetNumberOfPoints() == 0 and r.GetOutput().GetNumberOfCells() == 0
+
+
+# ---------------------------------------------------------------------------
+# level 0 on the compiled path: meshcheck.kernels.b64 against Python's base64 (RFC 4648)
+
+LENGTHS = list(range(72)) + [3 * 4099, 3 * 4099 + 1, 3 * 4099 + 2, (3 << 20) + 1]
+
+
+@pytest.mark.parametrize("n", LENGTHS)
+def test_b64_encoder_equals_base64_module(n):
+    # byte for byte base64.b64encode (standard alphabet, "=" padding), from arrays, bytes and
+    # an unaligned slice, into a fresh buffer and into a longer one (nothing past the text)
+    from meshcheck.kernels import b64
+    rng = np.random.default_rng(n)
+    raw = rng.integers(0, 256, n + 1, dtype=np.uint8)
+    src = raw[1:]  # starts one byte into its buffer
+    want = base64.b64encode(src.tobytes())
+    assert len(want) == b64.encoded_length(n)
+    assert b64.encode(src).tobytes() == want
+    assert b64.encode(src.tobytes()).tobytes() == want
+    out = np.full(len(want) + 7, 255, np.uint8)
+    assert b64.encode_into(src, out, b64.PAIRS, b64.ALPHABET) == len(want)
+    assert out[:len(want)].tobytes() == want and (out[len(want):] == 255).all()
+
+
+def test_b64_encoder_every_byte_value_and_short_buffer():
+    # all 256 byte values in every position of a 3-byte group; a short buffer is refused
+    from meshcheck.kernels import b64
+    for shift in range(3):
+        src = np.roll(np.arange(256 * 3, dtype=np.uint8), shift)
+        assert b64.encode(src).tobytes() == base64.b64encode(src.tobytes())
+    with pytest.raises(ValueError):
+        b64.encode_into(np.zeros(4, np.uint8), np.zeros(7, np.uint8), b64.PAIRS, b64.ALPHABET)
+
+
+def _level0_case(make):
+    mesh = make((3, 2, 2))
+    b = mesh.blocks[0]
+    rng = np.random.default_rng(7)
+    m = len(b)
+    cd = {"f64": rng.random(m), "f32": rng.random(m).astype(np.float32),
+          "i32": rng.integers(-9, 9, m).astype(np.int32), "i8": (np.arange(m) % 5).astype(np.int8),
+          "vec": rng.random((m, 3))}
+    pd = {"p": rng.random(mesh.n_points), "u8": np.arange(mesh.n_points, dtype=np.uint8)}
+    return mesh, b, cd, pd
+
+
+@pytest.mark.parametrize("make", [tet_box, hex_box, tet10_box], ids=["tet", "hex", "tet10"])
+@pytest.mark.parametrize("chunk", [3 << 20, 3 * 37], ids=["one-piece", "many-pieces"])
+def test_level0_compiled_file_identical_to_binascii(tmp_path, monkeypatch, make, chunk):
+    # the same bytes from both paths; with small pieces (more pieces than buffers, ends of
+    # arrays at every residue) and read back by meshio and VTK
+    from meshcheck import vtkxml
+    from meshcheck.kernels import b64
+    monkeypatch.setattr(vtkxml, "_CHUNK", chunk)
+    monkeypatch.setattr(vtkxml, "_BUFFERS", 2)
+    calls = []
+    encode = b64.encode
+    monkeypatch.setattr(b64, "encode", lambda src, out: calls.append(len(src)) or encode(src, out))
+    mesh, b, cd, pd = _level0_case(make)
+    files = {}
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        n_calls = len(calls)
+        files[mode] = write_vtu(tmp_path / f"{mode}.vtu", mesh.points, [(b.type, b.cells)],
+                                cell_data=cd, point_data=pd, level=0)
+        assert (len(calls) > n_calls) == (mode == "numba")  # the kernel ran on that path only
+    assert files["numba"].read_bytes() == files["numpy"].read_bytes()
+    back = meshio.read(files["numba"])
+    assert np.array_equal(back.points, mesh.points) and np.array_equal(back.cells[0].data, b.cells)
+    for k, v in cd.items():
+        assert np.array_equal(back.cell_data[k][0], v), k
+    for k, v in pd.items():
+        assert np.array_equal(back.point_data[k], v), k
+    vtk = pytest.importorskip("vtk")
+    from vtk.util.numpy_support import vtk_to_numpy
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(files["numba"]))
+    r.Update()
+    g = r.GetOutput()
+    assert np.array_equal(vtk_to_numpy(g.GetPoints().GetData()), mesh.points)
+    for k, v in cd.items():
+        assert np.array_equal(vtk_to_numpy(g.GetCellData().GetArray(k)), v), k
+
+
+def test_level0_compiled_multi_piece_large_arrays(tmp_path, monkeypatch):
+    # real 3 MiB pieces: arrays over several pieces, mixed cells, identical to binascii
+    rng = np.random.default_rng(5)
+    n = 400_000
+    pts = rng.random((n, 3))
+    tets, hexes = rng.integers(0, n, (250_000, 4)), rng.integers(0, n, (150_000, 8))
+    cd = {"a": rng.random(400_000), "vec": rng.random((400_000, 3)).astype(np.float32)}
+    out = {}
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        out[mode] = write_vtu(tmp_path / f"{mode}.vtu", pts,
+                              [("tetra", tets), ("hexahedron", hexes)], cell_data=cd,
+                              level=0).read_bytes()
+    assert out["numba"] == out["numpy"]
+    back = meshio.read(tmp_path / "numba.vtu")
+    assert np.array_equal(back.points, pts) and np.array_equal(back.cells[1].data, hexes)
+    assert np.array_equal(np.concatenate(back.cell_data["vec"]), cd["vec"])  # split by block
+
+
+def test_level0_compiled_encoder_error_is_raised(tmp_path, monkeypatch):
+    # an error while encoding a piece (on the pool) reaches the caller; nothing hangs
+    from meshcheck import vtkxml
+    from meshcheck.kernels import b64
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 11)
+    calls = []
+    encode = b64.encode
+
+    def broken(src, out):
+        calls.append(1)
+        if len(calls) == 5:
+            raise RuntimeError("encoder broke")
+        return encode(src, out)
+
+    monkeypatch.setattr(b64, "encode", broken)
+    mesh = tet_box((3, 3, 3))
+    with pytest.raises(RuntimeError, match="encoder broke"):
+        write_vtu(tmp_path / "x.vtu", mesh.points, [("tetra", mesh.blocks[0].cells)], level=0)
+
+
+def test_small_level0_write_does_not_load_numba(tmp_path):
+    # auto mode below MIN_CELLS: binascii, and numba is never imported
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    code = ("import sys; from meshes import tet_box; from meshcheck.vtkxml import write_vtu; "
+            f"m = tet_box((3, 3, 3)); write_vtu({str(tmp_path / 'a.vtu')!r}, m.points, "
+            "[('tetra', m.blocks[0].cells)], level=0); "
+            "assert 'numba' not in sys.modules, 'numba loaded'")
+    env = {k: v for k, v in os.environ.items() if k != "MESHCHECK_KERNELS"}
+    subprocess.run([sys.executable, "-c", code], check=True, env=env, cwd=Path(__file__).parent)
