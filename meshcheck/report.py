@@ -483,22 +483,21 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
     scale = UNIT_FACTORS.get(m.unit, 1.0)
     cells = [(b.type, b.cells) for b in m.blocks]
 
-    f32 = np.float32
-    data = {"region": m.region.astype(np.int32),
-            "min_scaled_jacobian": res.min_scaled_jacobian.astype(f32),
-            "order_needed": a.cell_order.astype(np.int8),
-            "refine": a.refine.astype(np.int8),
-            "coarsen": a.coarsen.astype(np.int8),
-            "largest_edge": (a.cell_size / scale).astype(f32),
-            "target_size": (a.target_size / scale).astype(f32),
-            "coarsen_ratio": a.coarsen_ratio.astype(f32)}
-    top = res.settings.advice.max_order
-    lim = np.ascontiguousarray(a.cell_limit[:, :top].T, dtype=f32)  # one cast, rows contiguous
-    for p in range(1, top + 1):
-        data[f"limit_hz_p{p}"] = lim[p - 1]
+    f32, i8 = np.float32, np.int8
+    lazy = vtkxml.Deferred  # each array made when written, then dropped (1 array in memory)
+    data = {"region": lazy(lambda: m.region.astype(np.int32), np.int32),
+            "min_scaled_jacobian": lazy(lambda: res.min_scaled_jacobian.astype(f32), f32),
+            "order_needed": lazy(lambda: a.cell_order.astype(i8), i8),
+            "refine": lazy(lambda: a.refine.astype(i8), i8),
+            "coarsen": lazy(lambda: a.coarsen.astype(i8), i8),
+            "largest_edge": lazy(lambda: (a.cell_size / scale).astype(f32), f32),
+            "target_size": lazy(lambda: (a.target_size / scale).astype(f32), f32),
+            "coarsen_ratio": lazy(lambda: a.coarsen_ratio.astype(f32), f32)}
+    for p in range(1, res.settings.advice.max_order + 1):
+        data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.cell_limit[:, p - 1].astype(f32), f32)
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
-            data[f"quality_{name}"] = values.astype(f32)
+            data[f"quality_{name}"] = lazy(lambda v=values: v.astype(f32), f32)
     from .sizefield import size_point_data
     if compress is None:
         compress = m.n_cells <= VTU_COMPRESS_CELLS

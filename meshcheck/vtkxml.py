@@ -37,7 +37,7 @@ import numpy as np
 
 from .kernels import use_compiled
 
-__all__ = ["write_vtu", "VTK_CELL_TYPES"]
+__all__ = ["write_vtu", "Deferred", "VTK_CELL_TYPES"]
 
 #: meshio cell type -> VTK cell type id (vtkCellType.h)
 VTK_CELL_TYPES = {"triangle": 5, "quad": 9, "tetra": 10, "hexahedron": 12, "wedge": 13,
@@ -75,9 +75,31 @@ def _compressed(arr: np.ndarray, level: int, pool) -> tuple[bytes, list[bytes]]:
     return header, comp
 
 
-def _tag(name: str, arr: np.ndarray, ncomp: int, slot: int) -> str:
+class Deferred:
+    """A cell or point array made only when its turn to be written comes, then dropped
+    (the report's arrays need not all be in memory at once).
+
+    make : () -> (n,) or (n, ncomp) array of ``dtype`` (a type VTK names, not bool).
+    """
+
+    def __init__(self, make, dtype, ncomp: int = 1):
+        self.make, self.dtype, self.ncomp = make, np.dtype(dtype), int(ncomp)
+        if self.dtype not in _VTK_TYPE:
+            raise ValueError(f"dtype {self.dtype} has no VTK name")
+
+    def array(self, rows: int, name: str) -> np.ndarray:
+        """The array, checked against the declared dtype, rows and components."""
+        arr = _as_vtk(self.make())
+        ncomp = 1 if arr.ndim == 1 else arr.shape[1]
+        if arr.dtype != self.dtype or arr.shape[0] != rows or ncomp != self.ncomp:
+            raise ValueError(f"deferred array {name!r} is {arr.dtype} {arr.shape}, declared "
+                             f"{self.dtype} with {rows} rows and {self.ncomp} components")
+        return arr
+
+
+def _tag(name: str, dtype: np.dtype, ncomp: int, slot: int) -> str:
     comps = f' NumberOfComponents="{ncomp}"' if ncomp > 1 else ""
-    return (f'<DataArray type="{_VTK_TYPE[arr.dtype]}" Name={quoteattr(name)}{comps} '
+    return (f'<DataArray type="{_VTK_TYPE[dtype]}" Name={quoteattr(name)}{comps} '
             f'format="appended" {_slot_text(slot)}/>\n')
 
 
@@ -152,8 +174,9 @@ def _deflated(arr: np.ndarray, level: int, pool):
 
 
 def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.ndarray]],
-              cell_data: dict[str, np.ndarray] | None = None,
-              point_data: dict[str, np.ndarray] | None = None, level: int = 1) -> Path:
+              cell_data: dict[str, np.ndarray | Deferred] | None = None,
+              point_data: dict[str, np.ndarray | Deferred] | None = None,
+              level: int = 1) -> Path:
     """Write points (n, 3), cell blocks [(meshio type, (m, k) int)], and per-cell / per-point
     arrays (concatenated over the blocks, (n_cells,) or (n_cells, c)) as a .vtu file.
     ``level``: zlib level 1..9, or 0 for no compression (the file then has no compressor:
@@ -182,34 +205,40 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
         if blocks else np.zeros(0, np.uint8)
     n_cells = len(types)
 
-    arrays: list[tuple[str, np.ndarray, int]] = []  # (name, values, components)
+    arrays: list[tuple[str, np.ndarray | Deferred, int]] = []  # (name, values, rows)
     comp = ' compressor="vtkZLibDataCompressor"' if level > 0 else ""
     xml = ['<?xml version="1.0"?>\n<VTKFile type="UnstructuredGrid" version="1.0" '
            f'byte_order="LittleEndian" header_type="UInt64"{comp}>\n'
            f'<UnstructuredGrid>\n<Piece NumberOfPoints="{n_pts}" '
            f'NumberOfCells="{n_cells}">\n']
 
-    def add(name, values, ncomp=1):
-        values = _as_vtk(values)
-        xml.append(_tag(name, values, ncomp, len(arrays)))
-        arrays.append((name, values, ncomp))
+    def add(name, values, ncomp, rows):
+        if isinstance(values, Deferred):  # made when written
+            xml.append(_tag(name, values.dtype, values.ncomp, len(arrays)))
+        else:
+            values = _as_vtk(values)
+            xml.append(_tag(name, values.dtype, ncomp, len(arrays)))
+        arrays.append((name, values, rows))
 
     for tag, data, n in (("PointData", point_data, n_pts), ("CellData", cell_data, n_cells)):
         if not data:
             continue
         xml.append(f"<{tag}>\n")
         for name, values in data.items():
-            values = np.asarray(values)
-            if values.shape[0] != n:
-                raise ValueError(f"{tag} array {name!r} has {values.shape[0]} rows, expected {n}")
-            add(name, values, 1 if values.ndim == 1 else values.shape[1])
+            if not isinstance(values, Deferred):
+                values = np.asarray(values)
+                if values.shape[0] != n:
+                    raise ValueError(f"{tag} array {name!r} has {values.shape[0]} rows, "
+                                     f"expected {n}")
+            add(name, values, 1 if isinstance(values, Deferred) or values.ndim == 1
+                else values.shape[1], n)
         xml.append(f"</{tag}>\n")
     xml.append("<Points>\n")
-    add("Points", points, 3)
+    add("Points", points, 3, n_pts)
     xml.append("</Points>\n<Cells>\n")
-    add("connectivity", conn)
-    add("offsets", offsets)
-    add("types", types)
+    add("connectivity", conn, 1, n_conn)
+    add("offsets", offsets, 1, n_cells)
+    add("types", types, 1, n_cells)
     xml.append('</Cells>\n</Piece>\n</UnstructuredGrid>\n<AppendedData encoding="base64">\n_')
     head = "".join(xml).encode("ascii")
     where = [head.index(_slot_text(k).encode()) for k in range(len(arrays))]
@@ -249,8 +278,10 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
             pieces.alive = writer.is_alive
         try:
             at = 0
-            for k, (_, values, _) in enumerate(arrays):
+            for k, (name, values, rows) in enumerate(arrays):
                 head[where[k]:where[k] + _SLOT] = f'offset="{at}"'.ljust(_SLOT).encode()
+                if isinstance(values, Deferred):
+                    values = values.array(rows, name)
                 if level > 0:
                     stream = ((len(p), p) for p in _deflated(values, level, pool))
                 elif pieces is None:

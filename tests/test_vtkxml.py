@@ -311,3 +311,42 @@ def test_small_level0_write_does_not_load_numba(tmp_path):
             "assert 'numba' not in sys.modules, 'numba loaded'")
     env = {k: v for k, v in os.environ.items() if k != "MESHCHECK_KERNELS"}
     subprocess.run([sys.executable, "-c", code], check=True, env=env, cwd=Path(__file__).parent)
+
+
+@pytest.mark.parametrize("level", [0, 1])
+def test_deferred_arrays_write_the_same_file(tmp_path, level):
+    # arrays made only when written (the report's way to hold one array at a time)
+    from meshcheck.vtkxml import Deferred
+
+    m = tet_box((3, 2, 2))
+    cells = [(b.type, b.cells) for b in m.blocks]
+    rng = np.random.default_rng(5)
+    data = {"a": rng.random(m.n_cells).astype(np.float32),
+            "b": rng.integers(0, 9, m.n_cells).astype(np.int8),
+            "v": rng.random((m.n_cells, 3))}
+    made = []
+
+    def later(name):
+        return Deferred(lambda: made.append(name) or data[name], data[name].dtype,
+                        1 if data[name].ndim == 1 else data[name].shape[1])
+
+    eager = write_vtu(tmp_path / "eager.vtu", m.points, cells, cell_data=data, level=level)
+    lazy = write_vtu(tmp_path / "lazy.vtu", m.points, cells,
+                     cell_data={k: later(k) for k in data}, level=level)
+    assert eager.read_bytes() == lazy.read_bytes()
+    assert made == ["a", "b", "v"]  # each made once, in the file's order
+    back = meshio.read(lazy)
+    np.testing.assert_array_equal(back.cell_data["v"][0], data["v"])
+
+
+@pytest.mark.parametrize("bad", ["dtype", "rows", "components"])
+def test_deferred_array_not_as_declared_is_an_error(tmp_path, bad):
+    from meshcheck.vtkxml import Deferred
+
+    m = tet_box((2, 2, 2))
+    n = m.n_cells
+    arr = {"dtype": np.zeros(n, np.float64), "rows": np.zeros(n + 1, np.float32),
+           "components": np.zeros((n, 2), np.float32)}[bad]
+    with pytest.raises(ValueError, match="declared"):
+        write_vtu(tmp_path / "x.vtu", m.points, [(b.type, b.cells) for b in m.blocks],
+                  cell_data={"x": Deferred(lambda: arr, np.float32)})
