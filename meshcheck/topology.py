@@ -23,6 +23,7 @@ from scipy.sparse.csgraph import connected_components
 
 from . import kernels
 from .mesh import Mesh
+from .threads import thread_map
 
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
            "build_topology", "edge_lengths", "index_type"]
@@ -1006,13 +1007,14 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
 
     used = _used_compiled(mesh)
     edges = _build_edges_compiled(mesh)
-    if mesh.dim == 3:
-        faces = _build_faces_compiled(mesh, edges)
-    else:
-        faces = no_faces(mesh)
-    vol = _cell_volumes_compiled(mesh)
-    dup = _duplicate_nodes_compiled(mesh.points, used, edges, rel_tol)
-    dup_cells = _duplicate_cells_compiled(mesh)
+    # volumes and duplicates need no faces: beside them on a second thread (the kernels
+    # and numpy's sort release the GIL)
+    tail = thread_map(lambda job: job(), [
+        lambda: _build_faces_compiled(mesh, edges) if mesh.dim == 3 else no_faces(mesh),
+        lambda: (_cell_volumes_compiled(mesh),
+                 _duplicate_nodes_compiled(mesh.points, used, edges, rel_tol),
+                 _duplicate_cells_compiled(mesh))])
+    faces, (vol, dup, dup_cells) = tail
     parent = np.arange(mesh.n_cells, dtype=kt.index_dtype(mesh.n_cells))
     if mesh.dim == 3:
         n_comp, comp = kt.components_faces(parent, faces.cells, faces.count)
