@@ -168,8 +168,10 @@ def region_runs(region: np.ndarray, max_runs: int = 256) -> dict[int, list] | No
 
 
 def _edge_values(topo: Topology, cell_values: np.ndarray, reduce) -> np.ndarray:
+    """(n_e,) reduction of a cell quantity over the cells of every edge; one value on all
+    cells gives a read-only broadcast of it (no (n_e,) array)."""
     if len(cell_values) and np.all(cell_values == cell_values[0]):
-        return np.full(len(topo.edges), cell_values[0])
+        return np.broadcast_to(cell_values[:1], (len(topo.edges),))
     return topo.edges.from_cells(cell_values, reduce)
 
 
@@ -284,25 +286,24 @@ def _alignment(mesh: Mesh, topo: Topology, kind: str) -> float:
     for b, ce in zip(mesh.blocks, topo.edges.cell_edges):
         if b.info.linear != kind or not len(ce):
             continue
-        if compiled:  # the same directions, one pass over the cells
+        if compiled:  # the same sum, one pass over the cells, no (n, 3) directions
             from .kernels import advice as _ka
-            d = np.empty((len(ce), 3))
             c0, c1, _ = edges.indices(ce.shape[1])
             ce = np.ascontiguousarray(ce)
-            cells = np.ascontiguousarray(b.cells, dtype=np.int64)
+            cells = np.ascontiguousarray(b.cells)
             local = np.ascontiguousarray(b.info.edges[:, :2], dtype=np.int64)
             pts = np.ascontiguousarray(mesh.points, dtype=float)
-            # in chunks on the cores, each filling its rows of d from the top
+
+            def part(r):  # a chunk of the cells on each core, its own 3x3 sum
+                Tr = np.zeros((3, 3))
+                m = _ka.longest_directions(ce[r[0]:r[1]], c0, c1, topo.edges.length,
+                                           cells[r[0]:r[1]], local, pts, Tr)
+                return Tr, m
+
             ranges = _chunks(len(ce), 2 if len(ce) > 100_000 else 1)
-            got = thread_map(lambda r: _ka.longest_directions(
-                ce[r[0]:r[1]], c0, c1, topo.edges.length, cells[r[0]:r[1]], local, pts,
-                d[r[0]:r[1]]), ranges, parallel=len(ranges) > 1)
-            if all(m == hi - lo for m, (lo, hi) in zip(got, ranges)):
-                pass  # every direction finite: d is complete
-            else:
-                d = np.concatenate([d[lo:lo + m] for m, (lo, hi) in zip(got, ranges)])
-            T += d.T @ d
-            count += len(d)
+            for Tr, m in thread_map(part, ranges, parallel=len(ranges) > 1):
+                T += Tr
+                count += m
             continue
         ce = ce[:, edges]
         e = ce[np.arange(len(ce)), np.argmax(topo.edges.length[ce], axis=1)]
@@ -429,14 +430,14 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
         flow = edge_flow_factor(mesh.points, topo.edges, cell_mach)
         edge_c = edge_c / flow  # wavenumber k * phi on the edge = speed c / phi
     edge_L = _edge_values(topo, cell_L, np.maximum)
-    good = np.isfinite(h) & (h > 0) & np.isfinite(edge_L) & np.isfinite(edge_c)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.where(good, edge_L / np.where(good, h, 1.0), 1.0)
     n_cells = mesh.n_cells
     P = settings.allowed_order
     if kernels.use_compiled(n_cells):
         return _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L,
-                                h, corr, edge_c, edge_L, good, ratio, flow)
+                                h, corr, edge_c, edge_L, flow)
+    good = np.isfinite(h) & (h > 0) & np.isfinite(edge_L) & np.isfinite(edge_c)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(good, edge_L / np.where(good, h, 1.0), 1.0)
     cell_limit = np.empty((n_cells, pmax))
     edge_order = np.full(len(h), pmax + 1, dtype=np.int64)
     edge_limit = None
@@ -474,9 +475,10 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
 
 
 def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L, h, corr,
-                     edge_c, edge_L, good, ratio, flow) -> Advice:
+                     edge_c, edge_L, flow) -> Advice:
     """The tail of :func:`advise` with the kernels of :mod:`meshcheck.kernels.advice`:
-    the same arrays as the numpy code (one pass over the cells, one over the edges)."""
+    the same arrays as the numpy code (one pass over the cells, one over the edges;
+    the edges' L / h and whether they are good are worked out in the kernels)."""
     from .kernels import advice as _ka
 
     P = settings.allowed_order
@@ -484,11 +486,14 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     blocks = [np.ascontiguousarray(ce) for ce in topo.edges.cell_edges]
     offs = mesh.block_offsets
     h = np.ascontiguousarray(h, dtype=float)
-    c = np.ascontiguousarray(edge_c, dtype=float)
-    L = np.ascontiguousarray(edge_L, dtype=float)
+    # a uniform speed or distance stays a broadcast scalar (stride 0)
+    c = edge_c if edge_c.strides == (0,) else np.ascontiguousarray(edge_c, dtype=float)
+    L = edge_L if edge_L.strides == (0,) else np.ascontiguousarray(edge_L, dtype=float)
     # the governing (longest) edge of every cell; cells whose edges differ in c or L, or
     # in size factor, take the minimum over their edges
-    gov = np.empty(n_cells, np.int64)
+    # cell and edge ids in 4 bytes when they fit (gov and owner are scratch arrays)
+    id_type = np.int32 if max(n_cells, n_e) < 2 ** 31 - 1 else np.int64
+    gov = np.empty(n_cells, id_type)
     odd = np.zeros(n_cells, bool)
     uniform = (np.ptp(c) == 0 if n_e else True) and (np.ptp(L) == 0 if n_e else True)
     par = n_e > 100_000
@@ -500,10 +505,10 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
             _ka.odd_cells(ce, h, c, L, odd, int(off))
     exact = np.union1d(np.flatnonzero(odd), corr.mixed)
     # size factors: code = bit 0 plain, bit j + 1 class j; A[code] = their maximum
-    code = corr.touched_plain.astype(np.int64)
+    code = corr.touched_plain.astype(np.uint8)  # (at most 3 classes: 4 bits)
     A = np.zeros((1 << (1 + len(corr.classes)), pmax))
     for j, (touched, _) in enumerate(corr.classes):
-        code |= touched.astype(np.int64) << (j + 1)
+        code |= touched.astype(np.uint8) << np.uint8(j + 1)
     for row in range(len(A)):  # as SizeCorrection.at: plain 1, classes their factor
         A[row] = np.where(row & 1, 1.0, 0.0)
         for j, (_, a) in enumerate(corr.classes):
@@ -513,11 +518,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     step = np.ascontiguousarray([s[1] for s in segs], dtype=float)
     n_r = table.log_r.size
     scale, top = float((n_r - 1) / table.log_r[-1]), float(n_r - 1)
-    if not np.all(ratio > 0):  # also False for NaN (as UsableKh.max_kh)
-        raise SettingsError("L/h ratios must be > 0")
-    ratio = np.ascontiguousarray(ratio, dtype=float)
-    good = np.ascontiguousarray(good)
-    args = (h, c, ratio, good, code, A, base, step, scale, top)
+    args = (h, c, L, code, A, base, step, scale, top)
     cell_limit = np.empty((n_cells, pmax))
     cell_order = np.empty(n_cells, np.int64)
     refine = np.empty(n_cells, bool)
@@ -525,25 +526,25 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     edge_limit = np.empty(n_e)
 
     # the limits at every order of the cells' longest edges (about half the edges, each
-    # shared by about two cells), computed once per edge with the edges' orders
-    row = np.full(n_e, -1, np.int64)
-    row[gov] = 0
-    marked = np.flatnonzero(row == 0)
-    row[marked] = np.arange(len(marked))
-    F = np.empty((len(marked), pmax))
+    # shared by about two cells), computed once per edge with the edges' orders and
+    # written into the row of the first cell it governs (its owner); with no cell taking
+    # the minimum over its edges that row is finished (running maximum, orders) there too
+    owner = np.full(n_e, -1, id_type)
+    _ka.mark_owners(gov, owner)
+    finish = not len(exact)
 
     def edges(r):
-        _ka.edge_orders(r[0], r[1], *args, float(fmax), P, edge_order, edge_limit, row, F)
+        return _ka.edge_orders(r[0], r[1], *args, float(fmax), P, edge_order, edge_limit,
+                               owner, cell_limit, finish, cell_order, refine)
 
-    thread_map(edges, _chunks(n_e, 2 if par else 1), parallel=par)
-    # each cell's limits, longest edge and its size factor; with no cell taking the
-    # minimum over its edges the same pass finishes the limits (running maximum, orders)
+    if sum(thread_map(edges, _chunks(n_e, 2 if par else 1), parallel=par)):
+        raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
+    # the other cells copy their owner's row; every cell's longest edge and size factor
     cell_size, a_gov = np.empty(n_cells), np.empty(n_cells)
-    finish = not len(exact)
-    thread_map(lambda r: _ka.gov_rows(gov, row, F, r[0], r[1], cell_limit, h, code, A,
-                                      cell_size, a_gov, finish, float(fmax), P, cell_order,
-                                      refine),
+    thread_map(lambda r: _ka.gov_rows(gov, owner, r[0], r[1], cell_limit, h, code, A,
+                                      cell_size, a_gov, finish, P, cell_order, refine),
                _chunks(n_cells, 2 if par else 1), parallel=par)
+    del owner, gov
     if not finish:
         for ce, lo, hi in zip(blocks, offs[:-1], offs[1:]):
             rows = exact[(exact >= lo) & (exact < hi)] - lo
@@ -561,21 +562,24 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
         return out
 
     # cell_size = h[gov], the longest edge (NaN if one is NaN, like np.maximum)
-    k = TWO_PI * fmax / cell_speed
-    if flow is not None:
-        k = k * cell_max(flow)
-    if n_cells and np.all(k == k[0]) and np.all(cell_L == cell_L[0]):
+    if flow is None and n_cells and np.all(cell_speed == cell_speed[0]) and \
+            np.all(cell_L == cell_L[0]):
         # one wavenumber and one distance: one size for all cells (elementwise the same)
-        size = np.full(n_cells, table.max_size(P, k[:1], cell_L[:1])[0])
+        size = table.max_size(P, TWO_PI * fmax / cell_speed[:1], cell_L[:1])[0]
     else:
+        k = TWO_PI * fmax / cell_speed
+        if flow is not None:
+            k = k * cell_max(flow)
         size = table.max_size(P, k, cell_L)
+        del k
     if len(corr.mixed):
         a_cell = cell_max(corr.at(P))
     else:  # all edges of a cell carry one factor: its longest edge's, A[code[gov], P - 1]
         a_cell = a_gov
     target_size = size / a_cell
-    with np.errstate(divide="ignore", invalid="ignore"):
-        coarsen = target_size >= settings.coarsen_factor * cell_size
+    del size
+    with np.errstate(divide="ignore", invalid="ignore"):  # a_cell's buffer: the sizes x factor
+        coarsen = target_size >= np.multiply(cell_size, settings.coarsen_factor, out=a_cell)
     return Advice(settings, float(fmax), cell_limit, cell_size, cell_L, cell_speed,
                   edge_limit, edge_order, cell_order, target_size, refine, coarsen, flow)
 
@@ -673,14 +677,16 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
         a, b = np.repeat(inc[st], np.diff(np.append(st, len(inc)))), inc
     if compiled:  # union-find, components numbered as connected_components numbers them
         from .kernels import advice as _ka
-        lab = np.empty(len(ids), np.int64)
+        lab = np.empty(len(ids), np.int32 if n < 2 ** 31 - 1 else np.int64)
         m = np.ascontiguousarray(mask, dtype=bool)
+        parent = np.empty(n, np.int32 if n < 2 ** 31 - 1 else np.int64)
         if mesh.dim == 3:
             n_lab = _ka.label_flagged(m, np.ascontiguousarray(topo.faces.cells),
-                                      np.ascontiguousarray(topo.faces.count), 2, lab)
+                                      np.ascontiguousarray(topo.faces.count), 2, lab, parent)
         else:
             n_lab = _ka.label_flagged(m, np.column_stack([a, b]), np.zeros(len(a), np.int64),
-                                      0, lab)
+                                      0, lab, parent)
+        del parent
     else:
         keep = mask[a] & mask[b]
         local = np.full(n, -1, np.int64)
@@ -689,7 +695,8 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
                                (local[a[keep]], local[b[keep]])), shape=(len(ids), len(ids)))
         n_lab, lab = connected_components(g, directed=False)
     cnt = np.bincount(lab, minlength=n_lab)
-    w = np.abs(topo.cell_volume[ids])
+    w = topo.cell_volume[ids]
+    np.abs(w, out=w)
     vol = np.bincount(lab, weights=w, minlength=n_lab)
     if compiled:
         return _clusters_compiled(mesh, advice, ids, lab, cnt, w, vol, limit, max_ids)

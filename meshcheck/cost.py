@@ -154,9 +154,10 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int):
 
     Returns (order, hist, B): ``order`` sorts f (stable); hist (pmax, n_f + 1) int64,
     ``cumsum(hist[p])[k]`` = cells whose limit at order p + 1 is below ``f[order[k]]``;
-    B (n_cells, W) int16 (int32 from 32000 frequencies) bin of each cell's limit at
-    orders 1..ncol (-1 for NaN), W = ncol rounded up to a multiple of 8, the columns
-    past ncol set to n_f.
+    B (n_cells, W) bin + 1 of each cell's limit at orders 1..ncol (0 for NaN), in the
+    smallest unsigned type holding n_f + 1 (uint8 up to 254 frequencies: one byte per
+    cell and order for the random reads of :func:`_dofs_from_bins`), W = ncol rounded up
+    to a multiple of 8, the columns past ncol set to n_f + 1.
     """
     from .kernels import advice as _ka
 
@@ -164,9 +165,8 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int):
     fs = np.ascontiguousarray(f[order], dtype=float)
     lim = np.ascontiguousarray(cell_limits, dtype=float)
     hist = np.zeros((lim.shape[1], len(f) + 1), np.int64)
-    # bins fit int16 (n_f < 32767); padded to 8 or 16 columns of n_f (never counted)
-    dtype = np.int16 if len(f) < 32_000 else np.int32
-    B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f), dtype)
+    dtype = np.uint8 if len(f) < 255 else np.uint16 if len(f) < 65_535 else np.uint32
+    B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f) + 1, dtype)
     par = lim.shape[0] > 50_000
     chunks = _chunks(lim.shape[0], 2 if par else 1)
 

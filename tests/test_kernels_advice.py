@@ -4,9 +4,11 @@ the mesh alignment of the 3D correction, on meshes generated in code (tetrahedra
 quadratic tetrahedra, hexahedra, wedges, pyramids, hexahedra + wedges, 2D triangles and
 quadrilaterals), perturbed or exactly structured (ties between edge lengths), one or two
 media, with and without mean flow, fixed and variable order, with and without the 3D
-correction.  Integers and booleans must be equal; floats equal to 1e-12 relative (the
-kernels do the same operations in the same order, so they agree to the bit here; the
-tolerance leaves room for a libm that rounds a logarithm differently)."""
+correction, and with the topology's index arrays in int32.  Integers and booleans must be
+equal; floats equal to 1e-12 relative (the kernels do the same operations in the same
+order, so they agree to the bit here; the tolerance leaves room for a libm that rounds a
+logarithm differently).  The mesh alignment s of the 3D correction is a 3x3 sum that
+numpy takes as d.T @ d and the kernel cell by cell: equal to 1e-12 absolute (s in [0, 1])."""
 import dataclasses
 
 import numpy as np
@@ -17,7 +19,7 @@ pytest.importorskip("numba")
 import meshcheck.kernels.advice as KA  # noqa: E402
 from meshcheck import kernels  # noqa: E402
 from meshcheck.advice import AdviceSettings, _alignment, advise, clusters, sweep  # noqa: E402
-from meshcheck.cost import variable_order_dofs  # noqa: E402
+from meshcheck.cost import system_size, variable_order_dofs  # noqa: E402
 from meshcheck.mesh import CellBlock, Mesh  # noqa: E402
 from meshcheck.topology import build_topology  # noqa: E402
 from meshes import hex_box, tet10_box, tet_box  # noqa: E402
@@ -181,10 +183,25 @@ def test_sweep_of_limits_with_nan_and_many_frequencies(monkeypatch):
     lim = adv.cell_limit.copy()
     lim[::17, 3:] = np.nan
     odd = dataclasses.replace(adv, cell_limit=lim)
-    for f in (np.linspace(10.0, 5000.0, 1000), np.array([500.0]), np.array([3e3, 1e2, 3e3])):
+    # bins of one byte up to 254 frequencies, two bytes from 255 (bin + 1, 0 = NaN)
+    for f in (np.linspace(10.0, 5000.0, 1000), np.linspace(10.0, 5000.0, 254)[::-1],
+              np.linspace(10.0, 5000.0, 255), np.array([500.0]), np.array([3e3, 1e2, 3e3])):
         rs, gs = _both(monkeypatch, lambda: sweep(mesh, topo, odd, f))
         for field in ("order_counts", "ready", "dofs"):
             _same(rs.__dict__[field], gs.__dict__[field], field)
+
+
+@pytest.mark.parametrize("n_f,dtype", [(1, np.uint8), (254, np.uint8), (255, np.uint16),
+                                       (70_000, np.uint32)])
+def test_limit_bins_take_the_smallest_unsigned_type(n_f, dtype):
+    from meshcheck.cost import _limit_bins
+    lim = np.array([[1.0, 2.0], [np.nan, 5.0], [7.0, 7.0]])
+    f = np.linspace(0.5, 6.0, n_f)
+    order, hist, B = _limit_bins(lim, f, 2)
+    assert B.dtype == dtype and B.shape == (3, 8)
+    assert np.all(B[:, 2:] == n_f + 1) and B[1, 0] == 0  # padding never counted; NaN
+    assert np.array_equal(B[[0, 2], 0] - 1, np.searchsorted(f, lim[[0, 2], 0], side="right"))
+    assert np.array_equal(hist.sum(axis=1), [3, 3])
 
 
 def _clusters_equal(a, b):
@@ -224,9 +241,34 @@ def test_clusters_equal_the_numpy_reference(monkeypatch, name):
                                        ("hex+wedge", "wedge"), ("hex structured", "hexahedron"),
                                        ("hex half structured", "hexahedron")])
 def test_alignment_equals_the_numpy_reference(monkeypatch, name, kind):
+    # s in [0, 1] from a 3x3 sum that numpy takes as d.T @ d and the kernel cell by cell
+    # (in blocks): equal to rounding, 1e-12 absolute on s
     mesh, topo = _mesh(name)
     ref, got = _both(monkeypatch, lambda: _alignment(mesh, topo, kind))
-    assert ref == got
+    assert 0.0 <= ref <= 1.0
+    assert abs(ref - got) <= 1e-12
+
+
+@pytest.mark.parametrize("nan_points", [0, 40])
+def test_direction_sum_is_the_sum_of_d_dT(nan_points):
+    # more cells than one block of the kernel's sum (4096), and cells with NaN corners
+    # whose direction is skipped; T equal to d.T @ d of the numpy reference to 1e-12
+    mesh = _perturbed(tet_box((14, 12, 10)), 0.01, 12)
+    topo = build_topology(mesh)
+    pts = mesh.points.copy()
+    pts[np.random.default_rng(2).integers(0, len(pts), nan_points)] = np.nan
+    ce, b = topo.edges.cell_edges[0], mesh.blocks[0]
+    assert len(ce) > 2 * 4096
+    e = ce[np.arange(len(ce)), np.argmax(topo.edges.length[ce], axis=1)]
+    d = pts[topo.edges.nodes[e, 1]] - pts[topo.edges.nodes[e, 0]]
+    d = d[np.all(np.isfinite(d), axis=1)]
+    d /= np.maximum(np.linalg.norm(d, axis=1), 1e-300)[:, None]
+    T = np.zeros((3, 3))
+    n = KA.longest_directions(ce, 0, 6, topo.edges.length, b.cells,
+                              np.ascontiguousarray(b.info.edges[:, :2]), pts, T)
+    assert n == len(d) and (nan_points == 0) == (n == len(ce))
+    assert np.allclose(T, d.T @ d, rtol=0.0, atol=1e-12 * np.abs(d.T @ d).max())
+    assert np.array_equal(T, T.T)
 
 
 def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
@@ -241,9 +283,9 @@ def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
     assert np.array_equal(out, np.maximum.reduce(h[ce], axis=1), equal_nan=True)
 
 
-KERNELS = ("governing_edges", "odd_cells", "longest_directions", "gov_rows", "exact_limits",
-           "finish_limits", "edge_orders", "per_cell_max", "order_hist", "dof_hist",
-           "face_dof_hist", "label_flagged", "cluster_stats")
+KERNELS = ("governing_edges", "mark_owners", "odd_cells", "longest_directions", "gov_rows",
+           "exact_limits", "finish_limits", "edge_orders", "per_cell_max", "order_hist",
+           "dof_hist", "face_dof_hist", "label_flagged", "cluster_stats")
 
 
 @pytest.mark.parametrize("name,expected", [
@@ -276,3 +318,75 @@ def test_auto_mode_uses_numpy_for_small_meshes(monkeypatch):
     monkeypatch.setenv("MESHCHECK_KERNELS", "auto")
     assert not kernels.use_compiled(kernels.MIN_CELLS - 1)
     assert kernels.use_compiled(kernels.MIN_CELLS)
+
+
+def _int32_topology(topo):
+    """The topology with its index arrays (edge nodes, cell edges, incidence, face
+    nodes, cells and counts) cast to int32, as meshes whose counts fit store them."""
+    e, f = topo.edges, topo.faces
+    edges = dataclasses.replace(
+        e, nodes=e.nodes.astype(np.int32),
+        cell_edges=tuple(ce.astype(np.int32) for ce in e.cell_edges),
+        incidence=e.incidence.astype(np.int32),
+        incidence_starts=e.incidence_starts.astype(np.int32))
+    faces = dataclasses.replace(f, nodes=f.nodes.astype(np.int32),
+                                cells=f.cells.astype(np.int32), count=f.count.astype(np.int32))
+    return dataclasses.replace(topo, edges=edges, faces=faces)
+
+
+@pytest.mark.parametrize("setting", ["variable", "fixed p=2"])
+@pytest.mark.parametrize("name", ["tet", "hex+wedge", "pyramid", "triangle 2D"])
+def test_int32_topology_gives_the_int64_results(monkeypatch, name, setting):
+    # every kernel of the stage runs on int32 index arrays (numba compiles a variant):
+    # the same advice, sweep, unknowns, clusters and alignment as with int64
+    mesh, topo = _mesh(name)
+    t32 = _int32_topology(topo)
+    assert t32.edges.cell_edges[0].dtype == np.int32 and t32.edges.incidence.dtype == np.int32
+    s = SETTINGS[setting]
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    fmax = _fmax(mesh, topo, s)
+    f = np.linspace(0.2, 2.0, 30) * fmax
+    rng = np.random.default_rng(5)
+    mask = rng.random(mesh.n_cells) < 0.3
+    lim = rng.uniform(100.0, 3000.0, (mesh.n_cells, 12))
+    lim[rng.integers(0, mesh.n_cells, 3)] = np.nan
+    out = []
+    for t in (topo, t32):
+        adv = advise(mesh, t, _speeds(mesh), fmax, s)
+        sw = sweep(mesh, t, adv, f)
+        kinds = {b.info.linear for b in mesh.blocks} & {"tetra", "wedge"}
+        out.append((adv, sw, clusters(mesh, t, adv, adv.refine), clusters(mesh, t, adv, mask),
+                    variable_order_dofs(mesh, t, lim, f, 8),
+                    [_alignment(mesh, t, k) for k in sorted(kinds)]))
+    (a64, s64, r64, m64, d64, al64), (a32, s32, r32, m32, d32, al32) = out
+    for field in ADVICE_FIELDS:
+        _same(getattr(a64, field), getattr(a32, field), field)
+    for field in ("order_counts", "ready", "dofs"):
+        _same(getattr(s64, field), getattr(s32, field), field)
+    _clusters_equal(r64, r32)
+    _clusters_equal(m64, m32)
+    assert len(m64) > 1
+    _same(d64, d32, "variable-order unknowns")
+    assert al64 == al32
+    # the exact unknowns and non-zeros of the cost model (numpy) too
+    orders = rng.integers(1, 6, mesh.n_cells)
+    for condensed in (True, False):
+        assert system_size(mesh, topo, orders, condensed) == \
+            system_size(mesh, t32, orders, condensed)
+
+
+@pytest.mark.parametrize("extent", [0.0, -1.0])
+@pytest.mark.parametrize("name", ["tet", "hex+wedge"])
+def test_a_propagation_distance_not_above_zero_is_refused_on_both_paths(monkeypatch, name,
+                                                                       extent):
+    # the compiled path checks L / h > 0 inside the edge kernel (no (n_e,) ratio array)
+    from meshcheck.errors import SettingsError
+    mesh, topo = _mesh(name)
+    flat = dataclasses.replace(topo, component_extent=np.full_like(topo.component_extent,
+                                                                   extent))
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        with pytest.raises(SettingsError, match="L/h"):
+            advise(mesh, flat, _speeds(mesh), 500.0, AdviceSettings())
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    assert advise(mesh, topo, _speeds(mesh), 500.0, AdviceSettings()).cell_limit.min() > 0

@@ -6,12 +6,14 @@ the numpy reference computes (tests/test_kernels_advice.py compares both):
 * :func:`governing_edges`, :func:`odd_cells`: a cell's longest edge (``np.argmax``
   semantics: the first maximum, the first NaN if any) and the cells whose edges differ
   in speed or distance (``advice._governing_edges``);
-* :func:`longest_directions`: unit directions of the cells' longest edges
-  (``advice._alignment``; the 3x3 sum stays ``d.T @ d`` in numpy);
-* :func:`edge_orders`, :func:`gov_rows`, :func:`exact_limits`, :func:`finish_limits`:
-  the frequency limits of edges and cells at every order (``advice.advise``): one pass
-  over the edges (all orders for the cells' longest edges), one over the cells, no
-  (n_edges,) temporaries per order;
+* :func:`longest_directions`: the 3x3 sum of d d^T over the unit directions d of the
+  cells' longest edges (``advice._alignment``, whose numpy code sums ``d.T @ d``: equal
+  to rounding, 1e-12);
+* :func:`mark_owners`, :func:`edge_orders`, :func:`gov_rows`, :func:`exact_limits`,
+  :func:`finish_limits`: the frequency limits of edges and cells at every order
+  (``advice.advise``): one pass over the edges (all orders for the cells' longest edges,
+  written straight into the row of one cell each), one over the cells (the other
+  cells copy that row), no (n_edges,) temporaries per order;
 * :func:`per_cell_max`: ``Edges.per_cell(values, np.maximum)`` for one block;
 * :func:`order_hist`, :func:`dof_hist`, :func:`face_dof_hist`: histograms of the
   cells' limits (and of the edges' and faces' smallest limits, weighted by the unknowns
@@ -24,7 +26,8 @@ the numpy reference computes (tests/test_kernels_advice.py compares both):
   ``scipy.sparse.csgraph.connected_components``, the per-cluster sizes, boxes and
   weighted centroids, and the stable ``np.argsort`` of the labels (``advice.clusters``).
 
-Frequencies in Hz, lengths in m, speeds in m/s; cell and edge ids int64.
+Frequencies in Hz, lengths in m, speeds in m/s; cell and edge ids int64 or int32 (numba
+compiles a variant per integer type).
 """
 from __future__ import annotations
 
@@ -61,8 +64,8 @@ def _argmax_edge(ce, i, c0, c1, h):
 def governing_edges(ce, lo, hi, h, gov, start):
     """gov[start + i] = the longest edge of cell i of a block, lo <= i < hi.
 
-    ce : (m, k) int64 edge ids of the block's cells; h : (n_e,) float64 lengths, m;
-    gov : (n_cells,) int64 output.
+    ce : (m, k) integer edge ids of the block's cells; h : (n_e,) float64 lengths, m;
+    gov : (n_cells,) integer output.
     """
     k = ce.shape[1]
     for i in range(lo, hi):
@@ -91,50 +94,76 @@ def odd_cells(ce, h, c, L, odd, start):
 
 
 @njit
-def longest_directions(ce, c0, c1, length, cells, local, points, out):
-    """Unit direction of each cell's longest edge among local edges c0..c1-1, from its
-    smaller to its larger node number (as ``Edges.nodes``).
+def longest_directions(ce, c0, c1, length, cells, local, points, T):
+    """Sum of d d^T over the unit directions d of each cell's longest edge among local
+    edges c0..c1-1, from its smaller to its larger node number (as ``Edges.nodes``),
+    skipping directions with a non-finite component; added to T.
 
-    ce : (m, k) int64 edge ids of a block's cells; length : (n_e,) float64, m;
-    cells : (m, n_nodes) int64 the block's nodes; local : (k, 2) int64 local nodes of
-    the local edges; points : (n_p, 3) float64, m; out : (m, 3) float64, filled from
-    the top with the directions whose components are finite (in cell order).
-    Returns how many.
+    ce : (m, k) integer edge ids of a block's cells; length : (n_e,) float64, m;
+    cells : (m, n_nodes) integer the block's nodes; local : (k, 2) int64 local nodes of
+    the local edges; points : (n_p, 3) float64, m; T : (3, 3) float64, accumulated
+    (symmetric), summed in blocks of 4096 cells.  Returns how many directions.
     """
     m = ce.shape[0]
-    best = np.empty(m, np.int64)
-    for i in range(m):  # first pass: the gathers of the second do not wait on compares
-        j = c0
-        hb = length[ce[i, c0]]
-        if hb == hb:
-            for jj in range(c0 + 1, c1):  # np.argmax: first maximum, first NaN
-                v = length[ce[i, jj]]
-                if v != v:
-                    j = jj
-                    break
-                if v > hb:
-                    j = jj
-                    hb = v
-        best[i] = j
+    blk = 4096
+    best = np.empty(min(m, blk), np.int64)
     n = 0
-    for i in range(m):
-        j = best[i]
-        x = cells[i, local[j, 0]]
-        y = cells[i, local[j, 1]]
-        a = min(x, y)
-        b = max(x, y)
-        d0 = points[b, 0] - points[a, 0]
-        d1 = points[b, 1] - points[a, 1]
-        d2 = points[b, 2] - points[a, 2]
-        if not (np.isfinite(d0) and np.isfinite(d1) and np.isfinite(d2)):
-            continue
-        r = np.sqrt(d0 * d0 + d1 * d1 + d2 * d2)
-        if r < 1e-300:
-            r = 1e-300
-        out[n, 0] = d0 / r
-        out[n, 1] = d1 / r
-        out[n, 2] = d2 / r
-        n += 1
+    t00 = t01 = t02 = t11 = t12 = t22 = 0.0
+    for s in range(0, m, blk):
+        stop = min(m, s + blk)
+        for i in range(s, stop):  # first pass: the gathers of the second do not wait
+            j = c0
+            hb = length[ce[i, c0]]
+            if hb == hb:
+                for jj in range(c0 + 1, c1):  # np.argmax: first maximum, first NaN
+                    v = length[ce[i, jj]]
+                    if v != v:
+                        j = jj
+                        break
+                    if v > hb:
+                        j = jj
+                        hb = v
+            best[i - s] = j
+        b00 = b01 = b02 = b11 = b12 = b22 = 0.0
+        for i in range(s, stop):
+            j = best[i - s]
+            x = cells[i, local[j, 0]]
+            y = cells[i, local[j, 1]]
+            a = min(x, y)
+            b = max(x, y)
+            d0 = points[b, 0] - points[a, 0]
+            d1 = points[b, 1] - points[a, 1]
+            d2 = points[b, 2] - points[a, 2]
+            if not (np.isfinite(d0) and np.isfinite(d1) and np.isfinite(d2)):
+                continue
+            r = np.sqrt(d0 * d0 + d1 * d1 + d2 * d2)
+            if r < 1e-300:
+                r = 1e-300
+            d0 /= r
+            d1 /= r
+            d2 /= r
+            b00 += d0 * d0
+            b01 += d0 * d1
+            b02 += d0 * d2
+            b11 += d1 * d1
+            b12 += d1 * d2
+            b22 += d2 * d2
+            n += 1
+        t00 += b00
+        t01 += b01
+        t02 += b02
+        t11 += b11
+        t12 += b12
+        t22 += b22
+    T[0, 0] += t00
+    T[1, 1] += t11
+    T[2, 2] += t22
+    T[0, 1] += t01
+    T[1, 0] += t01
+    T[0, 2] += t02
+    T[2, 0] += t02
+    T[1, 2] += t12
+    T[2, 1] += t12
     return n
 
 
@@ -166,18 +195,26 @@ def _value(p, i, u, a, he, ce, base, step):
     return ce * kh / (TWO_PI * he * a)
 
 
+@njit(inline="always")
+def _good(e, h, c, L):
+    """Whether edge e has limits (``advise``: h finite and > 0, L and c finite); the
+    others have limit 0 at every order."""
+    he = h[e]
+    return np.isfinite(he) and he > 0.0 and np.isfinite(L[e]) and np.isfinite(c[e])
+
+
 @njit
-def _edge_limit(e, p, h, c, ratio, good, code, A, base, step, scale, top):
-    """Limit (Hz) of edge e at order p + 1 (0 if it is not ``good``)."""
-    if not good[e]:
+def _edge_limit(e, p, h, c, L, code, A, base, step, scale, top):
+    """Limit (Hz) of edge e at order p + 1 (0 if it is not good)."""
+    if not _good(e, h, c, L):
         return 0.0
     a = A[code[e], p]
-    g, u = _grid(ratio[e], a, scale, top)
+    g, u = _grid(L[e] / h[e], a, scale, top)
     return _value(p, g, u, a, h[e], c[e], base, step)
 
 
 @njit
-def exact_limits(ce, rows, start, h, c, ratio, good, code, A, base, step, scale, top, out):
+def exact_limits(ce, rows, start, h, c, L, code, A, base, step, scale, top, out):
     """out[start + r, p] = minimum over the edges of row r of a block (np.minimum
     semantics) of their limits at order p + 1, for the given local rows."""
     pmax = out.shape[1]
@@ -186,8 +223,7 @@ def exact_limits(ce, rows, start, h, c, ratio, good, code, A, base, step, scale,
         for p in range(pmax):
             m = np.inf
             for j in range(k):
-                v = _edge_limit(ce[r, j], p, h, c, ratio, good, code, A, base, step, scale,
-                                top)
+                v = _edge_limit(ce[r, j], p, h, c, L, code, A, base, step, scale, top)
                 if j == 0 or v < m or v != v:
                     m = v
                 if m != m:
@@ -223,25 +259,50 @@ def finish_limits(out, lo, hi, fmax, P, cell_order, refine):
 
 
 @njit
-def edge_orders(lo, hi, h, c, ratio, good, code, A, base, step, scale, top, fmax, P,
-                edge_order, edge_limit, row, F):
+def mark_owners(gov, owner):
+    """owner[e] = the first cell (smallest id) whose longest edge is e, for the edges
+    that govern a cell (gov : (n_cells,) integers); owner : (n_e,) signed integers set
+    to -1 by the caller, left -1 for the other edges."""
+    for i in range(gov.shape[0]):
+        e = gov[i]
+        if owner[e] < 0:
+            owner[e] = i
+
+
+@njit
+def edge_orders(lo, hi, h, c, L, code, A, base, step, scale, top, fmax, P, edge_order,
+                edge_limit, owner, out, finish, cell_order, refine):
     """edge_order[e] = lowest order whose limit reaches fmax (pmax + 1 = none),
-    edge_limit[e] = limit at the allowed order P (Hz), for edges lo <= e < hi; the
-    edges with row[e] >= 0 (the cells' longest edges) also get their limits at every
-    order in F[row[e]] ((n_rows, pmax) float64, Hz; 0 for an edge that is not good).
-    The logarithm is taken again only when the factor changes with the order.
+    edge_limit[e] = limit at the allowed order P (Hz), for edges lo <= e < hi; an edge
+    with owner[e] >= 0 (the longest edge of that cell, see :func:`mark_owners`) also
+    writes its limits at every order into that cell's row out[owner[e]] ((n_cells, pmax)
+    float64, Hz; 0 for an edge that is not good), finished by :func:`finish_limits`
+    (with cell_order, refine of that cell) when ``finish``.  Owners are distinct, so
+    edge ranges on different threads write different rows.
+
+    h, c, L : (n_e,) float64 lengths (m), speeds (m/s), distances (m), any strides
+    (a uniform c or L may be a broadcast scalar); code : (n_e,) factor row of every edge
+    in A (pmax columns).  The logarithm is taken again only when the factor changes
+    with the order.  Returns the number of good edges whose L / h is not > 0 (the
+    caller raises: ``UsableKh.max_kh`` refuses them).
     """
     pmax = A.shape[1]
+    n_bad = 0
     for e in range(lo, hi):
-        r = row[e]
-        if not good[e]:  # limit 0 at every order
+        r = owner[e]
+        if not _good(e, h, c, L):  # limit 0 at every order
             edge_order[e] = pmax + 1 if fmax > 0.0 else 1
             edge_limit[e] = 0.0
             if r >= 0:
                 for p in range(pmax):
-                    F[r, p] = 0.0
+                    out[r, p] = 0.0
+                if finish:
+                    _finish_row(out, r, fmax, P, cell_order, refine)
             continue
-        he, ce, re, k = h[e], c[e], ratio[e], code[e]
+        he, ce, k = h[e], c[e], code[e]
+        re = L[e] / he
+        if not re > 0.0:
+            n_bad += 1
         o = pmax + 1
         at_p = -1.0
         pa = -1.0
@@ -253,7 +314,7 @@ def edge_orders(lo, hi, h, c, ratio, good, code, A, base, step, scale, top, fmax
                 pa = a
             f = _value(p, g, u, a, he, ce, base, step)
             if r >= 0:
-                F[r, p] = f
+                out[r, p] = f
             if p == P - 1:
                 at_p = f
             if f >= fmax and o > pmax:
@@ -268,26 +329,33 @@ def edge_orders(lo, hi, h, c, ratio, good, code, A, base, step, scale, top, fmax
                     break
         edge_order[e] = o
         edge_limit[e] = at_p
+        if r >= 0 and finish:
+            _finish_row(out, r, fmax, P, cell_order, refine)
+    return n_bad
 
 
 @njit
-def gov_rows(gov, row, F, lo, hi, out, h, code, A, size, a_gov, finish, fmax, P, cell_order,
+def gov_rows(gov, owner, lo, hi, out, h, code, A, size, a_gov, finish, P, cell_order,
              refine):
-    """out[i] = F[row[gov[i]]] for cells lo <= i < hi: each cell's limits are its
-    longest edge's (rows of :func:`edge_orders`); size[i] = h[gov[i]] (m) and
-    a_gov[i] = A[code[gov[i]], P - 1] (its size factor at the allowed order); with
-    ``finish`` (no cell takes the minimum over its edges) also :func:`finish_limits` in
-    the same pass."""
+    """For cells lo <= i < hi: out[i] = out[owner[gov[i]]], the row that
+    :func:`edge_orders` wrote for the first cell with the same longest edge (a cell's
+    limits are its longest edge's; the owner's own row is left as it is), with its
+    cell_order and refine when ``finish``; size[i] = h[gov[i]] (m) and a_gov[i] =
+    A[code[gov[i]], P - 1] (its size factor at the allowed order).  Only rows of
+    non-owners are written and only owners' rows read: ranges on different threads
+    do not interfere."""
     pmax = out.shape[1]
     for i in range(lo, hi):
         e = gov[i]
-        r = row[e]
-        for p in range(pmax):
-            out[i, p] = F[r, p]
+        o = owner[e]
+        if o != i:
+            for p in range(pmax):
+                out[i, p] = out[o, p]
+            if finish:
+                cell_order[i] = cell_order[o]
+                refine[i] = refine[o]
         size[i] = h[e]
         a_gov[i] = A[code[e], P - 1]
-        if finish:
-            _finish_row(out, i, fmax, P, cell_order, refine)
 
 
 @njit
@@ -329,11 +397,12 @@ def _bin(x, fs, lo):
 def order_hist(lim, fs, lo, hi, hist, B, ncol):
     """hist[p, b] += 1 for every cell lo <= i < hi whose limit at order p + 1 has b sweep
     frequencies at or below it: cumsum(hist[p])[k] = #cells with limit < fs[k];
-    B[i, q] = that b for the first ncol orders (-1 for a NaN limit, see
+    B[i, q] = b + 1 for the first ncol orders (0 for a NaN limit, see
     :func:`dof_hist`).
 
     lim : (n_cells, pmax) float64, Hz; fs : (n_f,) sorted finite Hz;
-    hist : (pmax, n_f + 1) int64, accumulated; B : (n_cells, W) int16, W >= ncol.
+    hist : (pmax, n_f + 1) int64, accumulated; B : (n_cells, W) unsigned integers
+    holding n_f + 1 (uint8 up to 254 frequencies), W >= ncol.
     """
     pmax = lim.shape[1]
     for i in range(lo, hi):
@@ -345,52 +414,53 @@ def order_hist(lim, fs, lo, hi, hist, B, ncol):
             px = x
             hist[p, b] += 1
             if p < ncol:
-                B[i, p] = b if x == x else -1
+                B[i, p] = b + 1 if x == x else 0
 
 
 @njit
 def dof_hist(B, inc, starts, n_inc, lo, hi, hist):
     """Edge unknowns added above order q + 1, binned by frequency (maximum rule), for
     edges lo <= e < hi: an edge has order > q + 1 at the frequencies above the smallest
-    limit of its cells, hist[min over its cells of B[c, q]] += 1 (a NaN limit, B = -1,
+    limit of its cells, hist[min over its cells of B[c, q] - 1] += 1 (a NaN limit, B = 0,
     puts the edge at n_f = len(hist) - 1: never counted, like a NaN minimum).
 
-    B : (n_cells, W) int16 bins of :func:`order_hist`, W a multiple of 8, columns
-    past the orders counted set to n_f; inc, starts : the edges' cell incidence (CSR,
-    n_inc entries); hist : (n_f + 1,) int64 accumulated.
+    B : (n_cells, W) bins + 1 of :func:`order_hist`, W a multiple of 8, columns past
+    the orders counted set to n_f + 1; inc, starts : the edges' cell incidence (CSR,
+    n_inc entries, any integer type); hist : (n_f + 1,) int64 accumulated.
     """
     n_e = starts.shape[0]
     n_f = hist.shape[0] - 1
+    top = n_f + 1
     for g in range(0, B.shape[1], 8):  # eight orders at a time, in registers
         for e in range(lo, hi):
             s = starts[e]
             t = starts[e + 1] if e + 1 < n_e else n_inc
-            m0 = m1 = m2 = m3 = m4 = m5 = m6 = m7 = n_f
+            m0 = m1 = m2 = m3 = m4 = m5 = m6 = m7 = top
             for j in range(s, t):
                 c = inc[j]
-                m0 = min(m0, B[c, g])
-                m1 = min(m1, B[c, g + 1])
-                m2 = min(m2, B[c, g + 2])
-                m3 = min(m3, B[c, g + 3])
-                m4 = min(m4, B[c, g + 4])
-                m5 = min(m5, B[c, g + 5])
-                m6 = min(m6, B[c, g + 6])
-                m7 = min(m7, B[c, g + 7])
-            hist[m0 if m0 >= 0 else n_f] += 1
-            hist[m1 if m1 >= 0 else n_f] += 1
-            hist[m2 if m2 >= 0 else n_f] += 1
-            hist[m3 if m3 >= 0 else n_f] += 1
-            hist[m4 if m4 >= 0 else n_f] += 1
-            hist[m5 if m5 >= 0 else n_f] += 1
-            hist[m6 if m6 >= 0 else n_f] += 1
-            hist[m7 if m7 >= 0 else n_f] += 1
+                m0 = min(m0, np.int64(B[c, g]))
+                m1 = min(m1, np.int64(B[c, g + 1]))
+                m2 = min(m2, np.int64(B[c, g + 2]))
+                m3 = min(m3, np.int64(B[c, g + 3]))
+                m4 = min(m4, np.int64(B[c, g + 4]))
+                m5 = min(m5, np.int64(B[c, g + 5]))
+                m6 = min(m6, np.int64(B[c, g + 6]))
+                m7 = min(m7, np.int64(B[c, g + 7]))
+            hist[m0 - 1 if m0 > 0 else n_f] += 1
+            hist[m1 - 1 if m1 > 0 else n_f] += 1
+            hist[m2 - 1 if m2 > 0 else n_f] += 1
+            hist[m3 - 1 if m3 > 0 else n_f] += 1
+            hist[m4 - 1 if m4 > 0 else n_f] += 1
+            hist[m5 - 1 if m5 > 0 else n_f] += 1
+            hist[m6 - 1 if m6 > 0 else n_f] += 1
+            hist[m7 - 1 if m7 > 0 else n_f] += 1
 
 
 @njit
 def face_dof_hist(B, fcells, tri, lo, hi, hist):
     """Face unknowns added above order q + 1, binned like :func:`dof_hist`: q per
     triangle (tri True), 2 q + 1 per quadrilateral, at the smaller bin of the face's
-    cells (fcells (n_faces, 2) int64, -1 = no second cell), for faces lo <= f < hi."""
+    cells (fcells (n_faces, 2) integers, -1 = no second cell), for faces lo <= f < hi."""
     n_f = hist.shape[0] - 1
     for f in range(lo, hi):
         c0 = fcells[f, 0]
@@ -402,7 +472,7 @@ def face_dof_hist(B, fcells, tri, lo, hi, hist):
             if c1 >= 0:
                 b = min(b, np.int64(B[c1, q]))
             if w > 0:
-                hist[b if b >= 0 else n_f] += w
+                hist[b - 1 if b > 0 else n_f] += w
 
 
 # ---------------------------------------------------------------------------
@@ -422,13 +492,16 @@ def _find(parent, i):
 
 
 @njit
-def label_flagged(mask, pairs, count, need, lab):
-    """Connected components of the flagged cells through the pairs (pairs (n, 2) int64
+def label_flagged(mask, pairs, count, need, lab, parent):
+    """Connected components of the flagged cells through the pairs (pairs (n, 2) integer
     global cell ids; pair j joins its cells when count[j] >= need, both are >= 0 and
-    flagged).  lab : (n_flagged,) int64 output, the component of every flagged cell in
-    increasing id order, numbered by their smallest cell id.  Returns the number."""
+    flagged).  lab : (n_flagged,) integer output, the component of every flagged cell in
+    increasing id order, numbered by their smallest cell id.  Returns the number.
+
+    parent : (n_cells,) signed integers (int32 will do below 2**31 cells), scratch: a
+    union-find whose root is the smallest id of its component; the labels are then kept
+    at the roots as -1 - label, no second array."""
     n = mask.shape[0]
-    parent = np.empty(n, np.int64)
     for i in range(n):
         parent[i] = i
     for j in range(pairs.shape[0]):
@@ -445,17 +518,20 @@ def label_flagged(mask, pairs, count, need, lab):
                 parent[rb] = ra
             else:
                 parent[ra] = rb
-    root_lab = np.full(n, -1, np.int64)
     n_lab = 0
     k = 0
-    for i in range(n):
+    for i in range(n):  # a root comes before the other cells of its component
         if not mask[i]:
             continue
-        r = _find(parent, i)
-        if root_lab[r] < 0:
-            root_lab[r] = n_lab
+        r = i
+        while parent[r] >= 0 and parent[r] != r:
+            r = parent[r]
+        if parent[r] >= 0:  # r == i, the smallest id of a new component
+            parent[r] = -1 - n_lab
             n_lab += 1
-        lab[k] = root_lab[r]
+        elif r != i:
+            parent[i] = r  # shortcut for the cells below i
+        lab[k] = -1 - parent[r]
         k += 1
     return n_lab
 
@@ -483,7 +559,7 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, 
     (NaN propagates, as ndarray.max/min), ``wsum`` = sum of centroid * weight (the same
     sequential sum as numpy's along axis 0), and its first cell ids.
 
-    ids : (k,) int64 flagged cells (increasing); lab : (k,) int64 their cluster;
+    ids : (k,) int64 flagged cells (increasing); lab : (k,) integer their cluster;
     slot : (n_lab,) int64; cell_size, target_size : (n_cells,) float64, m; cen :
     (n_cells, 3) float64 centroids, m; w : (k,) float64 weights (|volume|); outputs
     per slot: size, target (s,), lo, hi, wsum (s, 3), first (s, max_ids), n_first (s,).
