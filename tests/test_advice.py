@@ -261,3 +261,16 @@ def test_orders_on_threads_give_the_serial_result(monkeypatch):
     ser = A.advise(mesh, topo, speeds, 900.0, AdviceSettings(max_order=8))
     for name in ("cell_limit", "edge_limit", "edge_order", "cell_order", "target_size"):
         assert np.array_equal(getattr(par, name), getattr(ser, name)), name
+
+
+@pytest.mark.parametrize("n", [1, 7, 256, 257, 1000, 5 * 256 + 3])
+def test_column_min_equals_numpy_min_over_rows(n):
+    from meshcheck.advice import column_min
+
+    rng = np.random.default_rng(n)
+    a = rng.random((n, 12)) * 1e3
+    assert np.array_equal(column_min(a), a.min(axis=0))
+    a[rng.integers(n), 4] = np.nan  # NaN propagates as in np.min
+    a[rng.integers(n), 7] = -np.inf
+    assert np.array_equal(column_min(a), a.min(axis=0), equal_nan=True)
+    assert np.array_equal(column_min(a[n // 2:]), a[n // 2:].min(axis=0), equal_nan=True)
