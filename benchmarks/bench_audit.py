@@ -2,7 +2,7 @@
 
 Usage::
 
-    python benchmarks/bench_audit.py [--cells 1e6] [--kind tet|tet10|hex] [--dir DIR]
+    python benchmarks/bench_audit.py [--cells 1e6] [--kind tet|tet10|hex] [--dir DIR] [--repeat 3]
 
 Prints, for one reference mesh (generated with benchmarks/make_reference_meshes.py
 when missing, binary MSH 4.1):
@@ -19,7 +19,9 @@ when missing, binary MSH 4.1):
 * with ``--full``, the default audit (all reports, figures, the cost quote);
 * a 1000-frequency sweep against a 10-frequency one (advice + sweep only).
 
-and the ratios the performance targets are stated in (docs/performance.md).
+and the ratios the performance targets are stated in (docs/performance.md).  The
+references and the cached audit are each the best of ``--repeat`` fresh processes (3 by
+default; a single run of a 4 s audit varied by 1.5 s on the shared machine).
 """
 from __future__ import annotations
 
@@ -97,6 +99,8 @@ def main(argv=None) -> int:
     ap.add_argument("--kind", choices=("tet", "tet10", "hex"), default="tet")
     ap.add_argument("--dir", type=Path, default=Path(tempfile.gettempdir()) / "meshcheck-bench")
     ap.add_argument("--no-vtk", action="store_true", help="skip the VTK reference")
+    ap.add_argument("--repeat", type=int, default=3, help="fresh processes per timing of "
+                    "the references and the cached audit; the best is used (default 3)")
     ap.add_argument("--numpy", action="store_true", help="also time the numpy reference path")
     ap.add_argument("--full", action="store_true", help="also time the default audit "
                     "(all reports and the cost quote)")
@@ -105,21 +109,34 @@ def main(argv=None) -> int:
     path = ensure_mesh(args.dir, args.cells, args.kind)
     rows = []
 
-    t_read, _, _ = _child(f"import meshio; meshio.read({str(path)!r})")
-    rows.append(("meshio.read, fresh process (ref 1)", t_read, None))
+    n_rep = max(1, args.repeat)
+    t_read = min(_child(f"import meshio; meshio.read({str(path)!r})")[0] for _ in range(n_rep))
+    rows.append((f"meshio.read, fresh process (ref 1), best of {n_rep}", t_read, None))
     t_vtk = None
     if not args.no_vtk:
         try:
-            _, _, out = _child(VTK_CODE.format(path=str(path)))
-            t_vtk = float(out.strip().splitlines()[-1])
-            rows.append(("VTK quality, 3 metrics (ref 2)", t_vtk, None))
+            t_vtk = min(float(_child(VTK_CODE.format(path=str(path)))[2].strip().splitlines()[-1])
+                        for _ in range(n_rep))
+            rows.append((f"VTK quality, 3 metrics (ref 2), best of {n_rep}", t_vtk, None))
         except subprocess.CalledProcessError as exc:
             print("VTK reference failed:", exc.stderr.strip().splitlines()[-1:], file=sys.stderr)
 
     cache = Path(tempfile.mkdtemp(prefix="meshcheck-numba-"))
     env = {**os.environ, "NUMBA_CACHE_DIR": str(cache)}
 
-    def run_audit(label, extra_env=None, lean=True):
+    def run_audit(label, extra_env=None, lean=True, repeat=1):
+        """Best of ``repeat`` fresh processes (time, peak of that run, its report)."""
+        runs = [_audit_once(extra_env, lean) for _ in range(repeat)]
+        t, peak, report = min(runs, key=lambda r: r[0])
+        timings = report["timings_s"]
+        analysis = timings.get("analysis", sum(v for k, v in timings.items() if k != "read"))
+        more = f", best of {repeat} (median {sorted(r[0] for r in runs)[repeat // 2]:.2f} s)" \
+            if repeat > 1 else ""
+        rows.append((label + more, t, peak))
+        rows.append(("  of which analysis after reading", analysis, None))
+        return t, peak, report
+
+    def _audit_once(extra_env, lean):
         with tempfile.TemporaryDirectory() as tmp:
             cmd = [sys.executable, "-m", "meshcheck.cli", "audit", str(path), "--units", "m",
                    "--fmin", "50", "--fmax", "2000", "--step", f"{1950 / 199:.6f}", "--quiet",
@@ -128,14 +145,11 @@ def main(argv=None) -> int:
             if code not in (0, 1):
                 raise SystemExit(f"audit failed with exit code {code}")
             report = json.loads(next(Path(tmp).glob("*.audit.json")).read_text())
-        timings = report["timings_s"]
-        analysis = timings.get("analysis", sum(v for k, v in timings.items() if k != "read"))
-        rows.append((label, t, peak))
-        rows.append(("  of which analysis after reading", analysis, None))
         return t, peak, report
 
     run_audit("audit json+vtu, empty numba cache (compiles)")
-    t_audit, peak, report = run_audit("audit json+vtu, 200 frequencies (cached)")
+    t_audit, peak, report = run_audit("audit json+vtu, 200 frequencies (cached)",
+                                      repeat=n_rep)
     timings = report["timings_s"]
     if args.numpy:
         run_audit("  same on the numpy path", {"MESHCHECK_KERNELS": "numpy"})
@@ -164,9 +178,9 @@ for n in (10, 1000, 10, 1000):
 
     n_cells = sum(report["input"]["cells"].values())
     print(f"mesh: {path.name}, {n_cells:,} cells, {report['input']['points']:,} points")
-    print(f"{'what':50s} {'time s':>8s} {'peak MiB':>9s}")
+    print(f"{'what':72s} {'time s':>8s} {'peak MiB':>9s}")
     for name, t, mem in rows:
-        print(f"{name:50s} {t:8.2f} {'' if mem is None else f'{mem:9.0f}'}")
+        print(f"{name:72s} {t:8.2f} {'' if mem is None else f'{mem:9.0f}'}")
     print("stage timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in timings.items()))
     print(f"ratio audit / meshio.read:            {t_audit / t_read:6.2f}   (target <= 6)")
     if t_vtk:
