@@ -16,8 +16,6 @@ from dataclasses import dataclass
 from functools import cached_property
 
 import numpy as np
-from scipy import sparse
-from scipy.sparse.csgraph import connected_components
 
 from . import kernels
 from .cost import _chunks, condensed_dofs, lagrange_dofs, variable_order_dofs
@@ -705,6 +703,8 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
         keep = mask[a] & mask[b]
         local = np.full(n, -1, np.int64)
         local[ids] = np.arange(len(ids))
+        from scipy import sparse
+        from scipy.sparse.csgraph import connected_components
         g = sparse.coo_matrix((np.ones(int(keep.sum()), np.int8),
                                (local[a[keep]], local[b[keep]])), shape=(len(ids), len(ids)))
         n_lab, lab = connected_components(g, directed=False)

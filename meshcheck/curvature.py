@@ -48,8 +48,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import sparse
-from scipy.sparse.csgraph import connected_components
 
 from . import kernels
 from .jacobian import jacobian_determinants, quadratic_summary
@@ -188,10 +186,13 @@ def _trimesh_geometry(surface: BoundarySurface):
             np.asarray(tm.face_angles, dtype=np.float64))
 
 
-def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0) -> SurfaceCurvature:
+def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
+                      compiled: bool = False) -> SurfaceCurvature:
     """Principal curvatures per triangle (Rusinkiewicz 2004 per-face fit), feature-aware.
 
     feature_angle : deg; adjacent faces whose normals differ by more are not smooth.
+    compiled : smooth patches by the union-find kernel (large meshes, numba loaded)
+        instead of scipy's connected_components (the same labels).
     """
     n_t = len(surface.triangles)
     if n_t == 0:
@@ -199,10 +200,7 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0) -> 
         return SurfaceCurvature(z, z, np.zeros(0, np.int64), 0, 0, z)
     fn, area, adj, ang, corner_w = _surface_geometry(surface.points, surface.triangles)
     smooth = ang <= np.radians(feature_angle)
-    g = sparse.coo_matrix((np.ones(int(smooth.sum())), (adj[smooth, 0], adj[smooth, 1])),
-                          shape=(n_t, n_t))
-    n_patch, patch = connected_components(g, directed=False)
-    patch = patch.astype(np.int64)
+    n_patch, patch = _patches(n_t, adj[smooth], compiled)
     # one normal per (vertex, patch): corner-angle-weighted face normals
     tri = surface.triangles
     key = tri * np.int64(n_patch) + patch[:, None]
@@ -354,6 +352,20 @@ def _face_midnode_deviation(mesh: Mesh, topo: Topology, fids: np.ndarray):
     return dev, has, longest
 
 
+def _patches(n: int, pairs: np.ndarray, compiled: bool) -> tuple[int, np.ndarray]:
+    """(count, (n,) int64 labels) of the components of items 0..n-1 joined by the rows
+    of ``pairs`` (k, 2), numbered by their smallest item (scipy's numbering)."""
+    if compiled:
+        from .kernels import topology as kt
+        parent = np.arange(n, dtype=kt.index_dtype(n))
+        return kt.components_pairs(parent, np.ascontiguousarray(pairs))
+    from scipy import sparse
+    from scipy.sparse.csgraph import connected_components
+    g = sparse.coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
+    count, label = connected_components(g, directed=False)
+    return count, label.astype(np.int64)
+
+
 def check_curvature(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
                     target: float, feature_angle: float = 50.0,
                     max_listed: int = 20) -> CurvedBoundary | None:
@@ -375,7 +387,7 @@ def check_curvature(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: fl
     else:
         fids, inv = np.unique(surf.face, return_inverse=True)
 
-    curv = surface_curvature(surf, feature_angle)
+    curv = surface_curvature(surf, feature_angle, kernels.use_compiled(mesh.n_cells))
     rho_t = enclosing_radius(surf.points[surf.triangles])
     dev, has_mid, longest = _face_midnode_deviation(mesh, topo, fids)
     kap_t = np.where(np.isfinite(curv.kmax), curv.kmax, 0.0)

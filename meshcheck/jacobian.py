@@ -41,7 +41,6 @@ import weakref
 from functools import lru_cache
 
 import numpy as np
-from scipy.special import roots_jacobi
 
 from . import kernels
 from .cells import CELL_TYPES
@@ -269,6 +268,7 @@ def shape_gradients(cell_type: str, ref_points: np.ndarray) -> np.ndarray:
 @lru_cache(maxsize=None)
 def _gauss_01(n: int, alpha: float = 0.0):
     """Gauss-Jacobi rule on [0, 1] for the weight (1 - x)^alpha, n points."""
+    from scipy.special import roots_jacobi
     x, w = roots_jacobi(n, alpha, 0.0)
     return 0.5 * (x + 1.0), w * 0.5 ** (alpha + 1.0)
 

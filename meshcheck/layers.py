@@ -28,8 +28,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import sparse
-from scipy.sparse.csgraph import dijkstra
 
 from .mesh import Mesh
 from .topology import Topology
@@ -318,6 +316,8 @@ def _hops(mesh: Mesh, topo: Topology, in_layer: np.ndarray, sources: np.ndarray,
     src = np.full(len(sources), n)
     rows = np.concatenate([a, b, src])
     cols = np.concatenate([b, a, sources])
+    from scipy import sparse
+    from scipy.sparse.csgraph import dijkstra
     g = sparse.coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(n + 1, n + 1)).tocsr()
     dist = dijkstra(g, directed=True, indices=n, unweighted=True)
     return dist[targets] - 1.0

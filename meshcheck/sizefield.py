@@ -59,8 +59,6 @@ from pathlib import Path
 from typing import Callable
 
 import numpy as np
-from scipy import sparse
-from scipy.sparse.csgraph import dijkstra
 
 from . import kernels
 from .errors import SettingsError
@@ -167,6 +165,8 @@ def limit_gradation(mesh: Mesh, topo: Topology, size: np.ndarray, gradation: flo
         vals = np.concatenate([w[ok], w[ok], h[src] / gradation])
         # zero-length source edges are dropped by csgraph; keep them tiny instead
         vals = np.maximum(vals, 1e-300)
+        from scipy import sparse
+        from scipy.sparse.csgraph import dijkstra
         g = sparse.csr_matrix((vals, (rows, cols)), shape=(n + 1, n + 1))
         dist = dijkstra(g, directed=True, indices=n)[:n]
     out = gradation * dist

@@ -18,8 +18,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import sparse
-from scipy.sparse.csgraph import connected_components
 
 from . import kernels
 from .mesh import Mesh
@@ -525,6 +523,8 @@ def _components(mesh: Mesh, faces: Faces, edges: Edges) -> tuple[int, np.ndarray
         first = np.full(len(edges), -1, np.int64)
         first[eid[::-1]] = ids[::-1]
         a, b = ids, first[eid]
+    from scipy import sparse
+    from scipy.sparse.csgraph import connected_components
     g = sparse.coo_matrix((np.ones(len(a), np.int8), (a, b)), shape=(n, n)).tocsr()
     return connected_components(g, directed=False)
 
@@ -625,6 +625,8 @@ def _cracks(mesh: Mesh, faces: Faces, dup_pairs: np.ndarray) -> np.ndarray:
     if not len(dup_pairs) or not len(faces):
         return np.zeros(0, np.int64)
     n = mesh.n_points
+    from scipy import sparse
+    from scipy.sparse.csgraph import connected_components
     g = sparse.coo_matrix((np.ones(len(dup_pairs)), (dup_pairs[:, 0], dup_pairs[:, 1])),
                           shape=(n, n))
     _, rep = connected_components(g, directed=False)

@@ -330,3 +330,20 @@ def test_per_face_curvature_equals_the_general_formula(case, sphere):
     assert (kappa > 0).any()
     surf = boundary_surface(mesh, topo)
     assert (np.diff(surf.face) > 0).all() == (case == "tetra")
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_patch_labels_by_union_find_equal_scipy(seed):
+    # the compiled path labels smooth patches by union-find instead of scipy's
+    # connected_components: the same count and the same numbering (by smallest item)
+    from meshcheck.curvature import _patches
+
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(1, 400))
+    k = int(rng.integers(0, 2 * n))
+    pairs = rng.integers(0, n, (k, 2))
+    pairs[: k // 10, 1] = pairs[: k // 10, 0]  # self-loops
+    ref = _patches(n, pairs, compiled=False)
+    got = _patches(n, pairs, compiled=True)
+    assert got[0] == ref[0]
+    assert np.array_equal(got[1], ref[1]) and got[1].dtype == ref[1].dtype == np.int64

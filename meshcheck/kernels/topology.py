@@ -827,6 +827,15 @@ def components_faces(parent, face_cells, count):
 
 
 @njit
+def components_pairs(parent, pairs):
+    """Components of items joined by the rows of ``pairs`` (k, 2); parent as for
+    :func:`components_faces`."""
+    for i in range(pairs.shape[0]):
+        _union(parent, pairs[i, 0], pairs[i, 1])
+    return _labels(parent)
+
+
+@njit
 def components_edges(parent, incidence, starts):
     """Components of the cells joined through shared edges (incidence sorted by edge);
     parent as for :func:`components_faces`."""
