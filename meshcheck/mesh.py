@@ -119,9 +119,17 @@ class Mesh:
     @cached_property
     def centroids(self) -> np.ndarray:
         """(n_cells, 3) float64 mean of the corner nodes of each cell, metres."""
+        from . import kernels
+
         out = np.empty((self.n_cells, 3))
+        compiled = kernels.use_compiled(self.n_cells)  # one pass, no (m, 3) temporaries
         for b, start in zip(self.blocks, self.block_offsets):
-            _corner_mean(self.points, b.cells, b.info.n_corners, out[start:start + len(b)])
+            part = out[start:start + len(b)]
+            if compiled:
+                from .kernels import geometry
+                geometry.corner_mean(self.points, b.cells, b.info.n_corners, part)
+            else:
+                _corner_mean(self.points, b.cells, b.info.n_corners, part)
         return out
 
     def centroids_of(self, cell_ids) -> np.ndarray:

@@ -1,0 +1,20 @@
+"""Mesh: cell centroids on the numpy and compiled paths."""
+import numpy as np
+import pytest
+
+from meshcheck.mesh import Mesh
+from test_kernels_topology import MESHES
+
+
+@pytest.mark.parametrize("name", sorted(MESHES))
+def test_centroids_compiled_equal_numpy_and_the_corner_mean(name, monkeypatch):
+    mesh = MESHES[name]()
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = Mesh(mesh.points, mesh.blocks).centroids
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    got = Mesh(mesh.points, mesh.blocks).centroids
+    assert np.array_equal(got, ref)  # same summation order: bitwise
+    # the definition: the mean of the corner nodes (np.mean, to rounding)
+    want = np.concatenate([mesh.points[b.cells[:, :b.info.n_corners]].mean(axis=1)
+                           for b in mesh.blocks])
+    np.testing.assert_allclose(got, want, rtol=1e-14, atol=1e-14)
