@@ -504,7 +504,7 @@ def coarsen(
     if shrink < 1.0:
         console.print(f"note: the first mesh missed the upper frequency; the mesher size was "
                       f"scaled by {shrink:.3g}")
-    if len(set(np.unique(m.region).tolist())) > 1:
+    if len(set(m.region_tags.tolist())) > 1:
         console.print("note: the regions of the supplied mesh were merged into one fluid")
     for kind, p_ in {**files, **{f"new {k}": v for k, v in files2.items()},
                      "new mesh": new_path, "summary": spath}.items():

@@ -448,7 +448,7 @@ def file_speed_used(mesh: Mesh, tag: int, job: Job | None = None) -> bool:
     if stated is None or not PLAUSIBLE_SPEED[0] <= stated[0] <= PLAUSIBLE_SPEED[1]:
         return False
     if job is not None:
-        tags = set(np.unique(mesh.region).tolist())
+        tags = set(mesh.region_tags.tolist())
         for r in job.regions:
             if _tag_of(mesh, r.key, tags, "job") == tag:
                 return False
@@ -467,7 +467,7 @@ def resolve_media(mesh: Mesh, job: Job | None = None, temperature: float = 20.0,
     """
     job = job if job is not None else Job()
     region_speeds = dict(region_speeds or {})
-    tags = set(np.unique(mesh.region).tolist()) if mesh.n_cells else set()
+    tags = set(mesh.region_tags.tolist()) if mesh.n_cells else set()
     default_t = job.temperature if job.temperature is not None else temperature
     src_path = job.path or "job"
     specs: dict[int, RegionSpec] = {}

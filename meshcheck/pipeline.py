@@ -83,7 +83,7 @@ def cell_speeds(mesh: Mesh, settings: AuditSettings) -> np.ndarray:
         return media_of(mesh, settings).cell_speed
     c = np.full(mesh.n_cells, settings.default_speed)
     by_name = {v.lower(): k for k, v in mesh.region_names.items()}
-    tags = set(np.unique(mesh.region).tolist())
+    tags = set(mesh.region_tags.tolist())
     for key, value in settings.region_speeds.items():
         tag = key
         if isinstance(key, str):

@@ -18,3 +18,13 @@ def test_centroids_compiled_equal_numpy_and_the_corner_mean(name, monkeypatch):
     want = np.concatenate([mesh.points[b.cells[:, :b.info.n_corners]].mean(axis=1)
                            for b in mesh.blocks])
     np.testing.assert_allclose(got, want, rtol=1e-14, atol=1e-14)
+
+
+@pytest.mark.parametrize("tags", [[3, 1, 1, 7], [-5, 2, -5], [0], [10**9, -(10**9), 4], []])
+def test_region_tags_equal_numpy_unique(tags):
+    from meshcheck.mesh import CellBlock
+
+    cells = np.zeros((len(tags), 4), np.int64)
+    blocks = (CellBlock("tetra", cells, np.asarray(tags, np.int64)),) if tags else ()
+    got = Mesh(np.zeros((4, 3)), blocks).region_tags
+    assert got.dtype == np.int64 and np.array_equal(got, np.unique(np.asarray(tags, np.int64)))
