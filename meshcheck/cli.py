@@ -6,6 +6,7 @@ Exit codes: 0 the mesh is ready up to the requested upper frequency,
 from __future__ import annotations
 
 import sys
+import threading
 import time
 from contextlib import contextmanager
 from enum import Enum
@@ -209,7 +210,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         pass  # read_mesh reports the file
     from .advice import AdviceSettings
     from .job import load_job
-    from .pipeline import AuditSettings, audit
+    from .pipeline import OVERLAP_CELLS, AuditSettings, audit
     from .reading import read_mesh
     from .report import to_dict, write_json, write_markdown, write_vtu
     from .units import UNIT_FACTORS
@@ -234,6 +235,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
                                  speed=speed, region_speeds=region_speeds, job=job_spec)
         res = audit(mesh, settings, progress=step)
         step("reports")
+        if out is not None and kinds & {"vtu", "pos"} and mesh.n_cells > OVERLAP_CELLS:
+            _size_field_aside(res)
         data = to_dict(res, cost=cost)
         files = None
         if out is not None:
@@ -259,6 +262,21 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     if not quiet:
         _print_summary(console, res, files, data)
     return 0 if res.ready else 1
+
+
+def _size_field_aside(res) -> None:
+    """Compute the audit's size field (VTU point data, gmsh view) on a daemon thread
+    while the JSON report is built; the writers then find it cached.  An error here is
+    left to the writer, which computes the field again and reports it."""
+    from .sizefield import audit_size_field
+
+    def run():
+        try:
+            audit_size_field(res)
+        except Exception:
+            pass
+
+    threading.Thread(target=run, name="meshcheck-size-field", daemon=True).start()
 
 
 REPORT_KINDS = ("json", "md", "vtu", "html", "pos")

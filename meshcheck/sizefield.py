@@ -54,6 +54,7 @@ The maximum rule and the boundary are neglected there (estimates).
 from __future__ import annotations
 
 import math
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -582,21 +583,24 @@ def remesh(mesh: Mesh, topo: Topology, field: SizeField, path: str | Path,
 
 
 _FIELDS: dict = {}
+_FIELDS_LOCK = threading.Lock()  # one computation per result when threads ask together
 
 
 def audit_size_field(res) -> SizeField:
     """The size field of an audit: the allowed order at the upper frequency, gradation 0.3
     (the field of the cost quote's coarsening scenario); cached per result, so the VTU and
-    the gmsh view share one computation and neither needs the quote."""
+    the gmsh view share one computation and neither needs the quote (thread-safe: the
+    CLI computes it beside the JSON report)."""
     import weakref
 
     key = id(res)
-    hit = _FIELDS.get(key)
-    if hit is not None and hit[0]() is res:
-        return hit[1]
-    fld = size_field(res.mesh, res.topology, res.advice, None, 0.3, None)
-    _FIELDS[key] = (weakref.ref(res, lambda _, k=key: _FIELDS.pop(k, None)), fld)
-    return fld
+    with _FIELDS_LOCK:
+        hit = _FIELDS.get(key)
+        if hit is not None and hit[0]() is res:
+            return hit[1]
+        fld = size_field(res.mesh, res.topology, res.advice, None, 0.3, None)
+        _FIELDS[key] = (weakref.ref(res, lambda _, k=key: _FIELDS.pop(k, None)), fld)
+        return fld
 
 
 def size_point_data(res, scale: float = 1.0) -> dict[str, np.ndarray]:

@@ -261,3 +261,39 @@ def test_every_cell_kind_audits_end_to_end(tmp_path, capsys, kind, mode):
     assert data["input"]["cells"] == {kind: len(cells)}
     assert data["verdict"]["state"] in ("ready", "limited")
     assert {p.suffix for p in out.iterdir()} >= {".json", ".md", ".vtu", ".html"}
+
+
+def test_size_field_beside_the_json_gives_the_same_files(box_file, tmp_path, monkeypatch):
+    # large meshes compute the size field on a thread while the JSON is built; the VTU
+    # and the gmsh view must be the same as when it is computed by their writers
+    from meshcheck import pipeline, sizefield
+
+    calls = []
+    real = sizefield.size_field
+    monkeypatch.setattr(sizefield, "size_field",
+                        lambda *a, **k: calls.append(1) or real(*a, **k))
+    args = ["audit", str(box_file), "-u", "m", "--fmax", "200", "--reports", "vtu,pos",
+            "--no-cost", "--quiet", "--out"]
+    assert main(args + [str(tmp_path / "serial")]) == 0
+    monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
+    assert main(args + [str(tmp_path / "aside")]) == 0
+    assert len(calls) == 2  # once per audit, shared by the VTU and the view
+    for name in ("box.audit.vtu", "box.size.pos"):
+        assert (tmp_path / "serial" / name).read_bytes() == \
+            (tmp_path / "aside" / name).read_bytes(), name
+
+
+def test_size_field_is_computed_once_when_threads_ask_together(monkeypatch):
+    from concurrent.futures import ThreadPoolExecutor
+
+    from meshcheck import sizefield
+    from meshcheck.pipeline import AuditSettings, audit
+
+    res = audit(tet_box((6, 5, 4)), AuditSettings((300.0,)))
+    calls = []
+    real = sizefield.size_field
+    monkeypatch.setattr(sizefield, "size_field",
+                        lambda *a, **k: calls.append(1) or real(*a, **k))
+    with ThreadPoolExecutor(4) as pool:
+        got = list(pool.map(lambda _: sizefield.audit_size_field(res), range(4)))
+    assert len(calls) == 1 and all(g is got[0] for g in got)
