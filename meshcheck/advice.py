@@ -745,7 +745,7 @@ def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit:
     lo, hi, wsum = np.empty((s, 3)), np.empty((s, 3)), np.empty((s, 3))
     first = np.empty((s, max_ids), np.int64)
     n_first = np.zeros(s, np.int64)
-    cen = np.ascontiguousarray(mesh.centroids, dtype=float)
+    cen = mesh.centroids_of(ids)  # of the flagged cells only
     _ka.cluster_stats(ids, lab, slot, np.ascontiguousarray(advice.cell_size, dtype=float),
                       np.ascontiguousarray(advice.target_size, dtype=float), cen, w, size,
                       target, lo, hi, wsum, first, n_first)
@@ -762,8 +762,9 @@ def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit:
                 _ka.group_by_label(lab, cnt.astype(np.int64), order)
                 starts = np.concatenate([[0], np.cumsum(cnt)])
                 members = (order, starts)
-            sel = ids[members[0][members[1][j]:members[1][j + 1]]]
-        c = wsum[i] / vol[j] if vol[j] > 0 else cen[sel].mean(0)
+            pos = members[0][members[1][j]:members[1][j + 1]]
+            sel = ids[pos]
+        c = wsum[i] / vol[j] if vol[j] > 0 else cen[pos].mean(0)
         regions = (int(region[ids[0]]),) if one_region else \
             tuple(int(t) for t in np.unique(region[sel]))
         sz, tg = float(size[i]), float(target[i])

@@ -151,12 +151,31 @@ class Mesh:
         ids = np.asarray(cell_ids, dtype=np.int64).reshape(-1)
         if "centroids" in self.__dict__ or not len(ids):
             return self.centroids[ids] if len(ids) else np.zeros((0, 3))
+        from . import kernels
+
+        if ids.min() < 0 or ids.max() >= self.n_cells:
+            raise IndexError(f"cell ids outside 0..{self.n_cells - 1}")
         out = np.empty((len(ids), 3))
-        blk, row = self.locate(ids)
-        for k in np.unique(blk):
-            sel = np.flatnonzero(blk == k)
+        compiled = kernels.use_compiled(self.n_cells)  # one pass, no gathered copies
+        if compiled:
+            from .kernels import geometry
+        if len(self.blocks) == 1:
+            blk, row = None, ids
+        else:
+            blk, row = self.locate(ids)
+        for k in (range(1) if blk is None else np.unique(blk)):
             b = self.blocks[int(k)]
-            out[sel] = _corner_mean(self.points, b.cells[row[sel]], b.info.n_corners)
+            sel = None if blk is None else np.flatnonzero(blk == k)
+            rows = row if sel is None else row[sel]
+            if compiled:
+                part = np.empty((len(rows), 3)) if sel is not None else out
+                geometry.corner_mean_rows(self.points, b.cells, rows, b.info.n_corners, part)
+            else:
+                part = _corner_mean(self.points, b.cells[rows], b.info.n_corners)
+            if sel is not None:
+                out[sel] = part
+            elif part is not out:
+                out[:] = part
         return out
 
     @cached_property

@@ -28,3 +28,17 @@ def test_region_tags_equal_numpy_unique(tags):
     blocks = (CellBlock("tetra", cells, np.asarray(tags, np.int64)),) if tags else ()
     got = Mesh(np.zeros((4, 3)), blocks).region_tags
     assert got.dtype == np.int64 and np.array_equal(got, np.unique(np.asarray(tags, np.int64)))
+
+
+@pytest.mark.parametrize("name", ["mixed", "random-1", "tetra10", "tet-box-7"])
+def test_centroids_of_some_cells_equal_the_full_array(name, monkeypatch):
+    mesh = MESHES[name]()
+    ids = np.random.default_rng(3).integers(0, mesh.n_cells, 17)
+    for path in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", path)
+        m = Mesh(mesh.points, mesh.blocks)
+        got = m.centroids_of(ids)
+        assert "centroids" not in m.__dict__  # the few cells only, no full array
+        assert np.array_equal(got, m.centroids[ids]), path
+        with pytest.raises(IndexError):
+            m.centroids_of([m.n_cells])

@@ -561,7 +561,7 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, 
 
     ids : (k,) int64 flagged cells (increasing); lab : (k,) integer their cluster;
     slot : (n_lab,) int64; cell_size, target_size : (n_cells,) float64, m; cen :
-    (n_cells, 3) float64 centroids, m; w : (k,) float64 weights (|volume|); outputs
+    (k, 3) float64 centroids of the flagged cells, m; w : (k,) float64 weights (|volume|); outputs
     per slot: size, target (s,), lo, hi, wsum (s, 3), first (s, max_ids), n_first (s,).
     """
     max_ids = first.shape[1]
@@ -577,7 +577,7 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, 
             size[s] = v
             target[s] = t
             for j in range(3):
-                x = cen[c, j]
+                x = cen[k, j]
                 lo[s, j] = x
                 hi[s, j] = x
                 wsum[s, j] = x * w[k]
@@ -589,7 +589,7 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, 
             if m == m and not t >= m:
                 target[s] = t
             for j in range(3):
-                x = cen[c, j]
+                x = cen[k, j]
                 m = lo[s, j]
                 if m == m and not x >= m:
                     lo[s, j] = x

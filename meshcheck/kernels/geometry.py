@@ -46,15 +46,29 @@ def _row_sum(length, ce, c):
 
 
 @njit
+def _corner_mean_row(points, cells, c, k, out, i):
+    """out[i] = mean of the first k nodes of row c of ``cells``, summed corner by corner
+    and divided by k (bitwise as ``mesh._corner_mean``)."""
+    for d in range(3):
+        s = points[cells[c, 0], d]
+        for j in range(1, k):
+            s += points[cells[c, j], d]
+        out[i, d] = s / k
+
+
+@njit
 def corner_mean(points, cells, k, out):
-    """out[c] = mean of the first k nodes of row c of ``cells`` (m, >= k), summed corner
-    by corner and divided by k (bitwise as ``mesh._corner_mean``), metres."""
+    """out[c] = centroid (mean of the first k nodes) of every row c of ``cells`` (m, >= k),
+    metres."""
     for c in range(cells.shape[0]):
-        for d in range(3):
-            s = points[cells[c, 0], d]
-            for j in range(1, k):
-                s += points[cells[c, j], d]
-            out[c, d] = s / k
+        _corner_mean_row(points, cells, c, k, out, c)
+
+
+@njit
+def corner_mean_rows(points, cells, rows, k, out):
+    """out[i] = centroid of row rows[i] of ``cells`` (:func:`corner_mean` of some rows)."""
+    for i in range(rows.shape[0]):
+        _corner_mean_row(points, cells, rows[i], k, out, i)
 
 
 @njit
