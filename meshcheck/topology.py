@@ -661,8 +661,15 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     dup_cells = _duplicate_cells(mesh)
     n_comp, comp = _components(mesh, faces, edges)
     comp = comp.astype(np.int64)
-    comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
     lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
+    return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)
+
+
+def _topology_of(mesh: Mesh, edges: Edges, faces: Faces, used, vol, dup, dup_cells,
+                 n_comp: int, comp, lo, hi) -> Topology:
+    """The :class:`Topology` from the parts both paths compute (component bounding boxes
+    lo, hi (n_comp, 3))."""
+    comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
     extent = np.linalg.norm(hi - lo, axis=1)
     cracks = _cracks(mesh, faces, dup) if mesh.dim == 3 else np.zeros(0, np.int64)
     return Topology(
@@ -1025,12 +1032,5 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
     else:
         n_comp, comp = 0, np.zeros(0, np.int64)
     del parent
-    comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
     lo, hi = _per_label_bbox_compiled(mesh.points, mesh, comp, n_comp)
-    extent = np.linalg.norm(hi - lo, axis=1)
-    cracks = _cracks(mesh, faces, dup) if mesh.dim == 3 else np.zeros(0, np.int64)
-    return Topology(
-        edges=edges, faces=faces, component=comp, component_volume=comp_vol,
-        component_extent=extent, cell_volume=vol, unused_nodes=np.flatnonzero(~used),
-        duplicate_nodes=dup, duplicate_cells=dup_cells, crack_faces=cracks,
-        nonmanifold_faces=np.flatnonzero(faces.count > 2))
+    return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)

@@ -9,6 +9,28 @@ from meshcheck.vtkxml import write_vtu
 from meshes import hex_box, tet10_box, tet_box
 
 
+def _read_back_by_both(path, points, cells, cd, pd):
+    """meshio and VTK's XML reader read the file back: the points, the first block's
+    cells (meshio), and every cell and point array under its name."""
+    back = meshio.read(path)
+    assert np.array_equal(back.points, points) and np.array_equal(back.cells[0].data, cells)
+    for k, v in cd.items():
+        assert np.array_equal(back.cell_data[k][0], v), k
+    for k, v in pd.items():
+        assert np.array_equal(back.point_data[k], v), k
+    vtk = pytest.importorskip("vtk")
+    from vtk.util.numpy_support import vtk_to_numpy
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    g = r.GetOutput()
+    assert np.array_equal(vtk_to_numpy(g.GetPoints().GetData()), points)
+    for k, v in cd.items():
+        assert np.array_equal(vtk_to_numpy(g.GetCellData().GetArray(k)), v), k
+    for k, v in pd.items():
+        assert np.array_equal(vtk_to_numpy(g.GetPointData().GetArray(k)), v), k
+
+
 @pytest.mark.parametrize("make", [tet_box, hex_box, tet10_box], ids=["tet", "hex", "tet10"])
 def test_round_trip_meshio(tmp_path, make):
     mesh = make((2, 2, 2))
@@ -100,18 +122,7 @@ def test_many_small_arrays_keep_their_names(tmp_path):
     pd = {f"p{k}": np.full(mesh.n_points, -k, np.float64) for k in range(12)}
     path = write_vtu(tmp_path / "many.vtu", mesh.points, [(b.type, b.cells)], cell_data=cd,
                      point_data=pd)
-    back = meshio.read(path)
-    for k, v in cd.items():
-        assert np.array_equal(back.cell_data[k][0], v), k
-    for k, v in pd.items():
-        assert np.array_equal(back.point_data[k], v), k
-    vtk = pytest.importorskip("vtk")
-    from vtk.util.numpy_support import vtk_to_numpy
-    r = vtk.vtkXMLUnstructuredGridReader()
-    r.SetFileName(str(path))
-    r.Update()
-    for k, v in cd.items():
-        assert np.array_equal(vtk_to_numpy(r.GetOutput().GetCellData().GetArray(k)), v), k
+    _read_back_by_both(path, mesh.points, b.cells, cd, pd)
 
 
 def test_stored_blocks_read_back_by_meshio_and_vtk(tmp_path):
@@ -145,23 +156,7 @@ def test_uncompressed_arrays_of_every_length_mod_3(tmp_path, m):
     pd = {"u8": np.arange(m + 3, dtype=np.uint8), "p": rng.random(m + 3)}
     path = write_vtu(tmp_path / "u.vtu", pts, [("tetra", cells)], cell_data=cd,
                      point_data=pd, level=0)
-    back = meshio.read(path)
-    assert np.array_equal(back.points, pts) and np.array_equal(back.cells[0].data, cells)
-    for k, v in cd.items():
-        assert np.array_equal(back.cell_data[k][0], v), k
-    for k, v in pd.items():
-        assert np.array_equal(back.point_data[k], v), k
-    vtk = pytest.importorskip("vtk")
-    from vtk.util.numpy_support import vtk_to_numpy
-    r = vtk.vtkXMLUnstructuredGridReader()
-    r.SetFileName(str(path))
-    r.Update()
-    g = r.GetOutput()
-    assert np.array_equal(vtk_to_numpy(g.GetPoints().GetData()), pts)
-    for k, v in cd.items():
-        assert np.array_equal(vtk_to_numpy(g.GetCellData().GetArray(k)), v), k
-    for k, v in pd.items():
-        assert np.array_equal(vtk_to_numpy(g.GetPointData().GetArray(k)), v), k
+    _read_back_by_both(path, pts, cells, cd, pd)
 
 
 @pytest.mark.parametrize("level", [1, 0])
@@ -241,21 +236,7 @@ def test_level0_compiled_file_identical_to_binascii(tmp_path, monkeypatch, make,
                                 cell_data=cd, point_data=pd, level=0)
         assert (len(calls) > n_calls) == (mode == "numba")  # the kernel ran on that path only
     assert files["numba"].read_bytes() == files["numpy"].read_bytes()
-    back = meshio.read(files["numba"])
-    assert np.array_equal(back.points, mesh.points) and np.array_equal(back.cells[0].data, b.cells)
-    for k, v in cd.items():
-        assert np.array_equal(back.cell_data[k][0], v), k
-    for k, v in pd.items():
-        assert np.array_equal(back.point_data[k], v), k
-    vtk = pytest.importorskip("vtk")
-    from vtk.util.numpy_support import vtk_to_numpy
-    r = vtk.vtkXMLUnstructuredGridReader()
-    r.SetFileName(str(files["numba"]))
-    r.Update()
-    g = r.GetOutput()
-    assert np.array_equal(vtk_to_numpy(g.GetPoints().GetData()), mesh.points)
-    for k, v in cd.items():
-        assert np.array_equal(vtk_to_numpy(g.GetCellData().GetArray(k)), v), k
+    _read_back_by_both(files["numba"], mesh.points, b.cells, cd, pd)
 
 
 def test_level0_compiled_multi_piece_large_arrays(tmp_path, monkeypatch):
