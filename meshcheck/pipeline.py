@@ -223,7 +223,9 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
     chk = media.checks
     n = chk.max_listed
     out: list[Finding] = []
-    # the boundary-curvature check on a second core beside the size jumps (large meshes)
+    # the boundary-curvature check on a second core beside the size jumps and the
+    # directional orders (large meshes)
+    tensor = any(b.info.linear in ("hexahedron", "wedge", "quad") for b in mesh.blocks)
     with ThreadPoolExecutor(max_workers=1) as pool:
         def curvature():
             return check_curvature(mesh, topo, media.cell_speed, settings.fmax,
@@ -232,6 +234,8 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
         side = (pool.submit(curvature) if mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
                 else None)
         grad = size_jumps(mesh, topo, chk.gradation_ratio, n)
+        dirs = (directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
+                if tensor else None)  # tets and triangles have no parametric directions
         curv = side.result() if side is not None else curvature()
     if grad.count:
         out.append(Finding("size_jumps", WARNING, f"neighbouring cells whose sizes differ by more "
@@ -267,9 +271,6 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
             for sev, code, text in lc.messages:
                 out.append(Finding(code, WARNING if sev == "warning" else NOTE, text, 1,
                                    first, "cell", mesh.centroids_of(first)))
-    tensor = any(b.info.linear in ("hexahedron", "wedge", "quad") for b in mesh.blocks)
-    dirs = (directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
-            if tensor else None)  # tets and triangles have no parametric directions
     return {"findings": out, "gradation": grad, "curvature": curv, "quadratic": quad,
             "layers": tuple(layers), "directional": dirs}
 

@@ -78,3 +78,21 @@ def test_node_numbers_past_the_int32_key_range_give_the_same_audit(kind, path, m
     ca = job_cost_dict(job_cost(mesh, a.topology, a.advice, freqs))
     cb = job_cost_dict(job_cost(far, b.topology, b.advice, freqs))
     assert ca == cb
+
+
+def test_directional_orders_beside_the_curvature_equal_the_serial_audit(monkeypatch):
+    # hexahedra: the directional orders run on the main thread while the curvature check
+    # runs on the second one; the same results as one after the other
+    mesh = hex_box((8, 6, 5), size=(2.0, 1.5, 1.0))
+    settings = AuditSettings((300.0, 900.0))
+    monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
+    par = audit(mesh, settings)
+    monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 10 ** 12)
+    ser = audit(mesh, settings)
+    assert par.directional is not None
+    for field in ("orders", "isotropic", "anisotropic_cells", "dofs_isotropic",
+                  "dofs_directional"):
+        assert np.array_equal(getattr(par.directional, field),
+                              getattr(ser.directional, field)), field
+    assert [f.code for f in par.findings] == [f.code for f in ser.findings]
+    assert np.array_equal(par.curvature.kappa, ser.curvature.kappa, equal_nan=True)
