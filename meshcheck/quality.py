@@ -67,6 +67,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
+from functools import lru_cache
 from dataclasses import dataclass, field
 from types import MappingProxyType
 
@@ -440,6 +441,15 @@ class CellQuality:
         return CellQuality({k: v[ids] for k, v in self.metrics.items()})
 
 
+@lru_cache(maxsize=None)
+def defined_metrics(family: str) -> frozenset[str]:
+    """The metrics of :data:`METRICS` a cell family defines (those its numpy routine
+    computes, found on its reference cell)."""
+    info = CELL_TYPES[{v: k for k, v in _FAMILY.items()}[family]]
+    X = np.ascontiguousarray(info.ref_coords[:info.n_corners, :info.dim])[:, :, None]
+    return frozenset(_COMPUTE[family](X))
+
+
 def mesh_quality(mesh: Mesh, chunk_size: int = 200_000) -> CellQuality:
     """Metrics of every cell of ``mesh``, block by block in chunks of ``chunk_size`` cells.
 
@@ -450,12 +460,20 @@ def mesh_quality(mesh: Mesh, chunk_size: int = 200_000) -> CellQuality:
     n = mesh.n_cells
     offsets = mesh.block_offsets
     if kernels.use_compiled(n):
-        # one pass per cell over whole blocks (memory: the outputs only)
-        rows = np.full((len(METRICS), n), np.nan)
+        # one pass per cell over whole blocks (memory: the outputs only); the rows of
+        # metrics no cell type of the mesh defines are never written, so their pages are
+        # never touched, and they are handed out as one broadcast NaN
+        used = set().union(*(defined_metrics(family_of(b.type)) for b in mesh.blocks))
+        rows = np.empty((len(METRICS), n))
+        for k, name in enumerate(METRICS):
+            if name in used:
+                rows[k].fill(np.nan)
         for blk, lo in zip(mesh.blocks, offsets[:-1]):
             _compiled_quality(mesh.points, blk.cells, blk.type, rows, int(lo))
         rows.setflags(write=False)
-        return CellQuality(dict(zip(METRICS, rows)))
+        nan = np.broadcast_to(np.nan, (n,))
+        return CellQuality({name: rows[k] if name in used else nan
+                            for k, name in enumerate(METRICS)})
     out = {k: np.full(n, np.nan) for k in METRICS}
     pts_t = _points_t(mesh.points)
     for blk, off in zip(mesh.blocks, offsets[:-1]):

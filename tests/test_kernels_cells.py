@@ -252,3 +252,24 @@ def test_kernels_run_only_when_chosen(mode, expected, monkeypatch):
     with np.errstate(all="ignore"):
         quality.mesh_quality(_mesh("tetra", m=20))
     assert len(calls) == expected
+
+
+@pytest.mark.parametrize("kind", ["tetra", "hexahedron", "wedge", "pyramid", "triangle", "quad"])
+def test_metrics_not_defined_for_the_mesh_are_one_broadcast_nan(kind, monkeypatch):
+    # the compiled path never writes (nor touches the pages of) the rows of metrics no
+    # cell type of the mesh defines; it hands out one broadcast NaN for them, and the
+    # defined ones are those the numpy routine computes
+    from meshcheck.quality import METRICS, defined_metrics, family_of, mesh_quality
+    from test_kernels_topology import MESHES
+
+    mesh = MESHES[kind]()
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = mesh_quality(mesh)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    got = mesh_quality(mesh)
+    defined = defined_metrics(family_of(kind))
+    for name in METRICS:
+        assert np.array_equal(got[name], ref[name], equal_nan=True), name
+        assert (name in defined) == bool(np.isfinite(ref[name]).any()), name
+        if name not in defined:
+            assert got[name].strides == (0,) and got[name].shape == (mesh.n_cells,)
