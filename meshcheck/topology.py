@@ -693,6 +693,140 @@ _FANOUT_BITS = 10
 _MIN_COARSE_BITS = 4
 
 
+#: local edges (triangles) from which the compiled bucket fills and read-offs split their
+#: passes over two threads (disjoint ranges of cells, buckets and rows; the same arrays);
+#: tests lower it
+_SPLIT_ROWS = 4_000_000
+
+
+def _n_parts(n_rows: int) -> int:
+    """Threads for the bucket passes over ``n_rows`` rows (1 or 2)."""
+    return 2 if n_rows >= _SPLIT_ROWS else 1
+
+
+def _cell_parts(lengths: list[int], widths: list[int], parts: int) -> list[list[tuple]]:
+    """The rows of consecutive blocks (``lengths`` cells of ``widths`` rows each) in
+    ``parts`` consecutive pieces of about equal rows, each a list of (block position,
+    first cell, end cell) ranges, in row order."""
+    bounds = np.cumsum([0] + [w * m for w, m in zip(widths, lengths)])
+    cuts = [int(bounds[-1]) * i // parts for i in range(parts + 1)]
+    out = []
+    for lo, hi in zip(cuts[:-1], cuts[1:]):
+        piece = []
+        for i, (w, m) in enumerate(zip(widths, lengths)):
+            if not w or not m:
+                continue
+            r0 = min(max(-(-(lo - int(bounds[i])) // w), 0), m)  # first cell from row lo
+            r1 = min(max(-(-(hi - int(bounds[i])) // w), 0), m)
+            if r1 > r0:
+                piece.append((i, r0, r1))
+        out.append(piece)
+    return out
+
+
+def _fill_starts(counts: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Bucket starts (n_b + 1,) from per-part counts (each (n_b + 1,), count of bucket b
+    at b + 1) and every part's first free entry per bucket (parts in order: stable)."""
+    total = counts[0].copy()
+    for c in counts[1:]:
+        total += c
+    ptr = np.cumsum(total, out=total)
+    run = ptr[:-1].copy()
+    fills = []
+    for c in counts:
+        fills.append(run.copy())
+        run += c[1:]
+    return ptr, fills
+
+
+def _halves(starts: np.ndarray, parts: int) -> list[tuple[int, int]]:
+    """``parts`` consecutive bucket ranges (b0, b1) of about equal entries, buckets
+    b starting at starts[b] (starts (n_b + 1,) ascending)."""
+    n_b = len(starts) - 1
+    cuts = [0] + [int(np.searchsorted(starts, starts[-1] * i // parts))
+                  for i in range(1, parts)] + [n_b]
+    cuts = np.maximum.accumulate(np.minimum(cuts, n_b))
+    return [(int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
+
+
+def _refine(cptr, tmp, k, ptr, out, parts: int) -> None:
+    """:func:`meshcheck.kernels.topology.coarse_refine`, on ``parts`` threads."""
+    from .kernels import topology as kt
+
+    if parts == 1:
+        kt.coarse_refine(cptr, tmp, k, ptr, out)
+        return
+    thread_map(lambda r: kt.coarse_refine_range(cptr, tmp, k, ptr, out, r[0], r[1]),
+               _halves(cptr, parts))
+    ptr[-1] = cptr[-1]
+
+
+def _narrow(a: np.ndarray, dtype, parts: int) -> np.ndarray:
+    """``a.astype(dtype, copy=False)``, the copy cast in ``parts`` pieces on threads."""
+    if a.dtype == dtype:
+        return a
+    if parts == 1:
+        return a.astype(dtype)
+    out = np.empty(a.shape, dtype)
+    cuts = [len(a) * i // parts for i in range(parts + 1)]
+    thread_map(lambda r: np.copyto(out[r[0]:r[1]], a[r[0]:r[1]], casting="unsafe"),
+               list(zip(cuts[:-1], cuts[1:])))
+    return out
+
+
+def _emit_edges(ptr, packed, shift, n, inverse, layout, parts, node_t):
+    """Count the distinct edges of the packed buckets and read them off
+    (:func:`meshcheck.kernels.topology.edge_emit_packed`), the buckets in ``parts``
+    ranges on threads: the same (nodes, starts), ``inverse`` and incidence."""
+    from .kernels import topology as kt
+
+    n_rows = len(inverse)
+    if parts == 1:
+        n_e = kt.count_distinct_packed(ptr, packed, shift, n)
+        nodes = np.empty((n_e, 2), node_t)
+        starts = np.empty(n_e, index_type(n_rows))
+        kt.edge_emit_packed(ptr, packed, shift, n, nodes, starts, inverse, *layout,
+                            _k2(n_rows, n_e))
+        return nodes, starts
+    ranges = _halves(ptr, parts)
+    counts = thread_map(lambda r: kt.count_distinct_range(ptr, packed, shift, n, *r), ranges)
+    n_e = int(sum(counts))
+    e0 = np.cumsum([0] + counts[:-1])
+    nodes = np.empty((n_e, 2), node_t)
+    starts = np.empty(n_e, index_type(n_rows))
+    k2 = _k2(n_rows, n_e)
+    n_blk = ((n_rows - 1) >> k2) + 2 if k2 else 1
+    if k2:  # every range's entries of each block of 2**k2 rows follow the previous ones'
+        def count(r):
+            c = np.zeros(n_blk, np.int64)
+            kt.row_block_counts(ptr, packed, shift, r[0], r[1], *layout, k2, c)
+            return c
+        cnt = thread_map(count, ranges)
+        run = np.arange(n_blk, dtype=np.int64) << k2
+        rfills = []
+        for c in cnt:
+            rfills.append(run.copy())
+            run += c
+    else:
+        rfills = [np.zeros(1, np.int64)] * parts
+    thread_map(lambda i: kt.edge_emit_range(ptr, packed, shift, n, nodes, starts, inverse,
+                                            *layout, k2, ranges[i][0], ranges[i][1],
+                                            int(e0[i]), rfills[i]), range(parts))
+    if k2:
+        n_used = ((n_rows - 1) >> k2) + 1
+        cuts = [n_used * i // parts for i in range(parts + 1)]
+        thread_map(lambda r: kt.unscramble_range(inverse, k2, r[0], r[1]),
+                   list(zip(cuts[:-1], cuts[1:])))
+    return nodes, starts
+
+
+def _k2(n_rows: int, n_e: int) -> int:
+    """log2 of the row blocks through which the edge read-off writes ``inverse`` (0:
+    directly), when the edge ids leave the bits."""
+    k2 = _coarse_bits(n_rows)
+    return 0 if int(n_e).bit_length() + k2 > 63 else k2
+
+
 def _coarse_bits(n_buckets: int) -> int:
     """log2 of the fine buckets per coarse bucket for ``n_buckets`` buckets (0 = one
     level: few enough buckets to scatter into directly)."""
@@ -745,6 +879,7 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
     lengths = [len(b) for b in mesh.blocks]
     layout = _row_layout(widths, lengths, mesh.block_offsets[:-1])
     n_rows = sum(w * m for w, m in zip(widths, lengths))
+    parts = _n_parts(n_rows)
     shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 4  # (cell, local edge < 16)
     inverse = np.empty(n_rows, np.int64)
     k = _coarse_bits(n)
@@ -753,16 +888,26 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
         packed = np.empty(n_rows, np.int64)
         ptr = np.empty(n + 1, np.int64)
         if k and int(n - 1).bit_length() + shift + k <= _PACK_BITS:
-            # two-level fill, through ``inverse`` as scratch
-            cptr = np.zeros(((n - 1) >> k) + 2, np.int64)
-            for b, (la, lb) in zip(mesh.blocks, loc):
-                kt.edge_coarse_count(b.cells, la, lb, k, cptr)
-            np.cumsum(cptr, out=cptr)
-            cfill = cptr[:-1].copy()
-            for b, (la, lb), g0 in zip(mesh.blocks, loc, mesh.block_offsets):
-                kt.edge_coarse_fill(b.cells, la, lb, int(g0), k, cfill, inverse, shift)
+            # two-level fill, through ``inverse`` as scratch; cells split over threads
+            pieces = _cell_parts(lengths, widths, parts)
+            n_coarse = ((n - 1) >> k) + 2
+            blocks, g0s = mesh.blocks, mesh.block_offsets
+
+            def count(piece):
+                c = np.zeros(n_coarse, np.int64)
+                for i, r0, r1 in piece:
+                    kt.edge_coarse_count(blocks[i].cells[r0:r1], *loc[i], k, c)
+                return c
+
+            def fill(j):
+                for i, r0, r1 in pieces[j]:
+                    kt.edge_coarse_fill(blocks[i].cells[r0:r1], *loc[i], int(g0s[i]) + r0,
+                                        k, cfill[j], inverse, shift)
+
+            cptr, cfill = _fill_starts(thread_map(count, pieces, parallel=parts > 1))
+            thread_map(fill, range(parts), parallel=parts > 1)
             del cfill
-            kt.coarse_refine(cptr, inverse, k, ptr, packed)
+            _refine(cptr, inverse, k, ptr, packed, parts)
         else:
             ptr[:] = 0
             for b, (la, lb) in zip(mesh.blocks, loc):
@@ -772,14 +917,8 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
             for b, (la, lb), g0 in zip(mesh.blocks, loc, mesh.block_offsets):
                 kt.edge_fill_packed(b.cells, la, lb, int(g0), fill, packed, shift)
             del fill
-        n_e = kt.count_distinct_packed(ptr, packed, shift, n)
-        nodes = np.empty((n_e, 2), node_t)
-        starts = np.empty(n_e, index_type(n_rows))
-        k2 = _coarse_bits(n_rows)
-        if int(n_e).bit_length() + k2 > 63:
-            k2 = 0
-        kt.edge_emit_packed(ptr, packed, shift, n, nodes, starts, inverse, layout[0],
-                            layout[1], mesh.block_offsets, k2)
+        nodes, starts = _emit_edges(ptr, packed, shift, n, inverse,
+                                    (layout[0], layout[1], mesh.block_offsets), parts, node_t)
         incidence = packed
         del packed
     else:
@@ -802,8 +941,9 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
         del bhi
     del ptr
     # the int64 scratch arrays narrowed to the index type, one at a time
-    inverse = inverse.astype(index_type(n_e), copy=False)
-    incidence = incidence.astype(index_type(mesh.n_cells), copy=False)
+    n_e = len(nodes)
+    inverse = _narrow(inverse, index_type(n_e), parts)
+    incidence = _narrow(incidence, index_type(mesh.n_cells), parts)
     umid = np.full(n_e, -1, node_t)
     cell_edges, pos = [], 0
     for b, w, m in zip(mesh.blocks, widths, lengths):
@@ -870,22 +1010,37 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
         opps.append(np.stack([table[t[:, 1], t[:, 2]], table[t[:, 2], t[:, 0]],
                               table[t[:, 0], t[:, 1]]], axis=1))
     n_rows = sum(len(t) * len(mesh.blocks[bi]) for bi, t in tables)
+    parts = _n_parts(n_rows)
     n_e = len(edges)
     ptr = np.zeros(n_e + 1, kt.index_dtype(n_rows + 1))
     packed = np.empty(n_rows, np.int64)
     k = _coarse_bits(n_e)
     if k and int(mesh.n_points - 1).bit_length() + shift + k <= _PACK_BITS:
-        cptr = np.zeros(((n_e - 1) >> k) + 2, np.int64)
-        for (bi, t), opp in zip(tables, opps):
-            kt.tri_coarse_count(mesh.blocks[bi].cells, t, opp, edges.cell_edges[bi], k, cptr)
-        np.cumsum(cptr, out=cptr)
-        cfill = cptr[:-1].copy()
+        # cells split over threads (consecutive ranges: the buckets stay stable)
+        pieces = _cell_parts([len(mesh.blocks[bi]) for bi, _ in tables],
+                             [len(t) for _, t in tables], parts)
+        n_coarse = ((n_e - 1) >> k) + 2
         tmp = np.empty(n_rows, np.int64)
-        for (bi, t), opp in zip(tables, opps):
-            kt.tri_coarse_fill(mesh.blocks[bi].cells, t, opp, edges.cell_edges[bi],
-                               int(mesh.block_offsets[bi]), k, cfill, tmp, shift)
+
+        def args(i, r0, r1):
+            bi, t = tables[i]
+            return mesh.blocks[bi].cells[r0:r1], t, opps[i], edges.cell_edges[bi][r0:r1]
+
+        def count(piece):
+            c = np.zeros(n_coarse, np.int64)
+            for i, r0, r1 in piece:
+                kt.tri_coarse_count(*args(i, r0, r1), k, c)
+            return c
+
+        def fill(j):
+            for i, r0, r1 in pieces[j]:
+                kt.tri_coarse_fill(*args(i, r0, r1), int(mesh.block_offsets[tables[i][0]]) + r0,
+                                   k, cfill[j], tmp, shift)
+
+        cptr, cfill = _fill_starts(thread_map(count, pieces, parallel=parts > 1))
+        thread_map(fill, range(parts), parallel=parts > 1)
         del cfill
-        kt.coarse_refine(cptr, tmp, k, ptr, packed)
+        _refine(cptr, tmp, k, ptr, packed, parts)
         del tmp
     else:
         for (bi, t), opp in zip(tables, opps):
@@ -896,11 +1051,17 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
             kt.tri_fill_edges(mesh.blocks[bi].cells, t, opp, edges.cell_edges[bi],
                               int(mesh.block_offsets[bi]), fill, packed, shift)
         del fill
-    n_f = kt.sort_packed(ptr, packed, shift)
+    ranges = _halves(ptr, parts)
+    n_fs = thread_map(lambda r: kt.sort_packed_range(ptr, packed, shift, *r), ranges,
+                      parallel=parts > 1)
+    n_f = int(sum(n_fs))
+    f0 = np.cumsum([0] + n_fs[:-1])
     corners = np.empty((n_f, 4), index_type(mesh.n_points))
     cells = np.empty((n_f, 2), index_type(mesh.n_cells))
     count = np.empty(n_f, np.int32)
-    kt.tri_emit_packed(ptr, packed, shift, edges.nodes, corners, cells, count)
+    thread_map(lambda i: kt.tri_emit_range(ptr, packed, shift, edges.nodes, corners, cells,
+                                           count, *ranges[i], int(f0[i])),
+               range(parts), parallel=parts > 1)
     return corners, cells, count
 
 

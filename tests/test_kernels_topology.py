@@ -389,6 +389,43 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
     assert len(calls["edge_emit_packed"]) == 1 and calls["edge_emit_packed"][0] > 0  # k2
 
 
+@pytest.mark.parametrize("two_level", [False, True])
+@pytest.mark.parametrize("name", ["tetra", "tetra10", "random-0", "mixed", "defects-1", "hub",
+                                  "pyramid", "quad9"])
+def test_bucket_passes_split_over_threads_equal_numpy(name, two_level, monkeypatch):
+    # large meshes split the bucket fills, refines and read-offs over two threads
+    # (ranges of cells, buckets and rows): force it on small meshes, check it ran
+    from meshcheck.kernels import topology as kt
+
+    monkeypatch.setattr(T, "_SPLIT_ROWS", 0)
+    if two_level:
+        monkeypatch.setattr(T, "_FANOUT_BITS", 2)
+        monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
+    calls = {"edge_emit_range": 0, "coarse_refine_range": 0, "unscramble_range": 0}
+    for fn in calls:
+        real = getattr(kt, fn)
+
+        def spy(*a, _real=real, _fn=fn):
+            calls[_fn] += 1
+            return _real(*a)
+        monkeypatch.setattr(kt, fn, spy)
+    mesh = MESHES[name]()
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    _same_topology(ref, got)
+    assert calls["edge_emit_range"] == 2
+    assert calls["coarse_refine_range"] >= (2 if two_level else 0)
+    assert calls["unscramble_range"] == (2 if two_level else 0)
+
+
+def test_cell_parts_cover_the_rows_once():
+    for lengths, widths in (([10], [6]), ([3, 0, 7, 5], [6, 4, 12, 1]), ([1], [6]), ([], [])):
+        for parts in (1, 2, 3):
+            pieces = T._cell_parts(lengths, widths, parts)
+            assert len(pieces) == parts
+            seen = [(i, c) for piece in pieces for i, r0, r1 in piece for c in range(r0, r1)]
+            assert seen == [(i, c) for i, m in enumerate(lengths) for c in range(m)]
+
+
 def test_coarse_bits_and_unscramble():
     from meshcheck.kernels import topology as kt
 

@@ -464,8 +464,14 @@ def face_corners(cells, table, row0, first, corners):
 def sort_packed(ptr, packed, shift):
     """Sort every bucket ptr[b]:ptr[b + 1] of ``packed`` ascending; returns the number of
     distinct values (packed >> shift) summed over the buckets."""
+    return sort_packed_range(ptr, packed, shift, 0, ptr.shape[0] - 1)
+
+
+@njit
+def sort_packed_range(ptr, packed, shift, b0, b1):
+    """:func:`sort_packed` of the buckets b0 <= b < b1 only."""
     n_unique = 0
-    for b in range(ptr.shape[0] - 1):
+    for b in range(b0, b1):
         s = ptr[b]
         e = ptr[b + 1]
         if e - s <= 2 * _INSERTION_MAX:
@@ -503,9 +509,15 @@ def edge_fill_packed(cells, la, lb, g0, fill, packed, shift):
 def count_distinct_packed(ptr, packed, shift, n_values):
     """Number of distinct values (packed >> shift, in [0, n_values < 2**31)) summed
     over the buckets ptr[b]:ptr[b + 1]."""
+    return count_distinct_range(ptr, packed, shift, n_values, 0, ptr.shape[0] - 1)
+
+
+@njit
+def count_distinct_range(ptr, packed, shift, n_values, b0, b1):
+    """:func:`count_distinct_packed` over the buckets b0 <= b < b1 only."""
     seen = np.full(n_values, -1, np.int32)
     total = 0
-    for b in range(ptr.shape[0] - 1):
+    for b in range(b0, b1):
         for i in range(ptr[b], ptr[b + 1]):
             h = packed[i] >> shift
             if seen[h] != b:
@@ -526,21 +538,49 @@ def edge_emit_packed(ptr, packed, shift, n_values, nodes, starts, inverse,
     mod 2**k2) appended to the block of 2**k2 rows holding the row, then every block
     put in place, so the scattered writes stay within few streams and one small block
     (edge ids below 2**(63 - k2))."""
-    mask = (np.int64(1) << shift) - 1
-    rmask = (np.int64(1) << k2) - 1
     n_rows = inverse.shape[0]
     rfill = np.empty(((n_rows - 1) >> k2) + 2 if k2 > 0 else 1, np.int64)
     for c in range(rfill.shape[0]):
         rfill[c] = c << k2
+    edge_emit_range(ptr, packed, shift, n_values, nodes, starts, inverse, bounds, widths,
+                    offsets, k2, 0, ptr.shape[0] - 1, 0, rfill)
+    if k2 > 0:
+        unscramble(inverse, k2)
+
+
+@njit
+def row_block_counts(ptr, packed, shift, b0, b1, bounds, widths, offsets, k2, cnt):
+    """cnt[row >> k2] += 1 for every row in the packed buckets b0 <= b < b1 (of
+    :func:`edge_fill_packed`): how many entries each block of 2**k2 rows receives from
+    these buckets in :func:`edge_emit_range`."""
+    mask = (np.int64(1) << shift) - 1
+    for i in range(ptr[b0], ptr[b1]):
+        v = packed[i]
+        g = (v & mask) >> 4
+        blk = 0
+        while g >= offsets[blk + 1]:
+            blk += 1
+        r = bounds[blk] + (g - offsets[blk]) * widths[blk] + (v & 15)
+        cnt[r >> k2] += 1
+
+
+@njit
+def edge_emit_range(ptr, packed, shift, n_values, nodes, starts, inverse,
+                    bounds, widths, offsets, k2, b0, b1, e0, rfill):
+    """:func:`edge_emit_packed` over the buckets b0 <= b < b1, their first edge e0;
+    rfill (n_rows >> k2 + 2,) the next free entry of every block of 2**k2 rows for
+    these buckets (k2 > 0; the caller unscrambles).  Buckets of disjoint ranges with
+    disjoint rfill ranges can be emitted at the same time."""
+    mask = (np.int64(1) << shift) - 1
+    rmask = (np.int64(1) << k2) - 1
     longest = 0
-    for b in range(ptr.shape[0] - 1):
+    for b in range(b0, b1):
         longest = max(longest, ptr[b + 1] - ptr[b])
     slot = np.full(n_values, -1, np.int32)
     vals = np.empty(longest, np.int64)
     pos = np.empty(longest + 1, np.int64)
     tmp = np.empty(longest, np.int64)
-    e0 = 0
-    for lo in range(ptr.shape[0] - 1):
+    for lo in range(b0, b1):
         s = ptr[lo]
         k = ptr[lo + 1] - s
         if k == 0:
@@ -586,8 +626,7 @@ def edge_emit_packed(ptr, packed, shift, n_values, nodes, starts, inverse,
         for j in range(d):
             slot[vals[j]] = -1
         e0 += d
-    if k2 > 0:
-        unscramble(inverse, k2)
+    return e0
 
 
 @njit
@@ -595,11 +634,17 @@ def unscramble(inverse, k2):
     """Put every block of 2**k2 entries of ``inverse`` (n,) int64 in place: an entry
     (value << k2) | (index mod 2**k2) of block c goes to c * 2**k2 + index mod 2**k2
     as value (the block holds exactly the indices c * 2**k2 .. (c + 1) * 2**k2 - 1)."""
+    unscramble_range(inverse, k2, 0, ((inverse.shape[0] - 1) >> k2) + 1)
+
+
+@njit
+def unscramble_range(inverse, k2, c0, c1):
+    """:func:`unscramble` of the blocks c0 <= c < c1 only."""
     width = np.int64(1) << k2
     mask = width - 1
     n = inverse.shape[0]
     tmp = np.empty(width, np.int64)
-    for base in range(0, n, width):
+    for base in range(c0 << k2, min(c1 << k2, n), width):
         m = min(width, n - base)
         for i in range(m):
             tmp[i] = inverse[base + i]
@@ -648,11 +693,19 @@ def coarse_refine(cptr, tmp, k, ptr, out):
     """Scatter every coarse bucket cptr[c]:cptr[c + 1] of ``tmp`` (entries (value << k) |
     fine bucket mod 2**k) into its fine buckets c * 2**k + i of ``out`` (values, rows
     in order), filling the fine bucket starts ptr (n_buckets + 1,) on the way."""
+    coarse_refine_range(cptr, tmp, k, ptr, out, 0, cptr.shape[0] - 1)
+    ptr[ptr.shape[0] - 1] = cptr[cptr.shape[0] - 1]
+
+
+@njit
+def coarse_refine_range(cptr, tmp, k, ptr, out, c0, c1):
+    """:func:`coarse_refine` of the coarse buckets c0 <= c < c1 only (without the last
+    entry of ptr); disjoint ranges can be refined at the same time."""
     nb = ptr.shape[0] - 1
     width = np.int64(1) << k
     low = width - 1
     cnt = np.empty(width + 1, np.int64)
-    for c in range(cptr.shape[0] - 1):
+    for c in range(c0, c1):
         s = cptr[c]
         e = cptr[c + 1]
         base = c << k
@@ -673,7 +726,6 @@ def coarse_refine(cptr, tmp, k, ptr, out):
             p = cnt[f]
             cnt[f] = p + 1
             out[p] = x >> k
-    ptr[nb] = cptr[cptr.shape[0] - 1]
 
 
 @njit
@@ -747,9 +799,16 @@ def tri_emit_packed(ptr, packed, shift, edge_nodes, corners, cells, count):
     """:func:`face_emit` from edge buckets sorted by :func:`sort_packed`, with the
     outward corners (n_f, 4) of every triangle's first row rebuilt from its sorted
     nodes (edge nodes, largest node) and order code (corners[:, 3] = -1)."""
+    tri_emit_range(ptr, packed, shift, edge_nodes, corners, cells, count, 0,
+                   ptr.shape[0] - 1, 0)
+
+
+@njit
+def tri_emit_range(ptr, packed, shift, edge_nodes, corners, cells, count, b0, b1, f0):
+    """:func:`tri_emit_packed` of the buckets b0 <= b < b1, their first face f0."""
     mask = (np.int64(1) << shift) - 1
-    f = -1
-    for b in range(ptr.shape[0] - 1):
+    f = f0 - 1
+    for b in range(b0, b1):
         prev = -1
         for i in range(ptr[b], ptr[b + 1]):
             v = packed[i]
