@@ -5,6 +5,7 @@ Exit codes: 0 the mesh is ready up to the requested upper frequency,
 """
 from __future__ import annotations
 
+import gc
 import sys
 import threading
 import time
@@ -223,7 +224,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     if job_spec is not None and temperature is not None:
         job_spec = job_spec.with_temperature(temperature)  # the command line wins
     temperature = 20.0 if temperature is None else temperature
-    with _stages(quiet) as step:
+    with _stages(quiet) as step, _no_gc():
         step("reading")
         mesh = read_mesh(mesh_path, units.value if units is not None else None,
                          fmax_hint=float(np.max(f)) if len(f) else None,
@@ -235,20 +236,25 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
                                  speed=speed, region_speeds=region_speeds, job=job_spec)
         res = audit(mesh, settings, progress=step)
         step("reports")
-        if out is not None and kinds & {"vtu", "pos"} and mesh.n_cells > OVERLAP_CELLS:
-            _size_field_aside(res)
-        data = to_dict(res, cost=cost)
-        files = None
+        big = mesh.n_cells > OVERLAP_CELLS
+        vtu = None
         if out is not None:
             out.mkdir(parents=True, exist_ok=True)
             stem = mesh_path.stem
+            if "vtu" in kinds and big:  # the VTU (and its size field) beside the JSON
+                vtu = _aside(write_vtu, res, out / f"{stem}.audit.vtu")
+            elif "pos" in kinds and big:
+                _size_field_aside(res)
+        data = to_dict(res, cost=cost)
+        files = None
+        if out is not None:
             files = {}
             if "json" in kinds:
                 files["json"] = write_json(res, out / f"{stem}.audit.json", data)
             if "md" in kinds:
                 files["markdown"] = write_markdown(res, out / f"{stem}.audit.md", data)
             if "vtu" in kinds:
-                files["vtu"] = write_vtu(res, out / f"{stem}.audit.vtu")
+                files["vtu"] = vtu.result() if vtu else write_vtu(res, out / f"{stem}.audit.vtu")
             if "pos" in kinds:
                 from .sizefield import write_size_view
                 files["size view (gmsh)"] = write_size_view(res, out / f"{stem}.size.pos")
@@ -262,6 +268,38 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     if not quiet:
         _print_summary(console, res, files, data)
     return 0 if res.ready else 1
+
+
+@contextmanager
+def _no_gc():
+    """Python's cycle collector off for the audit: it makes few cycles, while the many
+    small objects of the reports and kernel calls would trigger collections that each
+    walk every live object (restored on exit)."""
+    was = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was:
+            gc.enable()
+
+
+def _aside(fn, *args):
+    """``fn(*args)`` started on a daemon thread; a future whose ``result()`` returns its
+    value or raises its exception (the file writers release the GIL while they encode
+    and write)."""
+    from concurrent.futures import Future
+
+    fut: Future = Future()
+
+    def run():
+        try:
+            fut.set_result(fn(*args))
+        except BaseException as exc:  # handed to the caller of result()
+            fut.set_exception(exc)
+
+    threading.Thread(target=run, name="meshcheck-report", daemon=True).start()
+    return fut
 
 
 def _size_field_aside(res) -> None:

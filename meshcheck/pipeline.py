@@ -194,8 +194,10 @@ def audit(mesh: Mesh, settings: AuditSettings,
     done("quality")
     t["quality"] += t_q
     stage("advice")
-    speeds = cell_speeds(mesh, settings)
     media = media_of(mesh, settings)
+    speeds = cell_speeds(mesh, settings)
+    if speeds is not media.cell_speed and np.array_equal(speeds, media.cell_speed):
+        speeds = media.cell_speed  # one array of the same speeds, not two
     adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
                  cell_mach=media.cell_mach if media.has_flow else None)
     # the sweep and the two cluster searches are independent once the advice is known

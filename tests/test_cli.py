@@ -272,7 +272,7 @@ def test_size_field_beside_the_json_gives_the_same_files(box_file, tmp_path, mon
     real = sizefield.size_field
     monkeypatch.setattr(sizefield, "size_field",
                         lambda *a, **k: calls.append(1) or real(*a, **k))
-    args = ["audit", str(box_file), "-u", "m", "--fmax", "200", "--reports", "vtu,pos",
+    args = ["audit", str(box_file), "-u", "m", "--fmax", "200", "--reports", "json,vtu,pos",
             "--no-cost", "--quiet", "--out"]
     assert main(args + [str(tmp_path / "serial")]) == 0
     monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
@@ -281,6 +281,23 @@ def test_size_field_beside_the_json_gives_the_same_files(box_file, tmp_path, mon
     for name in ("box.audit.vtu", "box.size.pos"):
         assert (tmp_path / "serial" / name).read_bytes() == \
             (tmp_path / "aside" / name).read_bytes(), name
+    # the VTU written on a thread beside the JSON: the JSON is the same (but its time)
+    serial, aside = (json.loads((tmp_path / d / "box.audit.json").read_text())
+                     for d in ("serial", "aside"))
+    for d in (serial, aside):
+        d.pop("created"), d.pop("timings_s", None)
+    assert serial == aside
+
+
+def test_report_written_aside_hands_back_its_value_or_its_error():
+    from meshcheck.cli import _aside
+
+    assert _aside(lambda a, b: a + b, 2, 3).result(timeout=10) == 5
+
+    def fail():
+        raise OSError("disk full")
+    with pytest.raises(OSError, match="disk full"):
+        _aside(fail).result(timeout=10)
 
 
 def test_size_field_is_computed_once_when_threads_ask_together(monkeypatch):
