@@ -83,8 +83,11 @@ class AdviceSettings:
 class Advice:
     """Frequency limits per order and the advice at the upper frequency.
 
-    cell_limit : (n_cells, pmax) float64 highest usable frequency per cell and
-        order p = 1..pmax (non-decreasing in p), Hz.
+    limit_rows : (n_rows, pmax) float64 highest usable frequency per order p =
+        1..pmax (non-decreasing in p), Hz, of every cell (``limit_row`` None) or of
+        every limit row: cells share the row of their longest edge (about half as many
+        rows as cells in a tetrahedral mesh); see :attr:`cell_limit`.
+    limit_row : (n_cells,) integer row of every cell in ``limit_rows``, or None.
     cell_size : (n_cells,) longest edge of each cell, m.
     cell_distance : (n_cells,) propagation distance L used, m.
     cell_speed : (n_cells,) sound speed, m/s.
@@ -101,7 +104,7 @@ class Advice:
 
     settings: AdviceSettings
     fmax: float
-    cell_limit: np.ndarray
+    limit_rows: np.ndarray
     cell_size: np.ndarray
     cell_distance: np.ndarray
     cell_speed: np.ndarray
@@ -112,16 +115,33 @@ class Advice:
     refine: np.ndarray
     coarsen: np.ndarray
     edge_flow_factor: np.ndarray | None = None
+    limit_row: np.ndarray | None = None
 
     @property
     def pmax(self) -> int:
-        return self.cell_limit.shape[1]
+        return self.limit_rows.shape[1]
+
+    @property
+    def cell_limit(self) -> np.ndarray:
+        """(n_cells, pmax) float64 highest usable frequency per cell and order p =
+        1..pmax, Hz (a new (n_cells, pmax) array when cells share rows: prefer
+        :meth:`limit_at` and :attr:`limit_rows` on large meshes)."""
+        if self.limit_row is None:
+            return self.limit_rows
+        return self.limit_rows[self.limit_row]
+
+    def limit_at(self, p: int) -> np.ndarray:
+        """(n_cells,) highest usable frequency of every cell at order p (1-based), Hz."""
+        if self.limit_row is None:
+            return self.limit_rows[:, p - 1]
+        return self.limit_rows[self.limit_row, p - 1]
 
     @cached_property
     def mesh_limit(self) -> np.ndarray:
         """(pmax,) highest usable frequency of the whole mesh per order, Hz (computed once;
-        read-only)."""
-        out = column_min(self.cell_limit) if len(self.cell_limit) else np.zeros(self.pmax)
+        read-only).  Every limit row belongs to a cell."""
+        out = (column_min(self.limit_rows) if len(self.cell_size) and len(self.limit_rows)
+               else np.zeros(self.pmax))
         out.setflags(write=False)
         return out
 
@@ -132,18 +152,41 @@ class Advice:
     def region_limit(self, region: np.ndarray) -> dict[int, np.ndarray]:
         """Region tag -> (pmax,) highest usable frequency per order, Hz."""
         runs = region_runs(region)
+        if self.limit_row is not None:
+            return _region_limit_rows(self.limit_rows, self.limit_row, region, runs)
         if runs is not None:  # regions in a few runs of cells: minima over views
-            return {tag: np.minimum.reduce([column_min(self.cell_limit[lo:hi])
+            return {tag: np.minimum.reduce([column_min(self.limit_rows[lo:hi])
                                             for lo, hi in r]) for tag, r in runs.items()}
         out = {}
         for tag in np.unique(region):
-            out[int(tag)] = column_min(self.cell_limit[region == tag])
+            out[int(tag)] = column_min(self.limit_rows[region == tag])
         return out
 
     @property
     def coarsen_ratio(self) -> np.ndarray:
         """(n_cells,) target size / current longest edge (above 1: could be coarser)."""
         return self.target_size / self.cell_size
+
+
+def _region_limit_rows(rows: np.ndarray, index: np.ndarray, region: np.ndarray,
+                       runs: dict | None) -> dict[int, np.ndarray]:
+    """:meth:`Advice.region_limit` over shared rows ``rows`` (n_rows, pmax), cell i using
+    row index[i]: the minimum over the rows of each region's cells (compiled, one pass
+    over the cells; no (cells, pmax) copy).  ``runs``: :func:`region_runs` of region."""
+    from .kernels import advice as _ka
+
+    if runs is None:
+        runs = {int(tag): [np.flatnonzero(region == tag)] for tag in np.unique(region)}
+    out = {}
+    for tag, parts in runs.items():
+        m = np.full(rows.shape[1], np.inf)
+        for part in parts:
+            if isinstance(part, np.ndarray):  # scattered cells: their rows gathered
+                _ka.row_min(rows, np.ascontiguousarray(index[part]), 0, len(part), m)
+            else:
+                _ka.row_min(rows, index, part[0], part[1], m)
+        out[tag] = m
+    return out
 
 
 def column_min(a: np.ndarray, block: int = 256) -> np.ndarray:
@@ -531,40 +574,53 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     n_r = table.log_r.size
     scale, top = float((n_r - 1) / table.log_r[-1]), float(n_r - 1)
     args = (h, c, L, code, A, base, step, scale, top)
-    cell_limit = np.empty((n_cells, pmax))
     cell_order = np.empty(n_cells, np.int64)
     refine = np.empty(n_cells, bool)
     edge_order = np.empty(n_e, np.int64)
     edge_limit = np.empty(n_e)
 
     # the limits at every order of the cells' longest edges (about half the edges, each
-    # shared by about two cells), computed once per edge with the edges' orders and
-    # written into the row of the first cell it governs (its owner); with no cell taking
-    # the minimum over its edges that row is finished (running maximum, orders) there too
+    # shared by about two cells), computed once per edge with the edges' orders into one
+    # row per such edge, which its cells share; with no cell taking the minimum over its
+    # edges the rows are finished (running maximum, orders) there too.  Cells taking the
+    # minimum get rows of their own, after the shared ones.
     owner = np.full(n_e, -1, id_type)
-    _ka.mark_owners(gov, owner)
+    skip = np.zeros(n_cells if len(exact) else 0, bool)
+    skip[exact] = True
+    n_shared = _ka.mark_rows(gov, skip, owner)
+    del skip
+    n_rows = n_shared + len(exact)
+    limit_rows = np.empty((n_rows, pmax))
+    row_order = np.empty(n_rows, np.int64)
+    row_refine = np.empty(n_rows, bool)
     finish = not len(exact)
 
     def edges(r):
         return _ka.edge_orders(r[0], r[1], *args, float(fmax), P, edge_order, edge_limit,
-                               owner, cell_limit, finish, cell_order, refine)
+                               owner, limit_rows, finish, row_order, row_refine)
 
     if sum(thread_map(edges, _chunks(n_e, 2 if par else 1), parallel=par)):
         raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
-    # the other cells copy their owner's row; every cell's longest edge and size factor
+    # every cell's row, longest edge and size factor
+    limit_row = np.empty(n_cells, id_type if n_rows < 2 ** 31 - 1 else np.int64)
     cell_size, a_gov = np.empty(n_cells), np.empty(n_cells)
-    thread_map(lambda r: _ka.gov_rows(gov, owner, r[0], r[1], cell_limit, h, code, A,
-                                      cell_size, a_gov, finish, P, cell_order, refine),
+    thread_map(lambda r: _ka.gov_index(gov, owner, r[0], r[1], limit_row, h, code, A,
+                                       cell_size, a_gov, finish, P, row_order, row_refine,
+                                       cell_order, refine),
                _chunks(n_cells, 2 if par else 1), parallel=par)
     del owner, gov
     if not finish:
+        limit_row[exact] = np.arange(n_shared, n_rows)
         for ce, lo, hi in zip(blocks, offs[:-1], offs[1:]):
-            rows = exact[(exact >= lo) & (exact < hi)] - lo
-            if len(rows):
-                _ka.exact_limits(ce, rows, int(lo), *args, cell_limit)
-        thread_map(lambda r: _ka.finish_limits(cell_limit, r[0], r[1], float(fmax), P,
-                                               cell_order, refine),
-                   _chunks(n_cells, 2 if par else 1), parallel=par)
+            sel = (exact >= lo) & (exact < hi)
+            if sel.any():
+                _ka.exact_rows(ce, exact[sel] - lo, np.flatnonzero(sel) + n_shared, *args,
+                               limit_rows)
+        thread_map(lambda r: _ka.finish_limits(limit_rows, r[0], r[1], float(fmax), P,
+                                               row_order, row_refine),
+                   _chunks(n_rows, 2 if par else 1), parallel=par)
+        np.take(row_order, limit_row, out=cell_order)
+        np.take(row_refine, limit_row, out=refine)
 
     def cell_max(values):
         out = np.empty(n_cells)
@@ -592,8 +648,9 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     del size
     with np.errstate(divide="ignore", invalid="ignore"):  # a_cell's buffer: the sizes x factor
         coarsen = target_size >= np.multiply(cell_size, settings.coarsen_factor, out=a_cell)
-    return Advice(settings, float(fmax), cell_limit, cell_size, cell_L, cell_speed,
-                  edge_limit, edge_order, cell_order, target_size, refine, coarsen, flow)
+    return Advice(settings, float(fmax), limit_rows, cell_size, cell_L, cell_speed,
+                  edge_limit, edge_order, cell_order, target_size, refine, coarsen, flow,
+                  limit_row)
 
 
 @dataclass(frozen=True)
@@ -621,20 +678,21 @@ def sweep(mesh: Mesh, topo: Topology, advice: Advice, frequencies: np.ndarray) -
     f = np.asarray(frequencies, dtype=float)
     s = advice.settings
     pmax = advice.pmax
-    n = advice.cell_limit.shape[0]
+    n = len(advice.cell_size)
     # above[p] = number of cells whose limit at order p+1 is below f
     dofs = None
     if kernels.use_compiled(n) and f.ndim == 1 and len(f) and np.all(np.isfinite(f)):
         # one pass over the cells: histograms of their limits over the sorted frequencies
         from .cost import _dofs_from_bins, _limit_bins
         variable = s.order is None
-        order, hist, B = _limit_bins(advice.cell_limit, f, s.max_order - 1 if variable else 0)
+        order, hist, B = _limit_bins(advice.limit_rows, f, s.max_order - 1 if variable else 0,
+                                     advice.limit_row)
         above = np.empty((len(f), pmax), np.int64)
         above[order] = np.cumsum(hist, axis=1)[:, :len(f)].T
         if variable:
             dofs = _dofs_from_bins(mesh, topo, B, order, mesh.dim == 3 and len(topo.faces) > 0)
     else:
-        above = np.stack([np.searchsorted(np.sort(advice.cell_limit[:, p]), f, side="left")
+        above = np.stack([np.searchsorted(np.sort(advice.limit_at(p + 1)), f, side="left")
                           for p in range(pmax)], axis=1)
     counts = np.empty((len(f), pmax + 1), dtype=np.int64)
     counts[:, 0] = n - above[:, 0]
@@ -643,7 +701,8 @@ def sweep(mesh: Mesh, topo: Topology, advice: Advice, frequencies: np.ndarray) -
     ready = above[:, s.allowed_order - 1] == 0
     if s.order is None:
         if dofs is None:
-            dofs = variable_order_dofs(mesh, topo, advice.cell_limit, f, s.max_order)
+            dofs = variable_order_dofs(mesh, topo, advice.limit_rows, f, s.max_order,
+                                       advice.limit_row)
         return Sweep(f, counts, ready, dofs)
     dofs = np.full(len(f), lagrange_dofs(mesh, topo, s.order), dtype=np.int64)
     return Sweep(f, counts, ready, dofs, condensed_dofs(mesh, topo, s.order))

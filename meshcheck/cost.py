@@ -102,11 +102,13 @@ def lagrange_dofs(mesh: Mesh, topo: Topology, p: int) -> int:
 
 
 def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
-                        frequencies: np.ndarray, max_order: int) -> np.ndarray:
+                        frequencies: np.ndarray, max_order: int,
+                        limit_row: np.ndarray | None = None) -> np.ndarray:
     """Condensed hierarchical unknowns per frequency for variable order.
 
     cell_limits : (n_cells, pmax) highest usable frequency of each cell per order
-        (non-decreasing along the order axis), Hz.
+        (non-decreasing along the order axis), Hz; or, with ``limit_row`` ((n_cells,)
+        integers), the rows the cells share (``Advice.limit_rows``).
     frequencies : (n_f,) Hz.  A cell takes the lowest order whose limit reaches
     the frequency, capped at ``max_order``; edges and faces take the highest
     order of their cells (maximum rule).  Cost O((n_entities) log n) per order,
@@ -118,7 +120,8 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
     three = mesh.dim == 3 and len(faces) > 0
     if kernels.use_compiled(mesh.n_cells) and f.ndim == 1 and len(f) and \
             np.all(np.isfinite(f)) and max_order - 1 <= np.shape(cell_limits)[1]:
-        return _variable_order_dofs_compiled(mesh, topo, cell_limits, f, max_order, three)
+        return _variable_order_dofs_compiled(mesh, topo, cell_limits, f, max_order, three,
+                                             limit_row)
     if three:
         c0, c1 = faces.cells[:, 0], faces.cells[:, 1]
         two = c1 >= 0
@@ -129,7 +132,8 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
 
     def above(q: int) -> np.ndarray:
         """Unknowns added where entities need more than order q, per frequency."""
-        col = np.ascontiguousarray(cell_limits[:, q - 1])
+        col = np.ascontiguousarray(cell_limits[:, q - 1] if limit_row is None else
+                                   cell_limits[limit_row, q - 1])
         # an edge has order > q where one of its cells has (limit at q below f)
         g_edge = np.sort(topo.edges.from_cells(col, np.minimum))
         out = np.searchsorted(g_edge, f, side="left").astype(np.int64)
@@ -148,7 +152,8 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
     return total
 
 
-def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int):
+def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
+                limit_row: np.ndarray | None = None):
     """Histograms of the cells' limits over the sorted (finite) frequencies, with the
     kernel :func:`meshcheck.kernels.advice.order_hist`.
 
@@ -158,6 +163,8 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int):
     smallest unsigned type holding n_f + 1 (uint8 up to 254 frequencies: one byte per
     cell and order for the random reads of :func:`_dofs_from_bins`), W = ncol rounded up
     to a multiple of 8, the columns past ncol set to n_f + 1.
+    With ``limit_row`` (n_cells,), ``cell_limits`` are rows shared by the cells: the
+    rows are binned once, counted as often as cells use them, and B is gathered.
     """
     from .kernels import advice as _ka
 
@@ -169,14 +176,20 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int):
     B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f) + 1, dtype)
     par = lim.shape[0] > 50_000
     chunks = _chunks(lim.shape[0], 2 if par else 1)
+    weight = None if limit_row is None else np.bincount(limit_row, minlength=lim.shape[0])
 
     def run(r):
         part = np.zeros_like(hist)
-        _ka.order_hist(lim, fs, r[0], r[1], part, B, ncol)
+        if weight is None:
+            _ka.order_hist(lim, fs, r[0], r[1], part, B, ncol)
+        else:
+            _ka.order_hist_rows(lim, weight, fs, r[0], r[1], part, B, ncol)
         return part
 
     for part in thread_map(run, chunks, parallel=par):
         hist += part
+    if limit_row is not None:
+        B = B[limit_row] if B.shape[1] else np.zeros((len(limit_row), 0), B.dtype)
     return order, hist, B
 
 
@@ -224,10 +237,11 @@ def _chunks(n: int, parts: int) -> list[tuple[int, int]]:
 
 
 def _variable_order_dofs_compiled(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
-                                  f: np.ndarray, max_order: int, three: bool) -> np.ndarray:
+                                  f: np.ndarray, max_order: int, three: bool,
+                                  limit_row: np.ndarray | None = None) -> np.ndarray:
     """:func:`variable_order_dofs` by histograms over the sorted frequencies (kernels of
     :mod:`meshcheck.kernels.advice`): the same (n_f,) int64 counts."""
-    order, _, B = _limit_bins(cell_limits, f, max(max_order - 1, 0))
+    order, _, B = _limit_bins(cell_limits, f, max(max_order - 1, 0), limit_row)
     return _dofs_from_bins(mesh, topo, B, order, three)
 
 
@@ -401,10 +415,14 @@ def system_size(mesh: Mesh, topo: Topology, cell_order, condensed: bool = True,
                       int(np.dot(n_loc, n_loc)), int(np.sum(n_loc ** 3)))
 
 
-def cell_orders_at(cell_limits: np.ndarray, frequency: float, max_order: int) -> np.ndarray:
-    """(n_cells,) lowest order whose limit reaches ``frequency`` (Hz), capped at max_order."""
+def cell_orders_at(cell_limits: np.ndarray, frequency: float, max_order: int,
+                   limit_row: np.ndarray | None = None) -> np.ndarray:
+    """(n_cells,) lowest order whose limit reaches ``frequency`` (Hz), capped at max_order
+    (``limit_row``: the cells' rows of shared ``cell_limits``, see
+    :func:`variable_order_dofs`)."""
     lim = np.asarray(cell_limits)[:, :max(max_order - 1, 0)]
-    return 1 + np.count_nonzero(lim < frequency, axis=1)
+    q = 1 + np.count_nonzero(lim < frequency, axis=1)
+    return q if limit_row is None else q[limit_row]
 
 
 #: most frequencies of a sweep whose systems are counted exactly (see variable_order_systems)
@@ -414,7 +432,8 @@ EXACT_SYSTEMS = 16
 def variable_order_systems(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
                            frequencies: np.ndarray, max_order: int,
                            adjacency: Adjacency | None = None,
-                           exact: int = EXACT_SYSTEMS) -> list[SystemSize]:
+                           exact: int = EXACT_SYSTEMS,
+                           limit_row: np.ndarray | None = None) -> list[SystemSize]:
     """Condensed hierarchical system per frequency with the advised orders.
 
     The system is counted exactly at ``exact`` frequencies spread evenly over the
@@ -429,7 +448,7 @@ def variable_order_systems(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
         np.unique(np.round(np.linspace(0, len(f) - 1, exact)).astype(int))
     configs, slot = [], []  # distinct order configurations, in sweep order
     for i in picks:
-        q = cell_orders_at(cell_limits, f[i], max_order)
+        q = cell_orders_at(cell_limits, f[i], max_order, limit_row)
         if not configs or not np.array_equal(q, configs[-1]):
             configs.append(q)
         slot.append(len(configs) - 1)
@@ -574,7 +593,8 @@ def sweep_quotes(mesh: Mesh, topo: Topology, advice, frequencies, machine,
     lim = advice.mesh_limit
     P = s.max_order
     out = []
-    systems = variable_order_systems(mesh, topo, advice.cell_limit, f, P, adj)
+    systems = variable_order_systems(mesh, topo, advice.limit_rows, f, P, adj,
+                                     limit_row=advice.limit_row)
     out.append(quote(f"variable p<={P}", mesh.dim, f, systems, f <= lim[P - 1], machine,
                      None, mesh.n_cells))
     orders = list(dict.fromkeys([*fixed_orders, *( [s.order] if s.order else [])]))

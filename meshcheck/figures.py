@@ -330,7 +330,7 @@ def unknowns(res: AuditResult, data: dict | None = None) -> Figure:
     if s.advice.order is None:
         var = np.asarray(d["sweep"]["dofs"], dtype=np.int64)
     else:
-        var = variable_order_dofs(res.mesh, res.topology, a.cell_limit, f, P)
+        var = variable_order_dofs(res.mesh, res.topology, a.limit_rows, f, P, a.limit_row)
     fixed_orders = sorted({1, 2, s.advice.order or 1} & set(range(1, P + 1)))
     fixed = {p: lagrange_dofs(res.mesh, res.topology, p) for p in fixed_orders}
     limit = {p: float(a.mesh_limit[p - 1]) for p in fixed_orders}

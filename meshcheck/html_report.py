@@ -191,8 +191,8 @@ def solver_modes(res: AuditResult, data: dict | None = None) -> list[dict]:
     if s.advice.order is None:
         dof_var = int(data["sweep"]["dofs"][-1])
     else:
-        dof_var = int(variable_order_dofs(res.mesh, res.topology, a.cell_limit,
-                                          np.array([fmax]), P)[0])
+        dof_var = int(variable_order_dofs(res.mesh, res.topology, a.limit_rows,
+                                          np.array([fmax]), P, a.limit_row)[0])
     model = float(a.mesh_limit[P - 1])
     rows.append({"mode": "variable", "order": P, "label": f"variable order, p \u2264 {P}",
                  "signed_off_hz": 0.0 if blocked else model, "model_limit_hz": model,

@@ -183,8 +183,8 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
     counts = {b.type: len(b) for b in m.blocks}
     P = s.advice.allowed_order
     limiting = None
-    if len(a.cell_limit):
-        worst = int(np.argmin(a.cell_limit[:, P - 1]))
+    if len(a.cell_size):
+        worst = int(np.argmin(a.limit_at(P)))
         limiting = {"cell": worst, "region": int(m.region[worst]),
                     "region_name": m.region_name(m.region[worst]),
                     "largest_edge": float(a.cell_size[worst] / scale),
@@ -494,7 +494,7 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
             "target_size": lazy(lambda: (a.target_size / scale).astype(f32), f32),
             "coarsen_ratio": lazy(lambda: a.coarsen_ratio.astype(f32), f32)}
     for p in range(1, res.settings.advice.max_order + 1):
-        data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.cell_limit[:, p - 1].astype(f32), f32)
+        data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.limit_at(p).astype(f32), f32)
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
             data[f"quality_{name}"] = lazy(lambda v=values: v.astype(f32), f32)

@@ -19,7 +19,7 @@ pytest.importorskip("numba")
 import meshcheck.kernels.advice as KA  # noqa: E402
 from meshcheck import kernels  # noqa: E402
 from meshcheck.advice import AdviceSettings, _alignment, advise, clusters, sweep  # noqa: E402
-from meshcheck.cost import system_size, variable_order_dofs  # noqa: E402
+from meshcheck.cost import cell_orders_at, system_size, variable_order_dofs  # noqa: E402
 from meshcheck.mesh import CellBlock, Mesh  # noqa: E402
 from meshcheck.topology import build_topology  # noqa: E402
 from meshes import hex_box, tet10_box, tet_box  # noqa: E402
@@ -141,6 +141,26 @@ def test_advise_and_sweep_equal_the_numpy_reference(monkeypatch, name, setting):
     for field in ("frequencies", "order_counts", "ready", "dofs"):
         _same(getattr(rs, field), getattr(gs, field), field)
     assert rs.condensed_fixed == gs.condensed_fixed
+    # the compiled advice keeps one row of limits per longest edge, shared by its cells:
+    # every row used, the sweep, mesh and region limits those of the per-cell table
+    assert ref.limit_row is None and got.limit_row is not None
+    assert np.array_equal(np.unique(got.limit_row), np.arange(len(got.limit_rows)))
+    if name.startswith("tet"):
+        assert len(got.limit_rows) < 0.8 * mesh.n_cells
+    for p in range(1, ref.pmax + 1):
+        _same(ref.limit_at(p), got.limit_at(p), f"limit at {p}")
+    _same(ref.mesh_limit, got.mesh_limit, "mesh limit")
+    for region in (mesh.region, np.arange(mesh.n_cells) % 3):  # runs, scattered
+        want, have = ref.region_limit(region), got.region_limit(region)
+        assert want.keys() == have.keys()
+        for tag in want:
+            _same(want[tag], have[tag], f"region {tag}")
+    for rows in _both(monkeypatch, lambda: sweep(mesh, topo, got, f)):  # both paths
+        for field in ("order_counts", "ready", "dofs"):
+            _same(getattr(rs, field), getattr(rows, field), field)
+    for q in (1, s.max_order):
+        _same(cell_orders_at(ref.cell_limit, fmax, q),
+              cell_orders_at(got.limit_rows, fmax, q, got.limit_row), "orders")
 
 
 @pytest.mark.parametrize("name", ["tet", "hex", "hex+wedge", "triangle 2D"])
@@ -182,7 +202,7 @@ def test_sweep_of_limits_with_nan_and_many_frequencies(monkeypatch):
     adv = advise(mesh, topo, _speeds(mesh), 500.0, AdviceSettings())
     lim = adv.cell_limit.copy()
     lim[::17, 3:] = np.nan
-    odd = dataclasses.replace(adv, cell_limit=lim)
+    odd = dataclasses.replace(adv, limit_rows=lim)
     # bins of one byte up to 254 frequencies, two bytes from 255 (bin + 1, 0 = NaN)
     for f in (np.linspace(10.0, 5000.0, 1000), np.linspace(10.0, 5000.0, 254)[::-1],
               np.linspace(10.0, 5000.0, 255), np.array([500.0]), np.array([3e3, 1e2, 3e3])):
@@ -283,8 +303,8 @@ def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
     assert np.array_equal(out, np.maximum.reduce(h[ce], axis=1), equal_nan=True)
 
 
-KERNELS = ("governing_edges", "mark_owners", "odd_cells", "longest_directions", "gov_rows",
-           "exact_limits", "finish_limits", "edge_orders", "per_cell_max", "order_hist",
+KERNELS = ("governing_edges", "mark_rows", "odd_cells", "longest_directions", "gov_index",
+           "exact_rows", "finish_limits", "edge_orders", "per_cell_max", "order_hist_rows",
            "dof_hist", "face_dof_hist", "label_flagged", "cluster_stats")
 
 
@@ -292,7 +312,7 @@ KERNELS = ("governing_edges", "mark_owners", "odd_cells", "longest_directions", 
     # two media, wedges: cells of mixed size factors, limits finished after the exact ones
     ("hex+wedge", set(KERNELS)),
     # one medium, one kind: the cell pass finishes the limits itself
-    ("tet", set(KERNELS) - {"odd_cells", "exact_limits", "finish_limits", "per_cell_max"})])
+    ("tet", set(KERNELS) - {"odd_cells", "exact_rows", "finish_limits", "per_cell_max"})])
 def test_the_compiled_path_is_taken(monkeypatch, name, expected):
     # a comparison with itself would prove nothing: every kernel of the advice stage
     # runs under MESHCHECK_KERNELS=numba and none under numpy

@@ -86,23 +86,31 @@ def test_metric_stats_equal_numpys_percentile_median_and_sort(n, bad):
         assert got["min"] == s[0] and got["max"] == s[-1]
 
 
+@pytest.mark.parametrize("shared", [False, True])
 @pytest.mark.parametrize("layout", ["one", "runs", "scattered"])
-def test_region_limits_cells_and_volumes_equal_the_masked_reference(layout):
+def test_region_limits_cells_and_volumes_equal_the_masked_reference(layout, shared):
     rng = np.random.default_rng(5)
     n = 3000
     region = {"one": np.full(n, 4), "runs": np.repeat([3, 1, 3, 2], [700, 900, 400, 1000]),
               "scattered": rng.integers(1, 4, n)}[layout]
     runs = region_runs(region)
     assert (runs is None) == (layout == "scattered")
-    lim = np.maximum.accumulate(rng.uniform(10.0, 1e3, (n, 5)), axis=1)
     vol = rng.normal(size=n) * 1e-6
-    adv = SimpleNamespace(cell_limit=lim)
+    if shared:  # cells sharing rows of limits (the compiled advice), some rows NaN
+        rows = np.maximum.accumulate(rng.uniform(10.0, 1e3, (n // 3, 5)), axis=1)
+        rows[7, 2:] = np.nan
+        index = rng.integers(0, len(rows), n).astype(np.int32)
+        lim = rows[index]
+        adv = SimpleNamespace(limit_rows=rows, limit_row=index)
+    else:
+        lim = np.maximum.accumulate(rng.uniform(10.0, 1e3, (n, 5)), axis=1)
+        adv = SimpleNamespace(limit_rows=lim, limit_row=None)
     got = Advice.region_limit(adv, region)
     tags = np.unique(region)
     assert list(got) == tags.tolist()
     for tag, cells_, first, v in [(t, c, f, x) for t, _, c, f, x in
                                   _region_cells(region, vol, got)]:
         sel = region == tag
-        assert np.array_equal(got[tag], lim[sel].min(axis=0))
+        assert np.array_equal(got[tag], lim[sel].min(axis=0), equal_nan=True)
         assert cells_ == sel.sum() and first == np.flatnonzero(sel)[0]
         assert v == float(np.abs(vol[sel]).sum())  # the same sum, to the bit

@@ -217,9 +217,17 @@ def _edge_limit(e, p, h, c, L, code, A, base, step, scale, top):
 def exact_limits(ce, rows, start, h, c, L, code, A, base, step, scale, top, out):
     """out[start + r, p] = minimum over the edges of row r of a block (np.minimum
     semantics) of their limits at order p + 1, for the given local rows."""
+    exact_rows(ce, rows, rows + start, h, c, L, code, A, base, step, scale, top, out)
+
+
+@njit
+def exact_rows(ce, rows, dest, h, c, L, code, A, base, step, scale, top, out):
+    """out[dest[k], p] = minimum over the edges of row rows[k] of a block (np.minimum
+    semantics) of their limits at order p + 1."""
     pmax = out.shape[1]
     k = ce.shape[1]
-    for r in rows:
+    for q in range(rows.shape[0]):
+        r = rows[q]
         for p in range(pmax):
             m = np.inf
             for j in range(k):
@@ -228,7 +236,7 @@ def exact_limits(ce, rows, start, h, c, L, code, A, base, step, scale, top, out)
                     m = v
                 if m != m:
                     break
-            out[start + r, p] = m
+            out[dest[q], p] = m
 
 
 @njit(inline="always")
@@ -256,6 +264,44 @@ def finish_limits(out, lo, hi, fmax, P, cell_order, refine):
     allowed order P below fmax, for cells lo <= i < hi."""
     for i in range(lo, hi):
         _finish_row(out, i, fmax, P, cell_order, refine)
+
+
+@njit
+def mark_rows(gov, skip, owner):
+    """owner[e] = the limit row of edge e: rows 0, 1, ... in the order of the first
+    cell governed by e (gov : (n_cells,) integers), cells with skip[i] left out (skip
+    (n_cells,) bool, or empty: none); owner : (n_e,) signed integers set to -1 by the
+    caller, left -1 for the other edges.  Returns the number of rows."""
+    n = 0
+    some = skip.shape[0] > 0
+    for i in range(gov.shape[0]):
+        if some and skip[i]:
+            continue
+        e = gov[i]
+        if owner[e] < 0:
+            owner[e] = n
+            n += 1
+    return n
+
+
+@njit
+def gov_index(gov, owner, lo, hi, limit_row, h, code, A, size, a_gov, finish, P,
+              row_order, row_refine, cell_order, refine):
+    """For cells lo <= i < hi: limit_row[i] = owner[gov[i]], the row that
+    :func:`edge_orders` wrote for the cell's longest edge (see :func:`mark_rows`; -1
+    for a cell skipped there), with cell_order[i], refine[i] of that row when
+    ``finish``; size[i] = h[gov[i]] (m) and a_gov[i] = A[code[gov[i]], P - 1] (its
+    size factor at the allowed order).  Cells of different ranges write different
+    entries: ranges can run on different threads."""
+    for i in range(lo, hi):
+        e = gov[i]
+        r = owner[e]
+        limit_row[i] = r
+        if finish:
+            cell_order[i] = row_order[r]
+            refine[i] = row_refine[r]
+        size[i] = h[e]
+        a_gov[i] = A[code[e], P - 1]
 
 
 @njit
@@ -391,6 +437,38 @@ def _bin(x, fs, lo):
         else:
             lo = mid + 1
     return lo
+
+
+@njit
+def order_hist_rows(lim, weight, fs, lo, hi, hist, B, ncol):
+    """:func:`order_hist` of limit rows each standing for weight[i] cells (weight
+    (n_rows,) integers): hist[p, b] += weight[i]; B[i] as there (per row)."""
+    pmax = lim.shape[1]
+    for i in range(lo, hi):
+        w = weight[i]
+        b = 0
+        px = -np.inf
+        for p in range(pmax):
+            x = lim[i, p]
+            b = _bin(x, fs, b if x >= px else 0)
+            px = x
+            hist[p, b] += w
+            if p < ncol:
+                B[i, p] = b + 1 if x == x else 0
+
+
+@njit
+def row_min(rows, index, lo, hi, out):
+    """out[p] = minimum (np.minimum semantics: NaN propagates) of out[p] and
+    rows[index[i], p] over lo <= i < hi."""
+    pmax = rows.shape[1]
+    for i in range(lo, hi):
+        r = index[i]
+        for p in range(pmax):
+            x = rows[r, p]
+            if x != x or x < out[p]:
+                if out[p] == out[p]:
+                    out[p] = x
 
 
 @njit
