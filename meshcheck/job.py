@@ -517,14 +517,19 @@ def resolve_media(mesh: Mesh, job: Job | None = None, temperature: float = 20.0,
         regions[tag] = RegionMedium(tag, name, c, ceff, rho,
                                     float(attenuation_per_wavelength(c)), flow, mach, spec.role,
                                     surrounds, src)
-    cs = np.empty(mesh.n_cells)
     flowing = any(any(r.mach) for r in regions.values())
-    # without flow a read-only broadcast of zeros (no (n_cells, 3) array held)
+    speeds = {r.effective_speed for r in regions.values()}
+    one = len(speeds) == 1 and set(regions) >= set(mesh.region_tags.tolist())
+    # one speed everywhere, or no flow: read-only broadcasts (no (n_cells,) arrays held)
+    cs = (np.broadcast_to(np.array(float(speeds.pop())), (mesh.n_cells,)) if one else
+          np.empty(mesh.n_cells))
     cm = np.zeros((mesh.n_cells, 3)) if flowing else np.broadcast_to(np.zeros(3),
                                                                       (mesh.n_cells, 3))
-    for tag, r in regions.items():
-        sel = mesh.region == tag
-        cs[sel] = r.effective_speed
-        if any(r.mach):
-            cm[sel] = r.mach
+    if not one or flowing:
+        for tag, r in regions.items():
+            sel = mesh.region == tag
+            if not one:
+                cs[sel] = r.effective_speed
+            if any(r.mach):
+                cm[sel] = r.mach
     return Media(regions, cs, cm, job)

@@ -253,7 +253,7 @@ def build_edges(mesh: Mesh) -> Edges:
     node_t = index_type(mesh.n_points)
     nodes = nodes.astype(node_t)
     inverse = inverse.astype(index_type(n_e))
-    umid = np.full(n_e, -1, node_t)
+    umid = _no_mids(mesh, n_e, node_t)
     cell_edges, pos = [], 0
     for b, w, m in zip(mesh.blocks, widths, lengths):
         ce = inverse[pos:pos + w * m].reshape(m, w)
@@ -505,7 +505,10 @@ class Topology:
         return len(self.component_volume)
 
     def cell_extent(self) -> np.ndarray:
-        """(n_cells,) extent (bbox diagonal, m) of the component of each cell."""
+        """(n_cells,) extent (bbox diagonal, m) of the component of each cell (one
+        component: a read-only broadcast of its extent, no (n_cells,) array)."""
+        if len(self.component_extent) == 1:
+            return np.broadcast_to(self.component_extent[:1], self.component.shape)
         return self.component_extent[self.component]
 
 
@@ -827,6 +830,14 @@ def _k2(n_rows: int, n_e: int) -> int:
     return 0 if int(n_e).bit_length() + k2 > 63 else k2
 
 
+def _no_mids(mesh: Mesh, n_e: int, node_t) -> np.ndarray:
+    """(n_e,) mid-node of every edge set to -1 (straight), to be filled for quadratic
+    blocks; without any, a read-only broadcast of -1 (no (n_e,) array held)."""
+    if any(b.info.quadratic for b in mesh.blocks):
+        return np.full(n_e, -1, node_t)
+    return np.broadcast_to(np.array(-1, node_t), (n_e,))
+
+
 def _coarse_bits(n_buckets: int) -> int:
     """log2 of the fine buckets per coarse bucket for ``n_buckets`` buckets (0 = one
     level: few enough buckets to scatter into directly)."""
@@ -944,7 +955,7 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
     n_e = len(nodes)
     inverse = _narrow(inverse, index_type(n_e), parts)
     incidence = _narrow(incidence, index_type(mesh.n_cells), parts)
-    umid = np.full(n_e, -1, node_t)
+    umid = _no_mids(mesh, n_e, node_t)
     cell_edges, pos = [], 0
     for b, w, m in zip(mesh.blocks, widths, lengths):
         ce = inverse[pos:pos + w * m]
@@ -953,7 +964,8 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
             kt.edge_mid(b.cells, b.info.edges[:, 2].copy(), ce, umid)
         pos += w * m
     length = np.empty(n_e)
-    kt.edge_lengths(mesh.points, nodes, umid, _GL_S, _GL_W, length)
+    kt.edge_lengths(mesh.points, nodes, umid if umid.strides != (0,) else umid[:0],
+                    _GL_S, _GL_W, length)
     return Edges(nodes, umid, length, tuple(cell_edges), incidence, starts)
 
 

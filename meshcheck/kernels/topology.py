@@ -324,11 +324,13 @@ def edge_mid(cells, lm, inverse, umid):
 @njit
 def edge_lengths(points, nodes, mid, gl_s, gl_w, out):
     """Length of every edge (arc length of the parabola through the mid-node when
-    mid >= 0, Gauss-Legendre nodes gl_s and weights gl_w on [0, 1]), metres."""
+    mid >= 0, Gauss-Legendre nodes gl_s and weights gl_w on [0, 1]), metres; mid
+    empty: every edge straight."""
+    curved = mid.shape[0] > 0
     for e in range(nodes.shape[0]):
         a = nodes[e, 0]
         b = nodes[e, 1]
-        m = mid[e]
+        m = mid[e] if curved else -1
         if m < 0:
             d0 = points[b, 0] - points[a, 0]
             d1 = points[b, 1] - points[a, 1]
