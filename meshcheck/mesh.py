@@ -98,9 +98,11 @@ class Mesh:
 
     @cached_property
     def region(self) -> np.ndarray:
-        """(n_cells,) int64 region tag of every cell."""
+        """(n_cells,) int64 region tag of every cell (one block: its own array)."""
         if not self.blocks:
             return np.zeros(0, np.int64)
+        if len(self.blocks) == 1:
+            return self.blocks[0].region
         return np.concatenate([b.region for b in self.blocks])
 
     @cached_property
