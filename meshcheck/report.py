@@ -9,7 +9,8 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
-from concurrent.futures import ThreadPoolExecutor
+import threading
+from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -67,6 +68,43 @@ def _sha256(path: str) -> str | None:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             h.update(chunk)
     return h.hexdigest()
+
+
+_SUMS: dict = {}
+_SUMS_LOCK = threading.Lock()
+
+
+def file_sha256(path: str | Path | None, aside: bool = False):
+    """SHA-256 (hex) of a file, or None when it is not a file; computed once per (path,
+    size, modification time) and shared, so a checksum started early on a thread
+    (``aside`` True: returns at once, e.g. while the mesh is read) is not computed again
+    by the JSON report (a file changed since gives a new key, so a new checksum)."""
+    if not path:
+        return None
+    p = Path(path)
+    try:
+        st = p.stat()
+        key = (str(p.resolve()), st.st_size, st.st_mtime_ns)
+    except OSError:
+        return None
+    with _SUMS_LOCK:
+        fut = _SUMS.get(key)
+        mine = fut is None
+        if mine:
+            fut = _SUMS[key] = Future()
+            if len(_SUMS) > 64:  # a long-lived process: drop the oldest
+                _SUMS.pop(next(iter(_SUMS)))
+    if mine:
+        def run():
+            try:
+                fut.set_result(_sha256(str(p)))
+            except BaseException as exc:
+                fut.set_exception(exc)
+        if aside:
+            threading.Thread(target=run, name="meshcheck-sha256", daemon=True).start()
+            return None
+        run()
+    return None if aside else fut.result()
 
 
 def _cluster(c, scale: float) -> dict:
@@ -170,9 +208,10 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
     scale = UNIT_FACTORS.get(m.unit, 1.0)
     pmax = a.pmax
     orders = list(range(1, pmax + 1))
-    # the file's checksum on a second thread (reading and hashing release the GIL)
+    # the file's checksum on a second thread (reading and hashing release the GIL), or
+    # the one started when the file was read
     pool = ThreadPoolExecutor(max_workers=1)
-    sha = pool.submit(_sha256, m.source)
+    sha = pool.submit(file_sha256, m.source)
     pool.shutdown(wait=False)
     region_lim = a.region_limit(m.region)
     regions = []

@@ -114,3 +114,24 @@ def test_region_limits_cells_and_volumes_equal_the_masked_reference(layout, shar
         assert np.array_equal(got[tag], lim[sel].min(axis=0), equal_nan=True)
         assert cells_ == sel.sum() and first == np.flatnonzero(sel)[0]
         assert v == float(np.abs(vol[sel]).sum())  # the same sum, to the bit
+
+
+def test_file_checksum_is_computed_once_and_follows_the_file(tmp_path, monkeypatch):
+    import hashlib
+
+    from meshcheck import report
+
+    calls = []
+    real = report._sha256
+    monkeypatch.setattr(report, "_sha256", lambda p: calls.append(p) or real(p))
+    f = tmp_path / "mesh.msh"
+    f.write_bytes(b"first version")
+    assert report.file_sha256(f, aside=True) is None  # started on a thread
+    assert report.file_sha256(str(f)) == hashlib.sha256(b"first version").hexdigest()
+    assert report.file_sha256(f) == hashlib.sha256(b"first version").hexdigest()
+    assert len(calls) == 1  # the thread's checksum was shared, not computed again
+    f.write_bytes(b"second, longer version")  # a changed file: a new checksum
+    assert report.file_sha256(f) == hashlib.sha256(b"second, longer version").hexdigest()
+    assert len(calls) == 2
+    assert report.file_sha256(tmp_path / "missing.msh") is None
+    assert report.file_sha256(None) is None
