@@ -493,6 +493,9 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     good = np.isfinite(h) & (h > 0) & np.isfinite(edge_L) & np.isfinite(edge_c)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(good, edge_L / np.where(good, h, 1.0), 1.0)
+    if not np.all(ratio > 0):  # also False for NaN
+        raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
+    log_ratio = np.log(ratio)  # ln(L / (a h)) = ln(L / h) - ln a: one logarithm per edge
     cell_limit = np.empty((n_cells, pmax))
     edge_order = np.full(len(h), pmax + 1, dtype=np.int64)
     edge_limit = None
@@ -503,7 +506,8 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
         """Fill column p of the cell limits; (edges carrying fmax, edge limits if p = P)."""
         a = corr.at(p)  # the model sees the edge as a * h: a row of L / (a h) elements
         with np.errstate(divide="ignore", invalid="ignore"):
-            f_e = np.where(good, edge_c * table.max_kh(p, ratio / a) / (TWO_PI * h * a), 0.0)
+            f_e = np.where(good, edge_c * table.max_kh_log(p, log_ratio - np.log(a)) /
+                           (TWO_PI * h * a), 0.0)
         cell_limit[:, p - 1] = f_e[gov]
         if len(exact):
             cell_limit[exact, p - 1] = _min_over_cell_edges(topo, f_e, exact)
@@ -573,7 +577,9 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     step = np.ascontiguousarray([s[1] for s in segs], dtype=float)
     n_r = table.log_r.size
     scale, top = float((n_r - 1) / table.log_r[-1]), float(n_r - 1)
-    args = (h, c, L, code, A, base, step, scale, top)
+    with np.errstate(divide="ignore"):  # rows of codes no edge has are 0
+        logA = np.log(A)
+    args = (h, c, L, code, A, logA, base, step, scale, top)
     cell_order = np.empty(n_cells, np.int64)
     refine = np.empty(n_cells, bool)
     edge_order = np.empty(n_e, np.int64)

@@ -188,8 +188,13 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
 
     for part in thread_map(run, chunks, parallel=par):
         hist += part
-    if limit_row is not None:
-        B = B[limit_row] if B.shape[1] else np.zeros((len(limit_row), 0), B.dtype)
+    if limit_row is not None:  # every cell's row of bins (a multiple of 8 bytes: words)
+        words = B.view(np.uint64)
+        out = np.empty((len(limit_row), words.shape[1]), np.uint64)
+        if words.shape[1]:
+            thread_map(lambda r: _ka.gather_words(words, limit_row, r[0], r[1], out),
+                       _chunks(len(limit_row), 2 if par else 1), parallel=par)
+        B = out.view(B.dtype)
     return order, hist, B
 
 

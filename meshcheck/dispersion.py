@@ -521,11 +521,21 @@ class UsableKh:
         float64 array of ratio's shape.  Raises SettingsError for a ratio
         that is <= 0 or NaN.
         """
-        row = self._row(p)
         u = np.array(ratio, dtype=np.float64)  # a copy, worked in place
         if not np.all(u > 0):  # also False for NaN
             raise SettingsError("L/h ratios must be > 0")
         np.log(u, out=u)
+        return self._max_kh_of_log(p, u)
+
+    def max_kh_log(self, p: int, log_ratio) -> np.ndarray:
+        """:meth:`max_kh` of ratio = exp(log_ratio) (array_like, finite), from its
+        natural logarithm (e.g. ln(L / h) - ln a for a size factor a, one logarithm per
+        edge for every order)."""
+        return self._max_kh_of_log(p, np.array(log_ratio, dtype=np.float64))
+
+    def _max_kh_of_log(self, p: int, u: np.ndarray) -> np.ndarray:
+        """max_kh from u = ln(ratio) (float64, overwritten)."""
+        row = self._row(p)
         n = self.log_r.size
         u *= (n - 1) / self.log_r[-1]
         np.clip(u, 0.0, n - 1, out=u)

@@ -172,10 +172,11 @@ def longest_directions(ce, c0, c1, length, cells, local, points, T):
 
 
 @njit(inline="always")
-def _grid(re, a, scale, top):
-    """Grid segment i and position u in it of ln(re / a) (``UsableKh.max_kh``: the
-    same operations in the same order); re = L / h, a the size factor."""
-    u = np.log(re / a)
+def _grid(lre, la, scale, top):
+    """Grid segment i and position u in it of ln(re / a) = ln re - ln a
+    (``UsableKh.max_kh_log``: the same operations in the same order); re = L / h, a the
+    size factor, their logarithms given (one ln re per edge, not one per order)."""
+    u = lre - la
     u *= scale
     if u < 0.0:
         u = 0.0
@@ -204,24 +205,24 @@ def _good(e, h, c, L):
 
 
 @njit
-def _edge_limit(e, p, h, c, L, code, A, base, step, scale, top):
-    """Limit (Hz) of edge e at order p + 1 (0 if it is not good)."""
+def _edge_limit(e, p, h, c, L, code, A, logA, base, step, scale, top):
+    """Limit (Hz) of edge e at order p + 1 (0 if it is not good); logA = ln A."""
     if not _good(e, h, c, L):
         return 0.0
     a = A[code[e], p]
-    g, u = _grid(L[e] / h[e], a, scale, top)
+    g, u = _grid(np.log(L[e] / h[e]), logA[code[e], p], scale, top)
     return _value(p, g, u, a, h[e], c[e], base, step)
 
 
 @njit
-def exact_limits(ce, rows, start, h, c, L, code, A, base, step, scale, top, out):
+def exact_limits(ce, rows, start, h, c, L, code, A, logA, base, step, scale, top, out):
     """out[start + r, p] = minimum over the edges of row r of a block (np.minimum
     semantics) of their limits at order p + 1, for the given local rows."""
-    exact_rows(ce, rows, rows + start, h, c, L, code, A, base, step, scale, top, out)
+    exact_rows(ce, rows, rows + start, h, c, L, code, A, logA, base, step, scale, top, out)
 
 
 @njit
-def exact_rows(ce, rows, dest, h, c, L, code, A, base, step, scale, top, out):
+def exact_rows(ce, rows, dest, h, c, L, code, A, logA, base, step, scale, top, out):
     """out[dest[k], p] = minimum over the edges of row rows[k] of a block (np.minimum
     semantics) of their limits at order p + 1."""
     pmax = out.shape[1]
@@ -231,7 +232,8 @@ def exact_rows(ce, rows, dest, h, c, L, code, A, base, step, scale, top, out):
         for p in range(pmax):
             m = np.inf
             for j in range(k):
-                v = _edge_limit(ce[r, j], p, h, c, L, code, A, base, step, scale, top)
+                v = _edge_limit(ce[r, j], p, h, c, L, code, A, logA, base, step, scale,
+                                top)
                 if j == 0 or v < m or v != v:
                     m = v
                 if m != m:
@@ -316,7 +318,7 @@ def mark_owners(gov, owner):
 
 
 @njit
-def edge_orders(lo, hi, h, c, L, code, A, base, step, scale, top, fmax, P, edge_order,
+def edge_orders(lo, hi, h, c, L, code, A, logA, base, step, scale, top, fmax, P, edge_order,
                 edge_limit, owner, out, finish, cell_order, refine):
     """edge_order[e] = lowest order whose limit reaches fmax (pmax + 1 = none),
     edge_limit[e] = limit at the allowed order P (Hz), for edges lo <= e < hi; an edge
@@ -349,6 +351,7 @@ def edge_orders(lo, hi, h, c, L, code, A, base, step, scale, top, fmax, P, edge_
         re = L[e] / he
         if not re > 0.0:
             n_bad += 1
+        lre = np.log(re)
         o = pmax + 1
         at_p = -1.0
         pa = -1.0
@@ -356,7 +359,7 @@ def edge_orders(lo, hi, h, c, L, code, A, base, step, scale, top, fmax, P, edge_
         for p in range(pmax):
             a = A[k, p]
             if a != pa:
-                g, u = _grid(re, a, scale, top)
+                g, u = _grid(lre, logA[k, p], scale, top)
                 pa = a
             f = _value(p, g, u, a, he, ce, base, step)
             if r >= 0:
@@ -370,7 +373,7 @@ def edge_orders(lo, hi, h, c, L, code, A, base, step, scale, top, fmax, P, edge_
                 if r < 0:  # the limit at P, then done
                     a = A[k, P - 1]
                     if a != pa:
-                        g, u = _grid(re, a, scale, top)
+                        g, u = _grid(lre, logA[k, P - 1], scale, top)
                     at_p = _value(P - 1, g, u, a, he, ce, base, step)
                     break
         edge_order[e] = o
@@ -455,6 +458,16 @@ def order_hist_rows(lim, weight, fs, lo, hi, hist, B, ncol):
             hist[p, b] += w
             if p < ncol:
                 B[i, p] = b + 1 if x == x else 0
+
+
+@njit
+def gather_words(words, index, lo, hi, out):
+    """out[i, :] = words[index[i], :] for lo <= i < hi (rows of uint64 words)."""
+    w = words.shape[1]
+    for i in range(lo, hi):
+        r = index[i]
+        for j in range(w):
+            out[i, j] = words[r, j]
 
 
 @njit
