@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from . import __version__, kernels
 from .advice import region_runs
 from .pipeline import AuditResult
 from .threads import thread_map
@@ -145,7 +145,12 @@ def _metric_stats(values: np.ndarray, bad: str, n_worst: int) -> dict | None:
     """Cells, min, 5th percentile, median, 95th percentile and max of the finite values
     of one quality metric ((n_cells,) float64), and the ids of the ``n_worst`` worst cells
     (``bad`` "low" or "high"); None when no value is finite.  One partition gives the
-    three quantiles (the same values as ``np.percentile`` and ``np.median``)."""
+    three quantiles (the same values as ``np.percentile`` and ``np.median``).  Large
+    meshes take the radix selection of :func:`meshcheck.kernels.stats.metric_summary`
+    (the same dict, no copy of the values; tested against this code)."""
+    if kernels.use_compiled(len(values)) and values.dtype == np.float64 and values.ndim == 1:
+        from .kernels.stats import metric_summary
+        return metric_summary(values, bad, n_worst)
     ok = np.isfinite(values)
     n_ok = int(np.count_nonzero(ok))
     if not n_ok:

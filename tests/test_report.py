@@ -135,3 +135,22 @@ def test_file_checksum_is_computed_once_and_follows_the_file(tmp_path, monkeypat
     assert len(calls) == 2
     assert report.file_sha256(tmp_path / "missing.msh") is None
     assert report.file_sha256(None) is None
+
+
+def test_quality_section_of_large_meshes_equals_the_numpy_statistics(monkeypatch):
+    # large meshes summarise each metric by the compiled radix selection
+    # (meshcheck.kernels.stats): the JSON's quality section must not change
+    from meshcheck import report
+    from meshcheck.kernels import stats
+
+    res = audit(tet_box((7, 6, 5)), AuditSettings((300.0,)))
+    calls = []
+    real = stats.metric_summary
+    monkeypatch.setattr(stats, "metric_summary", lambda *a: calls.append(1) or real(*a))
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    want = report._quality(res, 1.0)
+    assert not calls
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    got = report._quality(res, 1.0)
+    assert len(calls) == len(res.quality.metrics)
+    assert got == want
