@@ -130,11 +130,20 @@ class Advice:
             return self.limit_rows
         return self.limit_rows[self.limit_row]
 
-    def limit_at(self, p: int) -> np.ndarray:
-        """(n_cells,) highest usable frequency of every cell at order p (1-based), Hz."""
+    def limit_at(self, p: int, dtype=None) -> np.ndarray:
+        """(n_cells,) highest usable frequency of every cell at order p (1-based), Hz
+        (float64, or ``dtype``; a view of the per-cell table when there is one)."""
         if self.limit_row is None:
-            return self.limit_rows[:, p - 1]
-        return self.limit_rows[self.limit_row, p - 1]
+            col = self.limit_rows[:, p - 1]
+            return col if dtype is None else col.astype(dtype)
+        from .kernels import advice as _ka  # shared rows come from the compiled path
+
+        out = np.empty(len(self.limit_row), np.float64 if dtype is None else dtype)
+        par = len(out) > 100_000
+        thread_map(lambda r: _ka.gather_column(self.limit_rows, self.limit_row, p - 1, r[0],
+                                               r[1], out),
+                   _chunks(len(out), 2 if par else 1), parallel=par)
+        return out
 
     @cached_property
     def mesh_limit(self) -> np.ndarray:

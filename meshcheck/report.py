@@ -538,7 +538,7 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
             "target_size": lazy(lambda: (a.target_size / scale).astype(f32), f32),
             "coarsen_ratio": lazy(lambda: a.coarsen_ratio.astype(f32), f32)}
     for p in range(1, res.settings.advice.max_order + 1):
-        data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.limit_at(p).astype(f32), f32)
+        data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.limit_at(p, f32), f32)
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
             data[f"quality_{name}"] = lazy(lambda v=values: v.astype(f32), f32)

@@ -471,6 +471,13 @@ def gather_words(words, index, lo, hi, out):
 
 
 @njit
+def gather_column(rows, index, col, lo, hi, out):
+    """out[i] = rows[index[i], col] for lo <= i < hi (cast to out's type)."""
+    for i in range(lo, hi):
+        out[i] = rows[index[i], col]
+
+
+@njit
 def row_min(rows, index, lo, hi, out):
     """out[p] = minimum (np.minimum semantics: NaN propagates) of out[p] and
     rows[index[i], p] over lo <= i < hi."""
