@@ -545,9 +545,16 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
     from .sizefield import size_point_data
     if compress is None:
         compress = m.n_cells <= VTU_COMPRESS_CELLS
+    # the size field's point data made when written (last in the file), so that the
+    # cell data are written while the field may still be computed on another thread
+    point = {name: lazy(lambda name=name: size_point_data(res, scale)[name], f32)
+             for name in POINT_ARRAYS}
     return vtkxml.write_vtu(path, m.points / scale, cells, cell_data=data,
-                            point_data=size_point_data(res, scale) or None,
-                            level=1 if compress else 0)
+                            point_data=point, level=1 if compress else 0)
+
+
+#: the VTU's point data (:func:`meshcheck.sizefield.size_point_data`)
+POINT_ARRAYS = ("target_size", "mesher_size", "size_ratio")
 
 
 def write_all(res: AuditResult, folder: str | Path, stem: str | None = None) -> dict[str, Path]:

@@ -242,6 +242,11 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     xml.append('</Cells>\n</Piece>\n</UnstructuredGrid>\n<AppendedData encoding="base64">\n_')
     head = "".join(xml).encode("ascii")
     where = [head.index(_slot_text(k).encode()) for k in range(len(arrays))]
+    # appended data in the order: cell data, points and cells, point data (each array
+    # found by its offset): point data made late (e.g. a field still being computed)
+    # is written last
+    n_point = len(point_data or ())  # added first
+    order = list(range(n_point, len(arrays))) + list(range(n_point))
     head = bytearray(head)
     workers = max(1, min(os.cpu_count() or 1, 8))
     pending: queue.Queue = queue.Queue(maxsize=8)  # at most 8 pieces (32 MiB) in flight
@@ -278,7 +283,8 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
             pieces.alive = writer.is_alive
         try:
             at = 0
-            for k, (name, values, rows) in enumerate(arrays):
+            for k in order:
+                name, values, rows = arrays[k]
                 head[where[k]:where[k] + _SLOT] = f'offset="{at}"'.ljust(_SLOT).encode()
                 if isinstance(values, Deferred):
                     values = values.array(rows, name)

@@ -66,6 +66,38 @@ def test_vtk_reader_reads_it(tmp_path):
     assert grid.GetCellType(0) == 10
 
 
+@pytest.mark.parametrize("level", [0, 1])
+def test_point_data_written_last_read_by_meshio_and_vtk(tmp_path, level):
+    # the appended data hold the cell data, then points and cells, then the point data
+    # (made late: e.g. a size field computed meanwhile); readers follow the offsets
+    import re
+
+    vtk = pytest.importorskip("vtk")
+    from vtk.util.numpy_support import vtk_to_numpy
+
+    from meshcheck.vtkxml import Deferred
+    mesh = tet_box((3, 3, 3))
+    b = mesh.blocks[0]
+    cid = np.arange(len(b), dtype=np.float32)
+    pid = np.arange(mesh.n_points, dtype=np.float32) * 0.5
+    path = write_vtu(tmp_path / "order.vtu", mesh.points, [(b.type, b.cells)],
+                     cell_data={"cid": cid},
+                     point_data={"pid": Deferred(lambda: pid, np.float32)}, level=level)
+    text = path.read_bytes()
+    head = text[:text.index(b"<AppendedData")].decode()
+    offsets = {m[0]: int(m[1]) for m in re.findall(r'Name="(\w+)"[^>]*offset="(\d+)"', head)}
+    assert offsets["cid"] == 0 and offsets["pid"] == max(offsets.values())
+    m = meshio.read(path)
+    assert np.array_equal(m.point_data["pid"], pid) and np.array_equal(m.cell_data["cid"][0], cid)
+    assert np.array_equal(m.points, mesh.points)
+    r = vtk.vtkXMLUnstructuredGridReader()
+    r.SetFileName(str(path))
+    r.Update()
+    grid = r.GetOutput()
+    assert np.array_equal(vtk_to_numpy(grid.GetPointData().GetArray("pid")), pid)
+    assert np.array_equal(vtk_to_numpy(grid.GetCellData().GetArray("cid")), cid)
+
+
 def test_multi_block_compression(tmp_path):
     # arrays larger than one compressed block (2 MiB; blocks compressed in parallel)
     n = 700_000
