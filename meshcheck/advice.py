@@ -161,6 +161,9 @@ class Advice:
     def region_limit(self, region: np.ndarray) -> dict[int, np.ndarray]:
         """Region tag -> (pmax,) highest usable frequency per order, Hz."""
         runs = region_runs(region)
+        if runs is not None and len(runs) == 1 and len(region):
+            # one region: the minimum over all rows (each row belongs to a cell)
+            return {tag: column_min(self.limit_rows) for tag in runs}
         if self.limit_row is not None:
             return _region_limit_rows(self.limit_rows, self.limit_row, region, runs)
         if runs is not None:  # regions in a few runs of cells: minima over views

@@ -99,7 +99,8 @@ def test_region_limits_cells_and_volumes_equal_the_masked_reference(layout, shar
     if shared:  # cells sharing rows of limits (the compiled advice), some rows NaN
         rows = np.maximum.accumulate(rng.uniform(10.0, 1e3, (n // 3, 5)), axis=1)
         rows[7, 2:] = np.nan
-        index = rng.integers(0, len(rows), n).astype(np.int32)
+        index = rng.permutation(np.r_[np.arange(len(rows)),  # every row used
+                                      rng.integers(0, len(rows), n - len(rows))]).astype(np.int32)
         lim = rows[index]
         adv = SimpleNamespace(limit_rows=rows, limit_row=index)
     else:
