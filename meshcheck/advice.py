@@ -822,10 +822,16 @@ def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit:
     lo, hi, wsum = np.empty((s, 3)), np.empty((s, 3)), np.empty((s, 3))
     first = np.empty((s, max_ids), np.int64)
     n_first = np.zeros(s, np.int64)
-    cen = mesh.centroids_of(ids)  # of the flagged cells only
+    if len(mesh.blocks) == 1:  # centroids worked out in the kernel: no (k, 3) array
+        b = mesh.blocks[0]
+        cen, pts, cells, k = np.zeros((0, 3)), mesh.points, b.cells, b.info.n_corners
+    else:  # of the flagged cells only
+        cen, pts, cells, k = mesh.centroids_of(ids), np.zeros((0, 3)), np.zeros((0, 1),
+                                                                                np.int64), 1
     _ka.cluster_stats(ids, lab, slot, np.ascontiguousarray(advice.cell_size, dtype=float),
-                      np.ascontiguousarray(advice.target_size, dtype=float), cen, w, size,
-                      target, lo, hi, wsum, first, n_first)
+                      np.ascontiguousarray(advice.target_size, dtype=float), cen,
+                      np.ascontiguousarray(pts, dtype=float), np.ascontiguousarray(cells), k,
+                      w, size, target, lo, hi, wsum, first, n_first)
     region = mesh.region
     one_region = len(region) and region.min() == region.max()
     members = None
@@ -841,7 +847,7 @@ def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit:
                 members = (order, starts)
             pos = members[0][members[1][j]:members[1][j + 1]]
             sel = ids[pos]
-        c = wsum[i] / vol[j] if vol[j] > 0 else cen[pos].mean(0)
+        c = wsum[i] / vol[j] if vol[j] > 0 else mesh.centroids_of(sel).mean(0)
         regions = (int(region[ids[0]]),) if one_region else \
             tuple(int(t) for t in np.unique(region[sel]))
         sz, tg = float(size[i]), float(target[i])

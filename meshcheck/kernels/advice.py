@@ -650,8 +650,8 @@ def group_by_label(lab, cnt, order):
 
 
 @njit
-def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, lo, hi,
-                  wsum, first, n_first):
+def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_corners, w,
+                  size, target, lo, hi, wsum, first, n_first):
     """Per chosen cluster (slot[label] >= 0), over its cells in increasing id order:
     longest edge ``size`` (max), smallest ``target`` (min), centroid box ``lo``/``hi``
     (NaN propagates, as ndarray.max/min), ``wsum`` = sum of centroid * weight (the same
@@ -659,11 +659,16 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, 
 
     ids : (k,) int64 flagged cells (increasing); lab : (k,) integer their cluster;
     slot : (n_lab,) int64; cell_size, target_size : (n_cells,) float64, m; cen :
-    (k, 3) float64 centroids of the flagged cells, m; w : (k,) float64 weights (|volume|); outputs
-    per slot: size, target (s,), lo, hi, wsum (s, 3), first (s, max_ids), n_first (s,).
+    (k, 3) float64 centroids of the flagged cells, m, or empty: then every centroid is the
+    mean of the first n_corners nodes of row ids[k] of ``cells`` (one block) at
+    ``points`` (bitwise as ``Mesh.centroids``), no (k, 3) array; w : (k,) float64
+    weights (|volume|); outputs per slot: size, target (s,), lo, hi, wsum (s, 3), first
+    (s, max_ids), n_first (s,).
     """
     max_ids = first.shape[1]
     seen = np.zeros(size.shape[0], np.int64)
+    given = cen.shape[0] > 0
+    x3 = np.empty(3)
     for k in range(ids.shape[0]):
         s = slot[lab[k]]
         if s < 0:
@@ -671,11 +676,19 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, 
         c = ids[k]
         v = cell_size[c]
         t = target_size[c]
+        for j in range(3):
+            if given:
+                x3[j] = cen[k, j]
+            else:  # the corner mean (as kernels.geometry.corner_mean)
+                a = points[cells[c, 0], j]
+                for q in range(1, n_corners):
+                    a += points[cells[c, q], j]
+                x3[j] = a / n_corners
         if seen[s] == 0:
             size[s] = v
             target[s] = t
             for j in range(3):
-                x = cen[k, j]
+                x = x3[j]
                 lo[s, j] = x
                 hi[s, j] = x
                 wsum[s, j] = x * w[k]
@@ -687,7 +700,7 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, w, size, target, 
             if m == m and not t >= m:
                 target[s] = t
             for j in range(3):
-                x = cen[k, j]
+                x = x3[j]
                 m = lo[s, j]
                 if m == m and not x >= m:
                     lo[s, j] = x
