@@ -363,3 +363,12 @@ def test_deferred_array_not_as_declared_is_an_error(tmp_path, bad):
     with pytest.raises(ValueError, match="declared"):
         write_vtu(tmp_path / "x.vtu", m.points, [(b.type, b.cells) for b in m.blocks],
                   cell_data={"x": Deferred(lambda: arr, np.float32)})
+
+
+def test_attribute_quoting_equals_the_standard_library():
+    from xml.sax.saxutils import quoteattr as reference
+
+    from meshcheck.vtkxml import quoteattr
+    for text in ["plain", "a&b", "<tag>", 'say "hi"', "it's", "both ' and \"", "tab\there",
+                 "new\nline\r", "&amp;", "", "ünïcödé \u2264 p", "'\"&<>\t\n\r"]:
+        assert quoteattr(text) == reference(text), text
