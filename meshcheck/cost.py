@@ -176,14 +176,12 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
     B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f) + 1, dtype)
     par = lim.shape[0] > 50_000
     chunks = _chunks(lim.shape[0], 2 if par else 1)
-    weight = None if limit_row is None else np.bincount(limit_row, minlength=lim.shape[0])
+    weight = (np.zeros(0, np.int64) if limit_row is None else
+              np.bincount(limit_row, minlength=lim.shape[0]))
 
     def run(r):
         part = np.zeros_like(hist)
-        if weight is None:
-            _ka.order_hist(lim, fs, r[0], r[1], part, B, ncol)
-        else:
-            _ka.order_hist_rows(lim, weight, fs, r[0], r[1], part, B, ncol)
+        _ka.order_hist(lim, weight, fs, r[0], r[1], part, B, ncol)
         return part
 
     for part in thread_map(run, chunks, parallel=par):

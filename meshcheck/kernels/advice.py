@@ -9,11 +9,13 @@ the numpy reference computes (tests/test_kernels_advice.py compares both):
 * :func:`longest_directions`: the 3x3 sum of d d^T over the unit directions d of the
   cells' longest edges (``advice._alignment``, whose numpy code sums ``d.T @ d``: equal
   to rounding, 1e-12);
-* :func:`mark_owners`, :func:`edge_orders`, :func:`gov_rows`, :func:`exact_limits`,
+* :func:`mark_rows`, :func:`edge_orders`, :func:`gov_index`, :func:`exact_rows`,
   :func:`finish_limits`: the frequency limits of edges and cells at every order
   (``advice.advise``): one pass over the edges (all orders for the cells' longest edges,
-  written straight into the row of one cell each), one over the cells (the other
-  cells copy that row), no (n_edges,) temporaries per order;
+  written into one row per such edge), one over the cells (each takes its longest
+  edge's row; cells taking the minimum over their edges get rows of their own), no
+  (n_edges,) temporaries per order; :func:`row_min`, :func:`gather_column`,
+  :func:`gather_words`: minima, columns and bins read through the cells' rows;
 * :func:`per_cell_max`: ``Edges.per_cell(values, np.maximum)`` for one block;
 * :func:`order_hist`, :func:`dof_hist`, :func:`face_dof_hist`: histograms of the
   cells' limits (and of the edges' and faces' smallest limits, weighted by the unknowns
@@ -215,13 +217,6 @@ def _edge_limit(e, p, h, c, L, code, A, logA, base, step, scale, top):
 
 
 @njit
-def exact_limits(ce, rows, start, h, c, L, code, A, logA, base, step, scale, top, out):
-    """out[start + r, p] = minimum over the edges of row r of a block (np.minimum
-    semantics) of their limits at order p + 1, for the given local rows."""
-    exact_rows(ce, rows, rows + start, h, c, L, code, A, logA, base, step, scale, top, out)
-
-
-@njit
 def exact_rows(ce, rows, dest, h, c, L, code, A, logA, base, step, scale, top, out):
     """out[dest[k], p] = minimum over the edges of row rows[k] of a block (np.minimum
     semantics) of their limits at order p + 1."""
@@ -307,32 +302,22 @@ def gov_index(gov, owner, lo, hi, limit_row, h, code, A, size, a_gov, finish, P,
 
 
 @njit
-def mark_owners(gov, owner):
-    """owner[e] = the first cell (smallest id) whose longest edge is e, for the edges
-    that govern a cell (gov : (n_cells,) integers); owner : (n_e,) signed integers set
-    to -1 by the caller, left -1 for the other edges."""
-    for i in range(gov.shape[0]):
-        e = gov[i]
-        if owner[e] < 0:
-            owner[e] = i
-
-
-@njit
 def edge_orders(lo, hi, h, c, L, code, A, logA, base, step, scale, top, fmax, P, edge_order,
                 edge_limit, owner, out, finish, cell_order, refine):
     """edge_order[e] = lowest order whose limit reaches fmax (pmax + 1 = none),
     edge_limit[e] = limit at the allowed order P (Hz), for edges lo <= e < hi; an edge
-    with owner[e] >= 0 (the longest edge of that cell, see :func:`mark_owners`) also
-    writes its limits at every order into that cell's row out[owner[e]] ((n_cells, pmax)
-    float64, Hz; 0 for an edge that is not good), finished by :func:`finish_limits`
-    (with cell_order, refine of that cell) when ``finish``.  Owners are distinct, so
-    edge ranges on different threads write different rows.
+    with a row owner[e] >= 0 (it is the longest edge of some cell, see :func:`mark_rows`)
+    also writes its limits at every order into out[owner[e]] ((n_rows, pmax) float64,
+    Hz; 0 for an edge that is not good), finished by :func:`finish_limits` (with
+    cell_order, refine: per row here) when ``finish``.  Rows are distinct, so edge
+    ranges on different threads write different rows.
 
     h, c, L : (n_e,) float64 lengths (m), speeds (m/s), distances (m), any strides
     (a uniform c or L may be a broadcast scalar); code : (n_e,) factor row of every edge
-    in A (pmax columns).  The logarithm is taken again only when the factor changes
-    with the order.  Returns the number of good edges whose L / h is not > 0 (the
-    caller raises: ``UsableKh.max_kh`` refuses them).
+    in A (pmax columns), logA = ln A.  One logarithm ln(L / h) per edge; the grid
+    position is recomputed only when the factor changes with the order.  Returns the
+    number of good edges whose L / h is not > 0 (the caller raises: ``UsableKh.max_kh``
+    refuses them).
     """
     pmax = A.shape[1]
     n_bad = 0
@@ -384,30 +369,6 @@ def edge_orders(lo, hi, h, c, L, code, A, logA, base, step, scale, top, fmax, P,
 
 
 @njit
-def gov_rows(gov, owner, lo, hi, out, h, code, A, size, a_gov, finish, P, cell_order,
-             refine):
-    """For cells lo <= i < hi: out[i] = out[owner[gov[i]]], the row that
-    :func:`edge_orders` wrote for the first cell with the same longest edge (a cell's
-    limits are its longest edge's; the owner's own row is left as it is), with its
-    cell_order and refine when ``finish``; size[i] = h[gov[i]] (m) and a_gov[i] =
-    A[code[gov[i]], P - 1] (its size factor at the allowed order).  Only rows of
-    non-owners are written and only owners' rows read: ranges on different threads
-    do not interfere."""
-    pmax = out.shape[1]
-    for i in range(lo, hi):
-        e = gov[i]
-        o = owner[e]
-        if o != i:
-            for p in range(pmax):
-                out[i, p] = out[o, p]
-            if finish:
-                cell_order[i] = cell_order[o]
-                refine[i] = refine[o]
-        size[i] = h[e]
-        a_gov[i] = A[code[e], P - 1]
-
-
-@njit
 def per_cell_max(ce, values, out, start):
     """out[start + i] = maximum of values over the edges of cell i (np.maximum.reduce:
     NaN propagates).  ce : (m, k) int64; values : (n_e,) float64."""
@@ -443,24 +404,6 @@ def _bin(x, fs, lo):
 
 
 @njit
-def order_hist_rows(lim, weight, fs, lo, hi, hist, B, ncol):
-    """:func:`order_hist` of limit rows each standing for weight[i] cells (weight
-    (n_rows,) integers): hist[p, b] += weight[i]; B[i] as there (per row)."""
-    pmax = lim.shape[1]
-    for i in range(lo, hi):
-        w = weight[i]
-        b = 0
-        px = -np.inf
-        for p in range(pmax):
-            x = lim[i, p]
-            b = _bin(x, fs, b if x >= px else 0)
-            px = x
-            hist[p, b] += w
-            if p < ncol:
-                B[i, p] = b + 1 if x == x else 0
-
-
-@njit
 def gather_words(words, index, lo, hi, out):
     """out[i, :] = words[index[i], :] for lo <= i < hi (rows of uint64 words)."""
     w = words.shape[1]
@@ -492,25 +435,28 @@ def row_min(rows, index, lo, hi, out):
 
 
 @njit
-def order_hist(lim, fs, lo, hi, hist, B, ncol):
+def order_hist(lim, weight, fs, lo, hi, hist, B, ncol):
     """hist[p, b] += 1 for every cell lo <= i < hi whose limit at order p + 1 has b sweep
     frequencies at or below it: cumsum(hist[p])[k] = #cells with limit < fs[k];
     B[i, q] = b + 1 for the first ncol orders (0 for a NaN limit, see
-    :func:`dof_hist`).
+    :func:`dof_hist`).  With ``weight`` (n_rows,) integers (not empty), the rows of
+    ``lim`` are limit rows standing for weight[i] cells each: hist[p, b] += weight[i].
 
     lim : (n_cells, pmax) float64, Hz; fs : (n_f,) sorted finite Hz;
     hist : (pmax, n_f + 1) int64, accumulated; B : (n_cells, W) unsigned integers
     holding n_f + 1 (uint8 up to 254 frequencies), W >= ncol.
     """
     pmax = lim.shape[1]
+    weighted = weight.shape[0] > 0
     for i in range(lo, hi):
+        w = weight[i] if weighted else 1
         b = 0
         px = -np.inf
         for p in range(pmax):
             x = lim[i, p]
             b = _bin(x, fs, b if x >= px else 0)
             px = x
-            hist[p, b] += 1
+            hist[p, b] += w
             if p < ncol:
                 B[i, p] = b + 1 if x == x else 0
 
