@@ -18,3 +18,22 @@ def test_bench_audit_small(tmp_path):
     for line in ("ratio audit / meshio.read", "ratio sweep 1000 / 10 frequencies",
                  "peak memory of the audit"):
         assert line in text
+
+
+def test_bench_ab_compares_two_versions_by_alternating_runs():
+    # HEAD against this checkout on the small sample mesh: both rows and the ratios
+    if subprocess.run(["git", "-C", str(ROOT), "rev-parse", "HEAD"],
+                      capture_output=True).returncode:
+        pytest.skip("not a git checkout")
+    out = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "bench_ab.py"),
+                          str(ROOT / "sample_meshes" / "enclosure.msh"), "--rev", "HEAD",
+                          "--runs", "1"], capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr[-2000:]
+    lines = out.stdout.splitlines()
+    rows = {ln.split()[0]: [float(x) for x in ln.split()[1:]] for ln in lines
+            if ln.split() and ln.split()[0] in ("old", "new")}
+    assert set(rows) == {"old", "new"} and all(len(v) == 4 and v[0] > 0 for v in rows.values())
+    assert any(ln.startswith("ratio new / old: wall best") for ln in lines)
+    listed = subprocess.run(["git", "-C", str(ROOT), "worktree", "list"],
+                            capture_output=True, text=True).stdout
+    assert "meshcheck-ab-" not in listed  # the temporary worktree is removed

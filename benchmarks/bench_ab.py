@@ -1,0 +1,93 @@
+"""Compare the audit of two meshcheck versions by alternating fresh processes.
+
+Usage::
+
+    python benchmarks/bench_ab.py MESH --rev REV [--runs 3] [--tree DIR]
+
+The project's machine changes speed by tens of percent within the hour (the same audit
+of 4.77M tets took 9.5 s at one time of a day and 12.5-14 s an hour later, the
+references with it), so a figure measured now cannot be compared with one from an
+earlier table.  This script runs ``meshcheck audit MESH --reports json,vtu --no-cost``
+of the git revision REV (checked out in a temporary worktree, put first on PYTHONPATH)
+and of the source tree DIR (default: this checkout) in turn, ``--runs`` times each, in
+fresh processes, after one untimed run of each (which fills its numba cache), and prints
+for both the best and median wall time, the best analysis time (from the JSON report)
+and the highest peak resident memory, and the ratios new / old.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+from bench_audit import _peak_of  # noqa: E402
+
+AUDIT = ["--units", "m", "--fmin", "50", "--fmax", "2000", "--step", f"{1950 / 199:.6f}",
+         "--quiet", "--reports", "json,vtu", "--no-cost"]
+
+
+def audit_once(tree: Path, mesh: Path) -> tuple[float, float, float]:
+    """(wall s, peak MiB, analysis s) of one audit with the package of source tree
+    ``tree`` in a fresh process."""
+    with tempfile.TemporaryDirectory() as out:
+        env = {**os.environ, "PYTHONPATH": str(tree)}
+        t, peak, code = _peak_of([sys.executable, "-m", "meshcheck.cli", "audit", str(mesh),
+                                  *AUDIT, "--out", out], env)
+        if code not in (0, 1):
+            raise SystemExit(f"{tree}: audit failed with exit code {code}")
+        report = json.loads(next(Path(out).glob("*.audit.json")).read_text())
+    return t, peak, report["timings_s"]["analysis"]
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__,
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("mesh", type=Path)
+    ap.add_argument("--rev", required=True, help="git revision of the version to compare with")
+    ap.add_argument("--tree", type=Path, default=HERE.parent,
+                    help="source tree of the version under test (default: this checkout)")
+    ap.add_argument("--runs", type=int, default=3, help="timed runs of each version")
+    args = ap.parse_args(argv)
+    repo = HERE.parent
+    base = Path(tempfile.mkdtemp(prefix="meshcheck-ab-")) / "tree"
+    subprocess.run(["git", "-C", str(repo), "worktree", "add", "--detach", str(base), args.rev],
+                   check=True, capture_output=True)
+    try:
+        trees = {"old": base, "new": args.tree.resolve()}
+        for tree in trees.values():  # fills each tree's numba cache; not timed
+            audit_once(tree, args.mesh)
+        runs = {k: [] for k in trees}
+        for _ in range(max(1, args.runs)):
+            for name, tree in trees.items():
+                runs[name].append(audit_once(tree, args.mesh))
+    finally:
+        subprocess.run(["git", "-C", str(repo), "worktree", "remove", "--force", str(base)],
+                       capture_output=True)
+        shutil.rmtree(base.parent, ignore_errors=True)
+    print(f"mesh: {args.mesh.name}; old = {args.rev}, new = {trees['new']}; "
+          f"{len(runs['old'])} alternating runs each")
+    print(f"{'version':8s} {'wall best':>10s} {'median':>8s} {'analysis best':>14s} "
+          f"{'peak MiB':>9s}")
+    figures = {}
+    for name, r in runs.items():
+        wall = sorted(x[0] for x in r)
+        figures[name] = (wall[0], statistics.median(wall), min(x[2] for x in r),
+                         max(x[1] for x in r))
+        print(f"{name:8s} {figures[name][0]:10.2f} {figures[name][1]:8.2f} "
+              f"{figures[name][2]:14.2f} {figures[name][3]:9.0f}")
+    o, n = figures["old"], figures["new"]
+    print(f"ratio new / old: wall best {n[0] / o[0]:.3f}, median {n[1] / o[1]:.3f}, "
+          f"analysis {n[2] / o[2]:.3f}, peak {n[3] / o[3]:.3f}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
