@@ -547,8 +547,14 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
         compress = m.n_cells <= VTU_COMPRESS_CELLS
     # the size field's point data made when written (last in the file), so that the
     # cell data are written while the field may still be computed on another thread
-    point = {name: lazy(lambda name=name: size_point_data(res, scale)[name], f32)
-             for name in POINT_ARRAYS}
+    made: dict = {}
+
+    def point_array(name):  # the three arrays made once, each handed over as written
+        if not made:
+            made.update(size_point_data(res, scale))
+        return made.pop(name)
+
+    point = {name: lazy(lambda name=name: point_array(name), f32) for name in POINT_ARRAYS}
     return vtkxml.write_vtu(path, m.points / scale, cells, cell_data=data,
                             point_data=point, level=1 if compress else 0)
 
