@@ -34,13 +34,25 @@ AUDIT = ["--units", "m", "--fmin", "50", "--fmax", "2000", "--step", f"{1950 / 1
          "--quiet", "--reports", "json,vtu", "--no-cost"]
 
 
+def _env(tree: Path) -> dict:
+    return {**os.environ, "PYTHONPATH": str(tree)}
+
+
+def package_of(tree: Path) -> Path:
+    """Where a fresh process with ``tree`` first on PYTHONPATH imports meshcheck from
+    (run outside any source tree: ``python -m`` puts the working folder first)."""
+    with tempfile.TemporaryDirectory() as cwd:
+        out = subprocess.run([sys.executable, "-c", "import meshcheck; print(meshcheck.__file__)"],
+                             env=_env(tree), cwd=cwd, check=True, capture_output=True, text=True)
+    return Path(out.stdout.strip()).resolve().parent
+
+
 def audit_once(tree: Path, mesh: Path) -> tuple[float, float, float]:
     """(wall s, peak MiB, analysis s) of one audit with the package of source tree
-    ``tree`` in a fresh process."""
+    ``tree`` in a fresh process (started in its output folder, outside any tree)."""
     with tempfile.TemporaryDirectory() as out:
-        env = {**os.environ, "PYTHONPATH": str(tree)}
-        t, peak, code = _peak_of([sys.executable, "-m", "meshcheck.cli", "audit", str(mesh),
-                                  *AUDIT, "--out", out], env)
+        t, peak, code = _peak_of([sys.executable, "-m", "meshcheck.cli", "audit",
+                                  str(mesh.resolve()), *AUDIT, "--out", out], _env(tree), out)
         if code not in (0, 1):
             raise SystemExit(f"{tree}: audit failed with exit code {code}")
         report = json.loads(next(Path(out).glob("*.audit.json")).read_text())
@@ -62,8 +74,11 @@ def main(argv=None) -> int:
                    check=True, capture_output=True)
     try:
         trees = {"old": base, "new": args.tree.resolve()}
-        for tree in trees.values():  # fills each tree's numba cache; not timed
-            audit_once(tree, args.mesh)
+        for name, tree in trees.items():
+            if package_of(tree) != (tree / "meshcheck").resolve():
+                raise SystemExit(f"the {name} version's audit would not import meshcheck from "
+                                 f"{tree} (found {package_of(tree)})")
+            audit_once(tree, args.mesh)  # fills the tree's numba cache; not timed
         runs = {k: [] for k in trees}
         for _ in range(max(1, args.runs)):
             for name, tree in trees.items():

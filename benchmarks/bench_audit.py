@@ -50,10 +50,12 @@ def _child(code: str, env: dict | None = None) -> tuple[float, float, str]:
     return dt, max(peak, before) / 1024.0, out.stdout
 
 
-def _peak_of(cmd: list[str], env: dict | None = None) -> tuple[float, float, int]:
+def _peak_of(cmd: list[str], env: dict | None = None,
+             cwd: str | None = None) -> tuple[float, float, int]:
     """Wall time, peak MiB (via /usr/bin/time-free wait4) and exit code of a command."""
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env,
+                            cwd=cwd)
     _, status, usage = os.wait4(proc.pid, 0)
     dt = time.perf_counter() - t0
     return dt, usage.ru_maxrss / 1024.0, os.waitstatus_to_exitcode(status)

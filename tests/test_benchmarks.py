@@ -20,6 +20,21 @@ def test_bench_audit_small(tmp_path):
         assert line in text
 
 
+def test_bench_ab_runs_each_version_from_its_own_tree(tmp_path):
+    # "python -m" puts the working folder first on sys.path: a child started inside a
+    # checkout would import that checkout whatever PYTHONPATH says
+    sys.path.insert(0, str(ROOT / "benchmarks"))
+    try:
+        import bench_ab
+    finally:
+        sys.path.remove(str(ROOT / "benchmarks"))
+    assert bench_ab.package_of(ROOT) == (ROOT / "meshcheck").resolve()
+    other = tmp_path / "tree"
+    (other / "meshcheck").mkdir(parents=True)
+    (other / "meshcheck" / "__init__.py").write_text("")
+    assert bench_ab.package_of(other) == (other / "meshcheck").resolve()
+
+
 def test_bench_ab_compares_two_versions_by_alternating_runs():
     # HEAD against this checkout on the small sample mesh: both rows and the ratios
     if subprocess.run(["git", "-C", str(ROOT), "rev-parse", "HEAD"],
@@ -34,6 +49,7 @@ def test_bench_ab_compares_two_versions_by_alternating_runs():
             if ln.split() and ln.split()[0] in ("old", "new")}
     assert set(rows) == {"old", "new"} and all(len(v) == 4 and v[0] > 0 for v in rows.values())
     assert any(ln.startswith("ratio new / old: wall best") for ln in lines)
+    assert "old = HEAD, new = " in out.stdout
     listed = subprocess.run(["git", "-C", str(ROOT), "worktree", "list"],
                             capture_output=True, text=True).stdout
     assert "meshcheck-ab-" not in listed  # the temporary worktree is removed
