@@ -317,13 +317,7 @@ def _size_field_aside(res) -> None:
     left to the writer, which computes the field again and reports it."""
     from .sizefield import audit_size_field
 
-    def run():
-        try:
-            audit_size_field(res)
-        except Exception:
-            pass
-
-    threading.Thread(target=run, name="meshcheck-size-field", daemon=True).start()
+    _aside(audit_size_field, res)  # the future (and any error in it) is not kept
 
 
 REPORT_KINDS = ("json", "md", "vtu", "html", "pos")
