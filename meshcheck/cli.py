@@ -655,6 +655,9 @@ def main(argv: list[str] | None = None) -> int:
     """Entry point; returns the exit code (tests call it in-process)."""
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
+    if argv is None:  # a process of its own (not a test calling main in-process)
+        from .threads import share_malloc_arena
+        share_malloc_arena()
     err = Console(stderr=True, highlight=False, soft_wrap=True)
     try:
         rc = app(args=args, prog_name="meshcheck", standalone_mode=False)
