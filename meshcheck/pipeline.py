@@ -22,7 +22,7 @@ from .gradation import SizeJumps, size_jumps
 from .job import Job, Media, resolve_media
 from .layers import LayerCheck, check_layer
 from .mesh import Mesh
-from .quality import CellQuality, QualityLimits, mesh_quality, out_of_range
+from .quality import CellQuality, QualityLimits, mesh_quality, out_of_range, summarise
 from .reading import read_mesh
 from .threads import MAX_WORKERS, thread_map
 from .topology import Topology, build_topology
@@ -105,6 +105,9 @@ def media_of(mesh: Mesh, settings: AuditSettings) -> Media:
 class AuditResult:
     """Everything the audit measured and advises.
 
+    quality : the cells' metrics, kept in float32 (the VTU's type); quality_flags and
+        quality_summary (:func:`meshcheck.quality.summarise`: statistics and worst
+        cells) come from the float64 values, before they are narrowed.
     blocking : True when a validity finding makes any solve on the mesh wrong.
     ready : no blocking finding and every cell carries the upper frequency at the
         allowed order.
@@ -135,6 +138,7 @@ class AuditResult:
     quadratic: QuadraticGeometry | None = None
     layers: tuple[LayerCheck, ...] = ()
     directional: DirectionalOrders | None = None
+    quality_summary: dict[str, dict | None] | None = None
 
     @property
     def blocking(self) -> bool:
@@ -176,21 +180,24 @@ def audit(mesh: Mesh, settings: AuditSettings,
             t1 = time.perf_counter()
             sj = min_scaled_jacobian(mesh)
             t2 = time.perf_counter()
+            # flags and statistics from the float64 metrics, which are then kept in
+            # float32 (the VTU's type; half the memory)
             q = mesh_quality(mesh)
-            return sj, q, t2 - t1, time.perf_counter() - t2
+            flags = out_of_range(q, mesh, settings.quality)
+            summary = summarise(q, parallel=False)  # beside the topology's threads
+            return sj, q.narrowed(np.float32), flags, summary, t2 - t1, time.perf_counter() - t2
 
         side = (pool.submit(cell_checks) if mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
                 else None)
         topo = build_topology(mesh)
         done("topology")
-        sj, q, t_sj, t_q = side.result() if side is not None else cell_checks()
+        sj, q, flags, summary, t_sj, t_q = side.result() if side is not None else cell_checks()
     stage("validity")
     findings = check_validity(mesh, topo, sj, settings.validity)
     findings += [Finding(code, NOTE, message, count) for code, message, count in mesh.notes]
     done("validity")
     t["validity"] += t_sj
     stage("quality")
-    flags = out_of_range(q, mesh, settings.quality)
     done("quality")
     t["quality"] += t_q
     stage("advice")
@@ -213,7 +220,7 @@ def audit(mesh: Mesh, settings: AuditSettings,
     done("geometry")
     t["analysis"] = time.perf_counter() - t0  # wall time; stages may overlap
     return AuditResult(mesh, settings, topo, sj, findings, q, flags, adv, sw, ref, coa, t,
-                       media=media, **extra)
+                       media=media, quality_summary=summary, **extra)
 
 
 def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,

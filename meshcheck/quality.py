@@ -87,10 +87,17 @@ __all__ = [
     "mesh_quality",
     "QualityLimits",
     "out_of_range",
+    "METRIC_BAD",
+    "metric_stats",
+    "summarise",
 ]
 
 METRICS: tuple[str, ...] = ("edge_ratio", "aspect_ratio", "radius_ratio", "scaled_jacobian",
                             "min_dihedral", "max_dihedral", "skew", "min_angle")
+#: direction in which a quality metric gets worse
+METRIC_BAD = {"edge_ratio": "high", "aspect_ratio": "high", "radius_ratio": "high",
+              "scaled_jacobian": "low", "min_dihedral": "low", "max_dihedral": "high",
+              "skew": "high", "min_angle": "low"}
 FAMILIES: tuple[str, ...] = ("tet", "hex", "wedge", "pyramid", "tri", "quad")
 _FAMILY = {"tetra": "tet", "hexahedron": "hex", "wedge": "wedge", "pyramid": "pyramid",
            "triangle": "tri", "quad": "quad"}
@@ -440,6 +447,18 @@ class CellQuality:
         ids = np.asarray(cell_ids, dtype=np.int64)
         return CellQuality({k: v[ids] for k, v in self.metrics.items()})
 
+    def narrowed(self, dtype=np.float32) -> "CellQuality":
+        """The same metrics in ``dtype`` (one (k, n_cells) array for the k metrics with
+        values; a metric that is one broadcast value stays one)."""
+        full = [k for k, v in self.metrics.items() if v.ndim != 1 or v.strides[0] != 0]
+        rows = np.empty((len(full), self.n_cells), dtype)
+        for r, k in zip(rows, full):
+            r[...] = self.metrics[k]
+        rows.setflags(write=False)
+        row = dict(zip(full, rows))
+        return CellQuality({k: row[k] if k in row else np.broadcast_to(v[:1].astype(dtype), v.shape)
+                            for k, v in self.metrics.items()})
+
 
 @lru_cache(maxsize=None)
 def defined_metrics(family: str) -> frozenset[str]:
@@ -651,3 +670,69 @@ def out_of_range(quality: CellQuality, mesh: Mesh, limits: QualityLimits) -> dic
             v = quality[k][lo_off:hi_off]
             out[k][lo_off:hi_off] = (v < lo - _BOUND_TOL * abs(lo)) | (v > hi + _BOUND_TOL * abs(hi))
     return out
+
+
+def metric_stats(values: np.ndarray, bad: str, n_worst: int) -> dict | None:
+    """Cells, min, 5th percentile, median, 95th percentile and max of the finite values
+    of one quality metric ((n_cells,) float64), and the ids of the ``n_worst`` worst cells
+    (``bad`` "low" or "high"); None when no value is finite.  One partition gives the
+    three quantiles (the same values as ``np.percentile`` and ``np.median``).  Large
+    meshes take the radix selection of :func:`meshcheck.kernels.stats.metric_summary`
+    (the same dict, no copy of the values; tested against this code)."""
+    if kernels.use_compiled(len(values)) and values.dtype == np.float64 and values.ndim == 1:
+        from .kernels.stats import metric_summary
+        return metric_summary(values, bad, n_worst)
+    ok = np.isfinite(values)
+    n_ok = int(np.count_nonzero(ok))
+    if not n_ok:
+        return None
+    every = n_ok == len(values)
+    v = values.copy() if every else values[ok]
+    pos = _smallest(v, n_worst) if bad == "low" else _largest(v, n_worst)
+    worst = pos if every else np.flatnonzero(ok)[pos]
+    lo, hi = float(v.min()), float(v.max())
+    # np.percentile partitions v in place at the neighbours of the three quantiles, among
+    # them np.median's middle elements (n // 2 - 1 and n // 2, or n // 2)
+    p05, _, p95 = np.percentile(v, [5, 50, 95], overwrite_input=True)
+    mid = n_ok // 2
+    median = np.mean(v[mid - 1:mid + 1] if n_ok % 2 == 0 else v[mid:mid + 1])
+    return {"cells": n_ok, "min": lo, "p05": float(p05), "median": float(median),
+            "p95": float(p95), "max": hi, "worst": worst}
+
+
+def _smallest(v: np.ndarray, k: int) -> np.ndarray:
+    """Indices of the k smallest values of v, ascending, ties by index (a partition, then
+    a sort of the few candidates, instead of a sort of the whole array)."""
+    if len(v) <= k:
+        return np.lexsort((np.arange(len(v)), v))
+    cut = np.partition(v, k - 1)[k - 1]
+    cand = np.flatnonzero(v <= cut)
+    return cand[np.lexsort((cand, v[cand]))][:k]
+
+
+def _largest(v: np.ndarray, k: int) -> np.ndarray:
+    """``_smallest(-v, k)`` without the negated copy: indices of the k largest values of
+    v, descending, ties by index."""
+    if len(v) <= k:
+        return np.lexsort((np.arange(len(v)), -v))
+    cut = np.partition(v, len(v) - k)[len(v) - k]
+    cand = np.flatnonzero(v >= cut)
+    return cand[np.lexsort((cand, -v[cand]))][:k]
+
+def summarise(quality: CellQuality, n_worst: int = 10,
+              parallel: bool = True) -> dict[str, dict | None]:
+    """Metric name -> :func:`metric_stats` of its values (None when none is finite), with
+    ``worst_values`` (the values of the ``worst`` cells, float); the metrics on the cores
+    when ``parallel`` (partitions and reductions release the GIL)."""
+    from .threads import thread_map
+
+    names = list(quality.metrics)
+
+    def one(name):
+        values = quality.metrics[name]
+        st = metric_stats(values, METRIC_BAD.get(name, "high"), n_worst)
+        if st is not None:
+            st["worst_values"] = [float(values[i]) for i in st["worst"]]
+        return st
+
+    return dict(zip(names, thread_map(one, names, parallel=parallel)))

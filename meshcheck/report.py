@@ -15,10 +15,10 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__, kernels
+from . import __version__
 from .advice import region_runs
 from .pipeline import AuditResult
-from .threads import thread_map
+from .quality import METRIC_BAD, summarise
 from . import vtkxml
 from .units import UNIT_FACTORS
 
@@ -41,10 +41,7 @@ CORRECTION_3D = {
           "or hexahedron is assessed as if it were a times its length, a fitted to NGSolve "
           "solves per cell type, order and target; pyramids and 2D cells keep the plain model",
     False: "not applied (plain 1D model)"}
-#: direction in which a quality metric gets worse
-METRIC_BAD = {"edge_ratio": "high", "aspect_ratio": "high", "radius_ratio": "high",
-              "scaled_jacobian": "low", "min_dihedral": "low", "max_dihedral": "high",
-              "skew": "high", "min_angle": "low"}
+
 
 
 def state(res: AuditResult) -> str:
@@ -114,79 +111,29 @@ def _cluster(c, scale: float) -> dict:
             "factor": _f(c.factor), "regions": list(c.regions), "some_cell_ids": c.ids.tolist()}
 
 
-def _quality(res: AuditResult, scale: float, n_worst: int = 10) -> dict:
+def _quality(res: AuditResult, scale: float) -> dict:
     lim = res.settings.quality
-    names = [n for n, v in res.quality.metrics.items()]
-    # the metrics are independent (partitions and reductions release the GIL): on the cores
-    stats = thread_map(lambda n: _metric_stats(res.quality.metrics[n], METRIC_BAD.get(n, "high"),
-                                               n_worst),
-                       names, parallel=res.mesh.n_cells > 200_000)
+    # summarised by the audit from the float64 metrics (its result keeps float32 ones)
+    summary = res.quality_summary if res.quality_summary is not None else \
+        summarise(res.quality, parallel=res.mesh.n_cells > 200_000)
     out = {}
-    for name, st in zip(names, stats):
+    for name, st in summary.items():
         if st is None:
             continue
-        values = res.quality.metrics[name]
-        worst, bad = st.pop("worst"), METRIC_BAD.get(name, "high")
+        st = dict(st)
+        worst, values, bad = st.pop("worst"), st.pop("worst_values"), METRIC_BAD.get(name, "high")
         flags = res.quality_flags.get(name)
         out[name] = {
             **st, "out_of_range": int(np.count_nonzero(flags)) if flags is not None else 0,
             "worse_when": bad,
             "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
-            "worst": [{"cell": int(i), "value": float(values[i]),
+            "worst": [{"cell": int(i), "value": float(v),
                        "type": res.mesh.cell_type_of(int(i)),
                        "region": int(res.mesh.region[i]),
                        "centroid": (c / scale).tolist()}
-                      for i, c in zip(worst, res.mesh.centroids_of(worst))],
+                      for i, v, c in zip(worst, values, res.mesh.centroids_of(worst))],
         }
     return out
-
-
-def _metric_stats(values: np.ndarray, bad: str, n_worst: int) -> dict | None:
-    """Cells, min, 5th percentile, median, 95th percentile and max of the finite values
-    of one quality metric ((n_cells,) float64), and the ids of the ``n_worst`` worst cells
-    (``bad`` "low" or "high"); None when no value is finite.  One partition gives the
-    three quantiles (the same values as ``np.percentile`` and ``np.median``).  Large
-    meshes take the radix selection of :func:`meshcheck.kernels.stats.metric_summary`
-    (the same dict, no copy of the values; tested against this code)."""
-    if kernels.use_compiled(len(values)) and values.dtype == np.float64 and values.ndim == 1:
-        from .kernels.stats import metric_summary
-        return metric_summary(values, bad, n_worst)
-    ok = np.isfinite(values)
-    n_ok = int(np.count_nonzero(ok))
-    if not n_ok:
-        return None
-    every = n_ok == len(values)
-    v = values.copy() if every else values[ok]
-    pos = _smallest(v, n_worst) if bad == "low" else _largest(v, n_worst)
-    worst = pos if every else np.flatnonzero(ok)[pos]
-    lo, hi = float(v.min()), float(v.max())
-    # np.percentile partitions v in place at the neighbours of the three quantiles, among
-    # them np.median's middle elements (n // 2 - 1 and n // 2, or n // 2)
-    p05, _, p95 = np.percentile(v, [5, 50, 95], overwrite_input=True)
-    mid = n_ok // 2
-    median = np.mean(v[mid - 1:mid + 1] if n_ok % 2 == 0 else v[mid:mid + 1])
-    return {"cells": n_ok, "min": lo, "p05": float(p05), "median": float(median),
-            "p95": float(p95), "max": hi, "worst": worst}
-
-
-def _smallest(v: np.ndarray, k: int) -> np.ndarray:
-    """Indices of the k smallest values of v, ascending, ties by index (a partition, then
-    a sort of the few candidates, instead of a sort of the whole array)."""
-    if len(v) <= k:
-        return np.lexsort((np.arange(len(v)), v))
-    cut = np.partition(v, k - 1)[k - 1]
-    cand = np.flatnonzero(v <= cut)
-    return cand[np.lexsort((cand, v[cand]))][:k]
-
-
-def _largest(v: np.ndarray, k: int) -> np.ndarray:
-    """``_smallest(-v, k)`` without the negated copy: indices of the k largest values of
-    v, descending, ties by index."""
-    if len(v) <= k:
-        return np.lexsort((np.arange(len(v)), -v))
-    cut = np.partition(v, len(v) - k)[len(v) - k]
-    cand = np.flatnonzero(v >= cut)
-    return cand[np.lexsort((cand, -v[cand]))][:k]
 
 
 def _region_cells(region: np.ndarray, cell_volume: np.ndarray, region_lim: dict):
@@ -541,7 +488,7 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
         data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.limit_at(p, f32), f32)
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
-            data[f"quality_{name}"] = lazy(lambda v=values: v.astype(f32), f32)
+            data[f"quality_{name}"] = lazy(lambda v=values: v.astype(f32, copy=False), f32)
     from .sizefield import size_point_data
     if compress is None:
         compress = m.n_cells <= VTU_COMPRESS_CELLS

@@ -1,5 +1,5 @@
 """The compiled summary of a quality metric (meshcheck/kernels/stats.py, radix selection)
-against the numpy reference ``report._metric_stats`` (a copy, np.partition,
+against the numpy reference ``quality.metric_stats`` (a copy, np.partition,
 np.percentile, np.mean): on random arrays (uniform, normal, heavy-tailed, rounded
 values with many ties, constant, a few distinct values, negative values and -0.0 mixed
 with +0.0, NaN / inf sprinkled, no finite value), sizes 0 to 100,000, worst cells
@@ -17,12 +17,12 @@ import pytest
 pytest.importorskip("numba")
 
 from meshcheck.kernels import stats as KS  # noqa: E402
-from meshcheck.report import _metric_stats  # noqa: E402
+from meshcheck.quality import metric_stats as _metric_stats  # noqa: E402
 
 
 @pytest.fixture(autouse=True)
 def _numpy_reference(monkeypatch):
-    """The reference stays numpy even once report._metric_stats takes the kernel for
+    """The reference stays numpy even once quality.metric_stats takes the kernel for
     large meshes (the kernel is called directly here)."""
     monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
 

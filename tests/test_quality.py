@@ -593,3 +593,19 @@ def test_limits_describe_is_json_ready():
     assert d["tet"] == [0.5, 1.0] and d["wedge"][1] is None
     assert "skew" not in QualityLimits().describe("min_dihedral") and set(QualityLimits().describe("skew")) == {"hex", "quad"}
     json.dumps(d)
+
+
+def test_narrowed_metrics_are_the_float32_roundings_and_broadcasts_stay_broadcasts():
+    from meshcheck.quality import CellQuality
+
+    rng = np.random.default_rng(4)
+    n = 50
+    q = CellQuality({"a": rng.normal(size=n), "b": np.broadcast_to(np.nan, (n,)),
+                     "c": np.where(rng.random(n) < 0.3, np.nan, rng.random(n) * 1e3)})
+    got = q.narrowed(np.float32)
+    assert list(got.metrics) == ["a", "b", "c"]
+    for k, v in q.metrics.items():
+        assert got[k].dtype == np.float32
+        assert np.array_equal(got[k], v.astype(np.float32), equal_nan=True), k
+    assert got["b"].strides == (0,)  # still one value, not n
+    assert got["a"].base is got["c"].base  # one (2, n) block for the metrics with values

@@ -8,7 +8,8 @@ import pytest
 
 from meshcheck.advice import Advice, AdviceSettings, region_runs
 from meshcheck.pipeline import AuditSettings, audit
-from meshcheck.report import CORRECTION_3D, _metric_stats, _region_cells, to_dict, write_markdown
+from meshcheck.quality import metric_stats as _metric_stats
+from meshcheck.report import CORRECTION_3D, _region_cells, to_dict, write_markdown
 from meshes import tet_box
 
 
@@ -51,7 +52,7 @@ def test_markdown_states_the_correction(reports, corr):
 
 def _reference_stats(values, bad, k):
     """What the report computed before one partition served all quantiles."""
-    from meshcheck.report import _smallest
+    from meshcheck.quality import _smallest
     ok = np.isfinite(values)
     v = values[ok]
     ids = np.flatnonzero(ok)
@@ -140,18 +141,50 @@ def test_file_checksum_is_computed_once_and_follows_the_file(tmp_path, monkeypat
 
 def test_quality_section_of_large_meshes_equals_the_numpy_statistics(monkeypatch):
     # large meshes summarise each metric by the compiled radix selection
-    # (meshcheck.kernels.stats): the JSON's quality section must not change
-    from meshcheck import report
+    # (meshcheck.kernels.stats): the statistics must not change
     from meshcheck.kernels import stats
+    from meshcheck.quality import mesh_quality, summarise
 
-    res = audit(tet_box((7, 6, 5)), AuditSettings((300.0,)))
+    q = mesh_quality(tet_box((7, 6, 5)))
     calls = []
     real = stats.metric_summary
     monkeypatch.setattr(stats, "metric_summary", lambda *a: calls.append(1) or real(*a))
     monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
-    want = report._quality(res, 1.0)
+    want = summarise(q)
     assert not calls
     monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
-    got = report._quality(res, 1.0)
-    assert len(calls) == len(res.quality.metrics)
-    assert got == want
+    got = summarise(q)
+    assert len(calls) == len(q.metrics)
+    assert got.keys() == want.keys()
+    assert sum(w is not None for w in want.values()) >= 6  # a tet's metrics
+    for name in want:
+        if want[name] is None:
+            assert got[name] is None, name
+            continue
+        g, w = dict(got[name]), dict(want[name])
+        assert np.array_equal(g.pop("worst"), w.pop("worst")), name
+        assert g == w, name
+
+
+def test_audit_keeps_float32_metrics_and_reports_the_float64_statistics():
+    """The audit narrows its metrics to float32 after summarising them: the JSON's quality
+    section equals the one made from the float64 metrics, the flags are theirs, and the
+    kept values are their float32 roundings."""
+    from dataclasses import replace
+
+    from meshcheck import report
+    from meshcheck.quality import mesh_quality, out_of_range
+
+    mesh = tet_box((6, 5, 4))
+    rng = np.random.default_rng(3)  # distorted cells: metrics of many values, some flagged
+    mesh = replace(mesh, points=mesh.points + rng.uniform(-0.04, 0.04, mesh.points.shape))
+    res = audit(mesh, AuditSettings((300.0,)))
+    q64 = mesh_quality(mesh)
+    assert report._quality(res, 1.0) == report._quality(
+        replace(res, quality=q64, quality_summary=None), 1.0)
+    flags = out_of_range(q64, mesh, res.settings.quality)
+    assert all(np.array_equal(res.quality_flags[k], flags[k]) for k in flags)
+    for name, v in q64.metrics.items():
+        kept = res.quality.metrics[name]
+        assert kept.dtype == np.float32
+        assert np.array_equal(kept, v.astype(np.float32), equal_nan=True), name

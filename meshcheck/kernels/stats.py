@@ -1,4 +1,4 @@
-"""Compiled summary of one quality metric (``report._metric_stats``): number of finite
+"""Compiled summary of one quality metric (``quality.metric_stats``): number of finite
 values, min, 5th percentile, median, 95th percentile, max and the ids of the worst
 cells, by radix selection over the values' bits instead of a copy and partitions.
 
@@ -370,7 +370,7 @@ def _values(keys: np.ndarray) -> np.ndarray:
 def metric_summary(values: np.ndarray, bad: str, n_worst: int, *, nb1: int = NB1,
                    nb2: int = NB2, gather_max: int = GATHER_MAX, worst_max: int = WORST_MAX,
                    sample: int = SAMPLE, info: dict | None = None) -> dict | None:
-    """``report._metric_stats(values, bad, n_worst)`` by radix selection: for
+    """``quality.metric_stats(values, bad, n_worst)`` by radix selection: for
     ``values`` ((n_cells,) float64, NaN / inf allowed) a dict with "cells" (number of
     finite values), "min", "p05", "median", "p95", "max" (floats equal to
     ``np.percentile(v, [5, 50, 95])``, ``np.median`` and min / max of the finite values
