@@ -82,7 +82,7 @@ def _used_vertices(mesh: Mesh) -> int:
 
 
 def _face_kinds(topo: Topology) -> tuple[int, int]:
-    tri = int(np.count_nonzero(topo.faces.nodes[:, 3] < 0))
+    tri = int(np.count_nonzero(topo.faces.is_tri))
     return tri, len(topo.faces) - tri
 
 
@@ -126,7 +126,7 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
         c0, c1 = faces.cells[:, 0], faces.cells[:, 1]
         two = c1 >= 0
         c1 = np.maximum(c1, 0)
-        is_tri = faces.nodes[:, 3] < 0
+        is_tri = faces.is_tri
         kinds = [(is_tri, lambda q: q - 1), (~is_tri, lambda q: 2 * q - 1)]
         kinds = [(np.flatnonzero(k), inc) for k, inc in kinds if k.any()]
 
@@ -215,7 +215,7 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
                         _ka.dof_hist(B, inc, starts, len(inc), lo, hi, hist))
     if three and B.shape[1]:
         fcells = np.ascontiguousarray(topo.faces.cells)
-        tri = np.ascontiguousarray(topo.faces.nodes[:, 3] < 0)
+        tri = topo.faces.is_tri
         for lo, hi in _chunks(len(fcells), parts):
             jobs.append(lambda hist, lo=lo, hi=hi:
                         _ka.face_dof_hist(B, fcells, tri, lo, hi, hist))

@@ -91,7 +91,7 @@ def boundary_surface(mesh: Mesh, topo: Topology,
     faces : optional subset of face ids (default: every boundary face).
     """
     fids = np.flatnonzero(topo.faces.count == 1) if faces is None else np.asarray(faces, np.int64)
-    nodes = topo.faces.nodes[fids]
+    nodes = topo.faces.nodes_of(fids)
     quad = nodes[:, 3] >= 0
     tri = np.concatenate([nodes[:, [0, 1, 2]], nodes[quad][:, [0, 2, 3]]])
     face = np.concatenate([fids, fids[quad]])
@@ -323,7 +323,7 @@ def _face_midnode_deviation(mesh: Mesh, topo: Topology, fids: np.ndarray):
     edges = topo.edges
     n = np.int64(mesh.n_points + 1)
     ekey = edges.nodes[:, 0] * n + edges.nodes[:, 1]
-    nodes = topo.faces.nodes[fids]
+    nodes = topo.faces.nodes_of(fids)
     dev = np.zeros(len(fids))
     longest = np.zeros(len(fids))
     has = np.ones(len(fids), bool)
@@ -418,7 +418,7 @@ def check_curvature(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: fl
         h_lin = 2.0 * np.sqrt(2.0 * R * tol[worst])               # chord with sagitta tol
         h_quad = (512.0 * R ** 3 * tol[worst]) ** 0.25          # h^4 / (512 R^3) = tol
     centre = np.zeros((len(worst), 3))
-    fn = topo.faces.nodes[fids[worst]]
+    fn = topo.faces.nodes_of(fids[worst])
     cnt = (fn >= 0).sum(axis=1)
     for j in range(4):
         ok = fn[:, j] >= 0

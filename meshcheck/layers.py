@@ -138,14 +138,14 @@ def nearest_on_surface(points: np.ndarray, tri_xyz: np.ndarray,
 
 def face_triangles(mesh: Mesh, topo: Topology, fids: np.ndarray) -> np.ndarray:
     """(t, 3, 3) triangles of faces (quads split 0-2), metres."""
-    nodes = topo.faces.nodes[fids]
+    nodes = topo.faces.nodes_of(fids)
     quad = nodes[:, 3] >= 0
     tri = np.concatenate([nodes[:, [0, 1, 2]], nodes[quad][:, [0, 2, 3]]])
     return mesh.points[tri]
 
 
 def _face_normals_centres(mesh: Mesh, topo: Topology, fids: np.ndarray):
-    nodes = topo.faces.nodes[fids]
+    nodes = topo.faces.nodes_of(fids)
     P = mesh.points
     quad = nodes[:, 3] >= 0
     last = np.where(quad, nodes[:, 3], nodes[:, 0])
@@ -160,7 +160,7 @@ def _face_normals_centres(mesh: Mesh, topo: Topology, fids: np.ndarray):
 
 def _face_size(mesh: Mesh, topo: Topology, fids: np.ndarray) -> np.ndarray:
     """(k,) longest side of each face, metres."""
-    nodes = topo.faces.nodes[fids]
+    nodes = topo.faces.nodes_of(fids)
     quad = nodes[:, 3] >= 0
     nxt = np.column_stack([nodes[:, 1], nodes[:, 2], np.where(quad, nodes[:, 3], nodes[:, 0]),
                            nodes[:, 0]])
@@ -262,11 +262,13 @@ def check_layer(mesh: Mesh, topo: Topology, tag: int, speed: float, fmin: float,
         outer = own_bnd[np.nan_to_num(away, nan=0.0) >= 0.5]
         n_outer = len(outer)
         n_lat = len(own_bnd) - n_outer
-        inodes = np.unique(topo.faces.nodes[interface][topo.faces.nodes[interface] >= 0])
+        fn = topo.faces.nodes_of(interface)
+        inodes = np.unique(fn[fn >= 0])
         if n_outer:
             d_t, _ = nearest_on_surface(mesh.points[inodes], face_triangles(mesh, topo, outer))
             thickness = (float(d_t.min()), float(np.median(d_t)), float(d_t.max()))
-            onodes = np.unique(topo.faces.nodes[outer][topo.faces.nodes[outer] >= 0])
+            fn = topo.faces.nodes_of(outer)
+            onodes = np.unique(fn[fn >= 0])
             hops = _hops(mesh, topo, in_layer, onodes, inodes)
             fin = hops[np.isfinite(hops)]
             if len(fin):

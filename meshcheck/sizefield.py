@@ -233,7 +233,7 @@ def _boundary_integral(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> f
     """int h^(1-d) over the boundary (faces with one cell in 3D, edges in 2D)."""
     P = mesh.points
     if mesh.dim == 3:
-        f = topo.faces.nodes[topo.faces.boundary]
+        f = topo.faces.nodes_of(topo.faces.boundary)
         tri = f[:, 3] < 0
         a = np.linalg.norm(np.cross(P[f[:, 1]] - P[f[:, 0]], P[f[:, 2]] - P[f[:, 0]]), axis=1) / 2
         q = ~tri
@@ -534,7 +534,7 @@ def remesh(mesh: Mesh, topo: Topology, field: SizeField, path: str | Path,
     scale = UNIT_FACTORS.get(mesh.unit, 1.0)
     path = Path(path)
     faces = topo.faces
-    bnd = faces.nodes[faces.boundary]
+    bnd = faces.nodes_of(faces.boundary)
     tri = bnd[bnd[:, 3] < 0][:, :3]
     quad = bnd[bnd[:, 3] >= 0]
     tri = np.vstack([tri, quad[:, [0, 1, 2]], quad[:, [0, 2, 3]]]) if len(quad) else tri

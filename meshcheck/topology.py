@@ -15,7 +15,8 @@ code here is their reference.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from functools import lru_cache
 
 import numpy as np
 
@@ -279,24 +280,93 @@ def _no_edges(mesh: Mesh) -> Edges:
 class Faces:
     """Unique faces (triangles and quadrilaterals) of a volume mesh.
 
-    nodes : (n_f, 4) corners in the outward orientation of ``cells[:, 0]``
-        (-1 in the last column for triangles).
-    cells : (n_f, 2) global ids of the cells on each side (-1 for none).
+    local : (n_f,) uint8 index of the face among the faces of its first cell,
+        ``cells[:, 0]`` (``mesh.blocks[..].info.faces``): the corners are that cell's,
+        in its outward orientation, made when asked (:meth:`nodes_of`, :attr:`nodes`)
+        instead of kept (16 bytes per face, 147 MiB for 4.8M tetrahedra).
+    cells : (n_f, 2) global ids of the cells on each side (-1 for none), of
+        :func:`index_type` (int32 unless an index exceeds it).
     count : (n_f,) int32 number of cells sharing the face (1 boundary, 2 interior,
         more = non-manifold).
-    nodes and cells are of :func:`index_type` (int32 unless an index exceeds it).
+    mesh : the mesh the faces belong to (not compared, not shown).
     """
 
-    nodes: np.ndarray
+    local: np.ndarray
     cells: np.ndarray
     count: np.ndarray
+    mesh: Mesh = field(repr=False, compare=False)
 
     @property
     def boundary(self) -> np.ndarray:
         return self.count == 1
 
     def __len__(self) -> int:
-        return self.nodes.shape[0]
+        return self.local.shape[0]
+
+    def nodes_of(self, ids) -> np.ndarray:
+        """(k, 4) corners of the faces ``ids`` (indices or a boolean mask) in the outward
+        orientation of their first cell, -1 in the last column for triangles; of
+        :func:`index_type` of the mesh's points."""
+        m = self.mesh
+        c0 = self.cells[ids, 0]
+        loc = self.local[ids]
+        out = np.full((len(c0), 4), -1, index_type(m.n_points))
+        for part, (bi, off) in _block_parts(m, c0):
+            b = m.blocks[bi]
+            table = _padded_faces(b.type)
+            pos = np.arange(len(c0)) if part is None else part
+            for s in range(0, len(pos), _NODES_CHUNK):  # bounded scratch memory
+                p = pos[s:s + _NODES_CHUNK]
+                t = table[loc[p]]
+                got = b.cells[(c0[p] - off)[:, None], np.maximum(t, 0)]
+                got[t < 0] = -1
+                out[p] = got
+        return out
+
+    @property
+    def nodes(self) -> np.ndarray:
+        """(n_f, 4) :meth:`nodes_of` every face (made on each access: prefer
+        :meth:`nodes_of` for a subset, :attr:`is_tri` for the kind)."""
+        return self.nodes_of(slice(None))
+
+    @property
+    def is_tri(self) -> np.ndarray:
+        """(n_f,) bool: the face is a triangle."""
+        out = np.empty(len(self), bool)
+        c0 = self.cells[:, 0]
+        for part, (bi, _) in _block_parts(self.mesh, c0):
+            tri = _padded_faces(self.mesh.blocks[bi].type)[:, 3] < 0
+            if part is None:
+                out[...] = tri[self.local]
+            else:
+                out[part] = tri[self.local[part]]
+        return out
+
+
+#: faces whose corners :meth:`Faces.nodes_of` gathers at a time
+_NODES_CHUNK = 1 << 20
+
+
+def _block_parts(mesh: Mesh, cell_ids: np.ndarray):
+    """[(positions or None for all, (block index, first cell id of the block))] of the
+    3D blocks holding ``cell_ids`` (global ids)."""
+    vol = [bi for bi, b in enumerate(mesh.blocks) if b.info.dim == 3]
+    offs = mesh.block_offsets
+    if len(vol) == 1:
+        return [(None, (vol[0], int(offs[vol[0]])))]
+    blk = np.searchsorted(offs, cell_ids, side="right") - 1
+    return [(np.flatnonzero(blk == bi), (bi, int(offs[bi]))) for bi in vol]
+
+
+@lru_cache(maxsize=None)
+def _padded_faces(cell_type: str) -> np.ndarray:
+    """(n_faces, 4) local corners of the faces of a 3D cell type, -1 padding triangles."""
+    from .cells import CELL_TYPES
+
+    faces = CELL_TYPES[cell_type].faces
+    out = np.array([list(f) + [-1] * (4 - len(f)) for f in faces], np.int64).reshape(-1, 4)
+    out.setflags(write=False)
+    return out
 
 
 def _face_tables(mesh: Mesh, size: int):
@@ -354,7 +424,8 @@ def _tri_keys(mesh: Mesh, tables, edges: Edges | None):
 
 
 def _group_faces(mesh: Mesh, size: int, edges: Edges | None):
-    """Unique faces of ``size`` corners: (corners (k, 4), cells (k, 2), count (k,))."""
+    """Unique faces of ``size`` corners: (local (k,) uint8 index among the first cell's
+    faces of that size, cells (k, 2), count (k,))."""
     tables = _face_tables(mesh, size)
     if not tables:
         return None
@@ -382,18 +453,22 @@ def _group_faces(mesh: Mesh, size: int, edges: Edges | None):
     cells[:, 0] = _row_owner(first, widths, lengths, offsets)
     two = count >= 2
     cells[two, 1] = _row_owner(order[starts[two] + 1], widths, lengths, offsets)
-    # outward corners of the first cell of every face, from its row
-    corners = np.full((len(starts), 4), -1, np.int64)
+    return (_row_local(first, widths, lengths), cells.astype(index_type(mesh.n_cells)),
+            count.astype(np.int32))
+
+
+def _row_local(first: np.ndarray, widths, lengths) -> np.ndarray:
+    """(k,) uint8 local face (index in its block's table of faces of one size) of each
+    row ``first`` of the face rows (block after block, ``widths[i]`` rows per cell)."""
+    if len(widths) == 1:
+        return (first % widths[0]).astype(np.uint8)
     bounds = np.cumsum([0] + [w * m for w, m in zip(widths, lengths)])
     blk = np.searchsorted(bounds, first, side="right") - 1
-    for i, (bi, t) in enumerate(tables):
-        sel = np.flatnonzero(blk == i)
-        r = first[sel] - bounds[i]
-        cl = mesh.blocks[bi].cells
-        flat = (r // widths[i] * cl.shape[1])[:, None] + t[r % widths[i]]
-        corners[sel, :size] = np.take(cl.reshape(-1), flat)
-    return (corners.astype(index_type(mesh.n_points)), cells.astype(index_type(mesh.n_cells)),
-            count.astype(np.int32))
+    out = np.empty(len(first), np.uint8)
+    for i, w in enumerate(widths):
+        sel = blk == i
+        out[sel] = (first[sel] - bounds[i]) % w
+    return out
 
 
 def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
@@ -406,24 +481,43 @@ def build_faces(mesh: Mesh, edges: Edges | None = None) -> Faces:
     if kernels.use_compiled(mesh.n_cells):
         _used_compiled(mesh)
         return _build_faces_compiled(mesh, edges)
-    parts = [p for p in (_group_faces(mesh, 3, edges), _group_faces(mesh, 4, edges))
-             if p is not None]
+    parts = [(k, p) for k, p in ((3, _group_faces(mesh, 3, edges)),
+                                 (4, _group_faces(mesh, 4, edges))) if p is not None]
     return _faces_of(mesh, parts)
 
 
 def no_faces(mesh: Mesh) -> Faces:
-    """The faces of a mesh without volume cells (arrays of :func:`index_type`)."""
-    return Faces(np.zeros((0, 4), index_type(mesh.n_points)),
-                 np.zeros((0, 2), index_type(mesh.n_cells)), np.zeros(0, np.int32))
+    """The faces of a mesh without volume cells."""
+    return Faces(np.zeros(0, np.uint8), np.zeros((0, 2), index_type(mesh.n_cells)),
+                 np.zeros(0, np.int32), mesh)
 
 
 def _faces_of(mesh: Mesh, parts) -> Faces:
-    """Faces from the (nodes, cells, count) groups of triangles and quadrilaterals."""
+    """Faces from the (local, cells, count) groups of triangles and quadrilaterals
+    (``parts``: [(size, group)]; local = index among the cell's faces of that size)."""
     if not parts:
         return no_faces(mesh)
-    if len(parts) == 1:
-        return Faces(*parts[0])
-    return Faces(*(np.concatenate([p[k] for p in parts]) for k in range(3)))
+    groups = [(_face_numbers(mesh, size, g[0], g[1][:, 0]),) + tuple(g[1:]) for size, g in parts]
+    if len(groups) == 1:
+        return Faces(*groups[0], mesh)
+    return Faces(*(np.concatenate([g[k] for g in groups]) for k in range(3)), mesh)
+
+
+def _face_numbers(mesh: Mesh, size: int, local: np.ndarray, c0: np.ndarray) -> np.ndarray:
+    """(k,) uint8 index in ``info.faces`` of the cells ``c0`` of their faces numbered
+    ``local`` among the faces of ``size`` corners."""
+    out = None
+    for part, (bi, _) in _block_parts(mesh, c0):
+        faces = mesh.blocks[bi].info.faces
+        numbers = np.array([k for k, f in enumerate(faces) if len(f) == size] or [0], np.uint8)
+        if part is None:
+            if np.array_equal(numbers, np.arange(len(numbers))):
+                return local  # the faces of this size come first: the same numbers
+            return numbers[local]
+        if out is None:
+            out = local.copy()
+        out[part] = numbers[local[part]]
+    return local if out is None else out
 
 
 def _block_volumes(P: np.ndarray, info, corners: np.ndarray) -> np.ndarray:
@@ -634,7 +728,7 @@ def _cracks(mesh: Mesh, faces: Faces, dup_pairs: np.ndarray) -> np.ndarray:
                           shape=(n, n))
     _, rep = connected_components(g, directed=False)
     bnd = np.flatnonzero(faces.boundary)
-    fn = faces.nodes[bnd]
+    fn = faces.nodes_of(bnd)
     r = np.where(fn >= 0, rep[np.maximum(fn, 0)], -1)
     s = np.sort(r, axis=1)
     nn = np.int64(n + 1)
@@ -988,25 +1082,19 @@ def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None):
     widths = [len(t) for _, t in tables]
     lengths = [len(b) for b in blocks]
     offsets = [mesh.block_offsets[bi] for bi, _ in tables]
-    shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 7  # (cell, local face < 8, code)
+    shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 3  # (cell, local face < 8)
     if (size == 3 and edges is not None and len(edges) and
             int(n - 1).bit_length() + shift <= _PACK_BITS):
         return _tri_by_edges(mesh, tables, edges, shift)
     first, cells, count = _faces_by_node(mesh, tables, blocks, widths,
                                          _row_layout(widths, lengths, offsets))
-    corners = np.full((len(first), 4), -1, index_type(n))
-    row0 = 0
-    for b, (_, t), w in zip(blocks, tables, widths):
-        kt.face_corners(b.cells, t, row0, first, corners)
-        row0 += w * len(b)
-    return corners, cells, count
+    return _row_local(first, widths, lengths), cells, count
 
 
 def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
-    """(corners, cells, count) of the unique triangles, bucketed by the edge of their
-    two smallest nodes and sorted on packed integers (largest node << shift | cell << 7
-    | local face << 4 | order of the corners); the corners are rebuilt from the sorted
-    nodes.  Above 2**(_FANOUT_BITS + _MIN_COARSE_BITS) edges the buckets are filled in two
+    """(local, cells, count) of the unique triangles, bucketed by the edge of their two
+    smallest nodes and sorted on packed integers (largest node << shift | cell << 3 |
+    local face).  Above 2**(_FANOUT_BITS + _MIN_COARSE_BITS) edges the buckets are filled in two
     levels (:func:`meshcheck.kernels.topology.coarse_refine`), through one more int64
     per local triangle (153 MB on 4.8M tetrahedra) but a third of the scattered writes'
     time."""
@@ -1068,13 +1156,13 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
                       parallel=parts > 1)
     n_f = int(sum(n_fs))
     f0 = np.cumsum([0] + n_fs[:-1])
-    corners = np.empty((n_f, 4), index_type(mesh.n_points))
+    local = np.empty(n_f, np.uint8)
     cells = np.empty((n_f, 2), index_type(mesh.n_cells))
     count = np.empty(n_f, np.int32)
-    thread_map(lambda i: kt.tri_emit_range(ptr, packed, shift, edges.nodes, corners, cells,
-                                           count, *ranges[i], int(f0[i])),
+    thread_map(lambda i: kt.tri_emit_range(ptr, packed, shift, local, cells, count,
+                                           *ranges[i], int(f0[i])),
                range(parts), parallel=parts > 1)
-    return corners, cells, count
+    return local, cells, count
 
 
 def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
@@ -1106,8 +1194,8 @@ def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
 
 
 def _build_faces_compiled(mesh: Mesh, edges: Edges | None = None) -> Faces:
-    parts = [p for p in (_group_faces_compiled(mesh, 3, edges), _group_faces_compiled(mesh, 4))
-             if p is not None]
+    parts = [(k, p) for k, p in ((3, _group_faces_compiled(mesh, 3, edges)),
+                                 (4, _group_faces_compiled(mesh, 4))) if p is not None]
     return _faces_of(mesh, parts)
 
 

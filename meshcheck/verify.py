@@ -226,7 +226,7 @@ def solver_mesh(mesh: Mesh, topo: Topology) -> SolverMesh:
         corners = vertex[b.cells[:, _NG_CORNERS[b.info.linear]]]
         m.AddElements(dim=3, index=1, data=np.ascontiguousarray(corners, np.int32), base=0)
     faces = topo.faces
-    bnd = faces.nodes[faces.count == 1]
+    bnd = faces.nodes_of(faces.count == 1)
     tri = bnd[:, 3] < 0
     for rows in (bnd[tri, :3], bnd[~tri]):
         if len(rows):
@@ -240,7 +240,8 @@ def solver_mesh(mesh: Mesh, topo: Topology) -> SolverMesh:
         vs = [v.nr for v in f.vertices]
         ng_faces[i, :len(vs)] = vs
     edge_ids = _match(_keys(vertex[topo.edges.nodes], nv), _keys(ng_edges, nv), "edges")
-    our_f = np.where(faces.nodes >= 0, vertex[np.maximum(faces.nodes, 0)], -1)
+    fn = faces.nodes  # made once (not kept by the faces)
+    our_f = np.where(fn >= 0, vertex[np.maximum(fn, 0)], -1)
     face_ids = _match(_keys(our_f, nv), _keys(ng_faces, nv), "faces")
     return SolverMesh(mesh, topo, ngm, vertex, edge_ids, face_ids, int(len(bnd)))
 

@@ -61,10 +61,11 @@ def _brute_variable(mesh, topo, orders):
             edge_order[e] = max(edge_order.get(e, 1), orders[c])
     total = len(np.unique(np.concatenate([b.cells.ravel() for b in mesh.blocks])))
     total += sum(q - 1 for q in edge_order.values())
+    fn = topo.faces.nodes
     for f in range(len(topo.faces)):
         c0, c1 = topo.faces.cells[f]
         q = max(orders[c0], orders[c1] if c1 >= 0 else 1)
-        total += face_dofs(3 if topo.faces.nodes[f, 3] < 0 else 4, q)
+        total += face_dofs(3 if fn[f, 3] < 0 else 4, q)
     return total
 
 

@@ -343,15 +343,14 @@ def test_auto_mode_uses_numpy_for_small_meshes(monkeypatch):
 
 def _int32_topology(topo):
     """The topology with its index arrays (edge nodes, cell edges, incidence, face
-    nodes, cells and counts) cast to int32, as meshes whose counts fit store them."""
+    cells and counts) cast to int32, as meshes whose counts fit store them."""
     e, f = topo.edges, topo.faces
     edges = dataclasses.replace(
         e, nodes=e.nodes.astype(np.int32),
         cell_edges=tuple(ce.astype(np.int32) for ce in e.cell_edges),
         incidence=e.incidence.astype(np.int32),
         incidence_starts=e.incidence_starts.astype(np.int32))
-    faces = dataclasses.replace(f, nodes=f.nodes.astype(np.int32),
-                                cells=f.cells.astype(np.int32), count=f.count.astype(np.int32))
+    faces = dataclasses.replace(f, cells=f.cells.astype(np.int32), count=f.count.astype(np.int32))
     return dataclasses.replace(topo, edges=edges, faces=faces)
 
 

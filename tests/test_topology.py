@@ -176,6 +176,26 @@ def test_faces_equal_a_dictionary_of_node_sets(seed, path, monkeypatch):
         assert cells[1] == (occ[1][0] if len(occ) > 1 else -1)
 
 
+@pytest.mark.parametrize("seed", [0, 1])
+def test_face_corners_of_a_subset_are_those_rows_and_only_local_numbers_are_kept(seed,
+                                                                              monkeypatch):
+    from meshcheck import topology as T
+
+    mesh = _random_mesh(seed)
+    faces = T.build_faces(mesh, T.build_edges(mesh))
+    assert faces.local.dtype == np.uint8
+    assert set(vars(faces)) == {"local", "cells", "count", "mesh"}  # no corners kept
+    every = faces.nodes
+    rng = np.random.default_rng(seed)
+    ids = rng.choice(len(faces), 25, replace=False)
+    mask = rng.random(len(faces)) < 0.3
+    assert np.array_equal(faces.nodes_of(ids), every[ids])
+    assert np.array_equal(faces.nodes_of(mask), every[mask])
+    assert np.array_equal(faces.is_tri, every[:, 3] < 0)
+    monkeypatch.setattr(T, "_NODES_CHUNK", 7)  # gathered a few faces at a time: the same
+    assert np.array_equal(faces.nodes, every)
+
+
 def test_cell_volumes_in_chunks_equal_one_pass():
     # chunking only bounds memory: volumes of mixed cells equal one pass to the last bit,
     # and a box of hexes and Kuhn tets fills its volume (closed form)

@@ -441,22 +441,6 @@ def face_emit(ptr, bkey, brow, first, cells, count, bounds, widths, offsets):
                 count[f] += 1
 
 
-@njit
-def face_corners(cells, table, row0, first, corners):
-    """corners[f, :size] = outward corners of face f's first row, for the faces whose
-    first row lies in this block (rows row0 .. row0 + m * len(table))."""
-    w = table.shape[0]
-    end = row0 + cells.shape[0] * w
-    for f in range(first.shape[0]):
-        r = first[f]
-        if r < row0 or r >= end:
-            continue
-        c = (r - row0) // w
-        j = (r - row0) % w
-        for k in range(table.shape[1]):
-            corners[f, k] = cells[c, table[j, k]]
-
-
 # ---------------------------------------------------------------------------
 # packed buckets: (value << shift) | row in one int64, rows below 2**shift; sorting
 # the integers sorts by value then row (one scattered write per row instead of two)
@@ -735,7 +719,7 @@ def tri_coarse_count(cells, table, opp, ce, k, ccnt):
     """ccnt[(edge >> k) + 1] += 1 for every local triangle (see :func:`tri_count_edges`)."""
     for c in range(cells.shape[0]):
         for j in range(table.shape[0]):
-            e, top, code = _tri_edge(cells, c, table, opp, ce, j)
+            e, top = _tri_edge(cells, c, table, opp, ce, j)
             ccnt[(e >> k) + 1] += 1
 
 
@@ -747,8 +731,8 @@ def tri_coarse_fill(cells, table, opp, ce, g0, k, cfill, tmp, shift):
     low = (np.int64(1) << k) - 1
     for c in range(cells.shape[0]):
         for j in range(w):
-            e, top, code = _tri_edge(cells, c, table, opp, ce, j)
-            v = (top << shift) | ((g0 + c) << 7) | (j << 4) | code
+            e, top = _tri_edge(cells, c, table, opp, ce, j)
+            v = (top << shift) | ((g0 + c) << 3) | j
             p = cfill[e >> k]
             cfill[e >> k] = p + 1
             tmp[p] = (v << k) | (e & low)
@@ -756,10 +740,8 @@ def tri_coarse_fill(cells, table, opp, ce, g0, k, cfill, tmp, shift):
 
 @njit
 def _tri_edge(cells, c, table, opp, ce, j):
-    """(edge id joining the two smallest nodes, largest node, order code) of local
-    triangle j of cell c; opp (f, 3) local edge opposite each corner, ce (m, n_edges)
-    edge ids.  The code 3 * r0 + r1 gives the ranks r0, r1 of the first two corners
-    among the sorted nodes (ties by position), from which the corners are rebuilt."""
+    """(edge id joining the two smallest nodes, largest node) of local triangle j of
+    cell c; opp (f, 3) local edge opposite each corner, ce (m, n_edges) edge ids."""
     x = cells[c, table[j, 0]]
     y = cells[c, table[j, 1]]
     z = cells[c, table[j, 2]]
@@ -767,9 +749,7 @@ def _tri_edge(cells, c, table, opp, ce, j):
         imax = 0 if x >= z else 2
     else:
         imax = 1 if y >= z else 2
-    r0 = (y < x) + (z < x)
-    r1 = (x <= y) + (z < y)
-    return ce[c, opp[j, imax]], max(x, max(y, z)), 3 * r0 + r1
+    return ce[c, opp[j, imax]], max(x, max(y, z))
 
 
 @njit
@@ -778,35 +758,33 @@ def tri_count_edges(cells, table, opp, ce, cnt):
     smallest nodes (cnt (n_edges + 1,))."""
     for c in range(cells.shape[0]):
         for j in range(table.shape[0]):
-            e, top, code = _tri_edge(cells, c, table, opp, ce, j)
+            e, top = _tri_edge(cells, c, table, opp, ce, j)
             cnt[e + 1] += 1
 
 
 @njit
 def tri_fill_edges(cells, table, opp, ce, g0, fill, packed, shift):
     """Drop every local triangle in its edge bucket as one integer:
-    (largest node << shift) | (cell << 7) | (local face << 4) | order code, cell the
-    global id (g0 + row in the block), local faces < 8."""
+    (largest node << shift) | (cell << 3) | local face, cell the global id (g0 + row
+    in the block), local faces < 8."""
     w = table.shape[0]
     for c in range(cells.shape[0]):
         for j in range(w):
-            e, top, code = _tri_edge(cells, c, table, opp, ce, j)
+            e, top = _tri_edge(cells, c, table, opp, ce, j)
             p = fill[e]
             fill[e] = p + 1
-            packed[p] = (top << shift) | ((g0 + c) << 7) | (j << 4) | code
+            packed[p] = (top << shift) | ((g0 + c) << 3) | j
 
 
 @njit
-def tri_emit_packed(ptr, packed, shift, edge_nodes, corners, cells, count):
-    """:func:`face_emit` from edge buckets sorted by :func:`sort_packed`, with the
-    outward corners (n_f, 4) of every triangle's first row rebuilt from its sorted
-    nodes (edge nodes, largest node) and order code (corners[:, 3] = -1)."""
-    tri_emit_range(ptr, packed, shift, edge_nodes, corners, cells, count, 0,
-                   ptr.shape[0] - 1, 0)
+def tri_emit_packed(ptr, packed, shift, local, cells, count):
+    """:func:`face_emit` from edge buckets sorted by :func:`sort_packed`, with the local
+    face (among the first row's cell's triangles) of every triangle's first row."""
+    tri_emit_range(ptr, packed, shift, local, cells, count, 0, ptr.shape[0] - 1, 0)
 
 
 @njit
-def tri_emit_range(ptr, packed, shift, edge_nodes, corners, cells, count, b0, b1, f0):
+def tri_emit_range(ptr, packed, shift, local, cells, count, b0, b1, f0):
     """:func:`tri_emit_packed` of the buckets b0 <= b < b1, their first face f0."""
     mask = (np.int64(1) << shift) - 1
     f = f0 - 1
@@ -814,24 +792,14 @@ def tri_emit_range(ptr, packed, shift, edge_nodes, corners, cells, count, b0, b1
         prev = -1
         for i in range(ptr[b], ptr[b + 1]):
             v = packed[i]
-            g = (v & mask) >> 7
+            g = (v & mask) >> 3
             if (v >> shift) != prev:
                 prev = v >> shift
                 f += 1
                 cells[f, 0] = g
                 cells[f, 1] = -1
                 count[f] = 1
-                code = v & 15
-                r0 = code // 3
-                r1 = code % 3
-                s0 = edge_nodes[b, 0]
-                s1 = edge_nodes[b, 1]
-                s2 = prev
-                corners[f, 0] = s0 if r0 == 0 else (s1 if r0 == 1 else s2)
-                corners[f, 1] = s0 if r1 == 0 else (s1 if r1 == 1 else s2)
-                r2 = 3 - r0 - r1
-                corners[f, 2] = s0 if r2 == 0 else (s1 if r2 == 1 else s2)
-                corners[f, 3] = -1
+                local[f] = v & 7
             else:
                 if count[f] == 1:
                     cells[f, 1] = g
