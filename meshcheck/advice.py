@@ -147,6 +147,16 @@ class Advice:
                    _chunks(len(out), 2 if par else 1), parallel=par)
         return out
 
+    def lowest_cell(self, p: int) -> int:
+        """The first cell with the lowest limit at order p (1-based): ``np.argmin`` of
+        :meth:`limit_at` (the first NaN, if any), found on the rows (no per-cell array)."""
+        col = self.limit_rows[:, p - 1]
+        if self.limit_row is None:
+            return int(np.argmin(col))
+        nan = np.isnan(col)
+        low = nan if nan.any() else col == np.min(col)
+        return int(np.argmax(low[self.limit_row]))
+
     @cached_property
     def mesh_limit(self) -> np.ndarray:
         """(pmax,) highest usable frequency of the whole mesh per order, Hz (computed once;

@@ -175,7 +175,7 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
     P = s.advice.allowed_order
     limiting = None
     if len(a.cell_size):
-        worst = int(np.argmin(a.limit_at(P)))
+        worst = a.lowest_cell(P)
         limiting = {"cell": worst, "region": int(m.region[worst]),
                     "region_name": m.region_name(m.region[worst]),
                     "largest_edge": float(a.cell_size[worst] / scale),

@@ -93,15 +93,21 @@ def node_min(mesh: Mesh, topo: Topology, cell_values: np.ndarray) -> np.ndarray:
     return _node_mins(mesh, [cell_values])[0]
 
 
+#: cells whose fields :func:`_node_mins` stacks at a time (compiled path)
+_NODE_MIN_CHUNK = 1 << 18
+
+
 def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
     """:func:`node_min` of several (n_cells,) fields (compiled: one pass over the cells)."""
     vs = [np.asarray(v, dtype=float) for v in fields]
     outs = np.full((len(vs), mesh.n_points), np.inf)
     if kernels.use_compiled(mesh.n_cells):
         from .kernels import sizefield as _ks
-        v2 = np.stack(vs) if vs else np.zeros((0, mesh.n_cells))
         for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
-            _ks.node_min_block(outs, b.cells, b.info.n_corners, v2[:, off:off + len(b)])
+            for s in range(0, len(b), _NODE_MIN_CHUNK):  # the fields stacked a chunk at a time
+                e = min(s + _NODE_MIN_CHUNK, len(b))
+                v2 = np.stack([v[off + s:off + e] for v in vs]) if vs else np.zeros((0, e - s))
+                _ks.node_min_block(outs, b.cells[s:e], b.info.n_corners, v2)
     else:
         for out, v in zip(outs, vs):
             for (b, c), off in zip(_corners(mesh), mesh.block_offsets[:-1]):
@@ -226,7 +232,9 @@ def _cell_density(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> np.nda
             with np.errstate(divide="ignore", invalid="ignore"):
                 dens.append(np.nanmean(mesher_size[c] ** -float(e), axis=1))
     unit = REGULAR_TET if mesh.dim == 3 else 4.0 / math.sqrt(3.0)
-    return unit * (np.concatenate(dens) if dens else np.zeros(0))
+    out = dens[0] if len(dens) == 1 else np.concatenate(dens) if dens else np.zeros(0)
+    out *= unit  # a new array either way: scaled in place
+    return out
 
 
 def _boundary_integral(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> float:
@@ -262,10 +270,12 @@ def estimate_cells(mesh: Mesh, topo: Topology, mesher_size: np.ndarray,
     gmsh's, for the mesh's dimension).
     """
     a, b = factors if factors is not None else GMSH_COUNT[3 if mesh.dim == 3 else 2]
-    d = _cell_density(mesh, topo, mesher_size)
-    vol = np.abs(topo.cell_volume)
+    d = _cell_density(mesh, topo, mesher_size)  # a new array, >= 0 or NaN / inf
     ok = np.isfinite(d)
-    return float(a * np.sum(vol[ok] * d[ok]) + b * _boundary_integral(mesh, topo, mesher_size))
+    np.multiply(d, topo.cell_volume, out=d)
+    np.abs(d, out=d)  # |volume| * density, in place
+    vol_sum = np.sum(d) if ok.all() else np.sum(d[ok])
+    return float(a * vol_sum + b * _boundary_integral(mesh, topo, mesher_size))
 
 
 def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,

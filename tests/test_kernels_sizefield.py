@@ -104,6 +104,15 @@ def test_node_min_matches(monkeypatch, name):
     for r, g in zip(refs, gots):
         assert np.array_equal(r, g, equal_nan=True)
     assert np.array_equal(refs[1], ref, equal_nan=True)
+    # the fields stacked a few cells at a time, one of them a broadcast: the same
+    import meshcheck.sizefield as S
+
+    monkeypatch.setattr(S, "_NODE_MIN_CHUNK", 7)
+    const = np.broadcast_to(0.5, (mesh.n_cells,))
+    refs, gots = _both(monkeypatch, lambda: _node_mins(mesh, [w, const, v]))
+    for r, g in zip(refs, gots):
+        assert np.array_equal(r, g, equal_nan=True)
+    assert np.array_equal(gots[2], ref, equal_nan=True)
 
 
 @pytest.mark.parametrize("sweeps", [None, 0, 1, 1000],

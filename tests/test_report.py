@@ -118,6 +118,25 @@ def test_region_limits_cells_and_volumes_equal_the_masked_reference(layout, shar
         assert v == float(np.abs(vol[sel]).sum())  # the same sum, to the bit
 
 
+@pytest.mark.parametrize("shared", [False, True])
+def test_lowest_cell_is_numpys_argmin_of_the_per_cell_limits(shared):
+    """The report's limiting cell: np.argmin over the cells' limits (first of tied
+    minima; the first NaN where one is NaN), found on shared rows without them."""
+    rng = np.random.default_rng(8)
+    n = 2000
+    rows = np.round(np.maximum.accumulate(rng.uniform(10.0, 1e3, (n // 4, 5)), axis=1), -1)
+    rows[[5, 90], 3] = np.nan  # a NaN limit at order 4
+    index = rng.permutation(np.r_[np.arange(len(rows)),
+                                  rng.integers(0, len(rows), n - len(rows))]).astype(np.int32)
+    lim = rows[index]
+    adv = (SimpleNamespace(limit_rows=rows, limit_row=index) if shared else
+           SimpleNamespace(limit_rows=lim, limit_row=None))
+    for p in range(1, 6):
+        assert Advice.lowest_cell(adv, p) == int(np.argmin(lim[:, p - 1])), p
+    assert np.isnan(lim[Advice.lowest_cell(adv, 4), 3])
+    assert np.sum(lim[:, 0] == lim[:, 0].min()) > 1  # ties: the first one is meant
+
+
 def test_file_checksum_is_computed_once_and_follows_the_file(tmp_path, monkeypatch):
     import hashlib
 
