@@ -79,6 +79,12 @@ class AdviceSettings:
         return "fixed" if self.order is not None else "variable"
 
 
+def order_dtype(pmax: int):
+    """Integer type of the advice's orders (1..pmax + 1): int8 (one byte per edge and
+    cell) unless pmax is above 126."""
+    return np.int8 if pmax < 127 else np.int16
+
+
 @dataclass(frozen=True)
 class Advice:
     """Frequency limits per order and the advice at the upper frequency.
@@ -92,8 +98,9 @@ class Advice:
     cell_distance : (n_cells,) propagation distance L used, m.
     cell_speed : (n_cells,) sound speed, m/s.
     edge_limit : (n_e,) highest usable frequency of each edge at the allowed order, Hz.
-    edge_order : (n_e,) lowest order meeting the target at ``fmax`` (pmax+1 = none).
-    cell_order : (n_cells,) lowest order meeting the target at ``fmax`` (pmax+1 = none).
+    edge_order : (n_e,) lowest order meeting the target at ``fmax`` (pmax+1 = none),
+        int8 (:func:`order_dtype`; cast before arithmetic that may exceed it).
+    cell_order : (n_cells,) the same per cell.
     target_size : (n_cells,) largest edge length meeting the target at ``fmax``
         with the allowed order, m.
     refine, coarsen : (n_cells,) bool.
@@ -521,7 +528,7 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
         raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
     log_ratio = np.log(ratio)  # ln(L / (a h)) = ln(L / h) - ln a: one logarithm per edge
     cell_limit = np.empty((n_cells, pmax))
-    edge_order = np.full(len(h), pmax + 1, dtype=np.int64)
+    edge_order = np.full(len(h), pmax + 1, dtype=order_dtype(pmax))
     edge_limit = None
     gov, exact = _governing_edges(topo, h, edge_c, edge_L)
     exact = np.union1d(exact, corr.mixed)  # cells whose edges may differ in factor
@@ -544,7 +551,7 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
         if f_e is not None:
             edge_limit = f_e
     np.maximum.accumulate(cell_limit, axis=1, out=cell_limit)
-    cell_order = 1 + np.count_nonzero(cell_limit < fmax, axis=1)
+    cell_order = (1 + np.count_nonzero(cell_limit < fmax, axis=1)).astype(order_dtype(pmax))
     cell_size = topo.edges.per_cell(h, np.maximum)
     k = TWO_PI * fmax / cell_speed
     if flow is not None:
@@ -604,9 +611,9 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     with np.errstate(divide="ignore"):  # rows of codes no edge has are 0
         logA = np.log(A)
     args = (h, c, L, code, A, logA, base, step, scale, top)
-    cell_order = np.empty(n_cells, np.int64)
+    cell_order = np.empty(n_cells, order_dtype(pmax))
     refine = np.empty(n_cells, bool)
-    edge_order = np.empty(n_e, np.int64)
+    edge_order = np.empty(n_e, order_dtype(pmax))
     edge_limit = np.empty(n_e)
 
     # the limits at every order of the cells' longest edges (about half the edges, each
@@ -621,7 +628,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     del skip
     n_rows = n_shared + len(exact)
     limit_rows = np.empty((n_rows, pmax))
-    row_order = np.empty(n_rows, np.int64)
+    row_order = np.empty(n_rows, order_dtype(pmax))
     row_refine = np.empty(n_rows, bool)
     finish = not len(exact)
 

@@ -274,3 +274,15 @@ def test_column_min_equals_numpy_min_over_rows(n):
     a[rng.integers(n), 7] = -np.inf
     assert np.array_equal(column_min(a), a.min(axis=0), equal_nan=True)
     assert np.array_equal(column_min(a[n // 2:]), a[n // 2:].min(axis=0), equal_nan=True)
+
+
+def test_orders_are_one_byte_and_hold_pmax_plus_one():
+    from meshcheck.advice import advise, order_dtype
+    from meshcheck.topology import build_topology
+
+    mesh = tet_box((3, 3, 3))
+    topo = build_topology(mesh)
+    a = advise(mesh, topo, np.full(mesh.n_cells, 343.0), 5000.0, AdviceSettings())
+    assert a.cell_order.dtype == a.edge_order.dtype == np.int8
+    assert a.edge_order.min() >= 1 and a.edge_order.max() <= a.pmax + 1
+    assert np.iinfo(order_dtype(126)).max >= 127 and np.iinfo(order_dtype(127)).max >= 128
