@@ -210,12 +210,29 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
     norm = np.linalg.norm(acc, axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
         acc /= norm[:, None]
-    N = acc[inv].reshape(n_t, 3, 3)                                  # corner normals
-    X = surface.points[tri]                                          # (n_t, 3, 3)
+    k1, k2 = np.empty(n_t), np.empty(n_t)
+    for s in range(0, n_t, _FIT_CHUNK):  # the per-triangle fits a chunk at a time
+        t = slice(s, min(s + _FIT_CHUNK, n_t))
+        N = acc[inv.reshape(n_t, 3)[t]]                              # corner normals
+        k1[t], k2[t] = _fit_curvatures(surface.points[tri[t]], N, fn[t])
+    return SurfaceCurvature(k1, k2, patch, int(n_patch), int(np.count_nonzero(~smooth)), area)
+
+
+#: triangles whose curvature fit :func:`surface_curvature` makes at a time (its scratch
+#: is about 0.6 kB per triangle)
+_FIT_CHUNK = 1 << 16
+
+
+def _fit_curvatures(X: np.ndarray, N: np.ndarray, fn: np.ndarray):
+    """Principal curvatures (k1 >= k2) of triangles by the least-squares fit of the
+    second fundamental form to the changes of the corner normals along the sides.
+
+    X, N : (n, 3, 3) corners and corner normals; fn : (n, 3) unit face normals."""
     u = X[:, 1] - X[:, 0]
     with np.errstate(divide="ignore", invalid="ignore"):
         u /= np.linalg.norm(u, axis=1)[:, None]
     v = np.cross(fn, u)
+    n_t = len(X)
     A = np.zeros((n_t, 6, 3))
     y = np.zeros((n_t, 6))
     for k, (i, j) in enumerate(((1, 2), (2, 0), (0, 1))):
@@ -236,8 +253,7 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
     a, b, c = abc[:, 0], abc[:, 1], abc[:, 2]
     mean = 0.5 * (a + c)
     dev = np.sqrt(0.25 * (a - c) ** 2 + b * b)
-    return SurfaceCurvature(mean + dev, mean - dev, patch, int(n_patch),
-                            int(np.count_nonzero(~smooth)), area)
+    return mean + dev, mean - dev
 
 
 def enclosing_radius(X: np.ndarray) -> np.ndarray:
@@ -322,7 +338,6 @@ def _face_midnode_deviation(mesh: Mesh, topo: Topology, fids: np.ndarray):
     mid-node, and the longest side (m)."""
     edges = topo.edges
     n = np.int64(mesh.n_points + 1)
-    ekey = edges.nodes[:, 0] * n + edges.nodes[:, 1]
     nodes = topo.faces.nodes_of(fids)
     dev = np.zeros(len(fids))
     longest = np.zeros(len(fids))
@@ -334,6 +349,8 @@ def _face_midnode_deviation(mesh: Mesh, topo: Topology, fids: np.ndarray):
              (nodes[:, 2], np.where(quad, nodes[:, 3], nodes[:, 0]), np.ones(len(fids), bool)),
              (nodes[:, 3], nodes[:, 0], quad))
     any_mid = bool((edges.mid >= 0).any())
+    # the edges' keys (int64 per edge, 43 MiB for 4.8M tets) only where mid-nodes exist
+    ekey = edges.nodes[:, 0] * n + edges.nodes[:, 1] if any_mid else None
     for a, b, valid in sides:
         longest[valid] = np.maximum(longest[valid],
                                     np.linalg.norm(P[b[valid]] - P[a[valid]], axis=1))

@@ -347,3 +347,18 @@ def test_patch_labels_by_union_find_equal_scipy(seed):
     got = _patches(n, pairs, compiled=True)
     assert got[0] == ref[0]
     assert np.array_equal(got[1], ref[1]) and got[1].dtype == ref[1].dtype == np.int64
+
+
+def test_curvature_fits_in_chunks_equal_one_pass(sphere, cylinder, monkeypatch):
+    # chunking only bounds the scratch memory: the same curvatures to the bit
+    from meshcheck import curvature as CV
+
+    for _, mesh, topo in (sphere, cylinder):
+        surf = boundary_surface(mesh, topo)
+        whole = surface_curvature(surf)
+        with monkeypatch.context() as m:
+            m.setattr(CV, "_FIT_CHUNK", 37)
+            parts = surface_curvature(surf)
+        assert len(surf.triangles) > 3 * 37
+        assert np.array_equal(whole.k1, parts.k1, equal_nan=True)
+        assert np.array_equal(whole.k2, parts.k2, equal_nan=True)
