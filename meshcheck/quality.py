@@ -456,7 +456,8 @@ class CellQuality:
             r[...] = self.metrics[k]
         rows.setflags(write=False)
         row = dict(zip(full, rows))
-        return CellQuality({k: row[k] if k in row else np.broadcast_to(v[:1].astype(dtype), v.shape)
+        return CellQuality({k: row[k] if k in row else
+                            np.broadcast_to(v[:1].astype(dtype), v.shape)
                             for k, v in self.metrics.items()})
 
 
