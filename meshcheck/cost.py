@@ -208,11 +208,24 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
     parts = 2 if par else 1
     jobs = []
     if len(edges) and B.shape[1]:
-        inc = np.ascontiguousarray(edges.incidence)
-        starts = np.ascontiguousarray(edges.incidence_starts)
+        # every edge's smallest bins over its cells, scattered from the cells' edge lists
+        # (each part of the cells into a table of its own, then the element-wise minimum)
+        def scatter(part):
+            E = np.full((len(edges), B.shape[1]), n_f + 1, B.dtype)
+            g0 = 0
+            for ce in edges.cell_edges:
+                m = len(ce)
+                _ka.edge_min_bins(B, ce, g0, m * part // parts, m * (part + 1) // parts, E)
+                g0 += m
+            return E
+
+        tables = thread_map(scatter, range(parts), parallel=par)
+        E = tables[0]
+        for other in tables[1:]:
+            np.minimum(E, other, out=E)
+        del tables
         for lo, hi in _chunks(len(edges), parts):
-            jobs.append(lambda hist, lo=lo, hi=hi:
-                        _ka.dof_hist(B, inc, starts, len(inc), lo, hi, hist))
+            jobs.append(lambda hist, lo=lo, hi=hi: _ka.edge_bin_hist(E, lo, hi, hist))
     if three and B.shape[1]:
         fcells = np.ascontiguousarray(topo.faces.cells)
         tri = topo.faces.is_tri

@@ -477,3 +477,22 @@ def test_warm_up_loads_numba_only_for_large_files():
         out = subprocess.run([sys.executable, "-c", code, str(size)], check=True,
                              env={**env, **extra}, capture_output=True, text=True)
         assert out.stdout.split() == want.split(), (size, extra, out.stdout)
+
+
+def test_compiled_edges_count_their_incidence_only_when_asked(monkeypatch):
+    # the compiled builder keeps no incidence (3D audits do not read it); the one counted
+    # from the cell edges on first use is the numpy builder's, every cell kind
+    mesh = MESHES["mixed"]()
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = T.build_edges(mesh)
+    assert ref._incidence is not None
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    got = T.build_edges(mesh)
+    assert got._incidence is None
+    _same_int(ref.incidence, got.incidence, "incidence")
+    _same_int(ref.incidence_starts, got.incidence_starts, "incidence_starts")
+    assert got._incidence is not None  # counted once, then kept
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")  # the numpy count: the same arrays
+    again = T._count_incidence(got.cell_edges, len(got))
+    _same_int(ref.incidence, again[0], "incidence (numpy count)")
+    _same_int(ref.incidence_starts, again[1], "starts (numpy count)")

@@ -17,8 +17,8 @@ the numpy reference computes (tests/test_kernels_advice.py compares both):
   (n_edges,) temporaries per order; :func:`row_min`, :func:`gather_column`,
   :func:`gather_words`: minima, columns and bins read through the cells' rows;
 * :func:`per_cell_max`: ``Edges.per_cell(values, np.maximum)`` for one block;
-* :func:`order_hist`, :func:`dof_hist`, :func:`face_dof_hist`: histograms of the
-  cells' limits (and of the edges' and faces' smallest limits, weighted by the unknowns
+* :func:`order_hist`, :func:`edge_min_bins`, :func:`edge_bin_hist`,
+  :func:`face_dof_hist`: histograms of the cells' limits (and of the edges' and faces' smallest limits, weighted by the unknowns
   they add) over the sorted sweep frequencies (``advice.sweep``,
   ``cost.variable_order_dofs``): their cumulative sums are the counts the reference
   gets from ``np.searchsorted`` on sorted limits, whatever the number of frequencies;
@@ -439,7 +439,7 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol):
     """hist[p, b] += 1 for every cell lo <= i < hi whose limit at order p + 1 has b sweep
     frequencies at or below it: cumsum(hist[p])[k] = #cells with limit < fs[k];
     B[i, q] = b + 1 for the first ncol orders (0 for a NaN limit, see
-    :func:`dof_hist`).  With ``weight`` (n_rows,) integers (not empty), the rows of
+    :func:`edge_bin_hist`).  With ``weight`` (n_rows,) integers (not empty), the rows of
     ``lim`` are limit rows standing for weight[i] cells each: hist[p, b] += weight[i].
 
     lim : (n_cells, pmax) float64, Hz; fs : (n_f,) sorted finite Hz;
@@ -462,47 +462,38 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol):
 
 
 @njit
-def dof_hist(B, inc, starts, n_inc, lo, hi, hist):
+def edge_min_bins(B, ce, g0, lo, hi, E):
+    """E[e, :] = min(E[e, :], B[g0 + c, :]) for every local edge e of the cells
+    lo <= c < hi of one block (ce (m, k) edge ids, global cells g0 + c): each edge's
+    smallest bins over its cells, by the cells' own edge lists (no edge-to-cell
+    incidence)."""
+    W = B.shape[1]
+    for c in range(lo, hi):
+        for k in range(ce.shape[1]):
+            e = ce[c, k]
+            for q in range(W):
+                b = B[g0 + c, q]
+                if b < E[e, q]:
+                    E[e, q] = b
+
+
+@njit
+def edge_bin_hist(E, lo, hi, hist):
     """Edge unknowns added above order q + 1, binned by frequency (maximum rule), for
     edges lo <= e < hi: an edge has order > q + 1 at the frequencies above the smallest
-    limit of its cells, hist[min over its cells of B[c, q] - 1] += 1 (a NaN limit, B = 0,
-    puts the edge at n_f = len(hist) - 1: never counted, like a NaN minimum).
-
-    B : (n_cells, W) bins + 1 of :func:`order_hist`, W a multiple of 8, columns past
-    the orders counted set to n_f + 1; inc, starts : the edges' cell incidence (CSR,
-    n_inc entries, any integer type); hist : (n_f + 1,) int64 accumulated.
-    """
-    n_e = starts.shape[0]
+    limit of its cells, hist[E[e, q] - 1] += 1 with E (n_e, W) the edges' smallest bins
+    + 1 of :func:`edge_min_bins` (a NaN limit, bin 0, puts the edge at n_f = len(hist) - 1:
+    never counted, like a NaN minimum; columns past the orders counted hold n_f + 1)."""
     n_f = hist.shape[0] - 1
-    top = n_f + 1
-    for g in range(0, B.shape[1], 8):  # eight orders at a time, in registers
-        for e in range(lo, hi):
-            s = starts[e]
-            t = starts[e + 1] if e + 1 < n_e else n_inc
-            m0 = m1 = m2 = m3 = m4 = m5 = m6 = m7 = top
-            for j in range(s, t):
-                c = inc[j]
-                m0 = min(m0, np.int64(B[c, g]))
-                m1 = min(m1, np.int64(B[c, g + 1]))
-                m2 = min(m2, np.int64(B[c, g + 2]))
-                m3 = min(m3, np.int64(B[c, g + 3]))
-                m4 = min(m4, np.int64(B[c, g + 4]))
-                m5 = min(m5, np.int64(B[c, g + 5]))
-                m6 = min(m6, np.int64(B[c, g + 6]))
-                m7 = min(m7, np.int64(B[c, g + 7]))
-            hist[m0 - 1 if m0 > 0 else n_f] += 1
-            hist[m1 - 1 if m1 > 0 else n_f] += 1
-            hist[m2 - 1 if m2 > 0 else n_f] += 1
-            hist[m3 - 1 if m3 > 0 else n_f] += 1
-            hist[m4 - 1 if m4 > 0 else n_f] += 1
-            hist[m5 - 1 if m5 > 0 else n_f] += 1
-            hist[m6 - 1 if m6 > 0 else n_f] += 1
-            hist[m7 - 1 if m7 > 0 else n_f] += 1
+    for e in range(lo, hi):
+        for q in range(E.shape[1]):
+            m = np.int64(E[e, q])
+            hist[m - 1 if m > 0 else n_f] += 1
 
 
 @njit
 def face_dof_hist(B, fcells, tri, lo, hi, hist):
-    """Face unknowns added above order q + 1, binned like :func:`dof_hist`: q per
+    """Face unknowns added above order q + 1, binned like :func:`edge_bin_hist`: q per
     triangle (tri True), 2 q + 1 per quadrilateral, at the smaller bin of the face's
     cells (fcells (n_faces, 2) integers, -1 = no second cell), for faces lo <= f < hi."""
     n_f = hist.shape[0] - 1

@@ -1089,3 +1089,22 @@ def close_pairs(points, used, hmin, rel_tol, u):
         out[q, 0] = found[q] // n
         out[q, 1] = found[q] % n
     return out
+
+
+@njit
+def incidence_count(ce, ptr):
+    """ptr[e + 1] += 1 for every local edge e of the cells ce (m, k)."""
+    for c in range(ce.shape[0]):
+        for k in range(ce.shape[1]):
+            ptr[ce[c, k] + 1] += 1
+
+
+@njit
+def incidence_fill(ce, g0, pos, inc):
+    """inc[pos[e]] = g0 + c for every local edge e of cell c, pos advancing (rows in
+    (cell, local edge) order: a stable counting sort by edge)."""
+    for c in range(ce.shape[0]):
+        for k in range(ce.shape[1]):
+            e = ce[c, k]
+            inc[pos[e]] = g0 + c
+            pos[e] += 1
