@@ -143,16 +143,11 @@ class Advice:
         if self.limit_row is None:
             col = self.limit_rows[:, p - 1]
             return col if dtype is None else col.astype(dtype)
-        from .kernels import advice as _ka  # shared rows come from the compiled path
-
         out = np.empty(len(self.limit_row), np.float64 if dtype is None else dtype)
         # the column made contiguous (and cast) first: the gather's random reads then stay
         # in a table of n_rows values (9 MB at 5M cells in float32) instead of whole rows
-        col = np.ascontiguousarray(self.limit_rows[:, p - 1], dtype=out.dtype)[:, None]
-        par = len(out) > 100_000
-        thread_map(lambda r: _ka.gather_column(col, self.limit_row, 0, r[0], r[1], out),
-                   _chunks(len(out), 2 if par else 1), parallel=par)
-        return out
+        col = np.ascontiguousarray(self.limit_rows[:, p - 1], dtype=out.dtype)
+        return np.take(col, self.limit_row, out=out)
 
     def lowest_cell(self, p: int) -> int:
         """The first cell with the lowest limit at order p (1-based): ``np.argmin`` of

@@ -14,8 +14,8 @@ the numpy reference computes (tests/test_kernels_advice.py compares both):
   (``advice.advise``): one pass over the edges (all orders for the cells' longest edges,
   written into one row per such edge), one over the cells (each takes its longest
   edge's row; cells taking the minimum over their edges get rows of their own), no
-  (n_edges,) temporaries per order; :func:`row_min`, :func:`gather_column`,
-  :func:`gather_words`: minima, columns and bins read through the cells' rows;
+  (n_edges,) temporaries per order; :func:`row_min`,
+  :func:`gather_words`: minima and bins read through the cells' rows;
 * :func:`per_cell_max`: ``Edges.per_cell(values, np.maximum)`` for one block;
 * :func:`order_hist`, :func:`edge_min_bins`, :func:`edge_bin_hist`,
   :func:`face_dof_hist`: histograms of the cells' limits (and of the edges' and faces' smallest limits, weighted by the unknowns
@@ -411,13 +411,6 @@ def gather_words(words, index, lo, hi, out):
         r = index[i]
         for j in range(w):
             out[i, j] = words[r, j]
-
-
-@njit
-def gather_column(rows, index, col, lo, hi, out):
-    """out[i] = rows[index[i], col] for lo <= i < hi (cast to out's type)."""
-    for i in range(lo, hi):
-        out[i] = rows[index[i], col]
 
 
 @njit
