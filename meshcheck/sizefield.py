@@ -113,19 +113,34 @@ def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
             for (b, c), off in zip(_corners(mesh), mesh.block_offsets[:-1]):
                 vals = np.repeat(v[off:off + len(b)], c.shape[1])
                 np.minimum.at(out, c.ravel(), vals)
-    res = []
-    for out in outs:
-        used = np.isfinite(out)
-        for b in mesh.blocks:
-            if b.info.quadratic:
-                e = b.info.edges
-                mid = b.cells[:, e[:, 2]].ravel()
-                out[mid] = 0.5 * (out[b.cells[:, e[:, 0]].ravel()]
-                                  + out[b.cells[:, e[:, 1]].ravel()])
-                used[mid] = True
-        out[~used] = np.nan
-        res.append(out)
-    return res
+    used = np.isfinite(outs)
+    mid = _mid_means(mesh, outs)
+    if mid is not None:
+        used |= mid
+    outs[~used] = np.nan
+    return list(outs)
+
+
+def _mid_means(mesh: Mesh, outs: np.ndarray) -> np.ndarray | None:
+    """Mid-nodes of quadratic cells set, in place, to the mean of their edge's end nodes
+    in every row of ``outs`` (r, n_points); the (n_points,) mask of the mid-nodes, or
+    None when the mesh has no quadratic cells (compiled: one pass over the cells, no
+    (cells x edges) index arrays)."""
+    quad = [b for b in mesh.blocks if b.info.quadratic]
+    if not quad:
+        return None
+    mid = np.zeros(mesh.n_points, bool)
+    for b in quad:  # each block from the values before its own mid-nodes are set
+        e = b.info.edges
+        if kernels.use_compiled(mesh.n_cells):
+            from .kernels import sizefield as _ks
+            _ks.mid_mean_block(outs, outs.copy(), mid, b.cells, np.ascontiguousarray(e))
+        else:
+            m = b.cells[:, e[:, 2]].ravel()
+            outs[:, m] = 0.5 * (outs[:, b.cells[:, e[:, 0]].ravel()]
+                                + outs[:, b.cells[:, e[:, 1]].ravel()])
+            mid[m] = True
+    return mid
 
 
 def cell_target_size(advice, order: int, mesh: Mesh, topo: Topology) -> np.ndarray:
@@ -178,12 +193,7 @@ def limit_gradation(mesh: Mesh, topo: Topology, size: np.ndarray, gradation: flo
         dist = dijkstra(g, directed=True, indices=n)[:n]
     out = gradation * dist
     out[~np.isfinite(out)] = np.nan
-    # mid-nodes (not on any edge as a corner) keep the mean of their edge ends
-    for bl in mesh.blocks:
-        if bl.info.quadratic:
-            e = bl.info.edges
-            mid = bl.cells[:, e[:, 2]].ravel()
-            out[mid] = 0.5 * (out[bl.cells[:, e[:, 0]].ravel()] + out[bl.cells[:, e[:, 1]].ravel()])
+    _mid_means(mesh, out[None])  # mid-nodes (no corner of any edge): their edge ends' mean
     return out
 
 

@@ -2,6 +2,9 @@
 
 * :func:`node_min_block`: smallest cell value per corner node (``np.minimum.at``),
   several fields in one pass;
+* :func:`mid_mean_block`: mid-nodes of quadratic cells the mean of their edge's ends
+  (the numpy code's fancy-indexed gathers and assignment, without their (cells x
+  edges) index arrays);
 * :func:`gradation_distances`: the gradation limit (scipy's ``csgraph.dijkstra`` from
   a virtual source in the numpy code): label-correcting sweeps over the edge list,
   then if they have not settled a Dijkstra search (sorted labels and an indexed binary
@@ -16,7 +19,7 @@ import numpy as np
 
 from . import njit
 
-__all__ = ["node_min_block", "gradation_distances", "corner_nanmean"]
+__all__ = ["node_min_block", "mid_mean_block", "gradation_distances", "corner_nanmean"]
 
 
 @njit
@@ -36,6 +39,26 @@ def node_min_block(out, cells, n_corners, values):
                     out[r, j] = x
                 elif x < out[r, j]:
                     out[r, j] = x
+
+
+@njit
+def mid_mean_block(out, src, mid, cells, ends):
+    """out[r, m] = (src[r, a] + src[r, b]) / 2 for every edge (a, b, m) =
+    cells[i, ends[k]] of every cell i and row r, and mid[m] = True, in place; cells and
+    edges taken in the order of numpy's raveled (cells x edges) index arrays, so a node
+    listed twice keeps the last value, as numpy's assignment does.
+
+    out, src : (r, n_points) float64 (src: the values before any mid-node is set);
+    mid : (n_points,) bool; cells : (m, k) int; ends : (n_edges, 3) int local columns."""
+    nr = out.shape[0]
+    for i in range(cells.shape[0]):
+        for k in range(ends.shape[0]):
+            a = cells[i, ends[k, 0]]
+            b = cells[i, ends[k, 1]]
+            m = cells[i, ends[k, 2]]
+            for r in range(nr):
+                out[r, m] = 0.5 * (src[r, a] + src[r, b])
+            mid[m] = True
 
 
 @njit
