@@ -269,7 +269,9 @@ def test_metrics_not_defined_for_the_mesh_are_one_broadcast_nan(kind, monkeypatc
     got = mesh_quality(mesh)
     defined = defined_metrics(family_of(kind))
     for name in METRICS:
-        assert np.array_equal(got[name], ref[name], equal_nan=True), name
+        # to RTOL, not bitwise: numpy's arccos on AVX-512 machines (SVML) and the kernels'
+        # libm one differ in the last bit of some angles
+        assert_same(ref[name], got[name], name)
         assert (name in defined) == bool(np.isfinite(ref[name]).any()), name
         if name not in defined:
             assert got[name].strides == (0,) and got[name].shape == (mesh.n_cells,)
