@@ -71,13 +71,14 @@ def _edge_group(cell_type: str) -> np.ndarray:
 
 def cell_direction_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
                           max_order: int) -> np.ndarray:
-    """(n_cells, 3) int64 order per parametric direction r, s, t.
+    """(n_cells, 3) int8 order per parametric direction r, s, t (cast before arithmetic
+    that may exceed it).
 
     edge_order : (n_e,) order each edge needs (values above ``max_order`` are capped).
     Wedges have equal r and s (the triangle order); isotropic types repeat their
     one order; 2D cells have 0 in the t column.
     """
-    eo = np.clip(np.asarray(edge_order, dtype=np.int64), 1, max_order)
+    eo = np.clip(np.asarray(edge_order), 1, max_order).astype(np.int8)  # max_order <= 16
     compiled = use_compiled(mesh.n_cells)
     if compiled:
         from .kernels import directional as _kd
@@ -88,7 +89,8 @@ def cell_direction_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
             member = np.full(ce.shape[1], -1, np.int64)
             for j, g in enumerate(groups):
                 member[[k for k in g if member[k] < 0]] = j
-            tab = _kd.group_max(np.ascontiguousarray(ce), eo, member, len(groups))
+            tab = np.zeros((len(ce), len(groups)), np.int8)
+            _kd.group_max(np.ascontiguousarray(ce), eo, member, tab)
             cols = [tab[:, j] if j == 0 or groups[j] != groups[0] else tab[:, 0]
                     for j in range(len(groups))]
         else:
@@ -96,9 +98,9 @@ def cell_direction_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
         if len(cols) == 1:
             cols = cols * (3 if b.info.dim == 3 else 2)
         if b.info.dim == 2:
-            cols = cols + [np.zeros(len(b), np.int64)]
+            cols = cols + [np.zeros(len(b), np.int8)]
         out.append(np.column_stack(cols))
-    return np.concatenate(out) if out else np.zeros((0, 3), np.int64)
+    return np.concatenate(out) if out else np.zeros((0, 3), np.int8)
 
 
 def _local_faces(cell_type: str):
@@ -158,17 +160,61 @@ def _edge_pair_rows(mesh: Mesh, topo: Topology) -> _EdgePairRows | None:
     return _EdgePairRows(group, int(n_faces), tri, cell, ca, cb)
 
 
+class _FaceSides(NamedTuple):
+    """The topology's unique faces with the tables :func:`meshcheck.kernels.directional.
+    face_dofs_by_sides` reads their sides from (compiled path)."""
+    cells: np.ndarray
+    count: np.ndarray
+    local: np.ndarray
+    cell_edges: np.ndarray
+    offs: np.ndarray
+    sides: np.ndarray
+    n_sides: np.ndarray
+    group: np.ndarray
+
+
+def _face_sides(mesh: Mesh, topo: Topology) -> _FaceSides | None:
+    """:class:`_FaceSides` of a volume mesh whose faces have at most two cells (None
+    otherwise: a face of more cells keeps only two in the topology)."""
+    f = topo.faces
+    if mesh.dim != 3 or not len(f) or int(f.count.max()) > 2:
+        return None
+    ces = topo.edges.cell_edges
+    width = max(b.info.n_edges for b in mesh.blocks)
+    n_b = len(mesh.blocks)
+    sides = np.zeros((n_b, 6, 4), np.int64)
+    n_sides = np.zeros((n_b, 6), np.int64)
+    group = np.zeros((n_b, width), np.int64)
+    for bi, b in enumerate(mesh.blocks):
+        if b.info.dim != 3:
+            continue
+        group[bi, :b.info.n_edges] = _edge_group(b.type)
+        for j, (_, sd, _) in enumerate(_local_faces(b.type)):
+            sides[bi, j, :len(sd)] = sd
+            n_sides[bi, j] = len(sd)
+    if n_b == 1:
+        cell_edges = np.ascontiguousarray(ces[0])
+    else:  # the blocks' edge lists side by side, padded with -1
+        cell_edges = np.full((mesh.n_cells, width), -1, ces[0].dtype)
+        for ce, lo in zip(ces, mesh.block_offsets[:-1]):
+            cell_edges[lo:lo + len(ce), :ce.shape[1]] = ce
+    return _FaceSides(np.ascontiguousarray(f.cells), np.ascontiguousarray(f.count),
+                      np.ascontiguousarray(f.local), cell_edges,
+                      np.asarray(mesh.block_offsets, np.int64), sides, n_sides, group)
+
+
 def _face_rows(mesh: Mesh, topo: Topology):
     """Every local face of every 3D cell, grouped by its node set (order-independent).
-    On the compiled path (:func:`meshcheck.kernels.use_compiled`) an :class:`_EdgePairRows`.
+    On the compiled path (:func:`meshcheck.kernels.use_compiled`) the topology's faces as
+    a :class:`_FaceSides`, or an :class:`_EdgePairRows` when a face has more than two cells.
 
     Returns (order, starts, tri, cell, col_a, col_b): ``order`` sorts the face rows so
     that equal faces are consecutive, ``starts`` begins each unique face, ``tri`` tells
     triangles (at the starts), and per row the cell id and the columns of the cell's
     direction orders that run along the face's two sides (col_b unused for triangles).
     """
-    if use_compiled(mesh.n_cells):
-        return _edge_pair_rows(mesh, topo)
+    if use_compiled(mesh.n_cells):  # the topology's faces, or their own table
+        return _face_sides(mesh, topo) or _edge_pair_rows(mesh, topo)
     n = np.int64(mesh.n_points + 1)
     lo_k, hi_k, cells, ca, cb, tri = [], [], [], [], [], []
     for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
@@ -215,29 +261,37 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
     Returns (condensed, total): vertices + edges + faces, and that plus the cell
     interiors.  Maximum rule on shared edges and faces.
     """
-    orders = np.asarray(orders, dtype=np.int64)
     compiled = use_compiled(mesh.n_cells)
-    if compiled:
-        from .kernels import directional as _kd
     used = np.zeros(mesh.n_points, bool)
-    for b in mesh.blocks:
-        used[b.cells[:, :b.info.n_corners]] = True
+    if compiled:  # the orders in their own type (int8): the kernels widen them
+        from .kernels import directional as _kd
+        from .kernels import topology as _kt
+        orders = np.ascontiguousarray(orders)
+        for b in mesh.blocks:
+            nc = b.info.n_corners
+            _kt.mark_used(b.cells if b.cells.shape[1] == nc else
+                          np.ascontiguousarray(b.cells[:, :nc]), used)
+    else:
+        orders = np.asarray(orders, dtype=np.int64)
+        for b in mesh.blocks:
+            used[b.cells[:, :b.info.n_corners]] = True
     edge_p = np.ones(len(topo.edges), np.int64)
     interior = 0
     for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
         o = orders[mesh.block_offsets[bi]:mesh.block_offsets[bi + 1]]
         grp = _edge_group(b.type)
         if compiled:
-            _kd.edge_orders(edge_p, ce, np.ascontiguousarray(o), grp)
+            _kd.edge_orders(edge_p, ce, o, grp)
         else:
             np.maximum.at(edge_p, ce.ravel(), o[:, grp].ravel())
         lin = b.info.linear
-        if lin == "hexahedron":
-            q = o - 1
-            interior += int(np.sum(q[:, 0] * q[:, 1] * q[:, 2]))
+        if lin == "hexahedron":  # products in int64 (orders up to 16: 15^3)
+            interior += int(np.sum(np.prod(o - 1, axis=1, dtype=np.int64)))
         elif lin == "wedge":
+            o = o.astype(np.int64)
             interior += int(np.sum((o[:, 0] - 1) * (o[:, 0] - 2) // 2 * (o[:, 2] - 1)))
         elif lin == "quad":
+            o = o.astype(np.int64)
             interior += int(np.sum((o[:, 0] - 1) * (o[:, 1] - 1)))
         else:
             ps, counts = np.unique(o[:, 0], return_counts=True)
@@ -245,9 +299,11 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
     total_v = int(used.sum()) + int(np.sum(edge_p - 1))
     faces = 0
     rows = face_rows if face_rows is not None else _face_rows(mesh, topo)
-    if isinstance(rows, _EdgePairRows):
+    if isinstance(rows, _FaceSides):
+        faces = int(_kd.face_dofs_by_sides(*rows, orders))
+    elif isinstance(rows, _EdgePairRows):
         faces = int(_kd.face_dofs(rows.group, rows.n_faces, rows.tri, rows.cell, rows.col_a,
-                                  rows.col_b, np.ascontiguousarray(orders)))
+                                  rows.col_b, orders))
     elif rows is not None:
         starts, is_tri, cell, col_a, col_b = rows
         pa = np.maximum.reduceat(orders[cell, col_a], starts)
@@ -261,8 +317,8 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
 class DirectionalOrders:
     """Orders per parametric direction at the upper frequency and what they save.
 
-    orders : (n_cells, 3) int64 (see :func:`cell_direction_orders`).
-    isotropic : (n_cells,) int64 highest order of each cell.
+    orders : (n_cells, 3) int8 (see :func:`cell_direction_orders`).
+    isotropic : (n_cells,) int8 highest order of each cell.
     anisotropic_cells : cells whose directions need different orders.
     dofs_directional, dofs_isotropic : condensed unknowns (vertices, edges, faces).
     total_directional, total_isotropic : the same with cell interiors.

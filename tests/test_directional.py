@@ -227,3 +227,38 @@ def test_directional_orders_result_on_a_cube_grid_has_no_saving():
     eo = np.full(len(topo.edges), 4)
     d = directional_orders(mesh, topo, eo, 8)
     assert d.saving == 0.0 and d.anisotropic_cells == 0
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_compiled_count_reads_the_topology_faces(seed, monkeypatch):
+    # faces of at most two cells: the compiled count takes the topology's faces (no
+    # table of its own) and still equals the brute-force count
+    import meshcheck.directional as D
+
+    def no_table(*a):
+        raise AssertionError("own face table built")
+
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    monkeypatch.setattr(D, "_edge_pair_rows", no_table)
+    mesh = _perturbed_mixed_mesh(seed)
+    orders = _random_orders(mesh, seed)
+    assert count_dofs(mesh, build_topology(mesh), orders) == _brute_force(mesh, orders)
+
+
+def test_face_of_three_cells_counts_as_the_numpy_reference(monkeypatch):
+    # a hexahedron duplicated on top of another: their shared faces have three or two
+    # cells; the topology keeps two, so the compiled count builds its own face table
+    import meshcheck.directional as D
+
+    mesh0 = _hex_mesh((2, 1, 1), (2.0, 1.0, 1.0))
+    b = mesh0.blocks[0]
+    mesh = Mesh(mesh0.points, (CellBlock("hexahedron", np.vstack([b.cells, b.cells[1:]]),
+                                         np.ones(len(b.cells) + 1)),))
+    topo = build_topology(mesh)
+    assert topo.faces.count.max() == 3
+    orders = _random_orders(mesh, 4)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = count_dofs(mesh, topo, orders)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    assert D._face_sides(mesh, topo) is None
+    assert count_dofs(mesh, topo, orders) == ref == _brute_force(mesh, orders)

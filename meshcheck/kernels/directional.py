@@ -6,7 +6,7 @@ import numpy as np
 
 from . import njit
 
-__all__ = ["block_face_keys", "group_edge_pairs", "face_dofs", "edge_orders"]
+__all__ = ["block_face_keys", "group_edge_pairs", "face_dofs", "face_dofs_by_sides", "edge_orders"]
 
 
 @njit
@@ -114,6 +114,69 @@ def face_dofs(gid, n_faces, tri, cell, ca, cb, orders):
 
 
 @njit
+def _block_of(offs, c):
+    b = 0
+    while offs[b + 1] <= c:
+        b += 1
+    return b
+
+
+@njit
+def _local_edge(cell_edges, c, e):
+    """Local index of edge id ``e`` among the edges of cell ``c`` (-1 if absent)."""
+    for k in range(cell_edges.shape[1]):
+        if cell_edges[c, k] == e:
+            return k
+    return -1
+
+
+@njit
+def face_dofs_by_sides(fcells, fcount, flocal, cell_edges, offs, sides, n_sides, group,
+                       orders):
+    """:func:`face_dofs` from the topology's unique faces (at most two cells each): a
+    face's sides are those of local face ``flocal`` of its first cell; a quadrilateral's
+    direction a is the pair of opposite sides holding its lowest edge id, b the other
+    pair; each cell on the face gives the orders of its own local edges with those ids.
+
+    fcells (n_f, 2) cells (-1 none), fcount (n_f,), flocal (n_f,) local face of the first
+    cell; cell_edges (n_cells, w) edge ids; offs (n_blocks + 1,) first cell of each
+    block; sides (n_blocks, 6, 4) local edges of each local face, n_sides (n_blocks, 6);
+    group (n_blocks, w) direction column of each local edge; orders (n_cells, 3)."""
+    total = 0
+    for f in range(fcells.shape[0]):
+        c0 = fcells[f, 0]
+        b0 = _block_of(offs, c0)
+        lf = flocal[f]
+        s0 = sides[b0, lf, 0]
+        s1 = sides[b0, lf, 1]
+        if n_sides[b0, lf] == 4:
+            g0 = cell_edges[c0, s0]
+            g1 = cell_edges[c0, s1]
+            g2 = cell_edges[c0, sides[b0, lf, 2]]
+            g3 = cell_edges[c0, sides[b0, lf, 3]]
+            if not min(g0, g2) < min(g1, g3):  # a = the pair holding the lowest id
+                s0, s1 = s1, s0
+        ea = cell_edges[c0, s0]
+        eb = cell_edges[c0, s1]
+        pa = np.int64(orders[c0, group[b0, s0]])
+        pb = np.int64(orders[c0, group[b0, s1]])
+        if fcount[f] >= 2:
+            c1 = fcells[f, 1]
+            b1 = _block_of(offs, c1)
+            ka = _local_edge(cell_edges, c1, ea)
+            kb = _local_edge(cell_edges, c1, eb)
+            if ka >= 0:
+                pa = max(pa, np.int64(orders[c1, group[b1, ka]]))
+            if kb >= 0:
+                pb = max(pb, np.int64(orders[c1, group[b1, kb]]))
+        if n_sides[b0, lf] == 3:
+            total += (pa - 1) * (pa - 2) // 2
+        else:
+            total += (pa - 1) * (pb - 1)
+    return total
+
+
+@njit
 def edge_orders(edge_p, cell_edges, orders, group):
     """In place: ``edge_p[e] = max(edge_p[e], orders[c, group[k]])`` over every local edge
     k of every cell c, cell_edges (m, n_local) edge ids, orders (m, 3)."""
@@ -126,10 +189,10 @@ def edge_orders(edge_p, cell_edges, orders, group):
 
 
 @njit
-def group_max(cell_edges, edge_order, group, n_groups):
-    """(cells, n_groups) int64: per cell the highest ``edge_order`` over the local edges of
-    each group (``group[k]`` the group of local edge k, -1 for none)."""
-    out = np.zeros((cell_edges.shape[0], n_groups), np.int64)
+def group_max(cell_edges, edge_order, group, out):
+    """In place into ``out`` (cells, n_groups), zeros on entry: per cell the highest
+    ``edge_order`` over the local edges of each group (``group[k]`` the group of local
+    edge k, -1 for none)."""
     for c in range(cell_edges.shape[0]):
         for k in range(cell_edges.shape[1]):
             g = group[k]
@@ -137,4 +200,3 @@ def group_max(cell_edges, edge_order, group, n_groups):
                 v = edge_order[cell_edges[c, k]]
                 if v > out[c, g]:
                     out[c, g] = v
-    return out
