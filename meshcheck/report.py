@@ -502,7 +502,8 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
         return made.pop(name)
 
     point = {name: lazy(lambda name=name: point_array(name), f32) for name in POINT_ARRAYS}
-    return vtkxml.write_vtu(path, m.points / scale, cells, cell_data=data,
+    pts = m.points if scale == 1.0 else m.points / scale  # no copy for metres
+    return vtkxml.write_vtu(path, pts, cells, cell_data=data,
                             point_data=point, level=1 if compress else 0)
 
 

@@ -134,7 +134,12 @@ def _mid_means(mesh: Mesh, outs: np.ndarray) -> np.ndarray | None:
         e = b.info.edges
         if kernels.use_compiled(mesh.n_cells):
             from .kernels import sizefield as _ks
-            _ks.mid_mean_block(outs, outs.copy(), mid, b.cells, np.ascontiguousarray(e))
+            e = np.ascontiguousarray(e)
+            # read from the values before this block's mid-nodes are set: the array
+            # itself when they are no corner of any cell (one block, checked), else a copy
+            alone = len(mesh.blocks) == 1 and not _ks.mids_are_corners(
+                b.cells, e, b.info.n_corners, mesh.n_points)
+            _ks.mid_mean_block(outs, outs if alone else outs.copy(), mid, b.cells, e)
         else:
             m = b.cells[:, e[:, 2]].ravel()
             outs[:, m] = 0.5 * (outs[:, b.cells[:, e[:, 0]].ravel()]
@@ -203,7 +208,8 @@ class SizeField:
 
     order : element order the sizes are meant for; fmax : Hz; gradation : beta.
     target : (n_points,) dispersion target (longest edge), m, nan at unused nodes.
-    geometry : (n_points,) geometry limit, m (inf = none).
+    geometry : (n_points,) geometry limit, m (inf = none; a read-only broadcast inf
+        when no limit was given).
     size : (n_points,) final target (longest edge) after the limits, m.
     mesher_size : (n_points,) size to ask gmsh for = size / edge_factor, m.
     current : (n_points,) shortest longest-edge of the cells around each node, m.
@@ -303,7 +309,7 @@ def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
     target, cap_node, current = _node_mins(mesh, [np.where(np.isfinite(cell_t), cell_t, cap),
                                                   cap, advice.cell_size])
     raw = np.minimum(target, cap_node)
-    geo = np.full(mesh.n_points, np.inf)
+    geo = np.broadcast_to(np.inf, (mesh.n_points,))  # no limit: one read-only inf
     if geometry_limit is not None:
         geo = np.asarray(geometry_limit(mesh, topo), dtype=float)
         if geo.shape != (mesh.n_points,):

@@ -214,3 +214,28 @@ def test_the_kernels_are_taken(monkeypatch):
     assert calls == []
     _run(monkeypatch, "numba", lambda: size_field(mesh, topo, adv))
     assert {"node_min_block", "gradation_distances", "corner_nanmean"} <= set(calls)
+
+
+def test_mid_nodes_read_the_values_before_any_is_set(monkeypatch):
+    # a broken quadratic mesh whose first cell's first mid-node is a corner of another
+    # cell: the compiled pass must then read the corners from a copy, as numpy's
+    # gathers do (a valid mesh is set in place, with no copy)
+    from meshcheck.mesh import CellBlock
+
+    mesh = MESHES["tet10"]()
+    b = mesh.blocks[0]
+    e = np.ascontiguousarray(b.info.edges)
+    assert not KS.mids_are_corners(b.cells, e, 4, mesh.n_points)
+    cells = b.cells.copy()
+    cells[0, e[0, 2]] = cells[-1, 0]
+    broken = Mesh(mesh.points, (CellBlock(b.type, cells, b.region),), dict(mesh.region_names),
+                  mesh.dim)
+    assert KS.mids_are_corners(cells, e, 4, mesh.n_points)
+    topo = build_topology(broken)
+    v = np.random.default_rng(3).uniform(0.1, 2.0, broken.n_cells)
+    refs, gots = _both(monkeypatch, lambda: _node_mins(broken, [v, -v]))
+    for r, g in zip(refs, gots):
+        assert np.array_equal(r, g, equal_nan=True)
+    h = _sizes(broken, 4)
+    ref, got = _both(monkeypatch, lambda: limit_gradation(broken, topo, h, 0.3))
+    assert np.array_equal(ref, got, equal_nan=True)

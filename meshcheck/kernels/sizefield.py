@@ -19,7 +19,7 @@ import numpy as np
 
 from . import njit
 
-__all__ = ["node_min_block", "mid_mean_block", "gradation_distances", "corner_nanmean"]
+__all__ = ["node_min_block", "mid_mean_block", "mids_are_corners", "gradation_distances", "corner_nanmean"]
 
 
 @njit
@@ -59,6 +59,22 @@ def mid_mean_block(out, src, mid, cells, ends):
             for r in range(nr):
                 out[r, m] = 0.5 * (src[r, a] + src[r, b])
             mid[m] = True
+
+
+@njit
+def mids_are_corners(cells, ends, n_corners, n_points):
+    """True when a mid-node of some cell (``cells[:, ends[:, 2]]``) is also a corner of
+    some cell (``cells[:, :n_corners]``): only then must :func:`mid_mean_block` read from
+    a copy of the values."""
+    mid = np.zeros(n_points, np.bool_)
+    for i in range(cells.shape[0]):
+        for k in range(ends.shape[0]):
+            mid[cells[i, ends[k, 2]]] = True
+    for i in range(cells.shape[0]):
+        for k in range(n_corners):
+            if mid[cells[i, k]]:
+                return True
+    return False
 
 
 @njit
