@@ -79,6 +79,13 @@ class AdviceSettings:
         return "fixed" if self.order is not None else "variable"
 
 
+#: type of the advice's limit table (``Advice.limit_rows``): float32, 7 significant digits
+#: of a frequency limit (the model behind it is good to a few percent), half the memory
+#: of float64 (206 -> 103 MiB for 4.8M tetrahedra); every comparison of a limit with a
+#: frequency is made in float64 on the stored value, on both paths
+LIMIT_DTYPE = np.float32
+
+
 def order_dtype(pmax: int):
     """Integer type of the advice's orders (1..pmax + 1): int8 (one byte per edge and
     cell) unless pmax is above 126."""
@@ -89,7 +96,8 @@ def order_dtype(pmax: int):
 class Advice:
     """Frequency limits per order and the advice at the upper frequency.
 
-    limit_rows : (n_rows, pmax) float64 highest usable frequency per order p =
+    limit_rows : (n_rows, pmax) float32 (:data:`LIMIT_DTYPE`) highest usable frequency
+        per order p =
         1..pmax (non-decreasing in p), Hz, of every cell (``limit_row`` None) or of
         every limit row: cells share the row of their longest edge (about half as many
         rows as cells in a tetrahedral mesh); see :attr:`cell_limit`.
@@ -130,7 +138,7 @@ class Advice:
 
     @property
     def cell_limit(self) -> np.ndarray:
-        """(n_cells, pmax) float64 highest usable frequency per cell and order p =
+        """(n_cells, pmax) float32 highest usable frequency per cell and order p =
         1..pmax, Hz (a new (n_cells, pmax) array when cells share rows: prefer
         :meth:`limit_at` and :attr:`limit_rows` on large meshes)."""
         if self.limit_row is None:
@@ -139,10 +147,9 @@ class Advice:
 
     def limit_at(self, p: int, dtype=None) -> np.ndarray:
         """(n_cells,) highest usable frequency of every cell at order p (1-based), Hz
-        (float64, or ``dtype``; a view of the per-cell table when there is one)."""
+        (float64, or ``dtype``: a new array)."""
         if self.limit_row is None:
-            col = self.limit_rows[:, p - 1]
-            return col if dtype is None else col.astype(dtype)
+            return self.limit_rows[:, p - 1].astype(np.float64 if dtype is None else dtype)
         out = np.empty(len(self.limit_row), np.float64 if dtype is None else dtype)
         # the column made contiguous (and cast) first: the gather's random reads then stay
         # in a table of n_rows values (9 MB at 5M cells in float32) instead of whole rows
@@ -163,8 +170,8 @@ class Advice:
     def mesh_limit(self) -> np.ndarray:
         """(pmax,) highest usable frequency of the whole mesh per order, Hz (computed once;
         read-only).  Every limit row belongs to a cell."""
-        out = (column_min(self.limit_rows) if len(self.cell_size) and len(self.limit_rows)
-               else np.zeros(self.pmax))
+        out = (column_min(self.limit_rows).astype(np.float64) if len(self.cell_size) and
+               len(self.limit_rows) else np.zeros(self.pmax))
         out.setflags(write=False)
         return out
 
@@ -173,25 +180,28 @@ class Advice:
         return float(self.mesh_limit[self.settings.allowed_order - 1])
 
     def region_limit(self, region: np.ndarray) -> dict[int, np.ndarray]:
-        """Region tag -> (pmax,) highest usable frequency per order, Hz."""
-        runs = region_runs(region)
-        if runs is not None and len(runs) == 1 and len(region):
-            # one region: the minimum over all rows (each row belongs to a cell)
-            return {tag: column_min(self.limit_rows) for tag in runs}
-        if self.limit_row is not None:
-            return _region_limit_rows(self.limit_rows, self.limit_row, region, runs)
-        if runs is not None:  # regions in a few runs of cells: minima over views
-            return {tag: np.minimum.reduce([column_min(self.limit_rows[lo:hi])
-                                            for lo, hi in r]) for tag, r in runs.items()}
-        out = {}
-        for tag in np.unique(region):
-            out[int(tag)] = column_min(self.limit_rows[region == tag])
-        return out
+        """Region tag -> (pmax,) float64 highest usable frequency per order, Hz."""
+        mins = _region_mins(self.limit_rows, self.limit_row, region)
+        return {tag: np.asarray(lim, np.float64) for tag, lim in mins.items()}
 
     @property
     def coarsen_ratio(self) -> np.ndarray:
         """(n_cells,) target size / current longest edge (above 1: could be coarser)."""
         return self.target_size / self.cell_size
+
+
+def _region_mins(rows: np.ndarray, index: np.ndarray | None, region: np.ndarray) -> dict:
+    """:meth:`Advice.region_limit` in the limits' own type."""
+    runs = region_runs(region)
+    if runs is not None and len(runs) == 1 and len(region):
+        # one region: the minimum over all rows (each row belongs to a cell)
+        return {tag: column_min(rows) for tag in runs}
+    if index is not None:
+        return _region_limit_rows(rows, index, region, runs)
+    if runs is not None:  # regions in a few runs of cells: minima over views
+        return {tag: np.minimum.reduce([column_min(rows[lo:hi]) for lo, hi in r])
+                for tag, r in runs.items()}
+    return {int(tag): column_min(rows[region == tag]) for tag in np.unique(region)}
 
 
 def _region_limit_rows(rows: np.ndarray, index: np.ndarray, region: np.ndarray,
@@ -545,7 +555,9 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
         edge_order[(edge_order > pmax) & carries] = p
         if f_e is not None:
             edge_limit = f_e
+    cell_limit = cell_limit.astype(LIMIT_DTYPE)  # stored as the compiled path stores them
     np.maximum.accumulate(cell_limit, axis=1, out=cell_limit)
+    fmax = np.float64(fmax)  # compared in float64 (a Python float would be cast to float32)
     cell_order = (1 + np.count_nonzero(cell_limit < fmax, axis=1)).astype(order_dtype(pmax))
     cell_size = topo.edges.per_cell(h, np.maximum)
     k = TWO_PI * fmax / cell_speed
@@ -622,7 +634,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     n_shared = _ka.mark_rows(gov, skip, owner)
     del skip
     n_rows = n_shared + len(exact)
-    limit_rows = np.empty((n_rows, pmax))
+    limit_rows = np.empty((n_rows, pmax), LIMIT_DTYPE)
     row_order = np.empty(n_rows, order_dtype(pmax))
     row_refine = np.empty(n_rows, bool)
     finish = not len(exact)

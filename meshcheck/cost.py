@@ -170,7 +170,9 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
 
     order = np.argsort(f, kind="stable")
     fs = np.ascontiguousarray(f[order], dtype=float)
-    lim = np.ascontiguousarray(cell_limits, dtype=float)
+    lim = np.ascontiguousarray(cell_limits)  # float32 (the advice's) or float64, no copy
+    if lim.dtype not in (np.float32, np.float64):
+        lim = lim.astype(np.float64)
     hist = np.zeros((lim.shape[1], len(f) + 1), np.int64)
     dtype = np.uint8 if len(f) < 255 else np.uint16 if len(f) < 65_535 else np.uint32
     B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f) + 1, dtype)
@@ -437,7 +439,7 @@ def cell_orders_at(cell_limits: np.ndarray, frequency: float, max_order: int,
     (``limit_row``: the cells' rows of shared ``cell_limits``, see
     :func:`variable_order_dofs`)."""
     lim = np.asarray(cell_limits)[:, :max(max_order - 1, 0)]
-    q = 1 + np.count_nonzero(lim < frequency, axis=1)
+    q = 1 + np.count_nonzero(lim < np.float64(frequency), axis=1)  # in float64
     return q if limit_row is None else q[limit_row]
 
 

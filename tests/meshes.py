@@ -7,6 +7,11 @@ from meshcheck.mesh import CellBlock, Mesh
 
 # Kuhn (Freudenthal) split of the unit cube into 6 tets sharing the diagonal 0-6,
 # in VTK hex numbering; every tet positively oriented.
+#: relative tolerance of frequency limits read from the advice's limit table, which is
+#: stored in float32 (meshcheck.advice.LIMIT_DTYPE): each value is rounded by at most
+#: 2^-24 relative, a ratio of two such values by about 2^-23
+LIMIT_RTOL = 2.0 ** -22
+
 KUHN = np.array([[0, 1, 2, 6], [0, 2, 3, 6], [0, 3, 7, 6], [0, 7, 4, 6], [0, 4, 5, 6],
                  [0, 5, 1, 6]])
 

@@ -9,7 +9,7 @@ from meshcheck.dispersion import predicted_error, usable_kh
 from meshcheck.pipeline import AuditSettings, audit
 from meshcheck.reading import read_mesh
 from meshcheck.mesh import CellBlock, Mesh
-from meshes import hex_box, tet_box
+from meshes import LIMIT_RTOL, hex_box, tet_box
 from test_verify import _gmsh_tets
 
 C = 343.0
@@ -139,8 +139,8 @@ def test_default_limit_is_the_1d_model_on_edges_a_times_shorter(name, p):
     kh = usable_kh(0.01, 12).max_kh
     f_plain = C * float(kh(p, L / hmax)) / (2 * np.pi * hmax)
     f_corr = C * float(kh(p, L / (a * hmax))) / (2 * np.pi * a * hmax)
-    assert plain.advice.mesh_limit[p - 1] == pytest.approx(f_plain, rel=1e-9)
-    assert default.advice.mesh_limit[p - 1] == pytest.approx(f_corr, rel=1e-9)
+    assert plain.advice.mesh_limit[p - 1] == pytest.approx(f_plain, rel=LIMIT_RTOL)
+    assert default.advice.mesh_limit[p - 1] == pytest.approx(f_corr, rel=LIMIT_RTOL)
     # a < 1 for tetrahedra: the 3D meshes did better than the 1D model, the limit rises
     assert f_corr > 1.1 * f_plain
 
@@ -243,7 +243,7 @@ def test_cell_limit_is_min_over_its_edges_with_two_media():
     brute = np.stack([[(edge_c * table.max_kh(q, edge_L / h) / (2 * np.pi * h))[e].min()
                        for e in topo.edges.cell_edges[0]] for q in range(1, 9)], axis=1)
     brute = np.maximum.accumulate(brute, axis=1)  # the advisor's limits never drop with p
-    assert np.allclose(res.advice.cell_limit[:, :8], brute, rtol=1e-12)
+    assert np.allclose(res.advice.cell_limit[:, :8], brute, rtol=LIMIT_RTOL)
 
 
 def test_orders_on_threads_give_the_serial_result(monkeypatch):

@@ -285,3 +285,16 @@ def test_variable_order_dofs_on_threads_equal_the_exact_count():
     got = variable_order_dofs(mesh, topo, limits, f, pmax)
     want = [system_size(mesh, topo, cell_orders_at(limits, x, pmax), True).ndof for x in f]
     assert got.tolist() == want
+
+
+def test_float32_limits_are_compared_with_frequencies_in_float64():
+    # the advice stores its limits in float32; a frequency just above a stored limit (but
+    # equal to it once rounded to float32) is above it: the cell needs the next order
+    from meshcheck.advice import LIMIT_DTYPE
+    from meshcheck.cost import cell_orders_at
+
+    lim = np.array([[1000.0, 5000.0]], LIMIT_DTYPE)
+    f = 1000.00001
+    assert np.float32(f) == lim[0, 0]  # the float32 comparison would call it carried
+    assert cell_orders_at(lim, f, 3).tolist() == [2]
+    assert cell_orders_at(lim, 1000.0, 3).tolist() == [1]

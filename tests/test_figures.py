@@ -19,7 +19,7 @@ from meshcheck.advice import AdviceSettings  # noqa: E402
 from meshcheck.mesh import CellBlock, Mesh  # noqa: E402
 from meshcheck.pipeline import AuditSettings, audit  # noqa: E402
 from meshcheck.report import to_dict  # noqa: E402
-from meshes import KUHN, grid_hexes, hex_box, tet_box  # noqa: E402
+from meshes import KUHN, LIMIT_RTOL, grid_hexes, hex_box, tet_box  # noqa: E402
 
 # Speed of sound in dry air, ideal gas: c = 331.3 sqrt(1 + T/273.15) m/s (Kinsler, Frey,
 # Coppens & Sanders, "Fundamentals of Acoustics", 4th ed. 2000, eq. 5.6.8 rearranged).
@@ -141,7 +141,7 @@ def test_needed_lines_cross_the_curve_at_the_json_limits(uniform):
     np.testing.assert_allclose(drawn, sorted(needed.values()), rtol=1e-12)
     crossing = [C_AIR_20 / 0.2 / needed[p] for p in sorted(needed)]
     np.testing.assert_allclose(crossing, [d["limits_hz"]["mesh"][str(p)] for p in sorted(needed)],
-                               rtol=1e-9)
+                               rtol=LIMIT_RTOL)
 
 
 # ---------------------------------------------------------------- unknowns

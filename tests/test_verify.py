@@ -20,7 +20,7 @@ from meshcheck.dispersion import usable_kh
 from meshcheck.errors import SettingsError
 from meshcheck.mesh import CellBlock, Mesh
 from meshcheck.topology import build_topology
-from meshes import KUHN, grid_hexes, grid_points, hex_box, tet_box
+from meshes import KUHN, LIMIT_RTOL, grid_hexes, grid_points, hex_box, tet_box
 
 C = 343.0
 needs_ngsolve = pytest.mark.skipif(not V.ngsolve_available(),
@@ -163,8 +163,8 @@ def test_corrected_limit_is_the_1d_model_on_shorter_edges(p, target):
                    AdviceSettings(target=target, max_order=8, correction_3d=False))
     h, L = np.sqrt(3) * 0.3, np.linalg.norm(size)
     a = SIZE_FACTOR_TABLE["tetra"][1][target][1][p - 1]
-    assert np.allclose(adv.cell_limit[:, p - 1], _limit(p, target, a, h, L), rtol=1e-9)
-    assert np.allclose(plain.cell_limit[:, p - 1], _limit(p, target, 1.0, h, L), rtol=1e-9)
+    assert np.allclose(adv.cell_limit[:, p - 1], _limit(p, target, a, h, L), rtol=LIMIT_RTOL)
+    assert np.allclose(plain.cell_limit[:, p - 1], _limit(p, target, 1.0, h, L), rtol=LIMIT_RTOL)
     assert np.allclose(adv.cell_size, plain.cell_size)  # the true longest edge is reported
 
 
