@@ -734,7 +734,8 @@ def sweep(mesh: Mesh, topo: Topology, advice: Advice, frequencies: np.ndarray) -
         above = np.empty((len(f), pmax), np.int64)
         above[order] = np.cumsum(hist, axis=1)[:, :len(f)].T
         if variable:
-            dofs = _dofs_from_bins(mesh, topo, B, order, mesh.dim == 3 and len(topo.faces) > 0)
+            dofs = _dofs_from_bins(mesh, topo, B, order, mesh.dim == 3 and len(topo.faces) > 0,
+                                   advice.limit_row)
     else:
         above = np.stack([np.searchsorted(np.sort(advice.limit_at(p + 1)), f, side="left")
                           for p in range(pmax)], axis=1)
@@ -777,46 +778,46 @@ class Cluster:
 def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
              limit: int = 50, max_ids: int = 10) -> list[Cluster]:
     """Group flagged cells into face-connected clusters, largest first (at most ``limit``)."""
+    n = mesh.n_cells
+    if kernels.use_compiled(n):  # union-find, numbered as connected_components numbers them
+        from .kernels import advice as _ka
+        itype = np.int32 if n < 2 ** 31 - 1 else np.int64
+        m = np.ascontiguousarray(mask, dtype=bool)
+        k = int(np.count_nonzero(m))
+        if not k:
+            return []
+        ids, lab, parent = np.empty(k, itype), np.empty(k, itype), np.empty(n, itype)
+        if mesh.dim == 3:
+            n_lab = _ka.label_flagged(m, np.ascontiguousarray(topo.faces.cells),
+                                      np.ascontiguousarray(topo.faces.count), 2, lab, parent,
+                                      ids)
+        else:
+            a, b = _edge_pairs(topo)
+            n_lab = _ka.label_flagged(m, np.column_stack([a, b]), np.zeros(len(a), np.int64),
+                                      0, lab, parent, ids)
+        del parent
+        cnt = np.bincount(lab, minlength=n_lab)
+        return _clusters_compiled(mesh, topo, advice, ids, lab, cnt, limit, max_ids)
     ids = np.flatnonzero(mask)
     if not len(ids):
         return []
-    n = mesh.n_cells
-    compiled = kernels.use_compiled(n)
     if mesh.dim == 3:
-        if not compiled:
-            inner = topo.faces.count >= 2
-            a, b = topo.faces.cells[inner, 0], topo.faces.cells[inner, 1]
+        inner = topo.faces.count >= 2
+        a, b = topo.faces.cells[inner, 0], topo.faces.cells[inner, 1]
     else:
-        inc = topo.edges.incidence
-        st = topo.edges.incidence_starts
-        a, b = np.repeat(inc[st], np.diff(np.append(st, len(inc)))), inc
-    if compiled:  # union-find, components numbered as connected_components numbers them
-        from .kernels import advice as _ka
-        lab = np.empty(len(ids), np.int32 if n < 2 ** 31 - 1 else np.int64)
-        m = np.ascontiguousarray(mask, dtype=bool)
-        parent = np.empty(n, np.int32 if n < 2 ** 31 - 1 else np.int64)
-        if mesh.dim == 3:
-            n_lab = _ka.label_flagged(m, np.ascontiguousarray(topo.faces.cells),
-                                      np.ascontiguousarray(topo.faces.count), 2, lab, parent)
-        else:
-            n_lab = _ka.label_flagged(m, np.column_stack([a, b]), np.zeros(len(a), np.int64),
-                                      0, lab, parent)
-        del parent
-    else:
-        keep = mask[a] & mask[b]
-        local = np.full(n, -1, np.int64)
-        local[ids] = np.arange(len(ids))
-        from scipy import sparse
-        from scipy.sparse.csgraph import connected_components
-        g = sparse.coo_matrix((np.ones(int(keep.sum()), np.int8),
-                               (local[a[keep]], local[b[keep]])), shape=(len(ids), len(ids)))
-        n_lab, lab = connected_components(g, directed=False)
+        a, b = _edge_pairs(topo)
+    keep = mask[a] & mask[b]
+    local = np.full(n, -1, np.int64)
+    local[ids] = np.arange(len(ids))
+    from scipy import sparse
+    from scipy.sparse.csgraph import connected_components
+    g = sparse.coo_matrix((np.ones(int(keep.sum()), np.int8),
+                           (local[a[keep]], local[b[keep]])), shape=(len(ids), len(ids)))
+    n_lab, lab = connected_components(g, directed=False)
     cnt = np.bincount(lab, minlength=n_lab)
     w = topo.cell_volume[ids]
     np.abs(w, out=w)
     vol = np.bincount(lab, weights=w, minlength=n_lab)
-    if compiled:
-        return _clusters_compiled(mesh, advice, ids, lab, cnt, w, vol, limit, max_ids)
     order = np.argsort(lab, kind="stable")
     starts = np.concatenate([[0], np.cumsum(cnt)])
     cen = mesh.centroids[ids]
@@ -834,10 +835,18 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
     return out
 
 
-def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit: int,
-                       max_ids: int) -> list[Cluster]:
+def _edge_pairs(topo: Topology) -> tuple[np.ndarray, np.ndarray]:
+    """The cell pairs sharing an edge (2D adjacency), from the edges' incidence."""
+    inc = topo.edges.incidence
+    st = topo.edges.incidence_starts
+    return np.repeat(inc[st], np.diff(np.append(st, len(inc)))), inc
+
+
+def _clusters_compiled(mesh: Mesh, topo: Topology, advice: Advice, ids, lab, cnt,
+                       limit: int, max_ids: int) -> list[Cluster]:
     """The clusters of :func:`clusters` from their labels, with one pass over the
-    flagged cells for the chosen clusters (kernel ``cluster_stats``)."""
+    flagged cells for the chosen clusters (kernel ``cluster_stats``: sizes, boxes and
+    the volume sums of those clusters only; no per-cell weights)."""
     from .kernels import advice as _ka
 
     top = np.argsort(-cnt, kind="stable")[:limit]
@@ -845,7 +854,7 @@ def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit:
     slot = np.full(len(cnt), -1, np.int64)
     slot[top] = np.arange(s)
     size, target = np.empty(s), np.empty(s)
-    lo, hi, wsum = np.empty((s, 3)), np.empty((s, 3)), np.empty((s, 3))
+    lo, hi, wsum, vol = np.empty((s, 3)), np.empty((s, 3)), np.empty((s, 3)), np.empty(s)
     first = np.empty((s, max_ids), np.int64)
     n_first = np.zeros(s, np.int64)
     if len(mesh.blocks) == 1:  # centroids worked out in the kernel: no (k, 3) array
@@ -857,13 +866,14 @@ def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit:
     _ka.cluster_stats(ids, lab, slot, np.ascontiguousarray(advice.cell_size, dtype=float),
                       np.ascontiguousarray(advice.target_size, dtype=float), cen,
                       np.ascontiguousarray(pts, dtype=float), np.ascontiguousarray(cells), k,
-                      w, size, target, lo, hi, wsum, first, n_first)
+                      np.ascontiguousarray(topo.cell_volume, dtype=float), size, target, lo,
+                      hi, wsum, vol, first, n_first)
     region = mesh.region
     one_region = len(region) and region.min() == region.max()
     members = None
     out = []
     for i, j in enumerate(top):
-        if vol[j] > 0 and one_region:
+        if vol[i] > 0 and one_region:
             sel = None
         else:  # the cells of the cluster (a zero volume or several regions)
             if members is None:
@@ -873,11 +883,11 @@ def _clusters_compiled(mesh: Mesh, advice: Advice, ids, lab, cnt, w, vol, limit:
                 members = (order, starts)
             pos = members[0][members[1][j]:members[1][j + 1]]
             sel = ids[pos]
-        c = wsum[i] / vol[j] if vol[j] > 0 else mesh.centroids_of(sel).mean(0)
+        c = wsum[i] / vol[i] if vol[i] > 0 else mesh.centroids_of(sel).mean(0)
         regions = (int(region[ids[0]]),) if one_region else \
             tuple(int(t) for t in np.unique(region[sel]))
         sz, tg = float(size[i]), float(target[i])
-        out.append(Cluster(int(cnt[j]), float(vol[j]), c, lo[i].copy(), hi[i].copy(), sz, tg,
+        out.append(Cluster(int(cnt[j]), float(vol[i]), c, lo[i].copy(), hi[i].copy(), sz, tg,
                            tg / sz if sz > 0 else np.inf, first[i, :n_first[i]].copy(),
                            regions))
     return out

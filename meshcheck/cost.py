@@ -159,12 +159,13 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
 
     Returns (order, hist, B): ``order`` sorts f (stable); hist (pmax, n_f + 1) int64,
     ``cumsum(hist[p])[k]`` = cells whose limit at order p + 1 is below ``f[order[k]]``;
-    B (n_cells, W) bin + 1 of each cell's limit at orders 1..ncol (0 for NaN), in the
+    B (n_rows, W) bin + 1 of each row's limit at orders 1..ncol (0 for NaN), in the
     smallest unsigned type holding n_f + 1 (uint8 up to 254 frequencies: one byte per
-    cell and order for the random reads of :func:`_dofs_from_bins`), W = ncol rounded up
+    row and order for the random reads of :func:`_dofs_from_bins`), W = ncol rounded up
     to a multiple of 8, the columns past ncol set to n_f + 1.
     With ``limit_row`` (n_cells,), ``cell_limits`` are rows shared by the cells: the
-    rows are binned once, counted as often as cells use them, and B is gathered.
+    rows are binned once and counted as often as cells use them; B stays one row per
+    limit row (cell i's bins are ``B[limit_row[i]]``).
     """
     from .kernels import advice as _ka
 
@@ -188,44 +189,35 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
 
     for part in thread_map(run, chunks, parallel=par):
         hist += part
-    if limit_row is not None:  # every cell's row of bins (a multiple of 8 bytes: words)
-        words = B.view(np.uint64)
-        out = np.empty((len(limit_row), words.shape[1]), np.uint64)
-        if words.shape[1]:
-            thread_map(lambda r: _ka.gather_words(words, limit_row, r[0], r[1], out),
-                       _chunks(len(limit_row), 2 if par else 1), parallel=par)
-        B = out.view(B.dtype)
     return order, hist, B
 
 
 def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray,
-                    three: bool) -> np.ndarray:
-    """(n_f,) int64 variable-order unknowns from the cells' bins B (see
-    :func:`_limit_bins`): vertices + edge and face unknowns by the maximum rule."""
+                    three: bool, limit_row: np.ndarray | None = None) -> np.ndarray:
+    """(n_f,) int64 variable-order unknowns from the bins B of :func:`_limit_bins` (one
+    row per cell, or per limit row with ``limit_row``): vertices + edge and face
+    unknowns by the maximum rule."""
     from .kernels import advice as _ka
 
     n_f = len(order)
     edges = topo.edges
     par = mesh.n_cells > 50_000
     parts = 2 if par else 1
+    row = (np.zeros(0, np.int64) if limit_row is None else
+           np.ascontiguousarray(limit_row))
     jobs = []
     if len(edges) and B.shape[1]:
         # every edge's smallest bins over its cells, scattered from the cells' edge lists
-        # (each part of the cells into a table of its own, then the element-wise minimum)
-        def scatter(part):
-            E = np.full((len(edges), B.shape[1]), n_f + 1, B.dtype)
+        # into one table, each thread writing the edges of its own range of ids
+        E = np.full((len(edges), B.shape[1]), n_f + 1, B.dtype)
+
+        def scatter(r):
             g0 = 0
             for ce in edges.cell_edges:
-                m = len(ce)
-                _ka.edge_min_bins(B, ce, g0, m * part // parts, m * (part + 1) // parts, E)
-                g0 += m
-            return E
+                _ka.edge_min_bins(B, row, ce, g0, 0, len(ce), r[0], r[1], E)
+                g0 += len(ce)
 
-        tables = thread_map(scatter, range(parts), parallel=par)
-        E = tables[0]
-        for other in tables[1:]:
-            np.minimum(E, other, out=E)
-        del tables
+        thread_map(scatter, _chunks(len(edges), parts), parallel=par)
         for lo, hi in _chunks(len(edges), parts):
             jobs.append(lambda hist, lo=lo, hi=hi: _ka.edge_bin_hist(E, lo, hi, hist))
     if three and B.shape[1]:
@@ -233,7 +225,7 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
         tri = topo.faces.is_tri
         for lo, hi in _chunks(len(fcells), parts):
             jobs.append(lambda hist, lo=lo, hi=hi:
-                        _ka.face_dof_hist(B, fcells, tri, lo, hi, hist))
+                        _ka.face_dof_hist(B, row, fcells, tri, lo, hi, hist))
 
     def run(job):
         hist = np.zeros(n_f + 1, np.int64)
@@ -260,7 +252,7 @@ def _variable_order_dofs_compiled(mesh: Mesh, topo: Topology, cell_limits: np.nd
     """:func:`variable_order_dofs` by histograms over the sorted frequencies (kernels of
     :mod:`meshcheck.kernels.advice`): the same (n_f,) int64 counts."""
     order, _, B = _limit_bins(cell_limits, f, max(max_order - 1, 0), limit_row)
-    return _dofs_from_bins(mesh, topo, B, order, three)
+    return _dofs_from_bins(mesh, topo, B, order, three, limit_row)
 
 
 # ---------------------------------------------------------------------------

@@ -14,8 +14,8 @@ the numpy reference computes (tests/test_kernels_advice.py compares both):
   (``advice.advise``): one pass over the edges (all orders for the cells' longest edges,
   written into one row per such edge), one over the cells (each takes its longest
   edge's row; cells taking the minimum over their edges get rows of their own), no
-  (n_edges,) temporaries per order; :func:`row_min`,
-  :func:`gather_words`: minima and bins read through the cells' rows;
+  (n_edges,) temporaries per order; :func:`row_min`: minima read through the cells'
+  rows;
 * :func:`per_cell_max`: ``Edges.per_cell(values, np.maximum)`` for one block;
 * :func:`order_hist`, :func:`edge_min_bins`, :func:`edge_bin_hist`,
   :func:`face_dof_hist`: histograms of the cells' limits (and of the edges' and faces' smallest limits, weighted by the unknowns
@@ -404,16 +404,6 @@ def _bin(x, fs, lo):
 
 
 @njit
-def gather_words(words, index, lo, hi, out):
-    """out[i, :] = words[index[i], :] for lo <= i < hi (rows of uint64 words)."""
-    w = words.shape[1]
-    for i in range(lo, hi):
-        r = index[i]
-        for j in range(w):
-            out[i, j] = words[r, j]
-
-
-@njit
 def row_min(rows, index, lo, hi, out):
     """out[p] = minimum (np.minimum semantics: NaN propagates) of out[p] and
     rows[index[i], p] over lo <= i < hi."""
@@ -455,17 +445,23 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol):
 
 
 @njit
-def edge_min_bins(B, ce, g0, lo, hi, E):
-    """E[e, :] = min(E[e, :], B[g0 + c, :]) for every local edge e of the cells
-    lo <= c < hi of one block (ce (m, k) edge ids, global cells g0 + c): each edge's
-    smallest bins over its cells, by the cells' own edge lists (no edge-to-cell
-    incidence)."""
+def edge_min_bins(B, row, ce, g0, lo, hi, e_lo, e_hi, E):
+    """E[e, :] = min(E[e, :], bins of cell g0 + c) for every local edge e of the cells
+    lo <= c < hi of one block (ce (m, k) edge ids, global cells g0 + c) with
+    e_lo <= e < e_hi: each edge's smallest bins over its cells, by the cells' own edge
+    lists (no edge-to-cell incidence).  The bins of cell i are B[row[i]] (rows shared by
+    the cells, see :func:`order_hist`), or B[i] when ``row`` is empty.  Threads given
+    disjoint edge ranges write disjoint entries of one table."""
     W = B.shape[1]
+    shared = row.shape[0] > 0
     for c in range(lo, hi):
+        i = row[g0 + c] if shared else g0 + c
         for k in range(ce.shape[1]):
             e = ce[c, k]
+            if e < e_lo or e >= e_hi:
+                continue
             for q in range(W):
-                b = B[g0 + c, q]
+                b = B[i, q]
                 if b < E[e, q]:
                     E[e, q] = b
 
@@ -485,14 +481,20 @@ def edge_bin_hist(E, lo, hi, hist):
 
 
 @njit
-def face_dof_hist(B, fcells, tri, lo, hi, hist):
+def face_dof_hist(B, row, fcells, tri, lo, hi, hist):
     """Face unknowns added above order q + 1, binned like :func:`edge_bin_hist`: q per
     triangle (tri True), 2 q + 1 per quadrilateral, at the smaller bin of the face's
-    cells (fcells (n_faces, 2) integers, -1 = no second cell), for faces lo <= f < hi."""
+    cells (fcells (n_faces, 2) integers, -1 = no second cell), for faces lo <= f < hi;
+    cell i's bins are B[row[i]], or B[i] when ``row`` is empty."""
     n_f = hist.shape[0] - 1
+    shared = row.shape[0] > 0
     for f in range(lo, hi):
         c0 = fcells[f, 0]
         c1 = fcells[f, 1]
+        if shared:
+            c0 = row[c0]
+            if c1 >= 0:
+                c1 = row[c1]
         t = tri[f]
         for q in range(B.shape[1]):
             w = q if t else 2 * q + 1
@@ -520,11 +522,12 @@ def _find(parent, i):
 
 
 @njit
-def label_flagged(mask, pairs, count, need, lab, parent):
+def label_flagged(mask, pairs, count, need, lab, parent, ids):
     """Connected components of the flagged cells through the pairs (pairs (n, 2) integer
     global cell ids; pair j joins its cells when count[j] >= need, both are >= 0 and
     flagged).  lab : (n_flagged,) integer output, the component of every flagged cell in
-    increasing id order, numbered by their smallest cell id.  Returns the number.
+    increasing id order, numbered by their smallest cell id; ids : (n_flagged,) integer
+    output, those cells (``np.flatnonzero(mask)``).  Returns the number of components.
 
     parent : (n_cells,) signed integers (int32 will do below 2**31 cells), scratch: a
     union-find whose root is the smallest id of its component; the labels are then kept
@@ -560,6 +563,7 @@ def label_flagged(mask, pairs, count, need, lab, parent):
         elif r != i:
             parent[i] = r  # shortcut for the cells below i
         lab[k] = -1 - parent[r]
+        ids[k] = i
         k += 1
     return n_lab
 
@@ -580,20 +584,21 @@ def group_by_label(lab, cnt, order):
 
 
 @njit
-def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_corners, w,
-                  size, target, lo, hi, wsum, first, n_first):
+def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_corners,
+                  volume, size, target, lo, hi, wsum, vsum, first, n_first):
     """Per chosen cluster (slot[label] >= 0), over its cells in increasing id order:
     longest edge ``size`` (max), smallest ``target`` (min), centroid box ``lo``/``hi``
-    (NaN propagates, as ndarray.max/min), ``wsum`` = sum of centroid * weight (the same
-    sequential sum as numpy's along axis 0), and its first cell ids.
+    (NaN propagates, as ndarray.max/min), ``wsum`` = sum of centroid * weight and
+    ``vsum`` = sum of the weights (the same sequential sums as numpy's along axis 0 and
+    ``np.bincount``'s), and its first cell ids.
 
     ids : (k,) int64 flagged cells (increasing); lab : (k,) integer their cluster;
     slot : (n_lab,) int64; cell_size, target_size : (n_cells,) float64, m; cen :
     (k, 3) float64 centroids of the flagged cells, m, or empty: then every centroid is the
     mean of the first n_corners nodes of row ids[k] of ``cells`` (one block) at
-    ``points`` (bitwise as ``Mesh.centroids``), no (k, 3) array; w : (k,) float64
-    weights (|volume|); outputs per slot: size, target (s,), lo, hi, wsum (s, 3), first
-    (s, max_ids), n_first (s,).
+    ``points`` (bitwise as ``Mesh.centroids``), no (k, 3) array; volume : (n_cells,)
+    float64 signed volumes, the weight of cell c |volume[c]|; outputs per slot: size,
+    target, vsum (s,), lo, hi, wsum (s, 3), first (s, max_ids), n_first (s,).
     """
     max_ids = first.shape[1]
     seen = np.zeros(size.shape[0], np.int64)
@@ -606,6 +611,7 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_
         c = ids[k]
         v = cell_size[c]
         t = target_size[c]
+        wk = abs(volume[c])
         for j in range(3):
             if given:
                 x3[j] = cen[k, j]
@@ -621,7 +627,8 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_
                 x = x3[j]
                 lo[s, j] = x
                 hi[s, j] = x
-                wsum[s, j] = x * w[k]
+                wsum[s, j] = x * wk
+            vsum[s] = wk
         else:
             m = size[s]
             if m == m and not v <= m:
@@ -637,7 +644,8 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_
                 m = hi[s, j]
                 if m == m and not x <= m:
                     hi[s, j] = x
-                wsum[s, j] += x * w[k]
+                wsum[s, j] += x * wk
+            vsum[s] += wk
         seen[s] += 1
         if n_first[s] < max_ids:
             first[s, n_first[s]] = c
