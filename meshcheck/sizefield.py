@@ -236,21 +236,41 @@ class SizeField:
 
 def _cell_density(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> np.ndarray:
     """(n_cells,) regular cells per unit volume (area) at the corner mean of h^-d."""
-    dens = []
-    e = 3 if mesh.dim == 3 else 2
-    if kernels.use_compiled(mesh.n_cells):
-        from .kernels import sizefield as _ks
-        with np.errstate(divide="ignore", invalid="ignore"):  # the same powers, per node
-            hp = np.ascontiguousarray(np.asarray(mesher_size, dtype=float) ** -float(e))
-        dens = [_ks.corner_nanmean(b.cells, b.info.n_corners, hp) for b in mesh.blocks]
-    else:
-        for b, c in _corners(mesh):
-            with np.errstate(divide="ignore", invalid="ignore"):
-                dens.append(np.nanmean(mesher_size[c] ** -float(e), axis=1))
-    unit = REGULAR_TET if mesh.dim == 3 else 4.0 / math.sqrt(3.0)
+    powers = _node_powers(mesh, mesher_size)
+    dens = [_block_density(b.cells, b.info.n_corners, mesher_size, powers, mesh.dim)
+            for b in mesh.blocks]
     out = dens[0] if len(dens) == 1 else np.concatenate(dens) if dens else np.zeros(0)
-    out *= unit  # a new array either way: scaled in place
+    out *= _unit_density(mesh)  # a new array either way: scaled in place
     return out
+
+
+def _unit_density(mesh: Mesh) -> float:
+    """Regular cells of unit size per unit volume (3D) or area (2D)."""
+    return REGULAR_TET if mesh.dim == 3 else 4.0 / math.sqrt(3.0)
+
+
+def _node_powers(mesh: Mesh, mesher_size: np.ndarray) -> np.ndarray | None:
+    """(n_points,) h^-d for the compiled corner means, or None on the numpy path."""
+    if not kernels.use_compiled(mesh.n_cells):
+        return None
+    with np.errstate(divide="ignore", invalid="ignore"):  # the same powers, per node
+        return np.ascontiguousarray(np.asarray(mesher_size, dtype=float) **
+                                    -float(3 if mesh.dim == 3 else 2))
+
+
+def _block_density(cells: np.ndarray, n_corners: int, mesher_size: np.ndarray,
+                   powers: np.ndarray | None, dim: int) -> np.ndarray:
+    """(m,) corner mean of h^-d over the cells' corners, ignoring NaN (unscaled)."""
+    if powers is not None:
+        from .kernels import sizefield as _ks
+        return _ks.corner_nanmean(cells, n_corners, powers)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.nanmean(mesher_size[cells[:, :n_corners]] ** -float(3 if dim == 3 else 2),
+                          axis=1)
+
+
+#: cells whose densities :func:`estimate_cells` holds at a time
+_DENSITY_CHUNK = 1 << 18
 
 
 def _boundary_integral(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> float:
@@ -286,11 +306,20 @@ def estimate_cells(mesh: Mesh, topo: Topology, mesher_size: np.ndarray,
     gmsh's, for the mesh's dimension).
     """
     a, b = factors if factors is not None else GMSH_COUNT[3 if mesh.dim == 3 else 2]
-    d = _cell_density(mesh, topo, mesher_size)  # a new array, >= 0 or NaN / inf
-    ok = np.isfinite(d)
-    np.multiply(d, topo.cell_volume, out=d)
-    np.abs(d, out=d)  # |volume| * density, in place
-    vol_sum = np.sum(d) if ok.all() else np.sum(d[ok])
+    # sum of |volume| x density over the cells of finite density, a chunk at a time
+    powers = _node_powers(mesh, mesher_size)
+    unit = _unit_density(mesh)
+    vol_sum = 0.0
+    for blk, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
+        for lo in range(0, len(blk), _DENSITY_CHUNK):
+            hi = min(lo + _DENSITY_CHUNK, len(blk))
+            d = _block_density(blk.cells[lo:hi], blk.info.n_corners, mesher_size, powers,
+                               mesh.dim)
+            ok = np.isfinite(d)
+            d *= unit
+            np.multiply(d, topo.cell_volume[off + lo:off + hi], out=d)
+            np.abs(d, out=d)
+            vol_sum += float(np.sum(d) if ok.all() else np.sum(d[ok]))
     return float(a * vol_sum + b * _boundary_integral(mesh, topo, mesher_size))
 
 

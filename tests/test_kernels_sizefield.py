@@ -161,6 +161,18 @@ def test_cell_density_and_count_match(monkeypatch, name):
     assert np.isfinite(ref).any()
     e_ref, e_got = _both(monkeypatch, lambda: estimate_cells(mesh, topo, h))
     assert e_got == pytest.approx(e_ref, rel=1e-12)
+    # the count sums the cells a chunk at a time: the same as the whole-array integral
+    import meshcheck.sizefield as S
+    from meshcheck.sizefield import GMSH_COUNT, _boundary_integral
+
+    a, b = GMSH_COUNT[3 if mesh.dim == 3 else 2]
+    ok = np.isfinite(ref)
+    whole = a * np.sum(np.abs(ref[ok] * topo.cell_volume[ok])) + b * _boundary_integral(
+        mesh, topo, h)
+    assert e_ref == pytest.approx(whole, rel=1e-12)
+    monkeypatch.setattr(S, "_DENSITY_CHUNK", 7)
+    small = _both(monkeypatch, lambda: estimate_cells(mesh, topo, h))
+    assert small == pytest.approx([e_ref, e_got], rel=1e-12)
 
 
 def test_cell_density_all_nan_cell(monkeypatch):
