@@ -326,7 +326,7 @@ def build_adjacency(mesh: Mesh, topo: Topology) -> Adjacency:
         fe = face_edges[face_edges >= 0]
         faces_per_edge = np.bincount(fe, minlength=len(edges))
         face_per_node = np.bincount(fn[fn >= 0], minlength=n_pts)
-        chi_face = 1 - topo.faces.count
+        chi_face = 1 - topo.faces.count.astype(np.int64)
         chi_edge = 1 - faces_per_edge + cells_per_edge
         chi_vertex = 1 - edge_per_node + face_per_node - cell_per_node
     else:

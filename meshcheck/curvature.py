@@ -374,7 +374,7 @@ def _patches(n: int, pairs: np.ndarray, compiled: bool) -> tuple[int, np.ndarray
     of ``pairs`` (k, 2), numbered by their smallest item (scipy's numbering)."""
     if compiled:
         from .kernels import topology as kt
-        parent = np.arange(n, dtype=kt.index_dtype(n))
+        parent = np.arange(n, dtype=np.int64)  # int64 labels, as documented
         return kt.components_pairs(parent, np.ascontiguousarray(pairs))
     from scipy import sparse
     from scipy.sparse.csgraph import connected_components

@@ -341,8 +341,8 @@ class Faces:
         instead of kept (16 bytes per face, 147 MiB for 4.8M tetrahedra).
     cells : (n_f, 2) global ids of the cells on each side (-1 for none), of
         :func:`index_type` (int32 unless an index exceeds it).
-    count : (n_f,) int32 number of cells sharing the face (1 boundary, 2 interior,
-        more = non-manifold).
+    count : (n_f,) uint8 number of cells sharing the face (1 boundary, 2 interior,
+        more = non-manifold; 255 stands for 255 or more); cast before arithmetic.
     mesh : the mesh the faces belong to (not compared, not shown).
     """
 
@@ -509,7 +509,7 @@ def _group_faces(mesh: Mesh, size: int, edges: Edges | None):
     two = count >= 2
     cells[two, 1] = _row_owner(order[starts[two] + 1], widths, lengths, offsets)
     return (_row_local(first, widths, lengths), cells.astype(index_type(mesh.n_cells)),
-            count.astype(np.int32))
+            np.minimum(count, 255).astype(np.uint8))
 
 
 def _row_local(first: np.ndarray, widths, lengths) -> np.ndarray:
@@ -623,8 +623,8 @@ class Topology:
     """Everything meshcheck derives from connectivity.
 
     edges, faces : see :class:`Edges`, :class:`Faces` (faces empty for 2D models).
-    component : (n_cells,) int64 connected component of each cell (through shared
-        faces in 3D, shared edges in 2D).
+    component : (n_cells,) int32 (int64 from 2**31 cells) connected component of each
+        cell (through shared faces in 3D, shared edges in 2D).
     component_volume : (n_comp,) float64 m^3 (m^2 in 2D).
     component_extent : (n_comp,) float64 bounding-box diagonal, metres.
     cell_volume : (n_cells,) float64 signed volume from the corners.
@@ -812,7 +812,7 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     dup = _duplicate_nodes(mesh.points, used, edges, rel_tol)
     dup_cells = _duplicate_cells(mesh)
     n_comp, comp = _components(mesh, faces, edges)
-    comp = comp.astype(np.int64)
+    comp = comp.astype(index_type(mesh.n_cells))  # as the compiled path's labels
     lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
     return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)
 
@@ -1213,7 +1213,7 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
     f0 = np.cumsum([0] + n_fs[:-1])
     local = np.empty(n_f, np.uint8)
     cells = np.empty((n_f, 2), index_type(mesh.n_cells))
-    count = np.empty(n_f, np.int32)
+    count = np.empty(n_f, np.uint8)
     thread_map(lambda i: kt.tri_emit_range(ptr, packed, shift, local, cells, count,
                                            *ranges[i], int(f0[i])),
                range(parts), parallel=parts > 1)
@@ -1243,7 +1243,7 @@ def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
     n_f = kt.sort_buckets(ptr, bkey, brow, n)
     first = np.empty(n_f, np.int64)
     cells = np.empty((n_f, 2), index_type(mesh.n_cells))
-    count = np.empty(n_f, np.int32)
+    count = np.empty(n_f, np.uint8)
     kt.face_emit(ptr, bkey, brow, first, cells, count, *layout)
     return first, cells, count
 
@@ -1348,5 +1348,6 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
     else:
         n_comp, comp = 0, np.zeros(0, np.int64)
     del parent
+    comp = comp.astype(index_type(mesh.n_cells), copy=False)  # as the numpy path's
     lo, hi = _per_label_bbox_compiled(mesh.points, mesh, comp, n_comp)
     return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)

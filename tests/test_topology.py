@@ -257,6 +257,19 @@ def test_index_type_is_int32_while_indices_fit():
 
 
 @pytest.mark.parametrize("path", ["numpy", "numba"])
+def test_face_counts_saturate_at_255(path, monkeypatch):
+    # 300 copies of one tetrahedron: each of its faces has 300 cells, counted as 255 (a
+    # one-byte count), still non-manifold; two copies: 2
+    monkeypatch.setenv("MESHCHECK_KERNELS", path)
+    pts = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]], float)
+    for copies, expected in ((300, 255), (2, 2)):
+        cells = np.tile(np.arange(4), (copies, 1))
+        topo = build_topology(Mesh(pts, (CellBlock("tetra", cells, np.ones(copies)),)))
+        assert topo.faces.count.tolist() == [expected] * 4
+        assert len(topo.nonmanifold_faces) == (4 if copies > 2 else 0)
+
+
+@pytest.mark.parametrize("path", ["numpy", "numba"])
 def test_index_arrays_are_int32(path, monkeypatch):
     # int32 index arrays halve the memory of the largest arrays of an audit
     monkeypatch.setenv("MESHCHECK_KERNELS", path)
@@ -264,8 +277,9 @@ def test_index_arrays_are_int32(path, monkeypatch):
     topo = build_topology(mesh)
     e, f = topo.edges, topo.faces
     for a in (e.nodes, e.mid, e.incidence, e.incidence_starts, *e.cell_edges, f.nodes,
-              f.cells, f.count):
+              f.cells, topo.component):
         assert a.dtype == np.int32
+    assert f.count.dtype == np.uint8  # one byte, saturating (see the next test)
     # the same edges as a Python set of node pairs built from the int64 cells
     cells = mesh.blocks[0].cells
     pairs = {tuple(sorted((int(c[a]), int(c[b])))) for c in cells

@@ -31,6 +31,9 @@ def index_dtype(n: int):
     return np.int32 if n < 2**31 - 1 else np.int64
 
 
+#: largest face count kept (``Faces.count`` is one byte: more cells read as this many)
+COUNT_MAX = 255
+
 @njit
 def mark_used(cells, used):
     """used[node] = True for every node of ``cells`` (m, k) int64; False when a node
@@ -425,7 +428,8 @@ def face_fill(cells, table, row0, fill, bkey, brow):
 def face_emit(ptr, bkey, brow, first, cells, count, bounds, widths, offsets):
     """Read the buckets sorted by :func:`sort_buckets` off: first (n_f,) first row of
     every face, cells (n_f, 2)
-    owners of its first two rows (-1 for none), count (n_f,) rows sharing it."""
+    owners of its first two rows (-1 for none), count (n_f,) rows sharing it (at most
+    :data:`COUNT_MAX`)."""
     f = -1
     for b in range(ptr.shape[0] - 1):
         for i in range(ptr[b], ptr[b + 1]):
@@ -438,7 +442,8 @@ def face_emit(ptr, bkey, brow, first, cells, count, bounds, widths, offsets):
             else:
                 if count[f] == 1:
                     cells[f, 1] = _owner(brow[i], bounds, widths, offsets)
-                count[f] += 1
+                if count[f] < COUNT_MAX:  # saturates (a one-byte count)
+                    count[f] += 1
 
 
 # ---------------------------------------------------------------------------
@@ -803,7 +808,8 @@ def tri_emit_range(ptr, packed, shift, local, cells, count, b0, b1, f0):
             else:
                 if count[f] == 1:
                     cells[f, 1] = g
-                count[f] += 1
+                if count[f] < COUNT_MAX:  # saturates (a one-byte count)
+                    count[f] += 1
 
 # ---------------------------------------------------------------------------
 # components, volumes, duplicates
@@ -820,10 +826,10 @@ def _find(parent, x):
 @njit
 def _labels(parent):
     """Component label of every item, numbered by their smallest item (as scipy's
-    connected_components): (n_labels, (n,) int64 labels)."""
+    connected_components): (n_labels, (n,) labels of parent's integer type)."""
     n = parent.shape[0]
-    label = np.full(n, -1, np.int64)
-    out = np.empty(n, np.int64)
+    label = np.full(n, -1, parent.dtype)
+    out = np.empty(n, parent.dtype)
     k = 0
     for c in range(n):
         r = _find(parent, c)
