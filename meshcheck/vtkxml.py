@@ -36,7 +36,7 @@ import numpy as np
 
 from .kernels import use_compiled
 
-__all__ = ["write_vtu", "Deferred", "VTK_CELL_TYPES"]
+__all__ = ["write_vtu", "Deferred", "Chunked", "VTK_CELL_TYPES"]
 
 #: meshio cell type -> VTK cell type id (vtkCellType.h)
 VTK_CELL_TYPES = {"triangle": 5, "quad": 9, "tetra": 10, "hexahedron": 12, "wedge": 13,
@@ -96,6 +96,37 @@ class Deferred:
         return arr
 
 
+class Chunked(Deferred):
+    """A 1-D array written a piece at a time (uncompressed files): ``part(lo, hi)`` makes
+    its items lo..hi-1 (of ``dtype``); compressed files make it whole (``part(0, n)``)."""
+
+    def __init__(self, part, dtype, n: int):
+        super().__init__(lambda: part(0, n), dtype)
+        self.part, self.n = part, int(n)
+
+    def __len__(self) -> int:
+        """Size in bytes."""
+        return self.n * self.dtype.itemsize
+
+    def __getitem__(self, span: slice) -> np.ndarray:
+        """Bytes ``span`` (a slice with step 1) as a uint8 array, made from the items
+        that hold them."""
+        i, j, _ = span.indices(len(self))
+        size = self.dtype.itemsize
+        lo, hi = i // size, -(-j // size)
+        got = np.ascontiguousarray(self.part(lo, hi), dtype=self.dtype)
+        if got.shape != (hi - lo,):
+            raise ValueError(f"chunk {lo}..{hi} has shape {got.shape}")
+        return got.view(np.uint8)[i - lo * size:j - lo * size]
+
+
+def _raw(values):
+    """The bytes of an array (a uint8 view) or of a :class:`Chunked` (itself)."""
+    if isinstance(values, Chunked):
+        return values
+    return values.reshape(-1).view(np.uint8)
+
+
 def quoteattr(data: str) -> str:
     """``xml.sax.saxutils.quoteattr`` (the same text; tested against it) without
     importing xml.sax, which pulls in urllib and http (35 ms per process)."""
@@ -125,10 +156,10 @@ def _stored(arr: np.ndarray):
     """Base64 pieces of one uncompressed array: a UInt64 byte count and the raw bytes as
     one base64 stream (VTK's layout without a compressor), encoded in pieces of
     :data:`_CHUNK` bytes (a multiple of 3, so the pieces join into that one stream)."""
-    raw = memoryview(arr.reshape(-1).view(np.uint8))
+    raw = _raw(arr)
     n = len(raw)
     head = np.array([n], dtype="<u8").tobytes()
-    yield binascii.b2a_base64(head + bytes(raw[:1]), newline=False)  # 9 bytes: no padding
+    yield binascii.b2a_base64(head + raw[:1].tobytes(), newline=False)  # 9 bytes: no padding
     for i in range(1, n, _CHUNK):
         yield binascii.b2a_base64(raw[i:i + _CHUNK], newline=False)
 
@@ -158,7 +189,7 @@ class _Pieces:
     def stored(self, arr: np.ndarray):
         """(characters, piece) of one uncompressed array, as :func:`_stored`: a piece is
         bytes (the first 9 bytes, by binascii) or (future of the text, its buffer)."""
-        raw = arr.reshape(-1).view(np.uint8)
+        raw = _raw(arr)
         n = len(raw)
         head = np.array([n], dtype="<u8").tobytes()
         first = binascii.b2a_base64(head + raw[:1].tobytes(), newline=False)
@@ -204,12 +235,18 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     off_t = np.int32 if n_conn < 2**31 else np.int64
 
     # the cells' arrays are made when their turn comes (after the cell data), not held
-    # while the other arrays are written (4.8M tetrahedra: 97 MiB)
-    def connectivity():
-        if len(blocks) == 1:  # one cast, no concatenation
-            return np.asarray(blocks[0][1]).astype(idx, copy=False).reshape(-1)
-        return np.concatenate([np.asarray(c).astype(idx, copy=False).ravel()
-                               for _, c in blocks]) if blocks else np.zeros(0, idx)
+    # while the other arrays are written; the connectivity a piece at a time (4.8M
+    # tetrahedra: 73 MiB in Int32)
+    starts = np.cumsum([0] + [np.asarray(c).size for _, c in blocks])
+
+    def connectivity(lo, hi):
+        parts = []
+        for (_, c), a, b in zip(blocks, starts[:-1], starts[1:]):
+            if a < hi and b > lo:
+                flat = np.asarray(c).reshape(-1)
+                parts.append(flat[max(lo - a, 0):min(hi, b) - a].astype(idx, copy=False))
+        return parts[0] if len(parts) == 1 else (np.concatenate(parts) if parts else
+                                                 np.zeros(0, idx))
 
     def offsets():
         out = np.empty(n_cells, off_t)
@@ -257,7 +294,7 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     xml.append("<Points>\n")
     add("Points", points, 3, n_pts)
     xml.append("</Points>\n<Cells>\n")
-    add("connectivity", Deferred(connectivity, idx), 1, n_conn)
+    add("connectivity", Chunked(connectivity, idx, n_conn), 1, n_conn)
     add("offsets", Deferred(offsets, off_t), 1, n_cells)
     add("types", Deferred(types, np.uint8), 1, n_cells)
     xml.append('</Cells>\n</Piece>\n</UnstructuredGrid>\n<AppendedData encoding="base64">\n_')
@@ -307,7 +344,8 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
             for k in order:
                 name, values, rows = arrays[k]
                 head[where[k]:where[k] + _SLOT] = f'offset="{at}"'.ljust(_SLOT).encode()
-                if isinstance(values, Deferred):
+                if isinstance(values, Deferred) and not (level == 0 and
+                                                         isinstance(values, Chunked)):
                     values = values.array(rows, name)
                 if level > 0:
                     stream = ((len(p), p) for p in _deflated(values, level, pool))

@@ -372,3 +372,33 @@ def test_attribute_quoting_equals_the_standard_library():
     for text in ["plain", "a&b", "<tag>", 'say "hi"', "it's", "both ' and \"", "tab\there",
                  "new\nline\r", "&amp;", "", "ünïcödé \u2264 p", "'\"&<>\t\n\r"]:
         assert quoteattr(text) == reference(text), text
+
+
+def test_chunked_bytes_equal_the_whole_array():
+    # any byte span of a Chunked source equals that span of the array it stands for
+    from meshcheck.vtkxml import Chunked
+
+    whole = np.random.default_rng(2).integers(-2**31, 2**31, 101).astype(np.int32)
+    made = []
+    src = Chunked(lambda lo, hi: made.append((lo, hi)) or whole[lo:hi], np.int32, len(whole))
+    raw = whole.view(np.uint8)
+    assert len(src) == raw.size
+    for i, j in [(0, 1), (1, 112), (3, 5), (111, 404), (400, 404), (0, 404), (7, 7)]:
+        assert np.array_equal(src[i:j], raw[i:j])
+    assert max(hi - lo for lo, hi in made) <= 101
+
+
+@pytest.mark.parametrize("mode", ["numpy", "numba"])
+def test_level0_connectivity_in_pieces_across_blocks(tmp_path, monkeypatch, mode):
+    # the connectivity is made a piece at a time: pieces of 111 bytes straddle its Int32
+    # items and the border of the two blocks; meshio reads the cells back
+    from meshcheck import vtkxml
+    monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 37)
+    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+    rng = np.random.default_rng(9)
+    pts = rng.random((50, 3))
+    tets, hexes = rng.integers(0, 50, (31, 4)), rng.integers(0, 50, (17, 8))
+    path = write_vtu(tmp_path / "x.vtu", pts, [("tetra", tets), ("hexahedron", hexes)],
+                     level=0)
+    back = meshio.read(path)
+    assert np.array_equal(back.cells[0].data, tets) and np.array_equal(back.cells[1].data, hexes)
