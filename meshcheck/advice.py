@@ -105,7 +105,8 @@ class Advice:
     cell_size : (n_cells,) longest edge of each cell, m.
     cell_distance : (n_cells,) propagation distance L used, m.
     cell_speed : (n_cells,) sound speed, m/s.
-    edge_limit : (n_e,) highest usable frequency of each edge at the allowed order, Hz.
+    edge_limit : (n_e,) float32 (:data:`LIMIT_DTYPE`) highest usable frequency of each
+        edge at the allowed order, Hz.
     edge_order : (n_e,) lowest order meeting the target at ``fmax`` (pmax+1 = none),
         int8 (:func:`order_dtype`; cast before arithmetic that may exceed it).
     cell_order : (n_cells,) the same per cell.
@@ -554,7 +555,7 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
                                                   parallel=len(h) > 100_000), start=1):
         edge_order[(edge_order > pmax) & carries] = p
         if f_e is not None:
-            edge_limit = f_e
+            edge_limit = f_e.astype(LIMIT_DTYPE)
     cell_limit = cell_limit.astype(LIMIT_DTYPE)  # stored as the compiled path stores them
     np.maximum.accumulate(cell_limit, axis=1, out=cell_limit)
     fmax = np.float64(fmax)  # compared in float64 (a Python float would be cast to float32)
@@ -621,7 +622,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     cell_order = np.empty(n_cells, order_dtype(pmax))
     refine = np.empty(n_cells, bool)
     edge_order = np.empty(n_e, order_dtype(pmax))
-    edge_limit = np.empty(n_e)
+    edge_limit = np.empty(n_e, LIMIT_DTYPE)
 
     # the limits at every order of the cells' longest edges (about half the edges, each
     # shared by about two cells), computed once per edge with the edges' orders into one

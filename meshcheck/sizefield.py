@@ -98,15 +98,21 @@ _NODE_MIN_CHUNK = 1 << 18
 
 
 def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
-    """:func:`node_min` of several (n_cells,) fields (compiled: one pass over the cells)."""
-    vs = [np.asarray(v, dtype=float) for v in fields]
+    """:func:`node_min` of several (n_cells,) fields (compiled: one pass over the cells);
+    a field may also be a function (lo, hi) -> its values of cells lo..hi-1, made a
+    chunk at a time on the compiled path."""
+    n = mesh.n_cells
+    compiled = kernels.use_compiled(n)
+    vs = [(v if compiled else np.asarray(v(0, n), dtype=float)) if callable(v) else
+          np.asarray(v, dtype=float) for v in fields]
     outs = np.full((len(vs), mesh.n_points), np.inf)
-    if kernels.use_compiled(mesh.n_cells):
+    if compiled:
         from .kernels import sizefield as _ks
         for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
             for s in range(0, len(b), _NODE_MIN_CHUNK):  # the fields stacked a chunk at a time
                 e = min(s + _NODE_MIN_CHUNK, len(b))
-                v2 = np.stack([v[off + s:off + e] for v in vs]) if vs else np.zeros((0, e - s))
+                v2 = (np.stack([v(off + s, off + e) if callable(v) else v[off + s:off + e]
+                                for v in vs]) if vs else np.zeros((0, e - s)))
                 _ks.node_min_block(outs, b.cells[s:e], b.info.n_corners, v2)
     else:
         for out, v in zip(outs, vs):
@@ -335,8 +341,11 @@ def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
     p = advice.settings.allowed_order if order is None else int(order)
     cell_t = cell_target_size(advice, p, mesh, topo)
     cap = topo.cell_extent() if h_max is None else np.full(mesh.n_cells, float(h_max))
-    target, cap_node, current = _node_mins(mesh, [np.where(np.isfinite(cell_t), cell_t, cap),
-                                                  cap, advice.cell_size])
+    def capped(lo, hi):  # the targets, the cap where there is none (made per chunk)
+        t = cell_t[lo:hi]
+        return np.where(np.isfinite(t), t, cap[lo:hi])
+
+    target, cap_node, current = _node_mins(mesh, [capped, cap, advice.cell_size])
     raw = np.minimum(target, cap_node)
     geo = np.broadcast_to(np.inf, (mesh.n_points,))  # no limit: one read-only inf
     if geometry_limit is not None:
