@@ -275,7 +275,8 @@ def count_dofs(mesh: Mesh, topo: Topology, orders: np.ndarray,
         orders = np.asarray(orders, dtype=np.int64)
         for b in mesh.blocks:
             used[b.cells[:, :b.info.n_corners]] = True
-    edge_p = np.ones(len(topo.edges), np.int64)
+    # the edges' orders (at most 16): one byte each on the compiled path
+    edge_p = np.ones(len(topo.edges), np.int8 if compiled else np.int64)
     interior = 0
     for bi, (b, ce) in enumerate(zip(mesh.blocks, topo.edges.cell_edges)):
         o = orders[mesh.block_offsets[bi]:mesh.block_offsets[bi + 1]]
@@ -349,8 +350,8 @@ def directional_orders(mesh: Mesh, topo: Topology, edge_order: np.ndarray,
     o = cell_direction_orders(mesh, topo, edge_order, max_order)
     iso = o.max(axis=1)
     o_iso = np.where(o > 0, iso[:, None], 0)
-    dims = np.concatenate([np.full(len(b), b.info.dim) for b in mesh.blocks]) if mesh.blocks \
-        else np.zeros(0, int)
+    dims = np.concatenate([np.full(len(b), b.info.dim, np.int8) for b in mesh.blocks]) \
+        if mesh.blocks else np.zeros(0, np.int8)
     lowest = np.where(dims == 2, o[:, :2].min(axis=1), o.min(axis=1))
     aniso = int(np.count_nonzero(lowest != iso))
     rows = _face_rows(mesh, topo)  # shared by both counts

@@ -202,7 +202,7 @@ def limit_gradation(mesh: Mesh, topo: Topology, size: np.ndarray, gradation: flo
         from scipy.sparse.csgraph import dijkstra
         g = sparse.csr_matrix((vals, (rows, cols)), shape=(n + 1, n + 1))
         dist = dijkstra(g, directed=True, indices=n)[:n]
-    out = gradation * dist
+    out = np.multiply(dist, gradation, out=dist)  # in place: no second (n_points,) array
     out[~np.isfinite(out)] = np.nan
     _mid_means(mesh, out[None])  # mid-nodes (no corner of any edge): their edge ends' mean
     return out
@@ -346,7 +346,7 @@ def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
         return np.where(np.isfinite(t), t, cap[lo:hi])
 
     target, cap_node, current = _node_mins(mesh, [capped, cap, advice.cell_size])
-    raw = np.minimum(target, cap_node)
+    raw = np.minimum(target, cap_node, out=cap_node)  # the cap's buffer reused
     geo = np.broadcast_to(np.inf, (mesh.n_points,))  # no limit: one read-only inf
     if geometry_limit is not None:
         geo = np.asarray(geometry_limit(mesh, topo), dtype=float)
