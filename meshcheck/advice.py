@@ -97,10 +97,9 @@ class Advice:
     """Frequency limits per order and the advice at the upper frequency.
 
     limit_rows : (n_rows, pmax) float32 (:data:`LIMIT_DTYPE`) highest usable frequency
-        per order p =
-        1..pmax (non-decreasing in p), Hz, of every cell (``limit_row`` None) or of
-        every limit row: cells share the row of their longest edge (about half as many
-        rows as cells in a tetrahedral mesh); see :attr:`cell_limit`.
+        per order p = 1..pmax (non-decreasing in p), Hz, of every cell (``limit_row``
+        None) or of every limit row: cells share the row of their longest edge (about
+        half as many rows as cells in a tetrahedral mesh); see :attr:`cell_limit`.
     limit_row : (n_cells,) integer row of every cell in ``limit_rows``, or None.
     cell_size : (n_cells,) longest edge of each cell, m.
     cell_distance : (n_cells,) propagation distance L used, m.

@@ -237,13 +237,13 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     # the cells' arrays are made when their turn comes (after the cell data), not held
     # while the other arrays are written; the connectivity a piece at a time (4.8M
     # tetrahedra: 73 MiB in Int32)
-    starts = np.cumsum([0] + [np.asarray(c).size for _, c in blocks])
+    flats = [np.ascontiguousarray(c).reshape(-1) for _, c in blocks]  # views, normally
+    starts = np.cumsum([0] + [len(f) for f in flats])
 
     def connectivity(lo, hi):
         parts = []
-        for (_, c), a, b in zip(blocks, starts[:-1], starts[1:]):
+        for flat, a, b in zip(flats, starts[:-1], starts[1:]):
             if a < hi and b > lo:
-                flat = np.asarray(c).reshape(-1)
                 parts.append(flat[max(lo - a, 0):min(hi, b) - a].astype(idx, copy=False))
         return parts[0] if len(parts) == 1 else (np.concatenate(parts) if parts else
                                                  np.zeros(0, idx))
