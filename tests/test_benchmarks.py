@@ -15,7 +15,8 @@ def test_bench_audit_small(tmp_path):
                          capture_output=True, text=True, timeout=600)
     assert out.returncode == 0, out.stderr[-2000:]
     text = out.stdout
-    for line in ("ratio audit / meshio.read", "ratio sweep 1000 / 10 frequencies",
+    for line in ("ratio audit / meshio.read", "ratio audit 1000 / 10 frequencies",
+                 "ratio sweep 1000 / 10 frequencies",
                  "peak memory of the audit"):
         assert line in text
 
