@@ -136,10 +136,12 @@ def _mid_means(mesh: Mesh, outs: np.ndarray) -> np.ndarray | None:
     if not quad:
         return None
     mid = np.zeros(mesh.n_points, bool)
+    compiled = kernels.use_compiled(mesh.n_cells)
+    if compiled:
+        from .kernels import sizefield as _ks
     for b in quad:  # each block from the values before its own mid-nodes are set
         e = b.info.edges
-        if kernels.use_compiled(mesh.n_cells):
-            from .kernels import sizefield as _ks
+        if compiled:
             e = np.ascontiguousarray(e)
             # read from the values before this block's mid-nodes are set: the array
             # itself when they are no corner of any cell (one block, checked), else a copy
@@ -260,8 +262,12 @@ def _node_powers(mesh: Mesh, mesher_size: np.ndarray) -> np.ndarray | None:
     if not kernels.use_compiled(mesh.n_cells):
         return None
     with np.errstate(divide="ignore", invalid="ignore"):  # the same powers, per node
-        return np.ascontiguousarray(np.asarray(mesher_size, dtype=float) **
-                                    -float(3 if mesh.dim == 3 else 2))
+        return np.ascontiguousarray(np.asarray(mesher_size, dtype=float) ** -_dims(mesh.dim))
+
+
+def _dims(dim: int) -> float:
+    """The exponent d of the density h^-d: 3 for volume meshes, 2 for plane ones."""
+    return 3.0 if dim == 3 else 2.0
 
 
 def _block_density(cells: np.ndarray, n_corners: int, mesher_size: np.ndarray,
@@ -271,8 +277,7 @@ def _block_density(cells: np.ndarray, n_corners: int, mesher_size: np.ndarray,
         from .kernels import sizefield as _ks
         return _ks.corner_nanmean(cells, n_corners, powers)
     with np.errstate(divide="ignore", invalid="ignore"):
-        return np.nanmean(mesher_size[cells[:, :n_corners]] ** -float(3 if dim == 3 else 2),
-                          axis=1)
+        return np.nanmean(mesher_size[cells[:, :n_corners]] ** -_dims(dim), axis=1)
 
 
 #: cells whose densities :func:`estimate_cells` holds at a time

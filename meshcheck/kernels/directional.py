@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import njit
+from .topology import block_of
 
 __all__ = ["block_face_keys", "group_edge_pairs", "face_dofs", "face_dofs_by_sides", "edge_orders"]
 
@@ -114,14 +115,6 @@ def face_dofs(gid, n_faces, tri, cell, ca, cb, orders):
 
 
 @njit
-def _block_of(offs, c):
-    b = 0
-    while offs[b + 1] <= c:
-        b += 1
-    return b
-
-
-@njit
 def _local_edge(cell_edges, c, e):
     """Local index of edge id ``e`` among the edges of cell ``c`` (-1 if absent)."""
     for k in range(cell_edges.shape[1]):
@@ -145,7 +138,7 @@ def face_dofs_by_sides(fcells, fcount, flocal, cell_edges, offs, sides, n_sides,
     total = 0
     for f in range(fcells.shape[0]):
         c0 = fcells[f, 0]
-        b0 = _block_of(offs, c0)
+        b0 = block_of(offs, c0)
         lf = flocal[f]
         s0 = sides[b0, lf, 0]
         s1 = sides[b0, lf, 1]
@@ -162,7 +155,7 @@ def face_dofs_by_sides(fcells, fcount, flocal, cell_edges, offs, sides, n_sides,
         pb = np.int64(orders[c0, group[b0, s1]])
         if fcount[f] >= 2:
             c1 = fcells[f, 1]
-            b1 = _block_of(offs, c1)
+            b1 = block_of(offs, c1)
             ka = _local_edge(cell_edges, c1, ea)
             kb = _local_edge(cell_edges, c1, eb)
             if ka >= 0:

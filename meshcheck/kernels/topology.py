@@ -49,11 +49,19 @@ def mark_used(cells, used):
 
 
 @njit
-def _owner(r, bounds, widths, offsets):
-    """Global cell id of row ``r``."""
+def block_of(bounds, r):
+    """Index b of the block holding item r: bounds[b] <= r < bounds[b + 1] (bounds
+    ascending; the few blocks of a mesh are scanned in order)."""
     b = 0
     while r >= bounds[b + 1]:
         b += 1
+    return b
+
+
+@njit
+def _owner(r, bounds, widths, offsets):
+    """Global cell id of row ``r``."""
+    b = block_of(bounds, r)
     return offsets[b] + (r - bounds[b]) // widths[b]
 
 
