@@ -22,7 +22,7 @@ from .gradation import SizeJumps, size_jumps
 from .job import Job, Media, resolve_media
 from .layers import LayerCheck, check_layer
 from .mesh import Mesh
-from .quality import CellQuality, QualityLimits, mesh_quality, out_of_range, summarise
+from .quality import CellFlags, CellQuality, QualityLimits, mesh_quality, out_of_range, summarise
 from .reading import read_mesh
 from .threads import MAX_WORKERS, thread_map
 from .topology import Topology, build_topology
@@ -105,7 +105,8 @@ def media_of(mesh: Mesh, settings: AuditSettings) -> Media:
 class AuditResult:
     """Everything the audit measured and advises.
 
-    quality : the cells' metrics, kept in float32 (the VTU's type); quality_flags and
+    quality : the cells' metrics, kept in float32 (the VTU's type); quality_flags (one
+        bit per metric and cell, :class:`meshcheck.quality.CellFlags`) and
         quality_summary (:func:`meshcheck.quality.summarise`: statistics and worst
         cells) come from the float64 values, before they are narrowed.
     blocking : True when a validity finding makes any solve on the mesh wrong.
@@ -126,7 +127,7 @@ class AuditResult:
     min_scaled_jacobian: np.ndarray
     findings: list[Finding]
     quality: CellQuality
-    quality_flags: dict[str, np.ndarray]
+    quality_flags: CellFlags
     advice: Advice
     sweep: Sweep
     refine_clusters: list[Cluster]

@@ -87,6 +87,7 @@ __all__ = [
     "mesh_quality",
     "QualityLimits",
     "out_of_range",
+    "CellFlags",
     "METRIC_BAD",
     "metric_stats",
     "summarise",
@@ -649,18 +650,63 @@ class QualityLimits:
         return QualityLimits(**{f: new.get(f, getattr(self, f)) for f in FAMILIES})
 
 
-def out_of_range(quality: CellQuality, mesh: Mesh, limits: QualityLimits) -> dict[str, np.ndarray]:
+class CellFlags(Mapping):
+    """{metric: (n_cells,) bool} of the cells outside their acceptable range, stored as
+    one bit per metric in a single (n_cells,) unsigned array (an eighth of the memory
+    of one bool array per metric); ``flags[name]`` unpacks one metric's array."""
+
+    def __init__(self, names: tuple[str, ...], bits: np.ndarray):
+        if len(names) > 8 * bits.dtype.itemsize:
+            raise ValueError(f"{len(names)} metrics do not fit in {bits.dtype} bits")
+        self.names, self.bits = tuple(names), bits
+
+    @classmethod
+    def empty(cls, names: tuple[str, ...], n_cells: int) -> "CellFlags":
+        kind = next(t for t in (np.uint8, np.uint16, np.uint32, np.uint64)
+                    if 8 * np.dtype(t).itemsize >= len(names))
+        return cls(names, np.zeros(n_cells, kind))
+
+    def _bit(self, name: str):
+        try:
+            return self.bits.dtype.type(1 << self.names.index(name))
+        except ValueError:
+            raise KeyError(name) from None
+
+    def set(self, name: str, lo: int, mask: np.ndarray) -> None:
+        """Flag the cells ``lo + i`` where ``mask[i]`` (filling while the audit runs)."""
+        part = self.bits[lo:lo + len(mask)]
+        np.bitwise_or(part, self._bit(name), out=part, where=mask)
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        return (self.bits & self._bit(name)) != 0
+
+    def count(self, name: str) -> int:
+        """Number of flagged cells of one metric."""
+        return int(np.count_nonzero(self.bits & self._bit(name)))
+
+    def __iter__(self):
+        return iter(self.names)
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    def __repr__(self) -> str:
+        return f"CellFlags({', '.join(f'{k}: {self.count(k)}' for k in self.names)})"
+
+
+def out_of_range(quality: CellQuality, mesh: Mesh, limits: QualityLimits) -> CellFlags:
     """Cells whose metric lies outside the acceptable range of their family.
 
-    Returns {metric: (n_cells,) bool} for every metric of ``quality``;
-    undefined (NaN) values are never flagged, infinite ones (degenerate
-    cells) always are when the range is bounded on that side.  A value within
-    1e-9 (relative) of a bound counts as inside, so that rounding does not flag
-    ideal cells (a regular tet's radius ratio evaluates to 1 - 1e-16).
+    Returns {metric: (n_cells,) bool} for every metric of ``quality`` (a
+    :class:`CellFlags`, one bit per metric); undefined (NaN) values are never
+    flagged, infinite ones (degenerate cells) always are when the range is bounded
+    on that side.  A value within 1e-9 (relative) of a bound counts as inside, so
+    that rounding does not flag ideal cells (a regular tet's radius ratio evaluates
+    to 1 - 1e-16).
     """
     if quality.n_cells != mesh.n_cells:
         raise ValueError(f"quality has {quality.n_cells} cells, mesh has {mesh.n_cells}")
-    out = {k: np.zeros(mesh.n_cells, dtype=bool) for k in quality.names}
+    out = CellFlags.empty(quality.names, mesh.n_cells)
     offsets = mesh.block_offsets
     for blk, lo_off, hi_off in zip(mesh.blocks, offsets[:-1], offsets[1:]):
         fam = family_of(blk.type)
@@ -669,7 +715,7 @@ def out_of_range(quality: CellQuality, mesh: Mesh, limits: QualityLimits) -> dic
             if lo == -_INF and hi == _INF:
                 continue
             v = quality[k][lo_off:hi_off]
-            out[k][lo_off:hi_off] = (v < lo - _BOUND_TOL * abs(lo)) | (v > hi + _BOUND_TOL * abs(hi))
+            out.set(k, int(lo_off), (v < lo - _BOUND_TOL * abs(lo)) | (v > hi + _BOUND_TOL * abs(hi)))
     return out
 
 

@@ -122,9 +122,10 @@ def _quality(res: AuditResult, scale: float) -> dict:
             continue
         st = dict(st)
         worst, values, bad = st.pop("worst"), st.pop("worst_values"), METRIC_BAD.get(name, "high")
-        flags = res.quality_flags.get(name)
+        flags = res.quality_flags
         out[name] = {
-            **st, "out_of_range": int(np.count_nonzero(flags)) if flags is not None else 0,
+            **st, "out_of_range": (flags.count(name) if hasattr(flags, "count") else
+                                   int(np.count_nonzero(flags[name]))) if name in flags else 0,
             "worse_when": bad,
             "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
             "worst": [{"cell": int(i), "value": float(v),

@@ -609,3 +609,37 @@ def test_narrowed_metrics_are_the_float32_roundings_and_broadcasts_stay_broadcas
         assert np.array_equal(got[k], v.astype(np.float32), equal_nan=True), k
     assert got["b"].strides == (0,)  # still one value, not n
     assert got["a"].base is got["c"].base  # one (2, n) block for the metrics with values
+
+
+def test_packed_flags_equal_direct_comparisons():
+    """The one-bit-per-metric flags unpack to the comparisons with the family bounds
+    made directly on the float64 metrics (the documented rule: NaN never flagged, a
+    1e-9 relative tolerance at a bound), on a distorted mesh with many flagged cells."""
+    from dataclasses import replace
+
+    from meshcheck.quality import CellFlags, family_of
+    from tests.meshes import tet_box
+
+    mesh = tet_box((5, 4, 3))
+    rng = np.random.default_rng(11)
+    mesh = replace(mesh, points=mesh.points + rng.uniform(-0.08, 0.08, mesh.points.shape))
+    q, lim = mesh_quality(mesh), QualityLimits()
+    flags = out_of_range(q, mesh, lim)
+    assert isinstance(flags, CellFlags) and flags.bits.dtype == np.uint8
+    assert set(flags) == set(q.names) and len(flags) == len(q.names)
+    fam = family_of("tetra")
+    some = 0
+    for k in q.names:
+        lo, hi = lim.bounds(fam, k)
+        v = q[k]
+        want = (v < lo - 1e-9 * abs(lo)) | (v > hi + 1e-9 * abs(hi))
+        assert np.array_equal(flags[k], want), k
+        assert flags.count(k) == int(want.sum())
+        some += int(want.sum())
+    assert some > 0
+    with pytest.raises(KeyError):
+        flags["no_such_metric"]
+    wide = CellFlags.empty(tuple(f"m{i}" for i in range(9)), 4)
+    assert wide.bits.dtype == np.uint16
+    wide.set("m8", 1, np.array([True, False, True]))
+    assert wide["m8"].tolist() == [False, True, False, True] and not wide["m0"].any()
