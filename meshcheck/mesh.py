@@ -16,13 +16,29 @@ from .cells import CELL_TYPES, CellType
 __all__ = ["CellBlock", "Mesh"]
 
 
+def _narrow_ints(a) -> np.ndarray:
+    """``a`` as a C-contiguous int32 array when its values fit, else int64 (integers
+    only: a float array of whole numbers, e.g. meshio's region data, is converted)."""
+    a = np.asarray(a)
+    if a.dtype != np.int32 and a.size:
+        if a.dtype.kind not in "iu":
+            a = a.astype(np.int64)
+        lo, hi = a.min(), a.max()
+        if -2**31 <= lo and hi <= 2**31 - 1:
+            return np.ascontiguousarray(a, dtype=np.int32)
+        return np.ascontiguousarray(a, dtype=np.int64)
+    return np.ascontiguousarray(a, dtype=np.int32)
+
+
 @dataclass(frozen=True)
 class CellBlock:
     """Cells of one type.
 
     type : meshio cell type name (a key of ``cells.CELL_TYPES``).
-    cells : (m, n_nodes) int64 node indices, meshio/VTK node order.
-    region : (m,) int64 region tag per cell (0 when the file has none).
+    cells : (m, n_nodes) node indices, meshio/VTK node order; int32 when every index
+        fits (half the memory of int64; build keys from them in int64), else int64.
+    region : (m,) region tag per cell (0 when the file has none); int32 when every tag
+        fits, else int64.
     """
 
     type: str
@@ -30,8 +46,8 @@ class CellBlock:
     region: np.ndarray
 
     def __post_init__(self):
-        cells = np.ascontiguousarray(self.cells, dtype=np.int64)
-        region = np.ascontiguousarray(self.region, dtype=np.int64).reshape(-1)
+        cells = _narrow_ints(self.cells)
+        region = _narrow_ints(self.region).reshape(-1)
         object.__setattr__(self, "cells", cells)
         object.__setattr__(self, "region", region)
         if cells.ndim != 2 or cells.shape[1] != CELL_TYPES[self.type].n_nodes:
@@ -98,7 +114,8 @@ class Mesh:
 
     @cached_property
     def region(self) -> np.ndarray:
-        """(n_cells,) int64 region tag of every cell (one block: its own array)."""
+        """(n_cells,) region tag of every cell, int32 unless a tag needs int64 (one
+        block: its own array)."""
         if not self.blocks:
             return np.zeros(0, np.int64)
         if len(self.blocks) == 1:

@@ -254,7 +254,7 @@ def build_edges(mesh: Mesh) -> Edges:
         e = b.info.edges
         a = b.cells[:, e[:, 0]]
         c = b.cells[:, e[:, 1]]
-        lo = np.minimum(a, c)
+        lo = np.minimum(a, c, dtype=np.int64)  # keys in int64 (cells may be int32)
         np.maximum(a, c, out=a)
         del c
         lo *= n
@@ -469,7 +469,7 @@ def _tri_keys(mesh: Mesh, tables, edges: Edges | None):
             k += np.maximum(np.maximum(x, y), z)
         else:
             g.sort(axis=2)
-            k = g[..., 0] * n
+            k = g[..., 0] * np.int64(n)  # int64 keys (cells may be int32)
             k += g[..., 1]
             k *= n
             k += g[..., 2]

@@ -145,7 +145,8 @@ def assert_same_raw(a, b):
     assert np.array_equal(a.points, b.points)
     assert [x.type for x in a.blocks] == [x.type for x in b.blocks]
     for x, y in zip(a.blocks, b.blocks):
-        assert x.cells.dtype == y.cells.dtype == np.int64
+        # ours in int32 (every row number fits: the mesh's index type), meshio's int64
+        assert x.cells.dtype == np.int32 and y.cells.dtype in (np.int32, np.int64)
         assert np.array_equal(x.cells, y.cells), x.type
         assert np.array_equal(x.region, y.region), x.type
     assert a.region_names == b.region_names
@@ -570,3 +571,38 @@ def test_damaged(tmp_path, files, name, make, match):
     with pytest.raises(MeshReadError, match=r"^\S*bad\.msh: [^\n]*" + match + r"[^\n]*; [^\n]+$"):
         read_raw(path)
     assert _sha(path) == before
+
+
+_ONE_TET = """$MeshFormat
+4.1 0 8
+$EndMeshFormat
+$Nodes
+1 4 1 4
+3 1 0 4
+1
+2
+3
+4
+0 0 0
+1 0 0
+0 1 0
+0 0 1
+$EndNodes
+$Elements
+1 1 1 1
+3 1 4 1
+1 1 2 3 {last}
+$EndElements
+"""
+
+
+@pytest.mark.parametrize("last", [2**32 + 1, 2**32 + 4, 2**31 + 3])
+def test_node_tags_past_int32_never_wrap_into_a_node(tmp_path, last):
+    # the rows are kept in int32; a tag of 2**32 + 1 must not become row 0
+    path = tmp_path / "t.msh"
+    path.write_text(_ONE_TET.format(last=4))
+    raw = read_msh41(path)
+    assert raw.blocks[0].cells.dtype == np.int32 and raw.blocks[0].cells.tolist() == [[0, 1, 2, 3]]
+    path.write_text(_ONE_TET.format(last=last))
+    with pytest.raises(MeshReadError, match=f"refers to node {last}, which is not in"):
+        read_msh41(path)

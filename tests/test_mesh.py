@@ -42,3 +42,20 @@ def test_centroids_of_some_cells_equal_the_full_array(name, monkeypatch):
         assert np.array_equal(got, m.centroids[ids]), path
         with pytest.raises(IndexError):
             m.centroids_of([m.n_cells])
+
+
+def test_cell_block_keeps_indices_and_tags_in_int32_when_they_fit():
+    from meshcheck.mesh import CellBlock
+
+    small = CellBlock("triangle", np.array([[0, 1, 2]], np.int64), np.array([7.0]))
+    assert small.cells.dtype == np.int32 and small.region.dtype == np.int32
+    assert small.cells.tolist() == [[0, 1, 2]] and small.region.tolist() == [7]
+    # one index or tag past int32: the whole array stays int64, values unchanged
+    big = CellBlock("triangle", np.array([[0, 1, 2**31]]), np.array([-2**31 - 1]))
+    assert big.cells.dtype == np.int64 and big.cells[0, 2] == 2**31
+    assert big.region.dtype == np.int64 and big.region[0] == -2**31 - 1
+    edge = CellBlock("triangle", np.array([[0, 1, 2**31 - 1]], np.uint64), np.array([-2**31]))
+    assert edge.cells.dtype == np.int32 and edge.cells[0, 2] == 2**31 - 1
+    assert edge.region.dtype == np.int32 and edge.region[0] == -2**31
+    empty = CellBlock("tetra", np.zeros((0, 4), np.int64), np.zeros(0))
+    assert empty.cells.shape == (0, 4) and empty.cells.dtype == np.int32

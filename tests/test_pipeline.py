@@ -46,7 +46,7 @@ def _spread(mesh, stride):
 
 
 @pytest.mark.parametrize("path", ["numpy", "numba"])
-@pytest.mark.parametrize("kind", ["tetra10", "hexahedron"])
+@pytest.mark.parametrize("kind", ["tetra", "tetra10", "hexahedron"])
 def test_node_numbers_past_the_int32_key_range_give_the_same_audit(kind, path, monkeypatch):
     # the topology's index arrays are int32: keys such as a * (n + 1) + b built from them
     # overflow int32 once n > 46,340; spreading the node numbers over 0..~10**5 makes such
@@ -55,13 +55,14 @@ def test_node_numbers_past_the_int32_key_range_give_the_same_audit(kind, path, m
     from meshcheck.cost import job_cost, job_cost_dict
 
     monkeypatch.setenv("MESHCHECK_KERNELS", path)
-    mesh = tet10_box((3, 2, 2)) if kind == "tetra10" else hex_box((4, 3, 3))
+    mesh = {"tetra": lambda: tet_box((4, 3, 3)), "tetra10": lambda: tet10_box((3, 2, 2)),
+            "hexahedron": lambda: hex_box((4, 3, 3))}[kind]()
     stride = 100_000 // mesh.n_points
     far = _spread(mesh, stride)
     assert far.n_points ** 2 > 2**33
     settings = AuditSettings((300.0, 600.0, 900.0))
     a, b = audit(mesh, settings), audit(far, settings)
-    assert b.topology.edges.nodes.dtype == np.int32
+    assert b.topology.edges.nodes.dtype == np.int32 and far.blocks[0].cells.dtype == np.int32
     assert np.array_equal(a.topology.edges.nodes * stride, b.topology.edges.nodes)
     assert np.array_equal(a.topology.faces.cells, b.topology.faces.cells)
     assert np.array_equal(a.topology.edges.length, b.topology.edges.length)
@@ -69,9 +70,14 @@ def test_node_numbers_past_the_int32_key_range_give_the_same_audit(kind, path, m
                                             if f.code != "unused_nodes"]
     assert np.array_equal(a.advice.cell_limit, b.advice.cell_limit)
     assert np.array_equal(a.sweep.dofs, b.sweep.dofs)
+    assert np.array_equal(a.sweep.order_counts, b.sweep.order_counts)
+    assert [c.cells for c in a.coarsen_clusters] == [c.cells for c in b.coarsen_clusters]
     if kind == "tetra10":
         assert np.array_equal(a.curvature.kappa, b.curvature.kappa, equal_nan=True)
         assert a.quadratic.low == b.quadratic.low
+    elif kind == "tetra":
+        assert np.array_equal(a.curvature.kappa, b.curvature.kappa, equal_nan=True)
+        assert np.array_equal(a.topology.duplicate_cells, b.topology.duplicate_cells)
     else:
         assert np.array_equal(a.directional.orders, b.directional.orders)
     freqs = settings.frequencies

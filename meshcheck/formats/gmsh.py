@@ -561,12 +561,14 @@ def _node_lookup(src: _Src, tags: np.ndarray):
 
 
 def _elements(src: _Src, tags: np.ndarray):
-    """[(meshio type, entity tag, (m, k) int64 rows in meshio order or None)] per block,
-    None for the types dropped unread-into-memory (vertices, lines)."""
+    """[(meshio type, entity tag, (m, k) node rows in meshio order or None)] per block:
+    rows int32 unless the nodes need int64, None for the types dropped unread-into-memory
+    (vertices, lines)."""
     nb, n, _, _ = src.header("the $Elements header")
     if nb < 0 or n < 0 or n * (2 * src.dsize if src.binary else 4) > src.remaining():
         src.short(f"{n:,} elements in {nb:,} blocks declared, {src.remaining():,} bytes left")
     look = _node_lookup(src, tags)
+    itype = np.int32 if len(tags) <= 2**31 - 1 else np.int64
     blocks = []
     total = 0
     for b in range(nb):
@@ -593,17 +595,21 @@ def _elements(src: _Src, tags: np.ndarray):
         keep = not name.startswith(("vertex", "line"))
         perm = GMSH_TO_VTK.get(name)
         cols = slice(1, None) if perm is None else 1 + np.asarray(perm)
-        out = np.empty((m, k), np.int64) if keep else None
+        # node rows in int32 when every row number fits (the mesh's own index type),
+        # looked up chunk by chunk in int64 so that no tag wraps into a valid row
+        out = np.empty((m, k), itype) if keep else None
         step = max(1, _ELEMENT_CHUNK // (8 * (k + 1)))
         for lo in range(0, m, step):
             hi = min(m, lo + step)
             data = src.rows(hi - lo, k + 1, src.st, f"the elements of {what}")
-            rows = out[lo:hi] if keep else np.empty((hi - lo, k), np.int64)
+            rows = out[lo:hi] if keep and itype == np.int64 else np.empty((hi - lo, k), np.int64)
             if not look(data[:, cols], rows):
                 i, j = np.argwhere(rows < 0)[0]
                 src.fail(f"element {int(data[i, 0])} (in {what}) refers to node "
                          f"{int(data[i, 1:][j] if perm is None else data[i, cols[j]])}, which "
                          "is not in the $Nodes section")
+            if keep and itype != np.int64:
+                out[lo:hi] = rows
             del data, rows
         blocks.append((name, etag, out, m))
     if total != n:

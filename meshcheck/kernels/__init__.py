@@ -63,7 +63,7 @@ def _warm_up() -> None:
 
     from . import topology as kt
 
-    kt.mark_used(np.zeros((1, 1), np.int64), np.zeros(1, bool))
+    kt.mark_used(np.zeros((1, 1), np.int32), np.zeros(1, bool))
 
 
 def warm_up_async(file_bytes: int):
