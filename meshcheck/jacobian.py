@@ -485,7 +485,7 @@ def compiled_extremes(points: np.ndarray, cells: np.ndarray, table: np.ndarray,
     from .kernels import cells as _kc
 
     pts = np.ascontiguousarray(points, dtype=np.float64)
-    c = np.ascontiguousarray(cells, dtype=np.int64)
+    c = np.ascontiguousarray(cells)  # int32 or int64 node indices, as the mesh keeps them
     m = len(c)
     q, n, j = np.nonzero(table)                       # in (point, node, column) order
     ptr = np.searchsorted(q, np.arange(len(table) + 1)).astype(np.int64)

@@ -395,7 +395,7 @@ def _compiled_quality(points: np.ndarray, cells: np.ndarray, cell_type: str, out
     fam = family_of(cell_type)
     edges = _KERNEL_EDGES
     pts = np.ascontiguousarray(points, dtype=np.float64)
-    c = np.ascontiguousarray(cells, dtype=np.int64)   # the kernels read the corner columns only
+    c = np.ascontiguousarray(cells)  # int32 or int64; the kernels read the corner columns only
     if fam == "tet":
         _kc.tet_quality(pts, c, out, off)
     elif fam == "hex":
