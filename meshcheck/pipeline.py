@@ -105,6 +105,8 @@ def media_of(mesh: Mesh, settings: AuditSettings) -> Media:
 class AuditResult:
     """Everything the audit measured and advises.
 
+    min_scaled_jacobian : (n_cells,) float32 smallest scaled Jacobian of each cell (the
+        validity findings come from the float64 values, before they are narrowed).
     quality : the cells' metrics, kept in float32 (the VTU's type); quality_flags (one
         bit per metric and cell, :class:`meshcheck.quality.CellFlags`) and
         quality_summary (:func:`meshcheck.quality.summarise`: statistics and worst
@@ -195,6 +197,7 @@ def audit(mesh: Mesh, settings: AuditSettings,
         sj, q, flags, summary, t_sj, t_q = side.result() if side is not None else cell_checks()
     stage("validity")
     findings = check_validity(mesh, topo, sj, settings.validity)
+    sj = sj.astype(np.float32)  # judged in float64, kept in the VTU's type (half the memory)
     findings += [Finding(code, NOTE, message, count) for code, message, count in mesh.notes]
     done("validity")
     t["validity"] += t_sj

@@ -477,8 +477,9 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
 
     f32, i8 = np.float32, np.int8
     lazy = vtkxml.Deferred  # each array made when written, then dropped (1 array in memory)
-    data = {"region": lazy(lambda: m.region.astype(np.int32), np.int32),
-            "min_scaled_jacobian": lazy(lambda: res.min_scaled_jacobian.astype(f32), f32),
+    data = {"region": lazy(lambda: m.region.astype(np.int32, copy=False), np.int32),
+            "min_scaled_jacobian": lazy(lambda: res.min_scaled_jacobian.astype(f32, copy=False),
+                                        f32),
             "order_needed": lazy(lambda: a.cell_order.astype(i8, copy=False), i8),
             "refine": lazy(lambda: a.refine.astype(i8), i8),
             "coarsen": lazy(lambda: a.coarsen.astype(i8), i8),
