@@ -104,7 +104,7 @@ def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
     n = mesh.n_cells
     compiled = kernels.use_compiled(n)
     vs = [(v if compiled else np.asarray(v(0, n), dtype=float)) if callable(v) else
-          np.asarray(v, dtype=float) for v in fields]
+          np.asarray(v) if compiled else np.asarray(v, dtype=float) for v in fields]
     outs = np.full((len(vs), mesh.n_points), np.inf)
     if compiled:
         from .kernels import sizefield as _ks
@@ -166,7 +166,7 @@ def cell_target_size(advice, order: int, mesh: Mesh, topo: Topology) -> np.ndarr
 
     s = advice.settings
     if order == s.allowed_order:
-        return np.asarray(advice.target_size, dtype=float)
+        return advice.target_size  # float32; the callers take slices
     if not 1 <= order <= 16:
         raise SettingsError(f"order {order} of the size field must be between 1 and 16")
     table = usable_kh(s.target, max(order, advice.pmax))
