@@ -624,7 +624,8 @@ class Topology:
 
     edges, faces : see :class:`Edges`, :class:`Faces` (faces empty for 2D models).
     component : (n_cells,) int32 (int64 from 2**31 cells) connected component of each
-        cell (through shared faces in 3D, shared edges in 2D).
+        cell (through shared faces in 3D, shared edges in 2D); for one component a
+        read-only broadcast of 0 (no (n_cells,) array held).
     component_volume : (n_comp,) float64 m^3 (m^2 in 2D).
     component_extent : (n_comp,) float64 bounding-box diagonal, metres.
     cell_volume : (n_cells,) float64 signed volume from the corners.
@@ -823,6 +824,8 @@ def _topology_of(mesh: Mesh, edges: Edges, faces: Faces, used, vol, dup, dup_cel
     lo, hi (n_comp, 3))."""
     comp_vol = np.bincount(comp, weights=np.abs(vol), minlength=n_comp)
     extent = np.linalg.norm(hi - lo, axis=1)
+    if n_comp == 1:  # one part: every label 0, held as a broadcast (18 MiB at 4.8M cells)
+        comp = np.broadcast_to(np.zeros(1, comp.dtype), comp.shape)
     cracks = _cracks(mesh, faces, dup) if mesh.dim == 3 else np.zeros(0, np.int64)
     return Topology(
         edges=edges, faces=faces, component=comp, component_volume=comp_vol,

@@ -16,6 +16,9 @@ def test_hex_grid_counts(n):
     assert len(topo.faces) == 3 * n * n * (n + 1)
     assert topo.faces.boundary.sum() == 6 * n * n
     assert topo.n_components == 1
+    # one part: the labels are a read-only broadcast of 0, not an (n_cells,) array
+    assert topo.component.shape == (n ** 3,) and topo.component.strides == (0,)
+    assert not topo.component.any() and not topo.component.flags.writeable
 
 
 @pytest.mark.parametrize("n", [1, 3])
@@ -45,6 +48,7 @@ def test_two_separate_parts_are_two_components():
     mesh = Mesh(pts, (CellBlock("hexahedron", cells, np.ones(len(cells))),))
     topo = build_topology(mesh)
     assert topo.n_components == 2
+    assert np.array_equal(topo.component, np.repeat([0, 1], 8))
     assert np.allclose(topo.component_volume, [1.0, 1.0])
     assert len(topo.crack_faces) == 0 and len(topo.duplicate_nodes) == 0
 
