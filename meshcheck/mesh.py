@@ -38,7 +38,8 @@ class CellBlock:
     cells : (m, n_nodes) node indices, meshio/VTK node order; int32 when every index
         fits (half the memory of int64; build keys from them in int64), else int64.
     region : (m,) region tag per cell (0 when the file has none); int32 when every tag
-        fits, else int64.
+        fits, else int64; one tag for the whole block is held as a read-only broadcast
+        (no (m,) array).
     """
 
     type: str
@@ -47,7 +48,12 @@ class CellBlock:
 
     def __post_init__(self):
         cells = _narrow_ints(self.cells)
-        region = _narrow_ints(self.region).reshape(-1)
+        region = np.asarray(self.region).reshape(-1)
+        if region.size > 1 and (region.strides == (0,) or region.min() == region.max()):
+            # one tag (the common single-volume mesh): 18 MiB less at 4.8M cells
+            region = np.broadcast_to(_narrow_ints(region[:1]), region.shape)
+        else:
+            region = _narrow_ints(region)
         object.__setattr__(self, "cells", cells)
         object.__setattr__(self, "region", region)
         if cells.ndim != 2 or cells.shape[1] != CELL_TYPES[self.type].n_nodes:
@@ -129,6 +135,8 @@ class Mesh:
         r = self.region
         if not len(r):
             return np.zeros(0, np.int64)
+        if r.strides == (0,):  # one tag, held as a broadcast
+            return r[:1].astype(np.int64)
         lo, hi = int(r.min()), int(r.max())
         if hi - lo < 1 << 20:
             return (np.flatnonzero(np.bincount(r - lo, minlength=hi - lo + 1)) + lo

@@ -59,3 +59,24 @@ def test_cell_block_keeps_indices_and_tags_in_int32_when_they_fit():
     assert edge.region.dtype == np.int32 and edge.region[0] == -2**31
     empty = CellBlock("tetra", np.zeros((0, 4), np.int64), np.zeros(0))
     assert empty.cells.shape == (0, 4) and empty.cells.dtype == np.int32
+
+
+def test_one_tag_per_block_is_held_as_a_read_only_broadcast():
+    from meshcheck.mesh import CellBlock
+
+    cells = np.zeros((5, 3), np.int64)
+    one = CellBlock("triangle", cells, np.full(5, 4.0))        # float tags, as meshio gives
+    assert one.region.strides == (0,) and not one.region.flags.writeable
+    assert one.region.dtype == np.int32 and one.region.tolist() == [4] * 5
+    big = CellBlock("triangle", cells, np.full(5, 2**40))       # past int32: int64 broadcast
+    assert big.region.strides == (0,) and big.region.dtype == np.int64
+    assert big.region.tolist() == [2**40] * 5
+    again = CellBlock("triangle", cells, one.region)            # a broadcast stays one
+    assert again.region.strides == (0,) and again.region.tolist() == [4] * 5
+    mixed = CellBlock("triangle", cells, np.array([4, 4, 5, 4, 4]))
+    assert mixed.region.strides == (4,) and mixed.region.tolist() == [4, 4, 5, 4, 4]
+    mesh = Mesh(np.zeros((3, 3)), (one,))
+    assert mesh.region is one.region
+    assert mesh.region_tags.dtype == np.int64 and mesh.region_tags.tolist() == [4]
+    two = Mesh(np.zeros((3, 3)), (one, CellBlock("triangle", cells, np.full(5, 9))))
+    assert two.region.tolist() == [4] * 5 + [9] * 5 and two.region_tags.tolist() == [4, 9]
