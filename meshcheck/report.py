@@ -122,10 +122,9 @@ def _quality(res: AuditResult, scale: float) -> dict:
             continue
         st = dict(st)
         worst, values, bad = st.pop("worst"), st.pop("worst_values"), METRIC_BAD.get(name, "high")
-        flags = res.quality_flags
+        flags = res.quality_flags  # a CellFlags: counted without unpacking the bits
         out[name] = {
-            **st, "out_of_range": (flags.count(name) if hasattr(flags, "count") else
-                                   int(np.count_nonzero(flags[name]))) if name in flags else 0,
+            **st, "out_of_range": flags.count(name) if name in flags else 0,
             "worse_when": bad,
             "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
             "worst": [{"cell": int(i), "value": float(v),
