@@ -54,3 +54,18 @@ def test_bench_ab_compares_two_versions_by_alternating_runs():
     listed = subprocess.run(["git", "-C", str(ROOT), "worktree", "list"],
                             capture_output=True, text=True).stdout
     assert "meshcheck-ab-" not in listed  # the temporary worktree is removed
+
+
+@pytest.mark.skipif(not Path("/proc/self/statm").exists(), reason="reads /proc/self/statm")
+def test_stage_memory_prints_a_peak_per_stage_and_the_whole_run():
+    out = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "stage_memory.py"),
+                          str(ROOT / "sample_meshes" / "enclosure.msh"), "--runs", "1"],
+                         capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr[-2000:]
+    rows = {ln[:12].strip(): float(ln[12:]) for ln in out.stdout.splitlines()[1:]}
+    for stage in ("reading", "topology", "advice", "reports", "whole run"):
+        assert rows[stage] > 0, stage
+    # the whole run's peak is the highest stage peak, and the audit holds more than the
+    # interpreter did before reading
+    assert rows["whole run"] == max(v for k, v in rows.items() if k != "whole run")
+    assert rows["topology"] > rows["start"]
