@@ -181,14 +181,16 @@ def audit(mesh: Mesh, settings: AuditSettings,
     with ThreadPoolExecutor(max_workers=1) as pool:
         def cell_checks():
             t1 = time.perf_counter()
-            sj = min_scaled_jacobian(mesh)
-            t2 = time.perf_counter()
             # flags and statistics from the float64 metrics, which are then kept in
-            # float32 (the VTU's type; half the memory)
+            # float32 (the VTU's type; half the memory); the float64 Jacobians after
+            # them, so that the two float64 sets are never held together
             q = mesh_quality(mesh)
             flags = out_of_range(q, mesh, settings.quality)
             summary = summarise(q, parallel=False)  # beside the topology's threads
-            return sj, q.narrowed(np.float32), flags, summary, t2 - t1, time.perf_counter() - t2
+            q = q.narrowed(np.float32)
+            t2 = time.perf_counter()
+            sj = min_scaled_jacobian(mesh)
+            return sj, q, flags, summary, time.perf_counter() - t2, t2 - t1
 
         side = (pool.submit(cell_checks) if mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
                 else None)
