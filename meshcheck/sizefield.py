@@ -103,8 +103,13 @@ def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
     chunk at a time on the compiled path."""
     n = mesh.n_cells
     compiled = kernels.use_compiled(n)
-    vs = [(v if compiled else np.asarray(v(0, n), dtype=float)) if callable(v) else
-          np.asarray(v) if compiled else np.asarray(v, dtype=float) for v in fields]
+
+    def field(v):  # compiled: as given (functions made per chunk); numpy: whole float64
+        if compiled:
+            return v if callable(v) else np.asarray(v)
+        return np.asarray(v(0, n) if callable(v) else v, dtype=float)
+
+    vs = [field(v) for v in fields]
     outs = np.full((len(vs), mesh.n_points), np.inf)
     if compiled:
         from .kernels import sizefield as _ks
