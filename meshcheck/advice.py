@@ -89,6 +89,10 @@ LIMIT_DTYPE = np.float32
 SIZE_DTYPE = np.float32
 
 
+#: cells whose limit :meth:`Advice.limit_at` gathers at a time
+_TAKE_CHUNK = 1 << 18
+
+
 def order_dtype(pmax: int):
     """Integer type of the advice's orders (1..pmax + 1): int8 (one byte per edge and
     cell) unless pmax is above 126."""
@@ -155,9 +159,14 @@ class Advice:
             return self.limit_rows[:, p - 1].astype(np.float64 if dtype is None else dtype)
         out = np.empty(len(self.limit_row), np.float64 if dtype is None else dtype)
         # the column made contiguous (and cast) first: the gather's random reads then stay
-        # in a table of n_rows values (9 MB at 5M cells in float32) instead of whole rows
+        # in a table of n_rows values (9 MB at 5M cells in float32) instead of whole rows;
+        # gathered a chunk at a time: np.take casts int32 indices to intp and buffers its
+        # output when it checks bounds (54 MiB of scratch at 4.8M cells for float32)
         col = np.ascontiguousarray(self.limit_rows[:, p - 1], dtype=out.dtype)
-        return np.take(col, self.limit_row, out=out)
+        for lo in range(0, len(out), _TAKE_CHUNK):
+            hi = lo + _TAKE_CHUNK
+            np.take(col, self.limit_row[lo:hi], out=out[lo:hi])
+        return out
 
     def lowest_cell(self, p: int) -> int:
         """The first cell with the lowest limit at order p (1-based): ``np.argmin`` of

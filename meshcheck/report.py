@@ -482,9 +482,9 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
             "order_needed": lazy(lambda: a.cell_order.astype(i8, copy=False), i8),
             "refine": lazy(lambda: a.refine.astype(i8), i8),
             "coarsen": lazy(lambda: a.coarsen.astype(i8), i8),
-            "largest_edge": lazy(lambda: (a.cell_size / scale).astype(f32), f32),
-            "target_size": lazy(lambda: (a.target_size / scale).astype(f32), f32),
-            "coarsen_ratio": lazy(lambda: a.coarsen_ratio.astype(f32), f32)}
+            "largest_edge": lazy(lambda: (a.cell_size / scale).astype(f32, copy=False), f32),
+            "target_size": lazy(lambda: (a.target_size / scale).astype(f32, copy=False), f32),
+            "coarsen_ratio": lazy(lambda: a.coarsen_ratio.astype(f32, copy=False), f32)}
     for p in range(1, res.settings.advice.max_order + 1):
         data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.limit_at(p, f32), f32)
     for name, values in res.quality.metrics.items():

@@ -289,27 +289,38 @@ def _block_density(cells: np.ndarray, n_corners: int, mesher_size: np.ndarray,
 _DENSITY_CHUNK = 1 << 18
 
 
+#: boundary faces :func:`_boundary_integral` holds at a time (about 150 bytes each)
+_FACE_CHUNK = 1 << 15
+
+
 def _boundary_integral(mesh: Mesh, topo: Topology, mesher_size: np.ndarray) -> float:
     """int h^(1-d) over the boundary (faces with one cell in 3D, edges in 2D)."""
     P = mesh.points
-    if mesh.dim == 3:
-        f = topo.faces.nodes_of(topo.faces.boundary)
-        tri = f[:, 3] < 0
-        a = np.linalg.norm(np.cross(P[f[:, 1]] - P[f[:, 0]], P[f[:, 2]] - P[f[:, 0]]), axis=1) / 2
-        q = ~tri
-        if q.any():
-            fq = f[q]
-            a[q] = 0.5 * np.linalg.norm(np.cross(P[fq[:, 2]] - P[fq[:, 0]],
-                                                 P[fq[:, 3]] - P[fq[:, 1]]), axis=1)
-        h = mesher_size[np.maximum(f, 0)]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where(f >= 0, h ** -2.0, 0.0).sum(axis=1) / np.where(tri, 3, 4)
-    else:
-        cnt = np.diff(np.append(topo.edges.incidence_starts, len(topo.edges.incidence)))
-        e = topo.edges.nodes[cnt == 1]
-        a = topo.edges.length[cnt == 1]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            w = 0.5 * (mesher_size[e[:, 0]] ** -1.0 + mesher_size[e[:, 1]] ** -1.0)
+    if mesh.dim == 3:  # the boundary faces a chunk at a time (bounded scratch)
+        ids = np.flatnonzero(topo.faces.boundary)
+        return float(sum(_face_integral(P, topo.faces.nodes_of(ids[s:s + _FACE_CHUNK]),
+                                        mesher_size) for s in range(0, len(ids), _FACE_CHUNK)))
+    cnt = np.diff(np.append(topo.edges.incidence_starts, len(topo.edges.incidence)))
+    e = topo.edges.nodes[cnt == 1]
+    a = topo.edges.length[cnt == 1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = 0.5 * (mesher_size[e[:, 0]] ** -1.0 + mesher_size[e[:, 1]] ** -1.0)
+    ok = np.isfinite(w) & np.isfinite(a)
+    return float(np.sum(a[ok] * w[ok]))
+
+
+def _face_integral(P: np.ndarray, f: np.ndarray, mesher_size: np.ndarray) -> float:
+    """Sum of area x mean h^-2 over boundary faces of corners f ((k, 4), -1 padded)."""
+    tri = f[:, 3] < 0
+    a = np.linalg.norm(np.cross(P[f[:, 1]] - P[f[:, 0]], P[f[:, 2]] - P[f[:, 0]]), axis=1) / 2
+    q = ~tri
+    if q.any():
+        fq = f[q]
+        a[q] = 0.5 * np.linalg.norm(np.cross(P[fq[:, 2]] - P[fq[:, 0]],
+                                             P[fq[:, 3]] - P[fq[:, 1]]), axis=1)
+    h = mesher_size[np.maximum(f, 0)]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where(f >= 0, h ** -2.0, 0.0).sum(axis=1) / np.where(tri, 3, 4)
     ok = np.isfinite(w) & np.isfinite(a)
     return float(np.sum(a[ok] * w[ok]))
 

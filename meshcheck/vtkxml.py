@@ -48,6 +48,7 @@ _VTK_TYPE = {np.dtype(np.int8): "Int8", np.dtype(np.uint8): "UInt8",
 _BLOCK = 1 << 21  # bytes per compressed block (blocks are compressed in parallel)
 _CHUNK = 3 << 20  # bytes per base64 piece of an uncompressed array (a multiple of 3)
 _BUFFERS = 6  # base64 buffers of the compiled level-0 path (6 x 4 MiB in flight at most)
+_OFFSETS_CHUNK = 1 << 20  # cells whose offsets are made at a time
 _SLOT = 32  # characters reserved in each DataArray tag for ``offset="..."`` and blank padding
 
 
@@ -253,7 +254,10 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
         at, end = 0, 0
         for _, c in blocks:
             k = np.asarray(c).shape[1]
-            out[at:at + len(c)] = np.arange(end + k, end + k * len(c) + 1, k, dtype=off_t)
+            for lo in range(0, len(c), _OFFSETS_CHUNK):  # no (n_cells,) temporary
+                hi = min(lo + _OFFSETS_CHUNK, len(c))
+                out[at + lo:at + hi] = np.arange(end + k * (lo + 1), end + k * hi + 1, k,
+                                                 dtype=off_t)
             at, end = at + len(c), end + k * len(c)
         return out
 

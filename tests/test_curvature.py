@@ -362,3 +362,12 @@ def test_curvature_fits_in_chunks_equal_one_pass(sphere, cylinder, monkeypatch):
         assert len(surf.triangles) > 3 * 37
         assert np.array_equal(whole.k1, parts.k1, equal_nan=True)
         assert np.array_equal(whole.k2, parts.k2, equal_nan=True)
+        # the enclosing radii of check_curvature are made in the same chunks: the same
+        # radii, curvatures and chord heights as in one pass
+        c = np.full(mesh.n_cells, 343.0)
+        one = check_curvature(mesh, topo, c, 2000.0, 0.01)
+        with monkeypatch.context() as m:
+            m.setattr(CV, "_FIT_CHUNK", 37)
+            many = check_curvature(mesh, topo, c, 2000.0, 0.01)
+        for name in ("rho", "kappa", "chord_height", "tolerance"):
+            assert np.array_equal(getattr(one, name), getattr(many, name)), name

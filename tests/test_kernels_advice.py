@@ -147,9 +147,13 @@ def test_advise_and_sweep_equal_the_numpy_reference(monkeypatch, name, setting):
     assert np.array_equal(np.unique(got.limit_row), np.arange(len(got.limit_rows)))
     if name.startswith("tet"):
         assert len(got.limit_rows) < 0.8 * mesh.n_cells
+    import meshcheck.advice as A
     for p in range(1, ref.pmax + 1):
         _same(ref.limit_at(p), got.limit_at(p), f"limit at {p}")
         _same(ref.limit_at(p, np.float32), got.limit_at(p, np.float32), f"float32 at {p}")
+        with monkeypatch.context() as m:  # the shared rows gathered 7 cells at a time
+            m.setattr(A, "_TAKE_CHUNK", 7)
+            _same(ref.limit_at(p), got.limit_at(p), f"limit at {p}, chunks")
     _same(ref.mesh_limit, got.mesh_limit, "mesh limit")
     for region in (mesh.region, np.arange(mesh.n_cells) % 3):  # runs, scattered
         want, have = ref.region_limit(region), got.region_limit(region)

@@ -391,9 +391,11 @@ def test_chunked_bytes_equal_the_whole_array():
 @pytest.mark.parametrize("mode", ["numpy", "numba"])
 def test_level0_connectivity_in_pieces_across_blocks(tmp_path, monkeypatch, mode):
     # the connectivity is made a piece at a time: pieces of 111 bytes straddle its Int32
-    # items and the border of the two blocks; meshio reads the cells back
+    # items and the border of the two blocks; the offsets are made 5 cells at a time;
+    # meshio reads the cells back (it splits the connectivity at the offsets)
     from meshcheck import vtkxml
     monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 37)
+    monkeypatch.setattr(vtkxml, "_OFFSETS_CHUNK", 5)
     monkeypatch.setenv("MESHCHECK_KERNELS", mode)
     rng = np.random.default_rng(9)
     pts = rng.random((50, 3))
