@@ -479,6 +479,24 @@ def test_warm_up_loads_numba_only_for_large_files():
         assert out.stdout.split() == want.split(), (size, extra, out.stdout)
 
 
+def test_kernels_load_without_scipy_linalg_and_numba_blas_still_works():
+    # numba's array functions would import scipy.linalg (26 MiB, 0.15 s) to look for BLAS:
+    # hidden while our kernels load; afterwards a jitted np.dot (BLAS, through numba's
+    # ensure_blas) still compiles and equals numpy, and scipy.linalg imports as usual
+    import subprocess
+    import sys
+
+    code = ("import sys, numpy as np; from meshcheck import kernels as k; "
+            "k._warm_up(); "
+            "print('scipy.linalg' in sys.modules, k._BLAS_MODULE in sys.modules); "
+            "import numba; f = numba.njit(lambda a, b: np.dot(a, b)); "
+            "a = np.arange(12.0).reshape(3, 4); b = np.ones((4, 2)); "
+            "print(np.array_equal(f(a, b), a @ b), 'scipy.linalg' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True,
+                         text=True)
+    assert out.stdout.split() == ["False", "False", "True", "True"], out.stdout + out.stderr
+
+
 def test_compiled_edges_count_their_incidence_only_when_asked(monkeypatch):
     # the compiled builder keeps no incidence (3D audits do not read it); the one counted
     # from the cell edges on first use is the numpy builder's, every cell kind

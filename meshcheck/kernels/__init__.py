@@ -84,10 +84,38 @@ def warm_up_async(file_bytes: int):
     return t
 
 
+#: the module numba's array functions import to look for BLAS (see :func:`_import_numba`)
+_BLAS_MODULE = "scipy.linalg.cython_blas"
+
+
+def _import_numba():
+    """Import numba and its array functions without scipy.linalg.
+
+    ``numba.np.arraymath`` imports :data:`_BLAS_MODULE` when numba first compiles or
+    loads a function, only to choose BLAS for ``np.correlate`` / ``np.convolve`` (its
+    ``_HAVE_BLAS``; without it they take numba's own loop).  That pulls in all of
+    scipy.linalg: 26 MiB resident and 0.15-0.18 s on the project's machine.  No kernel
+    of ours calls BLAS, so the module is hidden while numba's array functions load;
+    afterwards it imports as usual (numba's ``ensure_blas`` imports it again when a
+    jitted ``np.dot`` or ``np.linalg`` function is first typed)."""
+    import sys
+
+    hide = _BLAS_MODULE not in sys.modules and "numba.np.arraymath" not in sys.modules
+    if hide:
+        sys.modules[_BLAS_MODULE] = None  # import of it raises ImportError meanwhile
+    try:
+        import numba
+        import numba.np.arraymath  # noqa: F401
+    finally:
+        if hide and sys.modules.get(_BLAS_MODULE, 0) is None:
+            del sys.modules[_BLAS_MODULE]
+    return numba
+
+
 def njit(fn=None, **options):
     """``numba.njit`` with on-disk caching and the GIL released (usable as a bare
     decorator or with options, e.g. ``@njit(parallel=True)``)."""
-    import numba
+    numba = _import_numba()
 
     opts = {"cache": True, "nogil": True, **options}
     if fn is None:
