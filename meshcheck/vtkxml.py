@@ -47,7 +47,7 @@ _VTK_TYPE = {np.dtype(np.int8): "Int8", np.dtype(np.uint8): "UInt8",
              np.dtype(np.float32): "Float32", np.dtype(np.float64): "Float64"}
 _BLOCK = 1 << 21  # bytes per compressed block (blocks are compressed in parallel)
 _CHUNK = 3 << 20  # bytes per base64 piece of an uncompressed array (a multiple of 3)
-_BUFFERS = 6  # base64 buffers of the compiled level-0 path (6 x 4 MiB in flight at most)
+_BUFFERS = 4  # base64 buffers of the compiled level-0 path (4 x 4 MiB in flight at most)
 _OFFSETS_CHUNK = 1 << 20  # cells whose offsets are made at a time
 _SLOT = 32  # characters reserved in each DataArray tag for ``offset="..."`` and blank padding
 
@@ -360,6 +360,9 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
                 for size, piece in stream:
                     send(piece, writer)
                     at += size
+                # dropped before the next array is made: freed once its last pieces are
+                # written (not held beside the next one)
+                values = stream = None
         except _WriterStopped:
             pass  # its error is raised below
         finally:
