@@ -22,7 +22,7 @@ from .gradation import SizeJumps, size_jumps
 from .job import Job, Media, resolve_media
 from .layers import LayerCheck, check_layer
 from .mesh import Mesh
-from .quality import CellFlags, CellQuality, QualityLimits, mesh_quality, out_of_range, summarise
+from .quality import CellFlags, CellQuality, QualityLimits, checked_quality
 from .reading import read_mesh
 from .threads import MAX_WORKERS, thread_map
 from .topology import Topology, build_topology
@@ -181,13 +181,10 @@ def audit(mesh: Mesh, settings: AuditSettings,
     with ThreadPoolExecutor(max_workers=1) as pool:
         def cell_checks():
             t1 = time.perf_counter()
-            # flags and statistics from the float64 metrics, which are then kept in
-            # float32 (the VTU's type; half the memory); the float64 Jacobians after
-            # them, so that the two float64 sets are never held together
-            q = mesh_quality(mesh)
-            flags = out_of_range(q, mesh, settings.quality)
-            summary = summarise(q, parallel=False)  # beside the topology's threads
-            q = q.narrowed(np.float32)
+            # flags and statistics of the float64 metrics, which are kept in float32 (the
+            # VTU's type; half the memory; compiled: never held whole in float64); the
+            # float64 Jacobians after them, so that the two sets are never held together
+            q, flags, summary = checked_quality(mesh, settings.quality)
             t2 = time.perf_counter()
             sj = min_scaled_jacobian(mesh)
             return sj, q, flags, summary, time.perf_counter() - t2, t2 - t1

@@ -275,3 +275,69 @@ def test_metrics_not_defined_for_the_mesh_are_one_broadcast_nan(kind, monkeypatc
         assert (name in defined) == bool(np.isfinite(ref[name]).any()), name
         if name not in defined:
             assert got[name].strides == (0,) and got[name].shape == (mesh.n_cells,)
+
+
+# ------------------------------------------------------------------ the audit's cell checks
+def _whole_checks(mesh, limits):
+    """The cell checks as the audit made them before checked_quality: whole float64
+    metrics flagged and summarised, then narrowed."""
+    q = quality.mesh_quality(mesh)
+    flags = quality.out_of_range(q, mesh, limits)
+    return q.narrowed(np.float32), flags, quality.summarise(q, parallel=False)
+
+
+def _same_checks(want, got, what):
+    (q0, f0, s0), (q1, f1, s1) = want, got
+    assert f0.names == f1.names and np.array_equal(f0.bits, f1.bits), what
+    for k in quality.METRICS:
+        assert q1[k].dtype == np.float32 and not q1[k].flags.writeable, (what, k)
+        assert np.array_equal(q0[k], q1[k], equal_nan=True), (what, k)
+    assert s0.keys() == s1.keys(), what
+    for k in s0:
+        if s0[k] is None:
+            assert s1[k] is None, (what, k)
+            continue
+        a, b = dict(s0[k]), dict(s1[k])
+        assert np.array_equal(a.pop("worst"), b.pop("worst")), (what, k)
+        assert a == b, (what, k)  # floats bit for bit (== on the statistics)
+
+
+def _flat_tets():
+    """Regular-ish tetrahedra, one flattened to 1e-40 m: aspect ratios beyond float32's
+    range (its float32 value is inf, its float64 value finite)."""
+    rng = np.random.default_rng(5)
+    base = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0.3, 0.3, 1.0]])
+    X = base[None] + 0.05 * rng.normal(size=(40, 4, 3)) + 3.0 * np.arange(40)[:, None, None]
+    X[7] = base
+    X[7, 3, 2] = 1e-40  # the fourth corner 1e-40 m above the other three
+    return Mesh(X.reshape(-1, 3), (CellBlock("tetra", np.arange(160).reshape(40, 4),
+                                             np.zeros(40, np.int64)),))
+
+
+@pytest.mark.parametrize("case", ALL_TYPES + ["mixed 3D", "flat tet", "identical tets"])
+def test_chunked_cell_checks_equal_the_whole_float64_checks(case, monkeypatch):
+    # the compiled checked_quality never holds the float64 metrics whole: its flags,
+    # float32 values and statistics (taken from the float32 values and the few tied
+    # cells recomputed) equal those of the whole float64 metrics, bit for bit; also
+    # with the fallback (too many ties: the float64 metrics in one more pass), and in
+    # chunks of 7 cells across the blocks
+    from meshcheck.kernels import stats as KS
+    from meshcheck.quality import QualityLimits
+    from meshes import tet_box
+
+    mesh = {"mixed 3D": lambda: _mixed_mesh([t for t in ALL_TYPES if CELL_TYPES[t].dim == 3]),
+            "flat tet": _flat_tets, "identical tets": lambda: tet_box((3, 3, 3))}.get(
+        case, lambda: _mesh(case, m=50, seed=3))()
+    limits = QualityLimits()
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    with np.errstate(all="ignore"):
+        want = _whole_checks(mesh, limits)
+        _same_checks(want, quality.checked_quality(mesh, limits, chunk=7), case)
+        monkeypatch.setattr(KS, "TIE_MAX", 0)
+        _same_checks(want, quality.checked_quality(mesh, limits, chunk=7), case + " fallback")
+    if case == "flat tet":
+        ar = want[2]["aspect_ratio"]
+        assert 3.4e38 < ar["max"] < np.inf and want[0]["aspect_ratio"][7] == np.inf
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")  # the numpy path: the same sequence
+    with np.errstate(all="ignore"):
+        _same_checks(_whole_checks(mesh, limits), quality.checked_quality(mesh, limits), case)

@@ -185,3 +185,60 @@ def test_quality_metrics_of_generated_meshes(kind):
     assert seen >= 1
     if kind == "hex tangled":
         assert np.nanmin(metrics["scaled_jacobian"]) < 0
+
+
+# ---------------------------------------------------------------------------
+# statistics of float64 values known through their float32 rounding
+
+
+def _rounded(x: np.ndarray) -> np.ndarray:
+    """x's float32 values widened back, x itself beyond float32's range (the audit's
+    kept metrics, see quality.checked_quality)."""
+    with np.errstate(over="ignore"):
+        w = x.astype(np.float32).astype(np.float64)
+    big = np.isinf(w)
+    w[big] = x[big]
+    return w
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 10, 1000, 20_000])
+@pytest.mark.parametrize("bad", ["low", "high"])
+@pytest.mark.parametrize("k", [1, 10, 25])
+def test_summary_of_rounded_equals_the_float64_summary(n, bad, k):
+    # every array of the radix tests, and values that differ only below float32's
+    # resolution (all tied after rounding): the statistics and worst cells of x itself,
+    # bit for bit, from the rounding and the recomputed tied cells alone
+    arrays = _arrays(n, seed=n + 11)
+    rng = np.random.default_rng(n)
+    arrays["below float32 resolution"] = 1.0 + rng.integers(0, 40, n) * 2.0 ** -40
+    arrays["near float32 limit"] = rng.choice([-1e39, -3.3e38, 1.0, 3.3e38, 3.5e38, 1e300], n)
+    for name, x in arrays.items():
+        asked = []
+
+        def exact(ids, x=x):
+            ids = np.asarray(ids)
+            asked.append(len(ids))
+            return x[ids]
+
+        want = _metric_stats(x, bad, k)
+        got = KS.summary_of_rounded(_rounded(x), exact, bad, k, tie_max=n + k)
+        if want is None:
+            assert got is None, name
+            continue
+        assert set(got) == set(want), name
+        assert got["cells"] == want["cells"], name
+        for key in ("min", "p05", "median", "p95", "max"):
+            assert type(got[key]) is float
+            assert got[key] == want[key], (name, key, got[key], want[key])
+        assert got["worst"].dtype == np.int64
+        np.testing.assert_array_equal(got["worst"], want["worst"], err_msg=name)
+        if name in ("uniform", "normal", "heavy tail") and n >= 1000:
+            assert sum(asked) < 100, name  # spread values: a few cells recomputed
+
+
+def test_summary_of_rounded_raises_on_too_many_ties():
+    x = np.full(1000, 0.731)  # identical cells: every one tied at every rank
+    with pytest.raises(KS.TooManyTies):
+        KS.summary_of_rounded(_rounded(x), lambda ids: x[ids], "high", 10, tie_max=999)
+    got = KS.summary_of_rounded(_rounded(x), lambda ids: x[ids], "high", 10, tie_max=1000)
+    assert got["min"] == got["max"] == 0.731 and list(got["worst"]) == list(range(10))

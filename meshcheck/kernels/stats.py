@@ -32,7 +32,8 @@ import numpy as np
 
 from . import njit
 
-__all__ = ["metric_summary", "histogram", "refine_pass", "worst_cut"]
+__all__ = ["metric_summary", "summary_of_rounded", "TooManyTies", "histogram",
+           "refine_pass", "worst_cut"]
 
 _SIGN = np.uint64(0x8000000000000000)
 _EXP = np.uint64(0x7FF0000000000000)
@@ -392,34 +393,154 @@ def metric_summary(values: np.ndarray, bad: str, n_worst: int, *, nb1: int = NB1
     n, tab, hist1 = histogram(bits, nb1, sample, proto)
     if n == 0:
         return None
-    # np.percentile(v, [5, 50, 95]) with method "linear": the same index arithmetic
-    q = np.true_divide([5, 50, 95], 100)
-    virtual = (n - 1) * q
-    prev = np.floor(virtual)
-    nxt = prev + 1
-    above = virtual >= n - 1
-    prev[above] = -1
-    nxt[above] = -1
-    prev = prev.astype(np.intp)
-    nxt = nxt.astype(np.intp)
-    gamma = np.asanyarray(virtual - prev, dtype=virtual.dtype)
-    mid = n // 2
-    med = [mid - 1, mid] if n % 2 == 0 else [mid]
-    kk = min(n_worst, n)
-    ranks = [0, n - 1] + [int(r) % n for r in (*prev, *nxt)] + med
-    if kk:
-        ranks.append(kk - 1 if bad == "low" else n - kk)
-    ranks = np.unique(np.asarray(ranks, np.int64))
-    keys, worst = _select(bits, n, tab, hist1, ranks, kk, bad == "low", nb2, gather_max,
-                          worst_max, info)
-    at = dict(zip(ranks.tolist(), _values(keys)))
-    a = np.array([at[int(r) % n] for r in prev])
-    b = np.array([at[int(r) % n] for r in nxt])
-    diff_b_a = b - a
-    p = np.add(a, diff_b_a * gamma)
-    np.subtract(b, diff_b_a * (1 - gamma), out=p, where=gamma >= 0.5, casting="unsafe",
-                dtype=type(p.dtype))
-    median = np.mean(np.array([at[r] for r in med]))
-    lo, hi = at[0], at[n - 1]
-    return {"cells": n, "min": float(lo), "p05": float(p[0]), "median": float(median),
-            "p95": float(p[2]), "max": float(hi), "worst": worst}
+    plan = _plan(n, n_worst, bad)
+    keys, worst = _select(bits, n, tab, hist1, plan.ranks, plan.kk, bad == "low", nb2,
+                          gather_max, worst_max, info)
+    return plan.finish(dict(zip(plan.ranks.tolist(), _values(keys))), worst)
+
+
+class _Plan:
+    """The ranks a summary of n finite values needs (np.percentile's index arithmetic,
+    method "linear", for the 5th, 50th and 95th percentiles; np.median's middle; min,
+    max; the k-th worst) and the dict made from the values at those ranks."""
+
+    def __init__(self, n: int, n_worst: int, bad: str):
+        q = np.true_divide([5, 50, 95], 100)
+        virtual = (n - 1) * q
+        prev = np.floor(virtual)
+        nxt = prev + 1
+        above = virtual >= n - 1
+        prev[above] = -1
+        nxt[above] = -1
+        self.prev = prev.astype(np.intp)
+        self.nxt = nxt.astype(np.intp)
+        self.gamma = np.asanyarray(virtual - self.prev, dtype=virtual.dtype)
+        mid = n // 2
+        self.med = [mid - 1, mid] if n % 2 == 0 else [mid]
+        self.n, self.kk, self.low = n, min(n_worst, n), bad == "low"
+        ranks = [0, n - 1] + [int(r) % n for r in (*self.prev, *self.nxt)] + self.med
+        if self.kk:
+            ranks.append(self.kk_rank)
+        self.ranks = np.unique(np.asarray(ranks, np.int64))
+
+    @property
+    def kk_rank(self) -> int:
+        """Rank of the k-th worst value."""
+        return self.kk - 1 if self.low else self.n - self.kk
+
+    def finish(self, at: dict, worst: np.ndarray) -> dict:
+        """The summary from ``at`` (rank -> float64 value) and the worst ids."""
+        n = self.n
+        a = np.array([at[int(r) % n] for r in self.prev])
+        b = np.array([at[int(r) % n] for r in self.nxt])
+        diff_b_a = b - a
+        p = np.add(a, diff_b_a * self.gamma)
+        np.subtract(b, diff_b_a * (1 - self.gamma), out=p, where=self.gamma >= 0.5,
+                    casting="unsafe", dtype=type(p.dtype))
+        median = np.mean(np.array([at[r] for r in self.med]))
+        return {"cells": n, "min": float(at[0]), "p05": float(p[0]),
+                "median": float(median), "p95": float(p[2]), "max": float(at[n - 1]),
+                "worst": worst}
+
+
+def _plan(n: int, n_worst: int, bad: str) -> _Plan:
+    return _Plan(n, n_worst, bad)
+
+
+class TooManyTies(Exception):
+    """:func:`summary_of_rounded` would recompute more than its ``tie_max`` values."""
+
+
+@njit
+def tie_counts(w, vals, below, equal):
+    """For the sorted distinct finite ``vals`` ((m,) float64): below[j] += the finite
+    values of w under vals[j], equal[j] += those equal to it."""
+    m = vals.shape[0]
+    for i in range(w.shape[0]):
+        x = w[i]
+        if not (x - x == 0.0):  # NaN or infinite
+            continue
+        for j in range(m):
+            if x < vals[j]:
+                below[j] += 1
+            elif x == vals[j]:
+                equal[j] += 1
+
+
+@njit
+def tie_ids(w, vals, out):
+    """Ids (ascending) of the values of w equal to one of ``vals``; out is sized by
+    :func:`tie_counts`.  Returns the number written."""
+    m = vals.shape[0]
+    k = 0
+    for i in range(w.shape[0]):
+        x = w[i]
+        for j in range(m):
+            if x == vals[j]:
+                out[k] = i
+                k += 1
+                break
+    return k
+
+
+#: most cells :func:`summary_of_rounded` recomputes (ties at the needed ranks)
+TIE_MAX = 1 << 16
+
+
+def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
+                       tie_max: int | None = None) -> dict | None:
+    """:func:`metric_summary` of values x known only through a rounding w and a way to
+    recompute a few of them, without the (n,) array of x.
+
+    w : (n,) float64 with the same NaN and infinities as x, w = x where |x| is beyond a
+        float32 and otherwise a monotone rounding of x (x_i < x_j => w_i <= w_j), e.g.
+        the float32 values of x widened back to float64.
+    exact : ids ((m,) int64, ascending) -> (m,) float64 their values of x.
+
+    Rounding keeps the order, so the value of x at rank r is among the cells whose w
+    equals w's value at rank r, at the place of r among them: those few cells are
+    recomputed (and the candidates for the worst cells), and the dict is the one
+    :func:`metric_summary` gives for x (bit for bit).  Raises :class:`TooManyTies` when
+    more than ``tie_max`` (default :data:`TIE_MAX`) cells would be recomputed (e.g.
+    identical cells)."""
+    tie_max = TIE_MAX if tie_max is None else tie_max
+    bits = np.ascontiguousarray(w).view(np.uint64)
+    proto = np.empty(0, np.int32 if bits.size < 2**31 else np.int64)
+    nb1 = min(NB1, max(1 << 10, bits.size // 8))
+    n, tab, hist1 = histogram(bits, nb1, SAMPLE, proto)
+    if n == 0:
+        return None
+    plan = _plan(n, n_worst, bad)
+    low = plan.low
+    keys, worst_w = _select(bits, n, tab, hist1, plan.ranks, plan.kk, low, NB2,
+                            GATHER_MAX, WORST_MAX, None)
+    at_w = dict(zip(plan.ranks.tolist(), _values(keys)))
+    vals = np.unique(np.fromiter(at_w.values(), np.float64))
+    below = np.zeros(len(vals), np.int64)
+    equal = np.zeros(len(vals), np.int64)
+    tie_counts(w, vals, below, equal)
+    # the worst candidates: the cells strictly worse than the k-th worst value of w
+    # (fewer than k, all among w's k worst) and the cells tied with it
+    cut = at_w[plan.kk_rank] if plan.kk else None
+    worse = (worst_w[w[worst_w] < cut] if low else worst_w[w[worst_w] > cut]) \
+        if plan.kk else np.zeros(0, np.int64)
+    if int(equal.sum()) + len(worse) > tie_max:
+        raise TooManyTies
+    tied = np.empty(int(equal.sum()), np.int64)
+    tie_ids(w, vals, tied)
+    ids = np.union1d(tied, worse)
+    x = np.asarray(exact(ids), np.float64)
+    xw = w[ids]
+    at = {}
+    for r, v in at_w.items():
+        j = int(np.searchsorted(vals, v))
+        group = np.sort(x[xw == v])
+        at[r] = group[r - int(below[j])]
+    worst = np.zeros(0, np.int64)
+    if plan.kk:
+        cand = np.flatnonzero(((xw < cut) if low else (xw > cut)) | (xw == cut))
+        xc = x[cand]
+        ok = xc - xc == 0.0  # the finite ones (tied with a finite cut: all)
+        cand, xc = ids[cand[ok]], xc[ok]
+        worst = cand[np.lexsort((cand, xc if low else -xc))][:plan.kk]
+    return plan.finish(at, worst.astype(np.int64, copy=False))
