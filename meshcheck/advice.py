@@ -93,6 +93,15 @@ SIZE_DTYPE = np.float32
 _TAKE_CHUNK = 1 << 18
 
 
+def _take(table: np.ndarray, index: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """out[:] = table[index], :data:`_TAKE_CHUNK` items at a time (np.take casts an index
+    of another integer type to intp and buffers its output while it checks bounds: a
+    whole-array take costs those copies)."""
+    for lo in range(0, len(out), _TAKE_CHUNK):
+        np.take(table, index[lo:lo + _TAKE_CHUNK], out=out[lo:lo + _TAKE_CHUNK])
+    return out
+
+
 def order_dtype(pmax: int):
     """Integer type of the advice's orders (1..pmax + 1): int8 (one byte per edge and
     cell) unless pmax is above 126."""
@@ -112,7 +121,8 @@ class Advice:
     cell_distance : (n_cells,) propagation distance L used, m.
     cell_speed : (n_cells,) sound speed, m/s.
     edge_limit : (n_e,) float32 (:data:`LIMIT_DTYPE`) highest usable frequency of each
-        edge at the allowed order, Hz.
+        edge at the allowed order, Hz; None when not kept (the audit's, see
+        :func:`advise`).
     edge_order : (n_e,) lowest order meeting the target at ``fmax`` (pmax+1 = none),
         int8 (:func:`order_dtype`; cast before arithmetic that may exceed it).
     cell_order : (n_cells,) the same per cell.
@@ -130,7 +140,7 @@ class Advice:
     cell_size: np.ndarray
     cell_distance: np.ndarray
     cell_speed: np.ndarray
-    edge_limit: np.ndarray
+    edge_limit: np.ndarray | None
     edge_order: np.ndarray
     cell_order: np.ndarray
     target_size: np.ndarray
@@ -163,10 +173,7 @@ class Advice:
         # gathered a chunk at a time: np.take casts int32 indices to intp and buffers its
         # output when it checks bounds (54 MiB of scratch at 4.8M cells for float32)
         col = np.ascontiguousarray(self.limit_rows[:, p - 1], dtype=out.dtype)
-        for lo in range(0, len(out), _TAKE_CHUNK):
-            hi = lo + _TAKE_CHUNK
-            np.take(col, self.limit_row[lo:hi], out=out[lo:hi])
-        return out
+        return _take(col, self.limit_row, out)
 
     def lowest_cell(self, p: int) -> int:
         """The first cell with the lowest limit at order p (1-based): ``np.argmin`` of
@@ -502,7 +509,7 @@ def size_correction(mesh: Mesh, topo: Topology, pmax: int, target: float,
 
 def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
            settings: AdviceSettings = AdviceSettings(), pmax: int = 12,
-           cell_mach: np.ndarray | None = None) -> Advice:
+           cell_mach: np.ndarray | None = None, edge_limits: bool = True) -> Advice:
     """Frequency limits per edge, cell and order, and the advice at ``fmax`` (Hz).
 
     cell_speed : (n_cells,) sound speed of the medium of every cell, m/s.
@@ -510,10 +517,23 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     cell_mach : optional (n_cells, 3) uniform mean-flow Mach vector of every cell; an
         edge's wavenumber is multiplied by the worst-case projection factor of
         :func:`meshcheck.flow.edge_flow_factor` (its speed divided by it).
+    edge_limits : keep ``Advice.edge_limit`` (False: None; the audit, whose reports do
+        not use it, saves its (n_e,) float32, 22 MiB at 4.8M tetrahedra).
     With ``settings.correction_3d`` (the default) the model sees every edge as
     ``a * length`` (:func:`size_correction`); ``cell_size`` stays the true longest
     edge and ``target_size`` is a true edge length.
     """
+    adv = _advise(mesh, topo, cell_speed, fmax, settings, pmax, cell_mach, edge_limits)
+    if not edge_limits and adv.edge_limit is not None:
+        from dataclasses import replace
+        adv = replace(adv, edge_limit=None)
+    return adv
+
+
+def _advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
+            settings: AdviceSettings, pmax: int, cell_mach: np.ndarray | None,
+            edge_limits: bool) -> Advice:
+    """:func:`advise` (the compiled path makes ``Advice.edge_limit`` only if asked)."""
     if not fmax > 0:
         raise SettingsError(f"upper frequency {fmax} Hz must be positive")
     pmax = max(pmax, settings.max_order)
@@ -537,7 +557,7 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     P = settings.allowed_order
     if kernels.use_compiled(n_cells):
         return _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L,
-                                h, corr, edge_c, edge_L, flow)
+                                h, corr, edge_c, edge_L, flow, edge_limits)
     good = np.isfinite(h) & (h > 0) & np.isfinite(edge_L) & np.isfinite(edge_c)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(good, edge_L / np.where(good, h, 1.0), 1.0)
@@ -586,7 +606,7 @@ def advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
 
 
 def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L, h, corr,
-                     edge_c, edge_L, flow) -> Advice:
+                     edge_c, edge_L, flow, edge_limits: bool = True) -> Advice:
     """The tail of :func:`advise` with the kernels of :mod:`meshcheck.kernels.advice`:
     the same arrays as the numpy code (one pass over the cells, one over the edges;
     the edges' L / h and whether they are good are worked out in the kernels)."""
@@ -635,7 +655,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     cell_order = np.empty(n_cells, order_dtype(pmax))
     refine = np.empty(n_cells, bool)
     edge_order = np.empty(n_e, order_dtype(pmax))
-    edge_limit = np.empty(n_e, LIMIT_DTYPE)
+    edge_limit = np.empty(n_e if edge_limits else 0, LIMIT_DTYPE)  # empty: not written
 
     # the limits at every order of the cells' longest edges (about half the edges, each
     # shared by about two cells), computed once per edge with the edges' orders into one
@@ -661,9 +681,9 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
         raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
     # every cell's row, longest edge and size factor
     limit_row = np.empty(n_cells, id_type if n_rows < 2 ** 31 - 1 else np.int64)
-    cell_size, a_gov = np.empty(n_cells), np.empty(n_cells)
-    thread_map(lambda r: _ka.gov_index(gov, owner, r[0], r[1], limit_row, h, code, A,
-                                       cell_size, a_gov, finish, P, row_order, row_refine,
+    cell_size, code_gov = np.empty(n_cells), np.empty(n_cells, np.uint8)
+    thread_map(lambda r: _ka.gov_index(gov, owner, r[0], r[1], limit_row, h, code,
+                                       cell_size, code_gov, finish, row_order, row_refine,
                                        cell_order, refine),
                _chunks(n_cells, 2 if par else 1), parallel=par)
     del owner, gov
@@ -701,17 +721,21 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     if len(corr.mixed):
         a_cell = cell_max(corr.at(P))
     else:  # all edges of a cell carry one factor: its longest edge's, A[code[gov], P - 1]
-        a_cell = a_gov
-    target_size = size / a_cell
-    del size
-    with np.errstate(divide="ignore", invalid="ignore"):  # a_cell's buffer: the sizes x factor
-        coarsen = target_size >= np.multiply(cell_size, settings.coarsen_factor, out=a_cell)
-    del a_cell, a_gov
-    # decided in float64, kept in float32 (SIZE_DTYPE: 36 MiB less at 4.77M cells)
-    cell_size, target_size = cell_size.astype(SIZE_DTYPE), target_size.astype(SIZE_DTYPE)
+        a_cell = _take(np.ascontiguousarray(A[:, P - 1]), code_gov, np.empty(n_cells))
+    del code_gov
+    target64 = np.divide(size, a_cell, out=a_cell)  # the factors' buffer (no third array)
+    del size, a_cell
+    # decided in float64, kept in float32 (SIZE_DTYPE: 36 MiB less at 4.77M cells); the
+    # sizes narrowed first, then their buffer holds the sizes x factor
+    kept_size = cell_size.astype(SIZE_DTYPE)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        coarsen = target64 >= np.multiply(cell_size, settings.coarsen_factor, out=cell_size)
+    del cell_size
+    cell_size, target_size = kept_size, target64.astype(SIZE_DTYPE)
+    del target64
     return Advice(settings, float(fmax), limit_rows, cell_size, cell_L, cell_speed,
-                  edge_limit, edge_order, cell_order, target_size, refine, coarsen, flow,
-                  limit_row)
+                  edge_limit if edge_limits else None, edge_order, cell_order, target_size,
+                  refine, coarsen, flow, limit_row)
 
 
 @dataclass(frozen=True)
@@ -803,18 +827,17 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
         k = int(np.count_nonzero(m))
         if not k:
             return []
-        ids, lab, parent = np.empty(k, itype), np.empty(k, itype), np.empty(n, itype)
+        lab = np.empty(n, itype)  # the labels of all cells (-1 not flagged), no ids
         if mesh.dim == 3:
             n_lab = _ka.label_flagged(m, np.ascontiguousarray(topo.faces.cells),
-                                      np.ascontiguousarray(topo.faces.count), 2, lab, parent,
-                                      ids)
+                                      np.ascontiguousarray(topo.faces.count), 2, lab)
         else:
             a, b = _edge_pairs(topo)
             n_lab = _ka.label_flagged(m, np.column_stack([a, b]), np.zeros(len(a), np.int64),
-                                      0, lab, parent, ids)
-        del parent
-        cnt = np.bincount(lab, minlength=n_lab)
-        return _clusters_compiled(mesh, topo, advice, ids, lab, cnt, limit, max_ids)
+                                      0, lab)
+        cnt = np.zeros(n_lab, np.int64)
+        _ka.count_labels(lab, cnt)
+        return _clusters_compiled(mesh, topo, advice, lab, cnt, limit, max_ids)
     ids = np.flatnonzero(mask)
     if not len(ids):
         return []
@@ -859,11 +882,12 @@ def _edge_pairs(topo: Topology) -> tuple[np.ndarray, np.ndarray]:
     return np.repeat(inc[st], np.diff(np.append(st, len(inc)))), inc
 
 
-def _clusters_compiled(mesh: Mesh, topo: Topology, advice: Advice, ids, lab, cnt,
+def _clusters_compiled(mesh: Mesh, topo: Topology, advice: Advice, lab, cnt,
                        limit: int, max_ids: int) -> list[Cluster]:
-    """The clusters of :func:`clusters` from their labels, with one pass over the
-    flagged cells for the chosen clusters (kernel ``cluster_stats``: sizes, boxes and
-    the volume sums of those clusters only; no per-cell weights)."""
+    """The clusters of :func:`clusters` from the labels of all cells (lab, -1 for the
+    cells not flagged), with one pass over the cells for the chosen clusters (kernel
+    ``cluster_stats``: sizes, boxes and the volume sums of those clusters only; no
+    per-cell weights, no array of the flagged cells' ids)."""
     from .kernels import advice as _ka
 
     top = np.argsort(-cnt, kind="stable")[:limit]
@@ -878,9 +902,9 @@ def _clusters_compiled(mesh: Mesh, topo: Topology, advice: Advice, ids, lab, cnt
         b = mesh.blocks[0]
         cen, pts, cells, k = np.zeros((0, 3)), mesh.points, b.cells, b.info.n_corners
     else:  # of the flagged cells only
-        cen, pts, cells, k = mesh.centroids_of(ids), np.zeros((0, 3)), np.zeros((0, 1),
-                                                                                np.int64), 1
-    _ka.cluster_stats(ids, lab, slot, np.ascontiguousarray(advice.cell_size),
+        cen, pts, cells, k = mesh.centroids_of(np.flatnonzero(lab >= 0)), np.zeros((0, 3)), \
+            np.zeros((0, 1), np.int64), 1
+    _ka.cluster_stats(lab, slot, np.ascontiguousarray(advice.cell_size),
                       np.ascontiguousarray(advice.target_size), cen,
                       np.ascontiguousarray(pts, dtype=float), np.ascontiguousarray(cells), k,
                       np.ascontiguousarray(topo.cell_volume, dtype=float), size, target, lo,
@@ -894,14 +918,15 @@ def _clusters_compiled(mesh: Mesh, topo: Topology, advice: Advice, ids, lab, cnt
             sel = None
         else:  # the cells of the cluster (a zero volume or several regions)
             if members is None:
-                order = np.empty(len(lab), np.int64)
-                _ka.group_by_label(lab, cnt.astype(np.int64), order)
+                ids = np.flatnonzero(lab >= 0)
+                order = np.empty(len(ids), np.int64)
+                _ka.group_by_label(lab[ids], cnt.astype(np.int64), order)
                 starts = np.concatenate([[0], np.cumsum(cnt)])
-                members = (order, starts)
-            pos = members[0][members[1][j]:members[1][j + 1]]
-            sel = ids[pos]
+                members = (ids, order, starts)
+            ids, order, starts = members
+            sel = ids[order[starts[j]:starts[j + 1]]]
         c = wsum[i] / vol[i] if vol[i] > 0 else mesh.centroids_of(sel).mean(0)
-        regions = (int(region[ids[0]]),) if one_region else \
+        regions = (int(region[0]),) if one_region else \
             tuple(int(t) for t in np.unique(region[sel]))
         sz, tg = float(size[i]), float(target[i])
         out.append(Cluster(int(cnt[j]), float(vol[i]), c, lo[i].copy(), hi[i].copy(), sz, tg,

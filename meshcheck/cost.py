@@ -179,8 +179,9 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
     B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f) + 1, dtype)
     par = lim.shape[0] > 50_000
     chunks = _chunks(lim.shape[0], 2 if par else 1)
-    weight = (np.zeros(0, np.int64) if limit_row is None else
-              np.bincount(limit_row, minlength=lim.shape[0]))
+    weight = np.zeros(0 if limit_row is None else lim.shape[0], np.int64)
+    if limit_row is not None:  # cells per row (np.bincount would copy int32 rows to int64)
+        _ka.count_labels(np.ascontiguousarray(limit_row), weight)
 
     def run(r):
         part = np.zeros_like(hist)
@@ -220,7 +221,9 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
             jobs.append(lambda hist, lo=lo, hi=hi: _ka.edge_bin_hist(E, lo, hi, hist))
     if three and B.shape[1]:
         fcells = np.ascontiguousarray(topo.faces.cells)
-        tri = topo.faces.is_tri
+        # only triangular faces (tetrahedra): no (n_faces,) mask (9 MiB at 4.8M cells)
+        tri = (np.zeros(0, bool) if all(b.info.linear == "tetra" for b in mesh.blocks)
+               else topo.faces.is_tri)
         for lo, hi in _chunks(len(fcells), parts):
             jobs.append(lambda hist, lo=lo, hi=hi:
                         _ka.face_dof_hist(B, row, fcells, tri, lo, hi, hist))

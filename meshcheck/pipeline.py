@@ -209,7 +209,7 @@ def audit(mesh: Mesh, settings: AuditSettings,
     if speeds is not media.cell_speed and np.array_equal(speeds, media.cell_speed):
         speeds = media.cell_speed  # one array of the same speeds, not two
     adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
-                 cell_mach=media.cell_mach if media.has_flow else None)
+                 cell_mach=media.cell_mach if media.has_flow else None, edge_limits=False)
     # the sweep and the two cluster searches are independent once the advice is known
     sw, ref, coa = thread_map(lambda job: job(), [
         lambda: sweep(mesh, topo, adv, np.asarray(settings.frequencies)),

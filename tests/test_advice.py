@@ -263,6 +263,30 @@ def test_orders_on_threads_give_the_serial_result(monkeypatch):
         assert np.array_equal(getattr(par, name), getattr(ser, name)), name
 
 
+@pytest.mark.parametrize("mode", ["numpy", "numba"])
+def test_audit_drops_the_edge_limits_only(monkeypatch, mode):
+    # the audit does not keep the per-edge limits (no report uses them); every other
+    # field of its advice is the one advise gives with them
+    from dataclasses import fields
+
+    from meshcheck.advice import advise
+    from meshcheck.pipeline import AuditSettings, audit
+    from meshcheck.topology import build_topology
+
+    if mode == "numba":
+        pytest.importorskip("numba")
+    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+    mesh = tet_box((5, 4, 3), size=(2.0, 1.5, 1.0))
+    res = audit(mesh, AuditSettings((700.0,)))
+    full = advise(mesh, build_topology(mesh), res.advice.cell_speed, 700.0,
+                    res.settings.advice)
+    assert res.advice.edge_limit is None and full.edge_limit.shape == (len(res.topology.edges),)
+    for f in fields(full):
+        if f.name not in ("edge_limit", "settings"):
+            a, b = getattr(res.advice, f.name), getattr(full, f.name)
+            assert (a is None and b is None) or np.array_equal(a, b, equal_nan=True), f.name
+
+
 @pytest.mark.parametrize("n", [1, 7, 256, 257, 1000, 5 * 256 + 3])
 def test_column_min_equals_numpy_min_over_rows(n):
     from meshcheck.advice import column_min

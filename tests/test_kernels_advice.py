@@ -310,7 +310,8 @@ def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
 
 KERNELS = ("governing_edges", "mark_rows", "odd_cells", "longest_directions", "gov_index",
            "exact_rows", "finish_limits", "edge_orders", "per_cell_max", "order_hist",
-           "edge_min_bins", "edge_bin_hist", "face_dof_hist", "label_flagged", "cluster_stats")
+           "edge_min_bins", "edge_bin_hist", "face_dof_hist", "label_flagged", "count_labels",
+           "cluster_stats")
 
 
 @pytest.mark.parametrize("name,expected", [

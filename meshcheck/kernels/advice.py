@@ -22,7 +22,8 @@ the numpy reference computes (tests/test_kernels_advice.py compares both):
   they add) over the sorted sweep frequencies (``advice.sweep``,
   ``cost.variable_order_dofs``): their cumulative sums are the counts the reference
   gets from ``np.searchsorted`` on sorted limits, whatever the number of frequencies;
-* :func:`label_flagged`, :func:`cluster_stats`, :func:`group_by_label`: connected
+* :func:`label_flagged`, :func:`count_labels`, :func:`cluster_stats`,
+  :func:`group_by_label`: connected
   components of the flagged cells by union-find over the face (2D: edge) adjacency,
   numbered in the order of their smallest cell id like
   ``scipy.sparse.csgraph.connected_components``, the per-cluster sizes, boxes and
@@ -282,14 +283,14 @@ def mark_rows(gov, skip, owner):
 
 
 @njit
-def gov_index(gov, owner, lo, hi, limit_row, h, code, A, size, a_gov, finish, P,
+def gov_index(gov, owner, lo, hi, limit_row, h, code, size, code_gov, finish,
               row_order, row_refine, cell_order, refine):
     """For cells lo <= i < hi: limit_row[i] = owner[gov[i]], the row that
     :func:`edge_orders` wrote for the cell's longest edge (see :func:`mark_rows`; -1
     for a cell skipped there), with cell_order[i], refine[i] of that row when
-    ``finish``; size[i] = h[gov[i]] (m) and a_gov[i] = A[code[gov[i]], P - 1] (its
-    size factor at the allowed order).  Cells of different ranges write different
-    entries: ranges can run on different threads."""
+    ``finish``; size[i] = h[gov[i]] (m) and code_gov[i] = code[gov[i]] (the row of its
+    size factors in A: one byte per cell instead of the float64 factor).  Cells of
+    different ranges write different entries: ranges can run on different threads."""
     for i in range(lo, hi):
         e = gov[i]
         r = owner[e]
@@ -298,15 +299,15 @@ def gov_index(gov, owner, lo, hi, limit_row, h, code, A, size, a_gov, finish, P,
             cell_order[i] = row_order[r]
             refine[i] = row_refine[r]
         size[i] = h[e]
-        a_gov[i] = A[code[e], P - 1]
+        code_gov[i] = code[e]
 
 
 @njit
 def edge_orders(lo, hi, h, c, L, code, A, logA, base, step, scale, top, fmax, P, edge_order,
                 edge_limit, owner, out, finish, cell_order, refine):
     """edge_order[e] = lowest order whose limit reaches fmax (pmax + 1 = none),
-    edge_limit[e] = limit at the allowed order P (Hz), for edges lo <= e < hi; an edge
-    with a row owner[e] >= 0 (it is the longest edge of some cell, see :func:`mark_rows`)
+    edge_limit[e] = limit at the allowed order P (Hz; not written when edge_limit is
+    empty), for edges lo <= e < hi; an edge with a row owner[e] >= 0 (it is the longest edge of some cell, see :func:`mark_rows`)
     also writes its limits at every order into out[owner[e]] ((n_rows, pmax) float64,
     Hz; 0 for an edge that is not good), finished by :func:`finish_limits` (with
     cell_order, refine: per row here) when ``finish``.  Rows are distinct, so edge
@@ -321,11 +322,13 @@ def edge_orders(lo, hi, h, c, L, code, A, logA, base, step, scale, top, fmax, P,
     """
     pmax = A.shape[1]
     n_bad = 0
+    keep = edge_limit.shape[0] > 0
     for e in range(lo, hi):
         r = owner[e]
         if not _good(e, h, c, L):  # limit 0 at every order
             edge_order[e] = pmax + 1 if fmax > 0.0 else 1
-            edge_limit[e] = 0.0
+            if keep:
+                edge_limit[e] = 0.0
             if r >= 0:
                 for p in range(pmax):
                     out[r, p] = 0.0
@@ -362,7 +365,8 @@ def edge_orders(lo, hi, h, c, L, code, A, logA, base, step, scale, top, fmax, P,
                     at_p = _value(P - 1, g, u, a, he, ce, base, step)
                     break
         edge_order[e] = o
-        edge_limit[e] = at_p
+        if keep:
+            edge_limit[e] = at_p
         if r >= 0 and finish:
             _finish_row(out, r, fmax, P, cell_order, refine)
     return n_bad
@@ -480,11 +484,13 @@ def edge_bin_hist(E, lo, hi, hist):
 @njit
 def face_dof_hist(B, row, fcells, tri, lo, hi, hist):
     """Face unknowns added above order q + 1, binned like :func:`edge_bin_hist`: q per
-    triangle (tri True), 2 q + 1 per quadrilateral, at the smaller bin of the face's
+    triangle (tri True; tri empty: every face), 2 q + 1 per quadrilateral, at the smaller
+    bin of the face's
     cells (fcells (n_faces, 2) integers, -1 = no second cell), for faces lo <= f < hi;
     cell i's bins are B[row[i]], or B[i] when ``row`` is empty."""
     n_f = hist.shape[0] - 1
     shared = row.shape[0] > 0
+    all_tri = tri.shape[0] == 0  # no array: every face a triangle
     for f in range(lo, hi):
         c0 = fcells[f, 0]
         c1 = fcells[f, 1]
@@ -492,7 +498,7 @@ def face_dof_hist(B, row, fcells, tri, lo, hi, hist):
             c0 = row[c0]
             if c1 >= 0:
                 c1 = row[c1]
-        t = tri[f]
+        t = True if all_tri else tri[f]
         for q in range(B.shape[1]):
             w = q if t else 2 * q + 1
             b = np.int64(B[c0, q])
@@ -519,19 +525,19 @@ def _find(parent, i):
 
 
 @njit
-def label_flagged(mask, pairs, count, need, lab, parent, ids):
+def label_flagged(mask, pairs, count, need, lab):
     """Connected components of the flagged cells through the pairs (pairs (n, 2) integer
     global cell ids; pair j joins its cells when count[j] >= need, both are >= 0 and
-    flagged).  lab : (n_flagged,) integer output, the component of every flagged cell in
-    increasing id order, numbered by their smallest cell id; ids : (n_flagged,) integer
-    output, those cells (``np.flatnonzero(mask)``).  Returns the number of components.
+    flagged), written into lab ((n_cells,) signed integers, int32 will do below 2**31
+    cells): the component of every flagged cell, numbered by their smallest cell id, -1
+    for the other cells.  Returns the number of components.
 
-    parent : (n_cells,) signed integers (int32 will do below 2**31 cells), scratch: a
-    union-find whose root is the smallest id of its component; the labels are then kept
-    at the roots as -1 - label, no second array."""
+    lab is the union-find's parent array first (the root of a component is its smallest
+    id), then holds -1 - label for the flagged cells seen, so that the labels need no
+    second (n_cells,) or (n_flagged,) array."""
     n = mask.shape[0]
     for i in range(n):
-        parent[i] = i
+        lab[i] = i
     for j in range(pairs.shape[0]):
         if count[j] < need:
             continue
@@ -539,30 +545,37 @@ def label_flagged(mask, pairs, count, need, lab, parent, ids):
         b = pairs[j, 1]
         if a < 0 or b < 0 or not mask[a] or not mask[b]:
             continue
-        ra = _find(parent, a)
-        rb = _find(parent, b)
+        ra = _find(lab, a)
+        rb = _find(lab, b)
         if ra != rb:
             if ra < rb:
-                parent[rb] = ra
+                lab[rb] = ra
             else:
-                parent[ra] = rb
+                lab[ra] = rb
     n_lab = 0
-    k = 0
-    for i in range(n):  # a root comes before the other cells of its component
+    for i in range(n):  # parents have smaller ids: every cell on i's path is seen
         if not mask[i]:
             continue
         r = i
-        while parent[r] >= 0 and parent[r] != r:
-            r = parent[r]
-        if parent[r] >= 0:  # r == i, the smallest id of a new component
-            parent[r] = -1 - n_lab
+        while lab[r] >= 0 and lab[r] != r:
+            r = lab[r]
+        if lab[r] >= 0:  # r == i, the smallest id of a new component
+            lab[r] = -1 - n_lab
             n_lab += 1
-        elif r != i:
-            parent[i] = r  # shortcut for the cells below i
-        lab[k] = -1 - parent[r]
-        ids[k] = i
-        k += 1
+        lab[i] = lab[r]
+    for i in range(n):
+        lab[i] = -1 - lab[i] if mask[i] else -1
     return n_lab
+
+
+@njit
+def count_labels(lab, cnt):
+    """cnt[j] += the cells of label j (lab < 0: none), without np.bincount's int64 copy
+    of an int32 lab."""
+    for i in range(lab.shape[0]):
+        j = lab[i]
+        if j >= 0:
+            cnt[j] += 1
 
 
 @njit
@@ -581,7 +594,7 @@ def group_by_label(lab, cnt, order):
 
 
 @njit
-def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_corners,
+def cluster_stats(lab, slot, cell_size, target_size, cen, points, cells, n_corners,
                   volume, size, target, lo, hi, wsum, vsum, first, n_first):
     """Per chosen cluster (slot[label] >= 0), over its cells in increasing id order:
     longest edge ``size`` (max), smallest ``target`` (min), centroid box ``lo``/``hi``
@@ -589,10 +602,11 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_
     ``vsum`` = sum of the weights (the same sequential sums as numpy's along axis 0 and
     ``np.bincount``'s), and its first cell ids.
 
-    ids : (k,) int64 flagged cells (increasing); lab : (k,) integer their cluster;
-    slot : (n_lab,) int64; cell_size, target_size : (n_cells,) float64, m; cen :
-    (k, 3) float64 centroids of the flagged cells, m, or empty: then every centroid is the
-    mean of the first n_corners nodes of row ids[k] of ``cells`` (one block) at
+    lab : (n_cells,) integer cluster of every cell (-1: not flagged, see
+    :func:`label_flagged`); slot : (n_lab,) int64; cell_size, target_size : (n_cells,)
+    float64, m; cen : (k, 3) float64 centroids of the k flagged cells (increasing ids),
+    m, or empty: then every centroid is the mean of the first n_corners nodes of its row of
+    ``cells`` (one block) at
     ``points`` (bitwise as ``Mesh.centroids``), no (k, 3) array; volume : (n_cells,)
     float64 signed volumes, the weight of cell c |volume[c]|; outputs per slot: size,
     target, vsum (s,), lo, hi, wsum (s, 3), first (s, max_ids), n_first (s,).
@@ -601,11 +615,14 @@ def cluster_stats(ids, lab, slot, cell_size, target_size, cen, points, cells, n_
     seen = np.zeros(size.shape[0], np.int64)
     given = cen.shape[0] > 0
     x3 = np.empty(3)
-    for k in range(ids.shape[0]):
-        s = slot[lab[k]]
+    k = -1  # the flagged cell's number (its row of cen)
+    for c in range(lab.shape[0]):
+        if lab[c] < 0:
+            continue
+        k += 1
+        s = slot[lab[c]]
         if s < 0:
             continue
-        c = ids[k]
         v = cell_size[c]
         t = target_size[c]
         wk = abs(volume[c])
