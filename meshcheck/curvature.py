@@ -146,31 +146,17 @@ def _surface_geometry(points: np.ndarray, triangles: np.ndarray):
     exactly two faces; any order), the angles between their normals (n_a,) rad and
     the corner angles (n_t, 3) rad (zero for degenerate faces).  Tested against
     trimesh (:func:`_trimesh_geometry`)."""
-    # each intermediate dropped once used (peak 94 -> 46 MiB for 189k triangles)
-    T = points[triangles]                                            # (n_t, 3, 3)
-    vec = T[:, 1:, :] - T[:, :2, :]
-    crosses = np.cross(vec[:, 0], vec[:, 1])
-    del vec
-    unit, valid = _unitize(crosses)
-    fn = unit if valid.all() else np.where(valid[:, None], unit, 0.0)
-    del unit
-    area = np.sqrt((crosses ** 2).sum(axis=1)) / 2.0
-    del crosses
-    # corner angles (trimesh.triangles.angles)
-    u = _unitize(T[:, 1] - T[:, 0])[0]
-    v = _unitize(T[:, 2] - T[:, 0])[0]
-    w = _unitize(T[:, 2] - T[:, 1])[0]
-    del T
-    corner = np.zeros((len(fn), 3))
-    corner[:, 0] = np.arccos(np.clip(np.dot(u * v, [1.0] * 3), -1, 1))
-    corner[:, 1] = np.arccos(np.clip(np.dot(-u * w, [1.0] * 3), -1, 1))
-    corner[:, 2] = np.pi - corner[:, 0] - corner[:, 1]
-    corner[(corner < _TOL_MERGE).any(axis=1), :] = 0.0
-    del u, v, w
+    # per triangle a chunk at a time (the same elementwise operations), so that the
+    # (n_t, 3, 3) corners and their differences are never held whole
+    n_t = len(triangles)
+    fn, area, corner = np.empty((n_t, 3)), np.empty(n_t), np.empty((n_t, 3))
+    for s in range(0, n_t, _FIT_CHUNK):
+        t = slice(s, min(s + _FIT_CHUNK, n_t))
+        fn[t], area[t], corner[t] = _triangle_geometry(points[triangles[t]])
     # faces sharing an edge that exactly two faces use
-    edges = np.sort(triangles[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    key = edges[:, 0] * np.int64(len(points) + 1) + edges[:, 1]
-    del edges
+    a, b = triangles, triangles[:, [1, 2, 0]]  # the sides (0 1), (1 2), (2 0), sorted
+    key = (np.minimum(a, b) * np.int64(len(points) + 1) + np.maximum(a, b)).ravel()
+    del b
     order = np.argsort(key, kind="stable")
     key = key[order]
     start = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
@@ -182,6 +168,28 @@ def _surface_geometry(points: np.ndarray, triangles: np.ndarray):
     pairs = fn[adj]
     ang = np.abs(np.arccos(np.clip(np.dot(pairs[:, 0] * pairs[:, 1], [1.0] * 3), -1.0, 1.0)))
     return fn, area, adj, ang, corner
+
+
+def _triangle_geometry(T: np.ndarray):
+    """Unit normals (zero for degenerate faces), areas and corner angles (zero for
+    degenerate faces) of the triangles of corners T (n, 3, 3), as trimesh 5.x computes
+    them (its numpy calls; see :func:`_surface_geometry`)."""
+    vec = T[:, 1:, :] - T[:, :2, :]
+    crosses = np.cross(vec[:, 0], vec[:, 1])
+    del vec
+    unit, valid = _unitize(crosses)
+    fn = unit if valid.all() else np.where(valid[:, None], unit, 0.0)
+    area = np.sqrt((crosses ** 2).sum(axis=1)) / 2.0
+    # corner angles (trimesh.triangles.angles)
+    u = _unitize(T[:, 1] - T[:, 0])[0]
+    v = _unitize(T[:, 2] - T[:, 0])[0]
+    w = _unitize(T[:, 2] - T[:, 1])[0]
+    corner = np.zeros((len(T), 3))
+    corner[:, 0] = np.arccos(np.clip(np.dot(u * v, [1.0] * 3), -1, 1))
+    corner[:, 1] = np.arccos(np.clip(np.dot(-u * w, [1.0] * 3), -1, 1))
+    corner[:, 2] = np.pi - corner[:, 0] - corner[:, 1]
+    corner[(corner < _TOL_MERGE).any(axis=1), :] = 0.0
+    return fn, area, corner
 
 
 def _trimesh_geometry(surface: BoundarySurface):
@@ -210,12 +218,20 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
     fn, area, adj, ang, corner_w = _surface_geometry(surface.points, surface.triangles)
     smooth = ang <= np.radians(feature_angle)
     n_patch, patch = _patches(n_t, adj[smooth], compiled)
+    n_feature = int(np.count_nonzero(~smooth))
+    del adj, ang, smooth  # (dropped as soon as used: less scratch at the fits)
     # one normal per (vertex, patch): corner-angle-weighted face normals
     tri = surface.triangles
     key = tri * np.int64(n_patch) + patch[:, None]
     uk, inv = np.unique(key.ravel(), return_inverse=True)
+    del key
     acc = np.zeros((len(uk), 3))
-    np.add.at(acc, inv, (corner_w[:, :, None] * fn[:, None, :]).reshape(-1, 3))
+    del uk
+    for s in range(0, n_t, _FIT_CHUNK):  # in triangle order: the same sums, less scratch
+        t = slice(s, min(s + _FIT_CHUNK, n_t))
+        np.add.at(acc, inv[3 * t.start:3 * t.stop],
+                  (corner_w[t, :, None] * fn[t, None, :]).reshape(-1, 3))
+    del corner_w
     norm = np.linalg.norm(acc, axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
         acc /= norm[:, None]
@@ -224,7 +240,7 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
         t = slice(s, min(s + _FIT_CHUNK, n_t))
         N = acc[inv.reshape(n_t, 3)[t]]                              # corner normals
         k1[t], k2[t] = _fit_curvatures(surface.points[tri[t]], N, fn[t])
-    return SurfaceCurvature(k1, k2, patch, int(n_patch), int(np.count_nonzero(~smooth)), area)
+    return SurfaceCurvature(k1, k2, patch, int(n_patch), n_feature, area)
 
 
 #: triangles whose curvature fit :func:`surface_curvature` makes at a time (its scratch

@@ -476,17 +476,34 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
 
     f32, i8 = np.float32, np.int8
     lazy = vtkxml.Deferred  # each array made when written, then dropped (1 array in memory)
-    data = {"region": lazy(lambda: m.region.astype(np.int32, copy=False), np.int32),
+    n = m.n_cells
+
+    def parts(fn, dtype):  # an array made a piece at a time (uncompressed files; else whole)
+        return vtkxml.Chunked(lambda lo, hi: np.asarray(fn(lo, hi)).astype(dtype, copy=False),
+                              dtype, n)
+
+    data = {"region": parts(lambda lo, hi: m.region[lo:hi], np.int32),
             "min_scaled_jacobian": lazy(lambda: res.min_scaled_jacobian.astype(f32, copy=False),
                                         f32),
             "order_needed": lazy(lambda: a.cell_order.astype(i8, copy=False), i8),
-            "refine": lazy(lambda: a.refine.astype(i8), i8),
-            "coarsen": lazy(lambda: a.coarsen.astype(i8), i8),
-            "largest_edge": lazy(lambda: (a.cell_size / scale).astype(f32, copy=False), f32),
-            "target_size": lazy(lambda: (a.target_size / scale).astype(f32, copy=False), f32),
-            "coarsen_ratio": lazy(lambda: a.coarsen_ratio.astype(f32, copy=False), f32)}
+            "refine": parts(lambda lo, hi: a.refine[lo:hi], i8),
+            "coarsen": parts(lambda lo, hi: a.coarsen[lo:hi], i8),
+            "largest_edge": parts(lambda lo, hi: a.cell_size[lo:hi] / scale, f32),
+            "target_size": parts(lambda lo, hi: a.target_size[lo:hi] / scale, f32),
+            "coarsen_ratio": parts(lambda lo, hi: a.target_size[lo:hi] / a.cell_size[lo:hi],
+                                   f32)}
+    column: dict = {}  # the limit column being written (one at a time)
+
+    def limits(p, lo, hi):  # Advice.limit_at(p, float32)[lo:hi]
+        if a.limit_row is None:
+            return a.limit_rows[lo:hi, p - 1]
+        if p not in column:
+            column.clear()
+            column[p] = np.ascontiguousarray(a.limit_rows[:, p - 1])
+        return column[p][a.limit_row[lo:hi]]
+
     for p in range(1, res.settings.advice.max_order + 1):
-        data[f"limit_hz_p{p}"] = lazy(lambda p=p: a.limit_at(p, f32), f32)
+        data[f"limit_hz_p{p}"] = parts(lambda lo, hi, p=p: limits(p, lo, hi), f32)
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
             data[f"quality_{name}"] = lazy(lambda v=values: v.astype(f32, copy=False), f32)

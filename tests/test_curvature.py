@@ -362,6 +362,13 @@ def test_curvature_fits_in_chunks_equal_one_pass(sphere, cylinder, monkeypatch):
         assert len(surf.triangles) > 3 * 37
         assert np.array_equal(whole.k1, parts.k1, equal_nan=True)
         assert np.array_equal(whole.k2, parts.k2, equal_nan=True)
+        # the triangles' normals, areas and corner angles too (trimesh's operations)
+        one = CV._surface_geometry(surf.points, surf.triangles)
+        with monkeypatch.context() as m:
+            m.setattr(CV, "_FIT_CHUNK", 37)
+            many = CV._surface_geometry(surf.points, surf.triangles)
+        for x, y in zip(one, many):
+            assert np.array_equal(x, y)
         # the enclosing radii of check_curvature are made in the same chunks: the same
         # radii, curvatures and chord heights as in one pass
         c = np.full(mesh.n_cells, 343.0)

@@ -207,3 +207,43 @@ def test_audit_keeps_float32_metrics_and_reports_the_float64_statistics():
         kept = res.quality.metrics[name]
         assert kept.dtype == np.float32
         assert np.array_equal(kept, v.astype(np.float32), equal_nan=True), name
+
+
+@pytest.mark.parametrize("mode", ["numpy", "numba"])
+@pytest.mark.parametrize("compress", [True, False])
+def test_vtu_cell_arrays_are_the_audit_arrays(tmp_path, monkeypatch, mode, compress):
+    # the VTU's cell arrays, made whole (compressed) or a piece at a time (uncompressed,
+    # pieces of 111 bytes), read back by meshio: the audit's arrays in the mesh's unit
+    import meshio
+
+    from meshcheck import vtkxml
+    from meshcheck.mesh import CellBlock, Mesh
+    from meshcheck.report import write_vtu
+
+    if mode == "numba":
+        pytest.importorskip("numba")
+    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+    monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 37)
+    box = tet_box((6, 5, 4), size=(600.0, 500.0, 400.0))  # millimetres
+    rng = np.random.default_rng(2)
+    b = box.blocks[0]
+    mesh = Mesh(box.points + rng.uniform(-20, 20, box.points.shape),
+                (CellBlock(b.type, b.cells, np.where(np.arange(len(b)) % 3 == 0, 7, 2)),),
+                unit="mm")
+    res = audit(mesh, AuditSettings((900.0,)))
+    a = res.advice
+    back = meshio.read(write_vtu(res, tmp_path / "a.vtu", compress=compress))
+    got = {k: v[0] for k, v in back.cell_data.items()}
+    f32 = np.float32
+    want = {"region": mesh.region.astype(np.int32), "refine": a.refine.astype(np.int8),
+            "coarsen": a.coarsen.astype(np.int8), "order_needed": a.cell_order,
+            "largest_edge": (a.cell_size / 1e-3).astype(f32),
+            "target_size": (a.target_size / 1e-3).astype(f32),
+            "coarsen_ratio": a.coarsen_ratio.astype(f32),
+            **{f"limit_hz_p{p}": a.limit_at(p, f32) for p in range(1, 9)},
+            **{f"quality_{k}": v for k, v in res.quality.metrics.items()
+               if np.isfinite(v).any()}}
+    assert (a.limit_row is not None) == (mode == "numba")
+    assert set(np.unique(mesh.region)) == {2, 7} and len(np.unique(a.cell_size)) > 100
+    for k, v in want.items():
+        assert got[k].dtype == v.dtype and np.array_equal(got[k], v, equal_nan=True), k
