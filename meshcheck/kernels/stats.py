@@ -452,34 +452,32 @@ class TooManyTies(Exception):
 
 
 @njit
-def tie_counts(w, vals, below, equal):
-    """For the sorted distinct finite ``vals`` ((m,) float64): below[j] += the finite
-    values of w under vals[j], equal[j] += those equal to it."""
+def tie_scan(w, vals, below, equal, ids):
+    """One pass over w for the sorted distinct finite ``vals`` ((m,) float64):
+    below[j] += the finite values of w under vals[j], equal[j] += those equal to it, and
+    the ids (ascending) of the values equal to one of vals written to ``ids`` while it
+    has room.  Returns the number of such values (all of them, written or not)."""
     m = vals.shape[0]
+    cap = ids.shape[0]
+    hist = np.zeros(m + 1, np.int64)  # of r = the number of vals <= x (no branch on it)
+    k = 0
     for i in range(w.shape[0]):
         x = w[i]
         if not (x - x == 0.0):  # NaN or infinite
             continue
+        r = 0
         for j in range(m):
-            if x < vals[j]:
-                below[j] += 1
-            elif x == vals[j]:
-                equal[j] += 1
-
-
-@njit
-def tie_ids(w, vals, out):
-    """Ids (ascending) of the values of w equal to one of ``vals``; out is sized by
-    :func:`tie_counts`.  Returns the number written."""
-    m = vals.shape[0]
-    k = 0
-    for i in range(w.shape[0]):
-        x = w[i]
-        for j in range(m):
-            if x == vals[j]:
-                out[k] = i
-                k += 1
-                break
+            r += vals[j] <= x
+        hist[r] += 1
+        if r > 0 and vals[r - 1] == x:
+            equal[r - 1] += 1
+            if k < cap:
+                ids[k] = i
+            k += 1
+    c = 0
+    for j in range(m):  # x < vals[j] exactly when r <= j
+        c += hist[j]
+        below[j] += c
     return k
 
 
@@ -518,17 +516,16 @@ def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
     vals = np.unique(np.fromiter(at_w.values(), np.float64))
     below = np.zeros(len(vals), np.int64)
     equal = np.zeros(len(vals), np.int64)
-    tie_counts(w, vals, below, equal)
     # the worst candidates: the cells strictly worse than the k-th worst value of w
     # (fewer than k, all among w's k worst) and the cells tied with it
     cut = at_w[plan.kk_rank] if plan.kk else None
     worse = (worst_w[w[worst_w] < cut] if low else worst_w[w[worst_w] > cut]) \
         if plan.kk else np.zeros(0, np.int64)
-    if int(equal.sum()) + len(worse) > tie_max:
+    tied = np.empty(max(tie_max - len(worse), 0), np.int64)
+    n_tied = tie_scan(w, vals, below, equal, tied)
+    if n_tied > len(tied):
         raise TooManyTies
-    tied = np.empty(int(equal.sum()), np.int64)
-    tie_ids(w, vals, tied)
-    ids = np.union1d(tied, worse)
+    ids = np.union1d(tied[:n_tied], worse)
     x = np.asarray(exact(ids), np.float64)
     xw = w[ids]
     at = {}
