@@ -488,7 +488,12 @@ def size_correction(mesh: Mesh, topo: Topology, pmax: int, target: float,
         groups = _CORRECTED_EDGES.get(b.info.linear, (((slice(None), None),),))[0]
         sources = set()
         for sl, key in groups:
-            (touched[key] if key in touched else plain)[ce[:, sl].ravel()] = True
+            hit = touched[key] if key in touched else plain
+            if len(mesh.blocks) == 1 and len(groups) == 1 and \
+                    sl.indices(ce.shape[1]) == (0, ce.shape[1], 1):
+                hit[:] = True  # one block, all its local edges: every edge (no scatter)
+            else:
+                hit[ce[:, sl].ravel()] = True
             sources.add(key if key in touched else None)
         if len(sources) > 1:
             mixed.append(off + np.arange(len(ce)))
@@ -721,7 +726,8 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     if len(corr.mixed):
         a_cell = cell_max(corr.at(P))
     else:  # all edges of a cell carry one factor: its longest edge's, A[code[gov], P - 1]
-        a_cell = _take(np.ascontiguousarray(A[:, P - 1]), code_gov, np.empty(n_cells))
+        a_cell = np.empty(n_cells)
+        _ka.lookup(np.ascontiguousarray(A[:, P - 1]), code_gov, a_cell)
     del code_gov
     target64 = np.divide(size, a_cell, out=a_cell)  # the factors' buffer (no third array)
     del size, a_cell

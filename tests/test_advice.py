@@ -310,3 +310,30 @@ def test_orders_are_one_byte_and_hold_pmax_plus_one():
     assert a.cell_order.dtype == a.edge_order.dtype == np.int8
     assert a.edge_order.min() >= 1 and a.edge_order.max() <= a.pmax + 1
     assert np.iinfo(order_dtype(126)).max >= 127 and np.iinfo(order_dtype(127)).max >= 128
+
+
+@pytest.mark.parametrize("kind", ["tet", "hex", "wedge"])
+def test_size_correction_marks_the_edges_of_its_cells(kind):
+    # one block whose every local edge takes one factor marks all edges without the
+    # scatter; wedges (two factors per cell) scatter: both the cells' own edges
+    from meshcheck.advice import _CORRECTED_EDGES, size_correction
+    from meshcheck.mesh import CellBlock, Mesh
+    from meshcheck.topology import build_topology
+    from meshes import grid_hexes, grid_points, hex_box
+
+    if kind == "wedge":
+        pts, hx = grid_points((3, 3, 2)), grid_hexes((3, 3, 2))
+        w = np.concatenate([hx[:, [0, 1, 3, 4, 5, 7]], hx[:, [1, 2, 3, 5, 6, 7]]])
+        mesh = Mesh(pts, (CellBlock("wedge", w, np.ones(len(w), np.int64)),))
+    else:
+        mesh = tet_box((3, 3, 2)) if kind == "tet" else hex_box((3, 3, 2))
+    topo = build_topology(mesh)
+    corr = size_correction(mesh, topo, 8, 0.01)
+    ce = topo.edges.cell_edges[0]
+    groups = _CORRECTED_EDGES[mesh.blocks[0].info.linear][0]
+    assert len(corr.classes) == len(groups)
+    for (touched, _), (sl, _) in zip(corr.classes, groups):
+        want = np.zeros(len(topo.edges), bool)
+        want[ce[:, sl].ravel()] = True
+        assert np.array_equal(touched, want)
+    assert (len(corr.mixed) > 0) == (kind == "wedge") and not corr.touched_plain.any()

@@ -303,6 +303,14 @@ def gov_index(gov, owner, lo, hi, limit_row, h, code, size, code_gov, finish,
 
 
 @njit
+def lookup(table, index, out):
+    """out[i] = table[index[i]] (a small table, e.g. the size factors by code): np.take
+    would cast the index to intp first."""
+    for i in range(index.shape[0]):
+        out[i] = table[index[i]]
+
+
+@njit
 def edge_orders(lo, hi, h, c, L, code, A, logA, base, step, scale, top, fmax, P, edge_order,
                 edge_limit, owner, out, finish, cell_order, refine):
     """edge_order[e] = lowest order whose limit reaches fmax (pmax + 1 = none),
