@@ -686,11 +686,27 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
         raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
     # every cell's row, longest edge and size factor
     limit_row = np.empty(n_cells, id_type if n_rows < 2 ** 31 - 1 else np.int64)
-    cell_size, code_gov = np.empty(n_cells), np.empty(n_cells, np.uint8)
-    thread_map(lambda r: _ka.gov_index(gov, owner, r[0], r[1], limit_row, h, code,
-                                       cell_size, code_gov, finish, row_order, row_refine,
-                                       cell_order, refine),
-               _chunks(n_cells, 2 if par else 1), parallel=par)
+    one_size = flow is None and n_cells and np.all(cell_speed == cell_speed[0]) and \
+        np.all(cell_L == cell_L[0])  # one wavenumber and one distance: one model size
+    if one_size and not len(corr.mixed):
+        # the sizes, targets and coarsening decided in the same pass, in float64, and
+        # kept in float32 (no (n_cells,) float64 array)
+        size = table.max_size(P, TWO_PI * fmax / cell_speed[:1], cell_L[:1])[0]
+        cell_size, target_size = np.empty(n_cells, SIZE_DTYPE), np.empty(n_cells, SIZE_DTYPE)
+        coarsen = np.empty(n_cells, bool)
+        a_col = np.ascontiguousarray(A[:, P - 1])
+        thread_map(lambda r: _ka.gov_sizes(gov, owner, r[0], r[1], limit_row, h, code, a_col,
+                                           float(size), float(settings.coarsen_factor),
+                                           finish, row_order, row_refine, cell_order, refine,
+                                           cell_size, target_size, coarsen),
+                   _chunks(n_cells, 2 if par else 1), parallel=par)
+        code_gov = None
+    else:
+        cell_size, code_gov = np.empty(n_cells), np.empty(n_cells, np.uint8)
+        thread_map(lambda r: _ka.gov_index(gov, owner, r[0], r[1], limit_row, h, code,
+                                           cell_size, code_gov, finish, row_order, row_refine,
+                                           cell_order, refine),
+                   _chunks(n_cells, 2 if par else 1), parallel=par)
     del owner, gov
     if not finish:
         limit_row[exact] = np.arange(n_shared, n_rows)
@@ -712,9 +728,12 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
             _ka.per_cell_max(ce, v, out, int(off))
         return out
 
+    if code_gov is None:  # sizes, targets and coarsening made by gov_sizes
+        return Advice(settings, float(fmax), limit_rows, cell_size, cell_L, cell_speed,
+                      edge_limit if edge_limits else None, edge_order, cell_order,
+                      target_size, refine, coarsen, flow, limit_row)
     # cell_size = h[gov], the longest edge (NaN if one is NaN, like np.maximum)
-    if flow is None and n_cells and np.all(cell_speed == cell_speed[0]) and \
-            np.all(cell_L == cell_L[0]):
+    if one_size:
         # one wavenumber and one distance: one size for all cells (elementwise the same)
         size = table.max_size(P, TWO_PI * fmax / cell_speed[:1], cell_L[:1])[0]
     else:

@@ -311,16 +311,19 @@ def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
 KERNELS = ("governing_edges", "mark_rows", "odd_cells", "longest_directions", "gov_index",
            "exact_rows", "finish_limits", "edge_orders", "per_cell_max", "order_hist",
            "edge_min_bins", "edge_bin_hist", "face_dof_hist", "label_flagged", "count_labels",
-           "cluster_stats", "lookup")
+           "cluster_stats", "lookup", "gov_sizes")
 
 
 @pytest.mark.parametrize("name,expected", [
     # two media, wedges: cells of mixed size factors, limits finished after the exact ones
     # (cells whose edges carry different factors: their factor is the largest over the
     # edges, not looked up by their longest edge's code)
-    ("hex+wedge", set(KERNELS) - {"lookup"}),
-    # one medium, one kind: the cell pass finishes the limits itself
-    ("tet", set(KERNELS) - {"odd_cells", "exact_rows", "finish_limits", "per_cell_max"})])
+    ("hex+wedge", set(KERNELS) - {"lookup", "gov_sizes"}),
+    # two media, one kind: each cell's factor looked up by its longest edge's code
+    ("tet two media", set(KERNELS) - {"per_cell_max", "gov_sizes"}),
+    # one medium, one kind: the cell pass finishes the limits and decides the sizes itself
+    ("tet", set(KERNELS) - {"odd_cells", "exact_rows", "finish_limits", "per_cell_max",
+                            "gov_index", "lookup"})])
 def test_the_compiled_path_is_taken(monkeypatch, name, expected):
     # a comparison with itself would prove nothing: every kernel of the advice stage
     # runs under MESHCHECK_KERNELS=numba and none under numpy
@@ -417,3 +420,27 @@ def test_a_propagation_distance_not_above_zero_is_refused_on_both_paths(monkeypa
             advise(mesh, flat, _speeds(mesh), 500.0, AdviceSettings())
     monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
     assert advise(mesh, topo, _speeds(mesh), 500.0, AdviceSettings()).cell_limit.min() > 0
+
+
+@pytest.mark.parametrize("size", [0.37, 0.0, np.inf, np.nan])
+def test_gov_sizes_decides_as_the_numpy_operations(size):
+    # the one-size kernel against numpy's float64 operations on its inputs, with a zero
+    # factor (x / 0), NaN and infinite lengths among the governing edges
+    h = np.array([0.1, 0.2, np.nan, np.inf, 0.05, 0.3])
+    code = np.array([0, 1, 2, 1, 0, 2], np.uint8)
+    a_col = np.array([0.8, 0.0, 1.1])
+    gov = np.array([0, 1, 2, 3, 4, 5, 1, 0], np.int32)
+    owner = np.array([0, 1, 2, 3, 4, 5], np.int32)
+    n = len(gov)
+    out = [np.empty(n, np.int32), np.empty(n, np.float32), np.empty(n, np.float32),
+           np.empty(n, bool)]
+    order, ref = np.arange(6, dtype=np.int8), np.zeros(6, bool)
+    KA.gov_sizes(gov, owner, 0, n, out[0], h, code, a_col, size, 2.0, True, order, ref,
+                 np.empty(n, np.int8), np.empty(n, bool), out[1], out[2], out[3])
+    with np.errstate(all="ignore"):
+        target = size / a_col[code[gov]]
+        coarsen = target >= np.multiply(h[gov], 2.0)
+    assert np.array_equal(out[0], owner[gov])
+    assert np.array_equal(out[1], h[gov].astype(np.float32), equal_nan=True)
+    assert np.array_equal(out[2], target.astype(np.float32), equal_nan=True)
+    assert np.array_equal(out[3], coarsen)

@@ -303,6 +303,34 @@ def gov_index(gov, owner, lo, hi, limit_row, h, code, size, code_gov, finish,
 
 
 @njit
+def gov_sizes(gov, owner, lo, hi, limit_row, h, code, a_col, size, factor, finish,
+              row_order, row_refine, cell_order, refine, cell_size, target, coarsen):
+    """:func:`gov_index` for one model size (one wavenumber and distance) and one factor
+    per cell, with the sizes decided here: cell_size[i] = h[gov[i]], target[i] = size /
+    a_col[code[gov[i]]] (both stored in the arrays' type, float32) and coarsen[i] =
+    target >= factor * cell_size, compared in float64 (as the numpy operations on the
+    float64 arrays: NaN never coarsens, a zero factor gives an infinite or NaN target)."""
+    for i in range(lo, hi):
+        e = gov[i]
+        r = owner[e]
+        limit_row[i] = r
+        if finish:
+            cell_order[i] = row_order[r]
+            refine[i] = row_refine[r]
+        x = h[e]
+        a = a_col[code[e]]
+        if a != 0.0:
+            t = size / a
+        elif size != 0.0 and size == size:
+            t = np.inf if size > 0 else -np.inf
+        else:
+            t = np.nan
+        cell_size[i] = x
+        target[i] = t
+        coarsen[i] = t >= x * factor
+
+
+@njit
 def lookup(table, index, out):
     """out[i] = table[index[i]] (a small table, e.g. the size factors by code): np.take
     would cast the index to intp first."""
