@@ -386,14 +386,31 @@ class SizeCorrection:
         return out
 
 
-def _alignment(mesh: Mesh, topo: Topology, kind: str) -> float:
+def _longest_edges(mesh: Mesh, topo: Topology) -> np.ndarray:
+    """(n_cells,) the longest edge of every cell (np.argmax over its edges: the first
+    maximum, the first NaN), by the compiled kernel, in 4-byte ids when they fit."""
+    from .kernels import advice as _ka
+
+    n_cells, n_e = mesh.n_cells, len(topo.edges)
+    gov = np.empty(n_cells, np.int32 if max(n_cells, n_e) < 2 ** 31 - 1 else np.int64)
+    h = np.ascontiguousarray(topo.edges.length, dtype=float)
+    par = n_e > 100_000
+    for ce, off in zip(topo.edges.cell_edges, mesh.block_offsets):
+        ce = np.ascontiguousarray(ce)
+        thread_map(lambda r, ce=ce, off=off: _ka.governing_edges(ce, r[0], r[1], h, gov,
+                                                                 int(off)),
+                   _chunks(len(ce), 2 if par else 1), parallel=par)
+    return gov
+
+
+def _alignment(mesh: Mesh, topo: Topology, kind: str, gov: np.ndarray | None = None) -> float:
     """s in [0, 1] from the largest eigenvalue lam of mean(d d^T), d the unit direction of
     each cell's longest edge (wedges: of its first triangle): s = (n lam - 1) / (n - 1),
     n = 3 (tetrahedra) or 2 (wedge triangles), clipped; 0 = isotropic, 1 = all parallel."""
     _, edges, n = _CORRECTED_EDGES[kind]
     T, count = np.zeros((3, 3)), 0
     compiled = kernels.use_compiled(mesh.n_cells)
-    for b, ce in zip(mesh.blocks, topo.edges.cell_edges):
+    for b, ce, off in zip(mesh.blocks, topo.edges.cell_edges, mesh.block_offsets):
         if b.info.linear != kind or not len(ce):
             continue
         if compiled:  # the same sum, one pass over the cells, no (n, 3) directions
@@ -404,10 +421,17 @@ def _alignment(mesh: Mesh, topo: Topology, kind: str) -> float:
             local = np.ascontiguousarray(b.info.edges[:, :2], dtype=np.int64)
             pts = np.ascontiguousarray(mesh.points, dtype=float)
 
+            off = int(off)
+            known = gov is not None and (c0, c1) == (0, ce.shape[1])  # every edge counts
+
             def part(r):  # a chunk of the cells on each core, its own 3x3 sum
                 Tr = np.zeros((3, 3))
-                m = _ka.longest_directions(ce[r[0]:r[1]], c0, c1, topo.edges.length,
-                                           cells[r[0]:r[1]], local, pts, Tr)
+                if known:  # the same directions and sums from the known longest edges
+                    m = _ka.gov_directions(gov, off + r[0], off + r[1], topo.edges.nodes,
+                                           pts, Tr)
+                else:
+                    m = _ka.longest_directions(ce[r[0]:r[1]], c0, c1, topo.edges.length,
+                                               cells[r[0]:r[1]], local, pts, Tr)
                 return Tr, m
 
             ranges = _chunks(len(ce), 2 if len(ce) > 100_000 else 1)
@@ -473,10 +497,12 @@ def cell_factors(mesh: Mesh, topo: Topology, order: int, settings: "AdviceSettin
 
 
 def size_correction(mesh: Mesh, topo: Topology, pmax: int, target: float,
-                    table: dict | None = None) -> SizeCorrection:
+                    table: dict | None = None, gov: np.ndarray | None = None) -> SizeCorrection:
     """The 3D correction for a mesh and an accuracy target (relative error).
 
     table : None = SIZE_FACTOR_TABLE, {} = none (every factor 1, the plain 1D model).
+    gov : optional (n_cells,) longest edge of every cell (:func:`_longest_edges`), which
+        the alignment of cells whose every edge counts then reads instead of finding it.
     """
     table = SIZE_FACTOR_TABLE if table is None else table
     n_e = len(topo.edges)
@@ -502,7 +528,7 @@ def size_correction(mesh: Mesh, topo: Topology, pmax: int, target: float,
         if not t.any():
             continue
         free, aligned = _free_and_aligned(table[key], pmax, target)
-        align[key] = _alignment(mesh, topo, key) if np.any(free != aligned) else 0.0
+        align[key] = _alignment(mesh, topo, key, gov) if np.any(free != aligned) else 0.0
         classes.append((t, kind_factors(key, pmax, target, align[key], table)))
     if len(classes) > 1 or (classes and plain.any()):
         # an edge of two kinds (e.g. tetrahedra next to a hexahedron) takes the larger factor
@@ -549,8 +575,10 @@ def _advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     else:
         cell_L = topo.cell_extent()
     h = topo.edges.length
+    # compiled: every cell's longest edge first; the size correction's alignment reads it
+    gov = _longest_edges(mesh, topo) if kernels.use_compiled(mesh.n_cells) else None
     corr = size_correction(mesh, topo, pmax, settings.target,
-                           None if settings.correction_3d else {})
+                           None if settings.correction_3d else {}, gov=gov)
     edge_c = _edge_values(topo, cell_speed, np.minimum)
     flow = None
     if cell_mach is not None and np.any(cell_mach):
@@ -562,7 +590,7 @@ def _advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
     P = settings.allowed_order
     if kernels.use_compiled(n_cells):
         return _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L,
-                                h, corr, edge_c, edge_L, flow, edge_limits)
+                                h, corr, edge_c, edge_L, flow, edge_limits, gov)
     good = np.isfinite(h) & (h > 0) & np.isfinite(edge_L) & np.isfinite(edge_c)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(good, edge_L / np.where(good, h, 1.0), 1.0)
@@ -611,7 +639,7 @@ def _advise(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: float,
 
 
 def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L, h, corr,
-                     edge_c, edge_L, flow, edge_limits: bool = True) -> Advice:
+                     edge_c, edge_L, flow, edge_limits: bool = True, gov=None) -> Advice:
     """The tail of :func:`advise` with the kernels of :mod:`meshcheck.kernels.advice`:
     the same arrays as the numpy code (one pass over the cells, one over the edges;
     the edges' L / h and whether they are good are worked out in the kernels)."""
@@ -629,14 +657,12 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     # in size factor, take the minimum over their edges
     # cell and edge ids in 4 bytes when they fit (gov and owner are scratch arrays)
     id_type = np.int32 if max(n_cells, n_e) < 2 ** 31 - 1 else np.int64
-    gov = np.empty(n_cells, id_type)
     odd = np.zeros(n_cells, bool)
     uniform = (np.ptp(c) == 0 if n_e else True) and (np.ptp(L) == 0 if n_e else True)
     par = n_e > 100_000
+    if gov is None:
+        gov = _longest_edges(mesh, topo)
     for ce, off in zip(blocks, offs):
-        thread_map(lambda r, ce=ce, off=off: _ka.governing_edges(ce, r[0], r[1], h, gov,
-                                                                 int(off)),
-                   _chunks(len(ce), 2 if par else 1), parallel=par)
         if not uniform:
             _ka.odd_cells(ce, h, c, L, odd, int(off))
     exact = np.union1d(np.flatnonzero(odd), corr.mixed)

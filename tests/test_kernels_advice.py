@@ -311,19 +311,20 @@ def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
 KERNELS = ("governing_edges", "mark_rows", "odd_cells", "longest_directions", "gov_index",
            "exact_rows", "finish_limits", "edge_orders", "per_cell_max", "order_hist",
            "edge_min_bins", "edge_bin_hist", "face_dof_hist", "label_flagged", "count_labels",
-           "cluster_stats", "lookup", "gov_sizes")
+           "cluster_stats", "lookup", "gov_sizes", "gov_directions")
 
 
 @pytest.mark.parametrize("name,expected", [
     # two media, wedges: cells of mixed size factors, limits finished after the exact ones
     # (cells whose edges carry different factors: their factor is the largest over the
     # edges, not looked up by their longest edge's code)
-    ("hex+wedge", set(KERNELS) - {"lookup", "gov_sizes"}),
+    # (the wedges' alignment searches their first triangle's longest edge itself)
+    ("hex+wedge", set(KERNELS) - {"lookup", "gov_sizes", "gov_directions"}),
     # two media, one kind: each cell's factor looked up by its longest edge's code
-    ("tet two media", set(KERNELS) - {"per_cell_max", "gov_sizes"}),
+    ("tet two media", set(KERNELS) - {"per_cell_max", "gov_sizes", "longest_directions"}),
     # one medium, one kind: the cell pass finishes the limits and decides the sizes itself
     ("tet", set(KERNELS) - {"odd_cells", "exact_rows", "finish_limits", "per_cell_max",
-                            "gov_index", "lookup"})])
+                            "gov_index", "lookup", "longest_directions"})])
 def test_the_compiled_path_is_taken(monkeypatch, name, expected):
     # a comparison with itself would prove nothing: every kernel of the advice stage
     # runs under MESHCHECK_KERNELS=numba and none under numpy
@@ -444,3 +445,30 @@ def test_gov_sizes_decides_as_the_numpy_operations(size):
     assert np.array_equal(out[1], h[gov].astype(np.float32), equal_nan=True)
     assert np.array_equal(out[2], target.astype(np.float32), equal_nan=True)
     assert np.array_equal(out[3], coarsen)
+
+
+@pytest.mark.parametrize("name", ["tet 6k", "tet 105k", "tet10", "hex", "wedge"])
+def test_alignment_from_the_known_longest_edges_is_the_same_sum(monkeypatch, name):
+    # advise finds every cell's longest edge once; the alignment of cells whose every edge
+    # counts reads it (kernel gov_directions) and sums the same directions in the same
+    # blocks of 4096 cells (and halves above 100k cells): the same value bit for bit;
+    # wedges (first triangle only) keep their own search
+    from meshcheck.advice import _longest_edges
+
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    mesh = {"tet 6k": lambda: _perturbed(tet_box((10, 10, 10)), 0.02),
+            "tet 105k": lambda: _perturbed(tet_box((26, 26, 26)), 0.01)}.get(
+        name, lambda: _mesh(name)[0])()
+    topo = build_topology(mesh)
+    kind = mesh.blocks[0].info.linear
+    calls = []
+    real = KA.gov_directions
+    monkeypatch.setattr(KA, "gov_directions", lambda *a: calls.append(1) or real(*a))
+    gov = _longest_edges(mesh, topo)
+    assert np.array_equal(gov, [e for ce in topo.edges.cell_edges
+                                for e in ce[np.arange(len(ce)),
+                                            np.argmax(topo.edges.length[ce], axis=1)]])
+    assert _alignment(mesh, topo, kind, gov) == _alignment(mesh, topo, kind)
+    assert bool(calls) == (kind != "wedge")
+    if name == "tet 105k":
+        assert mesh.n_cells > 100_000 and len(calls) == 2
