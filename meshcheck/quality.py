@@ -821,19 +821,27 @@ def checked_quality(mesh: Mesh, limits: QualityLimits, n_worst: int = 10,
     pos = [METRICS.index(k) for k in names]
     kept = np.empty((len(names), n), np.float32)
     flags = CellFlags.empty(METRICS, n)
+    for fam, lo, hi, rows in _chunk_metrics(mesh, chunk):
+        _flag_rows(flags, rows, METRICS, fam, limits, lo)
+        kept[:, lo:hi] = rows[pos]
+    kept.setflags(write=False)
+    nan = np.broadcast_to(np.float32(np.nan), (n,))
+    row = dict(zip(names, kept))
+    q = CellQuality({k: row[k] if k in row else nan for k in METRICS})
+    return q, flags, _summary_of_kept(mesh, q, names, n_worst, chunk)
+
+
+def _chunk_metrics(mesh: Mesh, chunk: int):
+    """(family, lo, hi, rows) for the cells lo..hi-1 of each block, ``chunk`` at a time:
+    rows (len(METRICS), hi - lo) float64 their metrics by the compiled kernels (NaN where
+    undefined)."""
     for blk, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
         fam = family_of(blk.type)
         for s in range(0, len(blk), chunk):
             e = min(s + chunk, len(blk))
             rows = np.full((len(METRICS), e - s), np.nan)
             _compiled_quality(mesh.points, blk.cells[s:e], blk.type, rows, 0)
-            _flag_rows(flags, rows, METRICS, fam, limits, int(off + s))
-            kept[:, off + s:off + e] = rows[pos]
-    kept.setflags(write=False)
-    nan = np.broadcast_to(np.float32(np.nan), (n,))
-    row = dict(zip(names, kept))
-    q = CellQuality({k: row[k] if k in row else nan for k in METRICS})
-    return q, flags, _summary_of_kept(mesh, q, names, n_worst, chunk)
+            yield fam, int(off + s), int(off + e), rows
 
 
 def _metrics_of(mesh: Mesh, ids: np.ndarray) -> np.ndarray:
@@ -883,10 +891,6 @@ def _summarise_whole(mesh: Mesh, names: list[str], n_worst: int, chunk: int) -> 
     """:func:`summarise` of ``names`` from their float64 values over all cells."""
     pos = [METRICS.index(k) for k in names]
     full = np.empty((len(names), mesh.n_cells))
-    for blk, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
-        for s in range(0, len(blk), chunk):
-            e = min(s + chunk, len(blk))
-            rows = np.full((len(METRICS), e - s), np.nan)
-            _compiled_quality(mesh.points, blk.cells[s:e], blk.type, rows, 0)
-            full[:, off + s:off + e] = rows[pos]
+    for _, lo, hi, rows in _chunk_metrics(mesh, chunk):
+        full[:, lo:hi] = rows[pos]
     return summarise(CellQuality(dict(zip(names, full))), n_worst, parallel=False)

@@ -97,6 +97,57 @@ def odd_cells(ce, h, c, L, odd, start):
 
 
 @njit
+def _block_directions(points, pa, pb, k, t):
+    """Adds to t ((6,) float64: the xx, xy, xz, yy, yz, zz sums) the sums of d d^T over
+    the unit directions d from node pa[i] to node pb[i], i < k (one block, summed on its
+    own first), skipping directions with a non-finite component; returns how many."""
+    b00 = b01 = b02 = b11 = b12 = b22 = 0.0
+    n = 0
+    for i in range(k):
+        a = pa[i]
+        b = pb[i]
+        d0 = points[b, 0] - points[a, 0]
+        d1 = points[b, 1] - points[a, 1]
+        d2 = points[b, 2] - points[a, 2]
+        if not (np.isfinite(d0) and np.isfinite(d1) and np.isfinite(d2)):
+            continue
+        r = np.sqrt(d0 * d0 + d1 * d1 + d2 * d2)
+        if r < 1e-300:
+            r = 1e-300
+        d0 /= r
+        d1 /= r
+        d2 /= r
+        b00 += d0 * d0
+        b01 += d0 * d1
+        b02 += d0 * d2
+        b11 += d1 * d1
+        b12 += d1 * d2
+        b22 += d2 * d2
+        n += 1
+    t[0] += b00
+    t[1] += b01
+    t[2] += b02
+    t[3] += b11
+    t[4] += b12
+    t[5] += b22
+    return n
+
+
+@njit
+def _add_symmetric(T, t):
+    """T (3, 3) += the symmetric matrix of the sums t of :func:`_block_directions`."""
+    T[0, 0] += t[0]
+    T[1, 1] += t[3]
+    T[2, 2] += t[5]
+    T[0, 1] += t[1]
+    T[1, 0] += t[1]
+    T[0, 2] += t[2]
+    T[2, 0] += t[2]
+    T[1, 2] += t[4]
+    T[2, 1] += t[4]
+
+
+@njit
 def longest_directions(ce, c0, c1, length, cells, local, points, T):
     """Sum of d d^T over the unit directions d of each cell's longest edge among local
     edges c0..c1-1, from its smaller to its larger node number (as ``Edges.nodes``),
@@ -109,12 +160,13 @@ def longest_directions(ce, c0, c1, length, cells, local, points, T):
     """
     m = ce.shape[0]
     blk = 4096
-    best = np.empty(min(m, blk), np.int64)
+    pa = np.empty(min(m, blk), np.int64)
+    pb = np.empty(min(m, blk), np.int64)
+    t = np.zeros(6)
     n = 0
-    t00 = t01 = t02 = t11 = t12 = t22 = 0.0
     for s in range(0, m, blk):
         stop = min(m, s + blk)
-        for i in range(s, stop):  # first pass: the gathers of the second do not wait
+        for i in range(s, stop):  # the edges first: the gathers of the sums do not wait
             j = c0
             hb = length[ce[i, c0]]
             if hb == hb:
@@ -126,47 +178,12 @@ def longest_directions(ce, c0, c1, length, cells, local, points, T):
                     if v > hb:
                         j = jj
                         hb = v
-            best[i - s] = j
-        b00 = b01 = b02 = b11 = b12 = b22 = 0.0
-        for i in range(s, stop):
-            j = best[i - s]
             x = cells[i, local[j, 0]]
             y = cells[i, local[j, 1]]
-            a = min(x, y)
-            b = max(x, y)
-            d0 = points[b, 0] - points[a, 0]
-            d1 = points[b, 1] - points[a, 1]
-            d2 = points[b, 2] - points[a, 2]
-            if not (np.isfinite(d0) and np.isfinite(d1) and np.isfinite(d2)):
-                continue
-            r = np.sqrt(d0 * d0 + d1 * d1 + d2 * d2)
-            if r < 1e-300:
-                r = 1e-300
-            d0 /= r
-            d1 /= r
-            d2 /= r
-            b00 += d0 * d0
-            b01 += d0 * d1
-            b02 += d0 * d2
-            b11 += d1 * d1
-            b12 += d1 * d2
-            b22 += d2 * d2
-            n += 1
-        t00 += b00
-        t01 += b01
-        t02 += b02
-        t11 += b11
-        t12 += b12
-        t22 += b22
-    T[0, 0] += t00
-    T[1, 1] += t11
-    T[2, 2] += t22
-    T[0, 1] += t01
-    T[1, 0] += t01
-    T[0, 2] += t02
-    T[2, 0] += t02
-    T[1, 2] += t12
-    T[2, 1] += t12
+            pa[i - s] = min(x, y)
+            pb[i - s] = max(x, y)
+        n += _block_directions(points, pa, pb, stop - s, t)
+    _add_symmetric(T, t)
     return n
 
 
@@ -177,53 +194,19 @@ def gov_directions(gov, lo, hi, nodes, points, T):
     (smaller to larger node number), the same sums in the same blocks of 4096 cells, so
     the same T bit for bit.  Returns how many directions."""
     blk = 4096
+    pa = np.empty(min(max(hi - lo, 0), blk), np.int64)
+    pb = np.empty(min(max(hi - lo, 0), blk), np.int64)
+    t = np.zeros(6)
     n = 0
-    t00 = t01 = t02 = t11 = t12 = t22 = 0.0
     for s in range(lo, hi, blk):
         stop = min(hi, s + blk)
-        b00 = b01 = b02 = b11 = b12 = b22 = 0.0
         for i in range(s, stop):
             e = gov[i]
-            a = nodes[e, 0]
-            b = nodes[e, 1]
-            d0 = points[b, 0] - points[a, 0]
-            d1 = points[b, 1] - points[a, 1]
-            d2 = points[b, 2] - points[a, 2]
-            if not (np.isfinite(d0) and np.isfinite(d1) and np.isfinite(d2)):
-                continue
-            r = np.sqrt(d0 * d0 + d1 * d1 + d2 * d2)
-            if r < 1e-300:
-                r = 1e-300
-            d0 /= r
-            d1 /= r
-            d2 /= r
-            b00 += d0 * d0
-            b01 += d0 * d1
-            b02 += d0 * d2
-            b11 += d1 * d1
-            b12 += d1 * d2
-            b22 += d2 * d2
-            n += 1
-        t00 += b00
-        t01 += b01
-        t02 += b02
-        t11 += b11
-        t12 += b12
-        t22 += b22
-    T[0, 0] += t00
-    T[1, 1] += t11
-    T[2, 2] += t22
-    T[0, 1] += t01
-    T[1, 0] += t01
-    T[0, 2] += t02
-    T[2, 0] += t02
-    T[1, 2] += t12
-    T[2, 1] += t12
+            pa[i - s] = nodes[e, 0]
+            pb[i - s] = nodes[e, 1]
+        n += _block_directions(points, pa, pb, stop - s, t)
+    _add_symmetric(T, t)
     return n
-
-
-# ---------------------------------------------------------------------------
-# frequency limits per order
 
 
 @njit(inline="always")
@@ -335,6 +318,19 @@ def mark_rows(gov, skip, owner):
 
 
 @njit
+def _take_row(gov, owner, i, limit_row, finish, row_order, row_refine, cell_order, refine):
+    """Cell i takes the row of its longest edge (and that row's order and refine flag when
+    ``finish``); returns the edge."""
+    e = gov[i]
+    r = owner[e]
+    limit_row[i] = r
+    if finish:
+        cell_order[i] = row_order[r]
+        refine[i] = row_refine[r]
+    return e
+
+
+@njit
 def gov_index(gov, owner, lo, hi, limit_row, h, code, size, code_gov, finish,
               row_order, row_refine, cell_order, refine):
     """For cells lo <= i < hi: limit_row[i] = owner[gov[i]], the row that
@@ -344,12 +340,8 @@ def gov_index(gov, owner, lo, hi, limit_row, h, code, size, code_gov, finish,
     size factors in A: one byte per cell instead of the float64 factor).  Cells of
     different ranges write different entries: ranges can run on different threads."""
     for i in range(lo, hi):
-        e = gov[i]
-        r = owner[e]
-        limit_row[i] = r
-        if finish:
-            cell_order[i] = row_order[r]
-            refine[i] = row_refine[r]
+        e = _take_row(gov, owner, i, limit_row, finish, row_order, row_refine, cell_order,
+                      refine)
         size[i] = h[e]
         code_gov[i] = code[e]
 
@@ -363,12 +355,8 @@ def gov_sizes(gov, owner, lo, hi, limit_row, h, code, a_col, size, factor, finis
     target >= factor * cell_size, compared in float64 (as the numpy operations on the
     float64 arrays: NaN never coarsens, a zero factor gives an infinite or NaN target)."""
     for i in range(lo, hi):
-        e = gov[i]
-        r = owner[e]
-        limit_row[i] = r
-        if finish:
-            cell_order[i] = row_order[r]
-            refine[i] = row_refine[r]
+        e = _take_row(gov, owner, i, limit_row, finish, row_order, row_refine, cell_order,
+                      refine)
         x = h[e]
         a = a_col[code[e]]
         if a != 0.0:
