@@ -393,7 +393,7 @@ def metric_summary(values: np.ndarray, bad: str, n_worst: int, *, nb1: int = NB1
     n, tab, hist1 = histogram(bits, nb1, sample, proto)
     if n == 0:
         return None
-    plan = _plan(n, n_worst, bad)
+    plan = _Plan(n, n_worst, bad)
     keys, worst = _select(bits, n, tab, hist1, plan.ranks, plan.kk, bad == "low", nb2,
                           gather_max, worst_max, info)
     return plan.finish(dict(zip(plan.ranks.tolist(), _values(keys))), worst)
@@ -441,10 +441,6 @@ class _Plan:
         return {"cells": n, "min": float(at[0]), "p05": float(p[0]),
                 "median": float(median), "p95": float(p[2]), "max": float(at[n - 1]),
                 "worst": worst}
-
-
-def _plan(n: int, n_worst: int, bad: str) -> _Plan:
-    return _Plan(n, n_worst, bad)
 
 
 class TooManyTies(Exception):
@@ -508,7 +504,7 @@ def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
     n, tab, hist1 = histogram(bits, nb1, SAMPLE, proto)
     if n == 0:
         return None
-    plan = _plan(n, n_worst, bad)
+    plan = _Plan(n, n_worst, bad)
     low = plan.low
     keys, worst_w = _select(bits, n, tab, hist1, plan.ranks, plan.kk, low, NB2,
                             GATHER_MAX, WORST_MAX, None)
