@@ -869,11 +869,14 @@ def _summary_of_kept(mesh: Mesh, q: CellQuality, names: list[str], n_worst: int,
 
     out: dict = {k: None for k in METRICS}  # metrics no cell defines: no finite value
     for j, name in enumerate(names):
-        w = q[name].astype(np.float64)
+        k = METRICS.index(name)
+        w = q[name]  # float32, read in place (widened value by value)
         big = np.flatnonzero(np.isinf(w))  # beyond float32's range: their exact values
         if len(big):
-            w[big] = _metrics_of(mesh, big)[METRICS.index(name)]
-        k = METRICS.index(name)
+            xb = _metrics_of(mesh, big)[k]
+            if not np.isinf(xb).all():  # finite float64 values: widen and insert them
+                w = w.astype(np.float64)
+                w[big] = xb
         exact = lambda ids, k=k: _metrics_of(mesh, ids)[k]  # noqa: E731
         try:
             st = summary_of_rounded(w, exact, METRIC_BAD.get(name, "high"), n_worst)

@@ -201,10 +201,31 @@ def _rounded(x: np.ndarray) -> np.ndarray:
     return w
 
 
+def test_float32_bits_widen_as_numpy_widens():
+    # every class of float32 bit pattern (zeros, subnormals, normals, inf, NaN) against
+    # numpy's own float32 -> float64 conversion (IEEE 754 widening is exact)
+    rng = np.random.default_rng(7)
+    b = rng.integers(0, 2**32, 200_000, dtype=np.uint64).astype(np.uint32)
+    special = np.array([0, 1, 2, 3, 0x7FFFFF, 0x400000, 0x800000, 0x7F7FFFFF, 0x7F800000,
+                        0x3F800000, 0x00000010], np.uint32)
+    b = np.concatenate([b, special, special | np.uint32(0x80000000),
+                        rng.integers(0, 0x800000, 5000).astype(np.uint32)])  # subnormals
+    x = b.view(np.float32)
+    with np.errstate(invalid="ignore"):  # signalling NaNs are quieted by the cast
+        want = x.astype(np.float64).view(np.uint64)
+    got = np.array([KS._wide32(v) for v in b], np.uint64)
+    num = ~np.isnan(x)
+    np.testing.assert_array_equal(got[num], want[num])
+    # NaN stays non-finite for the kernels (all-ones exponent)
+    assert np.all(got[~num] & KS._EXP == KS._EXP)
+    assert np.all(got[num] & KS._EXP != KS._EXP) == np.all(np.isfinite(x[num]))
+
+
 @pytest.mark.parametrize("n", [1, 2, 3, 10, 1000, 20_000])
 @pytest.mark.parametrize("bad", ["low", "high"])
 @pytest.mark.parametrize("k", [1, 10, 25])
-def test_summary_of_rounded_equals_the_float64_summary(n, bad, k):
+@pytest.mark.parametrize("form", ["float64", "float32"])
+def test_summary_of_rounded_equals_the_float64_summary(n, bad, k, form):
     # every array of the radix tests, and values that differ only below float32's
     # resolution (all tied after rounding): the statistics and worst cells of x itself,
     # bit for bit, from the rounding and the recomputed tied cells alone
@@ -220,8 +241,15 @@ def test_summary_of_rounded_equals_the_float64_summary(n, bad, k):
             asked.append(len(ids))
             return x[ids]
 
+        if form == "float32":  # the kept metrics read in place, as the audit reads them
+            with np.errstate(over="ignore"):
+                w = x.astype(np.float32)
+            if np.any(np.isinf(w) & np.isfinite(x)):
+                continue  # not a rounding (the audit widens these, as _rounded does)
+        else:
+            w = _rounded(x)
         want = _metric_stats(x, bad, k)
-        got = KS.summary_of_rounded(_rounded(x), exact, bad, k, tie_max=n + k)
+        got = KS.summary_of_rounded(w, exact, bad, k, tie_max=n + k)
         if want is None:
             assert got is None, name
             continue
@@ -242,3 +270,8 @@ def test_summary_of_rounded_raises_on_too_many_ties():
         KS.summary_of_rounded(_rounded(x), lambda ids: x[ids], "high", 10, tie_max=999)
     got = KS.summary_of_rounded(_rounded(x), lambda ids: x[ids], "high", 10, tie_max=1000)
     assert got["min"] == got["max"] == 0.731 and list(got["worst"]) == list(range(10))
+    got = KS.summary_of_rounded(x.astype(np.float32), lambda ids: x[ids], "high", 10,
+                                tie_max=1000)
+    assert got["min"] == got["max"] == 0.731 and list(got["worst"]) == list(range(10))
+    with pytest.raises(TypeError):
+        KS.summary_of_rounded(x.astype(np.float16), lambda ids: x[ids], "high", 10)

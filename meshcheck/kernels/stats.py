@@ -67,13 +67,42 @@ def _finite(b):
 
 
 @njit
+def _wide32(b):
+    """Bits (uint64) of the float64 equal to the float32 with bits ``b`` (uint32): the
+    exact widening, subnormals normalised (NaN and inf keep an all-ones exponent)."""
+    s = np.uint64(b >> np.uint32(31)) << np.uint64(63)
+    e = np.int64((b >> np.uint32(23)) & np.uint32(0xFF))
+    m = np.uint64(b & np.uint32(0x7FFFFF))
+    if e == 0xFF:
+        return s | _EXP | (m << np.uint64(29))
+    if e == 0:
+        if m == _U0:
+            return s
+        ex = np.int64(1023 - 126)  # m * 2**-149 = (m / 2**23) * 2**-126
+        while (m & np.uint64(0x800000)) == _U0:
+            m = m << np.uint64(1)
+            ex -= 1
+        return s | (np.uint64(ex) << _U52) | ((m & np.uint64(0x7FFFFF)) << np.uint64(29))
+    return s | (np.uint64(e + (1023 - 127)) << _U52) | (m << np.uint64(29))
+
+
+@njit
+def _get(bits, i):
+    """Bits (uint64) of value i as a float64: ``bits`` is the bits of float64 values
+    (uint64) or of float32 values (uint32, widened exactly by :func:`_wide32`)."""
+    if bits.itemsize == 8:
+        return np.uint64(bits[i])
+    return _wide32(np.uint32(bits[i]))
+
+
+@njit
 def _sample(bits, step, ehist):
     """Count of every top-12-bit key prefix (binade) among the finite values
     bits[::step] ((n,) uint64, the float64 values' bits), added to ehist ((4096,) int64);
     returns the number of finite values seen."""
     n = 0
     for i in range(0, bits.size, step):
-        b = bits[i]
+        b = _get(bits, i)
         if _finite(b):
             ehist[np.int64(_key(b) >> _U52)] += 1
             n += 1
@@ -109,7 +138,7 @@ def _hist1(bits, tab, hist):
     """First-level histogram of the finite keys of ``bits``; returns their number."""
     n = 0
     for i in range(bits.size):
-        b = bits[i]
+        b = _get(bits, i)
         if not _finite(b):
             continue
         n += 1
@@ -119,7 +148,8 @@ def _hist1(bits, tab, hist):
 
 @njit
 def histogram(bits, nb1, sample, proto):
-    """Pass 1 over ``bits`` ((n_all,) uint64, the bits of float64 values): a layout of
+    """Pass 1 over ``bits`` ((n_all,) uint64, the bits of float64 values, or uint32 of
+    float32 values, read as their float64 widening, see :func:`_get`): a layout of
     about ``nb1`` first-level bins fitted to the binades of about ``sample`` values
     (strided), and the histogram of the finite keys over it, of the dtype of ``proto``
     (int32 when n_all < 2**31: half the cache of int64).  Returns (number of finite
@@ -158,7 +188,7 @@ def refine_pass(bits, tab, ivb, n_iv, iv_lo, iv_hi, iv_sh, iv_mode, iv_off, fill
     rmin = _UMAX
     rmax = _U0
     for i in range(bits.size):
-        b = bits[i]
+        b = _get(bits, i)
         if not _finite(b):
             continue
         k = _key(b)
@@ -216,7 +246,7 @@ def worst_cut(bits, cut, k, low):
     ns = 0
     nt = 0
     for i in range(bits.size):
-        b = bits[i]
+        b = _get(bits, i)
         if not _finite(b):
             continue
         key = _key(b)
@@ -486,9 +516,10 @@ def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
     """:func:`metric_summary` of values x known only through a rounding w and a way to
     recompute a few of them, without the (n,) array of x.
 
-    w : (n,) float64 with the same NaN and infinities as x, w = x where |x| is beyond a
-        float32 and otherwise a monotone rounding of x (x_i < x_j => w_i <= w_j), e.g.
-        the float32 values of x widened back to float64.
+    w : (n,) float32 or float64 with the same NaN and infinities as x and a monotone
+        rounding of x (x_i < x_j => w_i <= w_j), e.g. the float32 values of x (read
+        in place, widened value by value), or those widened to float64 with w = x
+        where |x| is beyond a float32.
     exact : ids ((m,) int64, ascending) -> (m,) float64 their values of x.
 
     Rounding keeps the order, so the value of x at rank r is among the cells whose w
@@ -498,7 +529,10 @@ def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
     more than ``tie_max`` (default :data:`TIE_MAX`) cells would be recomputed (e.g.
     identical cells)."""
     tie_max = TIE_MAX if tie_max is None else tie_max
-    bits = np.ascontiguousarray(w).view(np.uint64)
+    w = np.ascontiguousarray(w)
+    if w.dtype not in (np.float32, np.float64) or w.ndim != 1:
+        raise TypeError("summary_of_rounded takes a 1D float32 or float64 array")
+    bits = w.view(np.uint32 if w.dtype == np.float32 else np.uint64)
     proto = np.empty(0, np.int32 if bits.size < 2**31 else np.int64)
     nb1 = min(NB1, max(1 << 10, bits.size // 8))
     n, tab, hist1 = histogram(bits, nb1, SAMPLE, proto)
