@@ -217,8 +217,7 @@ def test_float32_bits_widen_as_numpy_widens():
     num = ~np.isnan(x)
     np.testing.assert_array_equal(got[num], want[num])
     # NaN stays non-finite for the kernels (all-ones exponent)
-    assert np.all(got[~num] & KS._EXP == KS._EXP)
-    assert np.all(got[num] & KS._EXP != KS._EXP) == np.all(np.isfinite(x[num]))
+    assert (~num).any() and np.all(got[~num] & KS._EXP == KS._EXP)
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 10, 1000, 20_000])
