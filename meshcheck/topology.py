@@ -22,7 +22,7 @@ import numpy as np
 
 from . import kernels
 from .mesh import Mesh
-from .threads import thread_map
+from .threads import release_tail, reuse_or_empty, thread_map
 
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
            "build_topology", "edge_lengths", "index_type"]
@@ -916,13 +916,18 @@ def _refine(cptr, tmp, k, ptr, out, parts: int) -> None:
     ptr[-1] = cptr[-1]
 
 
-def _narrow(a: np.ndarray, dtype, parts: int) -> np.ndarray:
-    """``a.astype(dtype, copy=False)``, the copy cast in ``parts`` pieces on threads."""
-    if a.dtype == dtype:
+def _narrow(a: np.ndarray, dtype, parts: int, out: np.ndarray | None = None) -> np.ndarray:
+    """``a.astype(dtype, copy=False)``, the copy cast in ``parts`` pieces on threads (into
+    ``out`` when given: an array of a's shape and type ``dtype``)."""
+    if a.dtype == dtype and out is None:
         return a
     if parts == 1:
-        return a.astype(dtype)
-    out = np.empty(a.shape, dtype)
+        if out is None:
+            return a.astype(dtype)
+        np.copyto(out, a, casting="unsafe")
+        return out
+    if out is None:
+        out = np.empty(a.shape, dtype)
     cuts = [len(a) * i // parts for i in range(parts + 1)]
     thread_map(lambda r: np.copyto(out[r[0]:r[1]], a[r[0]:r[1]], casting="unsafe"),
                list(zip(cuts[:-1], cuts[1:])))
@@ -1022,7 +1027,7 @@ def _row_layout(widths: list[int], lengths: list[int], offsets) -> tuple[np.ndar
             np.asarray(offsets, np.int64).reshape(-1))
 
 
-def _build_edges_compiled(mesh: Mesh) -> Edges:
+def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
     """:func:`build_edges` by a counting sort of the local edges on their smaller node.
 
     Scratch memory: (larger node, cell, local edge) of every local edge packed in one
@@ -1030,7 +1035,12 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
     int64 per node.  Large meshes fill the buckets in two levels (coarse buckets of
     2**k nodes, then the nodes within each) and write the edge of every row block by
     block, with the output ``inverse`` as the scratch of both: the same arrays with
-    the scattered writes kept within cache-sized ranges."""
+    the scattered writes kept within cache-sized ranges.
+
+    The cell edges are narrowed into the pages of the incidence (dead by then, and already
+    written: no new pages for the kernel to clear), whose unused half is given back; the
+    int64 scratch of the edge ids is appended to ``spare`` (a list, when given) for the
+    faces' pass to reuse (:func:`meshcheck.threads.reuse_or_empty`)."""
     from .kernels import topology as kt
 
     if not mesh.blocks:
@@ -1102,11 +1112,20 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
         starts = np.empty(n_e, index_type(n_rows))
         kt.edge_emit(ptr, bhi, incidence, nodes, starts, inverse, *layout)
         del bhi
-    del ptr
-    # the int64 scratch arrays narrowed to the index type, one at a time
+    del ptr, starts  # the incidence is counted again from the cell edges if ever asked for
     n_e = len(nodes)
-    inverse = _narrow(inverse, index_type(n_e), parts)
-    del incidence, starts  # counted again from the cell edges if ever asked for
+    it = np.dtype(index_type(n_e))
+    if it.itemsize < inverse.itemsize and incidence.dtype == np.int64 and \
+            incidence.shape == (n_rows,) and incidence.flags.c_contiguous:
+        narrow = incidence.view(it)[:n_rows]
+        _narrow(inverse, it, parts, narrow)
+        release_tail(incidence, narrow.nbytes)
+        if spare is not None:
+            spare.append(inverse)
+        inverse = narrow
+    else:
+        inverse = _narrow(inverse, it, parts)
+    del incidence
     umid = _no_mids(mesh, n_e, node_t)
     cell_edges, pos = [], 0
     for b, w, m in zip(mesh.blocks, widths, lengths):
@@ -1121,7 +1140,8 @@ def _build_edges_compiled(mesh: Mesh) -> Edges:
     return Edges(nodes, umid, length, tuple(cell_edges))
 
 
-def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None):
+def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None,
+                          spare: list | None = None):
     """:func:`_group_faces` by a counting sort of the local faces into buckets: triangles
     by the edge of their two smallest nodes when ``edges`` are given, else by their
     smallest node, quadrilaterals by their second smallest node (the orders of the
@@ -1129,7 +1149,8 @@ def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None):
 
     Scratch memory: for triangles with edges one int64 per local face and per edge;
     otherwise the other sorted nodes and the row of every local face (int32 below
-    2**31) and one int64 per node."""
+    2**31) and one int64 per node.  ``spare``: int64 scratch arrays the triangles' pass
+    may reuse (the list is emptied either way)."""
     from .kernels import topology as kt
 
     tables = _face_tables(mesh, size)
@@ -1143,19 +1164,22 @@ def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None):
     shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 3  # (cell, local face < 8)
     if (size == 3 and edges is not None and len(edges) and
             int(n - 1).bit_length() + shift <= _PACK_BITS):
-        return _tri_by_edges(mesh, tables, edges, shift)
+        return _tri_by_edges(mesh, tables, edges, shift, spare)
+    if spare is not None:
+        spare.clear()
     first, cells, count = _faces_by_node(mesh, tables, blocks, widths,
                                          _row_layout(widths, lengths, offsets))
     return _row_local(first, widths, lengths), cells, count
 
 
-def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
+def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int, spare: list | None = None):
     """(local, cells, count) of the unique triangles, bucketed by the edge of their two
     smallest nodes and sorted on packed integers (largest node << shift | cell << 3 |
     local face).  Above 2**(_FANOUT_BITS + _MIN_COARSE_BITS) edges the buckets are filled in two
     levels (:func:`meshcheck.kernels.topology.coarse_refine`), through one more int64
-    per local triangle (153 MB on 4.8M tetrahedra) but a third of the scattered writes'
-    time."""
+    per local triangle (153 MB on 4.8M tetrahedra; taken from ``spare`` when it holds an
+    int64 array long enough, see :func:`_build_edges_compiled`) but a third of the
+    scattered writes' time.  ``spare`` is emptied."""
     from .kernels import topology as kt
 
     opps = []
@@ -1170,15 +1194,20 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int):
     n_rows = sum(len(t) * len(mesh.blocks[bi]) for bi, t in tables)
     parts = _n_parts(n_rows)
     n_e = len(edges)
+    k = _coarse_bits(n_e)
+    two_level = bool(k) and int(mesh.n_points - 1).bit_length() + shift + k <= _PACK_BITS
+    # the spare taken first, so that its unused tail is given back before new arrays
+    tmp = reuse_or_empty(spare if spare is not None else [], n_rows, np.int64) \
+        if two_level else None
+    if spare is not None:
+        spare.clear()
     ptr = np.zeros(n_e + 1, kt.index_dtype(n_rows + 1))
     packed = np.empty(n_rows, np.int64)
-    k = _coarse_bits(n_e)
-    if k and int(mesh.n_points - 1).bit_length() + shift + k <= _PACK_BITS:
+    if two_level:
         # cells split over threads (consecutive ranges: the buckets stay stable)
         pieces = _cell_parts([len(mesh.blocks[bi]) for bi, _ in tables],
                              [len(t) for _, t in tables], parts)
         n_coarse = ((n_e - 1) >> k) + 2
-        tmp = np.empty(n_rows, np.int64)
 
         def args(i, r0, r1):
             bi, t = tables[i]
@@ -1251,9 +1280,13 @@ def _faces_by_node(mesh: Mesh, tables, blocks, widths, layout):
     return first, cells, count
 
 
-def _build_faces_compiled(mesh: Mesh, edges: Edges | None = None) -> Faces:
-    parts = [(k, p) for k, p in ((3, _group_faces_compiled(mesh, 3, edges)),
-                                 (4, _group_faces_compiled(mesh, 4))) if p is not None]
+def _build_faces_compiled(mesh: Mesh, edges: Edges | None = None,
+                          spare: list | None = None) -> Faces:
+    tri = _group_faces_compiled(mesh, 3, edges, spare)
+    if spare is not None:
+        spare.clear()  # not held while the quadrilaterals are grouped
+    parts = [(k, p) for k, p in ((3, tri), (4, _group_faces_compiled(mesh, 4)))
+             if p is not None]
     return _faces_of(mesh, parts)
 
 
@@ -1334,11 +1367,13 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
     from .kernels import topology as kt
 
     used = _used_compiled(mesh)
-    edges = _build_edges_compiled(mesh)
+    # the edges' int64 scratch reused by the faces (3D): already written pages
+    spare: list | None = [] if mesh.dim == 3 else None
+    edges = _build_edges_compiled(mesh, spare)
     # volumes and duplicates need no faces: beside them on a second thread (the kernels
     # and numpy's sort release the GIL)
     tail = thread_map(lambda job: job(), [
-        lambda: _build_faces_compiled(mesh, edges) if mesh.dim == 3 else no_faces(mesh),
+        lambda: _build_faces_compiled(mesh, edges, spare) if mesh.dim == 3 else no_faces(mesh),
         lambda: (_cell_volumes_compiled(mesh),
                  _duplicate_nodes_compiled(mesh.points, used, edges, rel_tol),
                  _duplicate_cells_compiled(mesh))])

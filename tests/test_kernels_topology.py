@@ -389,6 +389,29 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
     assert len(calls["edge_emit_packed"]) == 1 and calls["edge_emit_packed"][0] > 0  # k2
 
 
+def test_faces_reuse_the_edge_passs_scratch(monkeypatch):
+    # the triangles' two-level pass takes the edge pass's int64 scratch (pages already
+    # written, so the kernel clears no new ones) instead of a new array: check it did, and
+    # that the topology is still numpy's
+    monkeypatch.setattr(T, "_FANOUT_BITS", 1)
+    monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
+    seen = []
+    real = T.reuse_or_empty
+
+    def spy(spare, n, dtype):
+        before = list(spare)
+        out = real(spare, n, dtype)
+        seen.append(bool(before) and np.shares_memory(out, before[-1]) and not spare)
+        return out
+    monkeypatch.setattr(T, "reuse_or_empty", spy)
+    ref, got = _both(T.build_topology, MESHES["tetra"](), monkeypatch)
+    _same_topology(ref, got)
+    assert seen == [True]
+    # the cell edges live in the head of the incidence's (int64) pages
+    ce = got.edges.cell_edges[0]
+    assert ce.base is not None and ce.base.dtype == np.int64
+
+
 @pytest.mark.parametrize("two_level", [False, True])
 @pytest.mark.parametrize("name", ["tetra", "tetra10", "random-0", "mixed", "defects-1", "hub",
                                   "pyramid", "quad9"])

@@ -1,5 +1,5 @@
 """thread_map: the serial result, in input order, whatever the number of threads; the
-CLI's one malloc arena and fixed mmap threshold."""
+CLI's one malloc arena and fixed mmap threshold; scratch pages given back and reused."""
 import platform
 import subprocess
 import sys
@@ -7,7 +7,7 @@ import sys
 import numpy as np
 import pytest
 
-from meshcheck.threads import thread_map
+from meshcheck.threads import release_tail, reuse_or_empty, thread_map
 
 
 def test_results_in_input_order_and_equal_to_serial():
@@ -93,3 +93,57 @@ def test_fixed_mmap_threshold_maps_a_chunk_after_a_large_temporary():
 
     assert mapped("default") == 0
     assert mapped("fixed") == 1
+
+
+
+_RELEASE_CHILD = r"""
+import numpy as np
+from meshcheck.threads import release_tail
+def rss():
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * 4096
+a = np.empty(64 << 20, np.uint8)
+a[:] = 7                                   # every page written: resident
+head = (16 << 20) + 123                    # a head ending inside a page
+before = rss()
+n = release_tail(a, head)
+after = rss()
+print(n, before - after, int((a[:head] == 7).all()), int((a[(17 << 20):-4096] == 0).all()),
+      int((a[-16:] == 7).all()))
+"""
+
+
+@pytest.mark.skipif(platform.system() != "Linux", reason="madvise(MADV_DONTNEED) is Linux's")
+def test_release_tail_gives_the_pages_back_and_keeps_the_head():
+    # Linux madvise(2): MADV_DONTNEED frees the pages; anonymous private pages read as
+    # zeros afterwards.  The kernel's own count of resident pages (/proc/self/statm)
+    # must fall by about the 48 MiB past the head; the head (to its last byte, inside a
+    # page that must be kept) and the array's last bytes (on a page it shares with
+    # whatever follows it) must be intact.
+    out = subprocess.run([sys.executable, "-c", _RELEASE_CHILD], capture_output=True,
+                         text=True, check=True).stdout.split()
+    n, dropped, head_ok, tail_zero, end_ok = map(int, out)
+    assert 47 << 20 < n <= 48 << 20
+    assert dropped > 40 << 20
+    assert head_ok == 1 and tail_zero == 1 and end_ok == 1
+
+
+def test_release_tail_of_nothing_is_nothing():
+    a = np.ones(100)                                      # 800 bytes: no whole page
+    assert release_tail(a, a.nbytes) == 0 and release_tail(a, 0) == 0
+    assert np.all(a == 1)
+    assert release_tail(np.ones((100, 100))[:, :3], 0) == 0  # not contiguous
+
+
+def test_reuse_or_empty_takes_a_long_enough_spare_of_the_type():
+    big = np.arange(1000, dtype=np.int64)
+    spare = [big]
+    got = reuse_or_empty(spare, 600, np.int64)
+    assert got.shape == (600,) and got.dtype == np.int64
+    assert np.shares_memory(got, big) and spare == []
+    for bad in (np.zeros(500, np.int64), np.zeros(1000, np.int32)):  # too short, other type
+        spare = [bad]
+        got = reuse_or_empty(spare, 600, np.int64)
+        assert got.shape == (600,) and got.dtype == np.int64
+        assert not np.shares_memory(got, bad) and len(spare) == 1
+    assert reuse_or_empty([], 3, np.float32).shape == (3,)
