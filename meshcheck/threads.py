@@ -11,7 +11,7 @@ from concurrent.futures import ThreadPoolExecutor
 from typing import Callable, Iterable
 
 __all__ = ["thread_map", "MAX_WORKERS", "share_malloc_arena", "fix_mmap_threshold",
-           "release_tail", "reuse_or_empty"]
+           "can_release", "release_tail", "reuse_or_empty"]
 
 #: most threads used (the project's target machine has 2 cores); the environment
 #: variable MESHCHECK_THREADS sets it (1 = everything serial)
@@ -108,6 +108,11 @@ def _madvise():
     return fn
 
 
+def can_release() -> bool:
+    """Whether :func:`release_tail` can give pages back here (Linux's ``madvise``)."""
+    return _madvise() is not None
+
+
 def release_tail(a, start: int) -> int:
     """Give back to the system the whole memory pages of the bytes ``start:`` of the
     C-contiguous array ``a`` (``madvise(MADV_DONTNEED)``; Linux only) and return how many
@@ -135,13 +140,13 @@ def release_tail(a, start: int) -> int:
 def reuse_or_empty(spare: list, n: int, dtype):
     """A (n,) array of ``dtype``: the head of the last array in ``spare`` (popped, its
     unused tail given back with :func:`release_tail`) when that one is C-contiguous, of
-    the same type and at least as long, else a new ``np.empty``.  Contents are undefined
-    either way.  Reusing a scratch array that was already written spares the kernel from
-    clearing new pages (about 0.4 s per GiB on the project's machine, more with huge
-    pages)."""
+    the same type and at least as long and the tail can be given back, else a new
+    ``np.empty``.  Contents are undefined either way.  Reusing a scratch array that was
+    already written spares the kernel from clearing new pages (about 0.4 s per GiB on the
+    project's machine, more with huge pages)."""
     import numpy as np
 
-    if spare and spare[-1].dtype == dtype and spare[-1].ndim == 1 and \
+    if spare and can_release() and spare[-1].dtype == dtype and spare[-1].ndim == 1 and \
             len(spare[-1]) >= n and spare[-1].flags.c_contiguous:
         buf = spare.pop()
         release_tail(buf, n * buf.itemsize)

@@ -22,7 +22,7 @@ import numpy as np
 
 from . import kernels
 from .mesh import Mesh
-from .threads import release_tail, reuse_or_empty, thread_map
+from .threads import can_release, release_tail, reuse_or_empty, thread_map
 
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
            "build_topology", "edge_lengths", "index_type"]
@@ -1040,7 +1040,8 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
     The cell edges are narrowed into the pages of the incidence (dead by then, and already
     written: no new pages for the kernel to clear), whose unused half is given back; the
     int64 scratch of the edge ids is appended to ``spare`` (a list, when given) for the
-    faces' pass to reuse (:func:`meshcheck.threads.reuse_or_empty`)."""
+    faces' pass to reuse (:func:`meshcheck.threads.reuse_or_empty`).  Where pages cannot
+    be given back (not Linux) the cell edges get an array of their own, as before."""
     from .kernels import topology as kt
 
     if not mesh.blocks:
@@ -1116,7 +1117,7 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
     n_e = len(nodes)
     it = np.dtype(index_type(n_e))
     if it.itemsize < inverse.itemsize and incidence.dtype == np.int64 and \
-            incidence.shape == (n_rows,) and incidence.flags.c_contiguous:
+            incidence.shape == (n_rows,) and incidence.flags.c_contiguous and can_release():
         narrow = incidence.view(it)[:n_rows]
         _narrow(inverse, it, parts, narrow)
         release_tail(incidence, narrow.nbytes)

@@ -412,6 +412,30 @@ def test_faces_reuse_the_edge_passs_scratch(monkeypatch):
     assert ce.base is not None and ce.base.dtype == np.int64
 
 
+def test_without_giving_pages_back_the_scratch_is_not_reused(monkeypatch):
+    # where madvise is missing (not Linux) a reused scratch array would keep its unused
+    # tail resident: the cell edges get an array of their own and the faces a new one
+    import meshcheck.threads as th
+
+    monkeypatch.setattr(th, "_madvise", lambda: None)
+    monkeypatch.setattr(T, "_FANOUT_BITS", 1)
+    monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
+    seen = []
+    real = T.reuse_or_empty
+
+    def spy(spare, n, dtype):
+        before = list(spare)
+        out = real(spare, n, dtype)
+        seen.append(any(np.shares_memory(out, b) for b in before))
+        return out
+    monkeypatch.setattr(T, "reuse_or_empty", spy)
+    ref, got = _both(T.build_topology, MESHES["tetra"](), monkeypatch)
+    _same_topology(ref, got)
+    assert seen == [False]
+    ce = got.edges.cell_edges[0]
+    assert ce.base is None or ce.base.dtype != np.int64
+
+
 @pytest.mark.parametrize("two_level", [False, True])
 @pytest.mark.parametrize("name", ["tetra", "tetra10", "random-0", "mixed", "defects-1", "hub",
                                   "pyramid", "quad9"])

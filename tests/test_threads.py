@@ -147,3 +147,15 @@ def test_reuse_or_empty_takes_a_long_enough_spare_of_the_type():
         assert got.shape == (600,) and got.dtype == np.int64
         assert not np.shares_memory(got, bad) and len(spare) == 1
     assert reuse_or_empty([], 3, np.float32).shape == (3,)
+
+
+def test_reuse_or_empty_takes_nothing_where_pages_cannot_be_given_back(monkeypatch):
+    import meshcheck.threads as th
+
+    monkeypatch.setattr(th, "_madvise", lambda: None)
+    assert not th.can_release()
+    big = np.arange(1000, dtype=np.int64)
+    spare = [big]
+    got = reuse_or_empty(spare, 600, np.int64)
+    assert got.shape == (600,) and not np.shares_memory(got, big) and len(spare) == 1
+    assert release_tail(np.ones(1 << 16), 0) == 0
