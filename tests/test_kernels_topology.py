@@ -389,24 +389,33 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
     assert len(calls["edge_emit_packed"]) == 1 and calls["edge_emit_packed"][0] > 0  # k2
 
 
-def test_faces_reuse_the_edge_passs_scratch(monkeypatch):
-    # the triangles' two-level pass takes the edge pass's int64 scratch (pages already
-    # written, so the kernel clears no new ones) instead of a new array: check it did, and
-    # that the topology is still numpy's
+def _reuse_calls(monkeypatch):
+    """Force the two-level passes on small meshes; record every call of reuse_or_empty as
+    (spare arrays offered, array returned, spare arrays left)."""
     monkeypatch.setattr(T, "_FANOUT_BITS", 1)
     monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
-    seen = []
+    calls = []
     real = T.reuse_or_empty
 
     def spy(spare, n, dtype):
         before = list(spare)
         out = real(spare, n, dtype)
-        seen.append(bool(before) and np.shares_memory(out, before[-1]) and not spare)
+        calls.append((before, out, list(spare)))
         return out
     monkeypatch.setattr(T, "reuse_or_empty", spy)
+    return calls
+
+
+def test_faces_reuse_the_edge_passs_scratch(monkeypatch):
+    # the triangles' two-level pass takes the edge pass's int64 scratch (pages already
+    # written, so the kernel clears no new ones) instead of a new array: check it did, and
+    # that the topology is still numpy's
+    calls = _reuse_calls(monkeypatch)
     ref, got = _both(T.build_topology, MESHES["tetra"](), monkeypatch)
     _same_topology(ref, got)
-    assert seen == [True]
+    assert len(calls) == 1
+    offered, out, left = calls[0]
+    assert len(offered) == 1 and np.shares_memory(out, offered[0]) and not left
     # the cell edges live in the head of the incidence's (int64) pages
     ce = got.edges.cell_edges[0]
     assert ce.base is not None and ce.base.dtype == np.int64
@@ -418,20 +427,10 @@ def test_without_giving_pages_back_the_scratch_is_not_reused(monkeypatch):
     import meshcheck.threads as th
 
     monkeypatch.setattr(th, "_madvise", lambda: None)
-    monkeypatch.setattr(T, "_FANOUT_BITS", 1)
-    monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
-    seen = []
-    real = T.reuse_or_empty
-
-    def spy(spare, n, dtype):
-        before = list(spare)
-        out = real(spare, n, dtype)
-        seen.append(any(np.shares_memory(out, b) for b in before))
-        return out
-    monkeypatch.setattr(T, "reuse_or_empty", spy)
+    calls = _reuse_calls(monkeypatch)
     ref, got = _both(T.build_topology, MESHES["tetra"](), monkeypatch)
     _same_topology(ref, got)
-    assert seen == [False]
+    assert len(calls) == 1 and calls[0][0] == []
     ce = got.edges.cell_edges[0]
     assert ce.base is None or ce.base.dtype != np.int64
 
