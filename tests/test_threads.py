@@ -128,6 +128,63 @@ def test_release_tail_gives_the_pages_back_and_keeps_the_head():
     assert head_ok == 1 and tail_zero == 1 and end_ok == 1
 
 
+_LIBRARY_CHILD = r"""
+import ctypes, numpy as np
+from meshcheck.kernels import topology as kt
+from meshcheck.threads import release_library_pages
+def mappings():
+    out, cur = [], None
+    for line in open("/proc/self/smaps"):
+        head = line.split(maxsplit=5)
+        if len(head) == 6 and "-" in head[0] and ":" not in head[0]:
+            cur = None
+            if "libllvmlite" in head[5] and "w" not in head[1]:
+                cur = [*(int(x, 16) for x in head[0].split("-")), int(head[2], 16), head[5].strip(), 0]
+                out.append(cur)
+        elif cur is not None and line.startswith("Rss:"):
+            cur[4] = int(line.split()[1]) * 1024
+    return out
+kt.mark_used(np.zeros((1, 1), np.int32), np.zeros(1, bool))    # sets LLVM up
+maps = mappings()
+lo, hi, offset, path, _ = max(maps, key=lambda m: m[4])         # the most resident one
+page = ctypes.string_at(lo, 4096)
+before = sum(m[4] for m in maps)
+n = release_library_pages("libllvmlite")
+after = sum(m[4] for m in mappings())
+again = ctypes.string_at(lo, 4096)                               # faults the page back in
+with open(path, "rb") as f:
+    f.seek(offset)
+    on_disk = f.read(4096)
+used = np.zeros(5, bool)
+kt.mark_used(np.array([[0, 2], [2, 4]], np.int64), used)        # kernels still run
+print(before, n, after, int(page == again == on_disk), "".join(str(int(u)) for u in used))
+"""
+
+
+@pytest.mark.skipif(platform.system() != "Linux", reason="madvise(MADV_DONTNEED) is Linux's")
+def test_release_library_pages_drops_llvm_pages_that_read_back_from_the_file():
+    # Linux madvise(2): after MADV_DONTNEED, private file mappings are refilled from the
+    # file on access.  After numba's set-up LLVM has tens of MiB resident; the release
+    # must drop nearly all of them (the kernel's count in /proc/self/smaps), a dropped
+    # page must read back byte for byte as the library file holds it, and compiled code
+    # must still run and give the right answer.
+    pytest.importorskip("numba")
+    out = subprocess.run([sys.executable, "-c", _LIBRARY_CHILD], capture_output=True,
+                         text=True, check=True).stdout.split()
+    before, n, after, same, used = out
+    before, n, after = int(before), int(n), int(after)
+    assert before > 16 << 20                    # set-up touched much of the library
+    assert n > before // 2 and after < before - n // 2
+    assert same == "1"
+    assert used == "10101"
+
+
+def test_release_library_pages_of_no_such_library_is_nothing():
+    from meshcheck.threads import release_library_pages
+
+    assert release_library_pages("no-such-library-in-this-process") == 0
+
+
 def test_release_tail_of_nothing_is_nothing():
     a = np.ones(100)                                      # 800 bytes: no whole page
     assert release_tail(a, a.nbytes) == 0 and release_tail(a, 0) == 0
@@ -159,3 +216,4 @@ def test_reuse_or_empty_takes_nothing_where_pages_cannot_be_given_back(monkeypat
     got = reuse_or_empty(spare, 600, np.int64)
     assert got.shape == (600,) and not np.shares_memory(got, big) and len(spare) == 1
     assert release_tail(np.ones(1 << 16), 0) == 0
+    assert th.release_library_pages("libllvmlite") == 0
