@@ -94,7 +94,7 @@ def node_min(mesh: Mesh, topo: Topology, cell_values: np.ndarray) -> np.ndarray:
 
 
 #: cells whose fields :func:`_node_mins` stacks at a time (compiled path)
-_NODE_MIN_CHUNK = 1 << 18
+_NODE_MIN_CHUNK = 1 << 16
 
 
 def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:

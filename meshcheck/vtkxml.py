@@ -46,8 +46,10 @@ _VTK_TYPE = {np.dtype(np.int8): "Int8", np.dtype(np.uint8): "UInt8",
              np.dtype(np.int32): "Int32", np.dtype(np.int64): "Int64",
              np.dtype(np.float32): "Float32", np.dtype(np.float64): "Float64"}
 _BLOCK = 1 << 21  # bytes per compressed block (blocks are compressed in parallel)
-_CHUNK = 3 << 20  # bytes per base64 piece of an uncompressed array (a multiple of 3)
-_BUFFERS = 4  # base64 buffers of the compiled level-0 path (4 x 4 MiB in flight at most)
+#: bytes per base64 piece of an uncompressed array (a multiple of 3); 1.5 MiB rather than
+#: 3 MiB: the reports stage of the 1M-tet audit peaked 10 MiB lower, no slower
+_CHUNK = 3 << 19
+_BUFFERS = 4  # base64 buffers of the compiled level-0 path (4 x 2 MiB in flight at most)
 _OFFSETS_CHUNK = 1 << 20  # cells whose offsets are made at a time
 _SLOT = 32  # characters reserved in each DataArray tag for ``offset="..."`` and blank padding
 
@@ -311,7 +313,7 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     order = list(range(n_point, len(arrays))) + list(range(n_point))
     head = bytearray(head)
     workers = max(1, min(os.cpu_count() or 1, 8))
-    pending: queue.Queue = queue.Queue(maxsize=8)  # at most 8 pieces (32 MiB) in flight
+    pending: queue.Queue = queue.Queue(maxsize=8)  # at most 8 pieces (16 MiB) in flight
     failed: list[BaseException] = []
 
     def drain(fh):
