@@ -10,7 +10,8 @@ references with it), so a figure measured now cannot be compared with one from a
 earlier table.  This script runs ``meshcheck audit MESH --reports json,vtu --no-cost``
 of the git revision REV (checked out in a temporary worktree, put first on PYTHONPATH)
 and of the source tree DIR (default: this checkout) in turn, ``--runs`` times each, in
-fresh processes, after one untimed run of each (which fills its numba cache), and prints
+fresh processes, after writing each tree's bytecode (``compileall``, as an installed
+package has it) and one untimed run of each (which fills its numba cache), and prints
 for both the best and median wall time, the best analysis time (from the JSON report)
 and the highest peak resident memory, and the ratios new / old.
 """
@@ -28,7 +29,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
-from bench_audit import _peak_of  # noqa: E402
+from bench_audit import _peak_of, compile_package  # noqa: E402
 
 AUDIT = ["--units", "m", "--fmin", "50", "--fmax", "2000", "--step", f"{1950 / 199:.6f}",
          "--quiet", "--reports", "json,vtu", "--no-cost"]
@@ -78,6 +79,7 @@ def main(argv=None) -> int:
             if package_of(tree) != (tree / "meshcheck").resolve():
                 raise SystemExit(f"the {name} version's audit would not import meshcheck from "
                                  f"{tree} (found {package_of(tree)})")
+            compile_package(tree / "meshcheck")  # both as installed: bytecode written
             audit_once(tree, args.mesh)  # fills the tree's numba cache; not timed
         runs = {k: [] for k in trees}
         for _ in range(max(1, args.runs)):
