@@ -525,6 +525,33 @@ def test_warm_up_loads_numba_only_for_large_files():
         assert out.stdout.split() == want.split(), (size, extra, out.stdout)
 
 
+def test_warm_up_leaves_little_of_llvm_resident():
+    # numba's set-up leaves about 67 MiB of llvmlite's LLVM library resident; the warm-up
+    # gives those pages back (meshcheck.threads.release_library_pages): the kernel's own
+    # count of the library's resident pages (/proc/self/smaps) must stay well below that
+    # after the warm-up and a second kernel's load
+    import platform
+    import subprocess
+    import sys
+
+    if platform.system() != "Linux":
+        pytest.skip("/proc/self/smaps and madvise are Linux's")
+    code = ("import numpy as np; from meshcheck import kernels as k; k._warm_up(); "
+            "from meshcheck.kernels import topology as kt; "
+            "kt.mark_used(np.zeros((2, 2), np.int64), np.zeros(1, bool)); "
+            "rss, on = 0, False\n"
+            "for line in open('/proc/self/smaps'):\n"
+            "    h = line.split(maxsplit=5)\n"
+            "    if len(h) >= 5 and '-' in h[0] and ':' not in h[0]:\n"
+            "        on = len(h) == 6 and 'libllvmlite' in h[5]\n"
+            "    elif on and line.startswith('Rss:'):\n"
+            "        rss += int(line.split()[1])\n"
+            "print(rss)")
+    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True,
+                         text=True)
+    assert 0 < int(out.stdout) < 24 * 1024, out.stdout  # KiB; about 68 MiB without the drop
+
+
 def test_kernels_load_without_scipy_linalg_and_numba_blas_still_works():
     # numba's array functions would import scipy.linalg (26 MiB, 0.15 s) to look for BLAS:
     # hidden while our kernels load; afterwards a jitted np.dot (BLAS, through numba's
