@@ -529,7 +529,7 @@ def test_warm_up_leaves_little_of_llvm_resident():
     # numba's set-up leaves about 67 MiB of llvmlite's LLVM library resident; the warm-up
     # gives those pages back (meshcheck.threads.release_library_pages): the kernel's own
     # count of the library's resident pages (/proc/self/smaps) must stay well below that
-    # after the warm-up and a second kernel's load
+    # after the warm-up and a second kernel's load from numba's cache
     import platform
     import subprocess
     import sys
@@ -547,9 +547,12 @@ def test_warm_up_leaves_little_of_llvm_resident():
             "    elif on and line.startswith('Rss:'):\n"
             "        rss += int(line.split()[1])\n"
             "print(rss)")
-    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True,
-                         text=True)
-    assert 0 < int(out.stdout) < 24 * 1024, out.stdout  # KiB; about 68 MiB without the drop
+    # the first run may compile the two specialisations (an empty numba cache: LLVM's
+    # optimiser and code generator run, and touch their pages again); the second loads them
+    for _ in range(2):
+        out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True,
+                             text=True)
+    assert 0 < int(out.stdout) < 24 * 1024, out.stdout  # KiB; about 69 MiB without the drop
 
 
 def test_kernels_load_without_scipy_linalg_and_numba_blas_still_works():
