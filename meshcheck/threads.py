@@ -37,16 +37,27 @@ _M_MMAP_THRESHOLD = -3
 MMAP_THRESHOLD = 4 * 2**20
 
 
-def _mallopt():
-    """glibc's ``mallopt``, or None where the C library is not glibc."""
+@functools.lru_cache(maxsize=None)
+def _libc():
+    """The C library (ctypes), or None where it cannot be loaded."""
     import ctypes
     import ctypes.util
 
     try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        return ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+    except OSError:
+        return None
+
+
+def _mallopt():
+    """glibc's ``mallopt``, or None where the C library is not glibc."""
+    import ctypes
+
+    libc = _libc()
+    try:
         mallopt = libc.mallopt
         libc.gnu_get_libc_version  # glibc only (mallopt's parameters are glibc's)
-    except (OSError, AttributeError):
+    except AttributeError:  # also: no C library (None)
         return None
     mallopt.argtypes, mallopt.restype = (ctypes.c_int, ctypes.c_int), ctypes.c_int
     return mallopt
@@ -95,14 +106,13 @@ _MADV_DONTNEED = 4
 def _madvise():
     """The C library's ``madvise`` on Linux, or None."""
     import ctypes
-    import ctypes.util
     import sys
 
     if not sys.platform.startswith("linux"):
         return None
     try:
-        fn = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").madvise
-    except (OSError, AttributeError):
+        fn = _libc().madvise
+    except AttributeError:  # also: no C library (None)
         return None
     fn.argtypes, fn.restype = (ctypes.c_void_p, ctypes.c_size_t, ctypes.c_int), ctypes.c_int
     return fn
