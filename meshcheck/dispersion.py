@@ -86,6 +86,7 @@ import numpy as np
 from numpy.polynomial import legendre as _leg
 
 from .errors import MeshcheckError, SettingsError
+from .cache import cache_dir
 
 __all__ = [
     "P_MAX",
@@ -710,17 +711,6 @@ def _crossing(p: int, tau: float, r: np.ndarray, lo, hi, e_lo, e_hi, best) -> np
         x1[act] = np.where(ok, a1, x)
         side[act] = np.where(ok, -1, 1)
     raise MeshcheckError(f"internal: usable-kh refinement for p={p} did not converge")
-
-
-def cache_dir() -> Path | None:
-    """Folder of meshcheck's on-disk cache of usable-kh tables: ``$MESHCHECK_CACHE_DIR``,
-    else ``$XDG_CACHE_HOME/meshcheck``, else ``~/.cache/meshcheck``; None when
-    ``MESHCHECK_CACHE_DIR=off``."""
-    env = os.environ.get("MESHCHECK_CACHE_DIR")
-    if env is not None:
-        return None if env.strip().lower() in ("", "off", "0", "no") else Path(env)
-    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
-    return Path(base) / "meshcheck"
 
 
 @lru_cache(maxsize=1)

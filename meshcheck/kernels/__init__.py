@@ -17,8 +17,9 @@ from __future__ import annotations
 import functools
 import importlib.util
 import os
+import threading
 
-__all__ = ["MIN_CELLS", "available", "use_compiled", "njit", "warm_up_async"]
+__all__ = ["MIN_CELLS", "Kernel", "available", "use_compiled", "njit", "warm_up_async"]
 
 #: smallest mesh (cells) for which ``auto`` takes the compiled kernels. Loading numba and
 #: the cached kernels costs about 1 s per process; measured analysis times (2 cores,
@@ -71,14 +72,19 @@ def _warm_up() -> None:
     from ..threads import release_library_pages
     from . import topology as kt
 
-    kt.mark_used(np.zeros((1, 1), np.int32), np.zeros(1, bool))
+    kt.mark_used.dispatcher(np.zeros((1, 1), np.int32), np.zeros(1, bool))
     release_library_pages(LLVM_LIBRARY)
 
 
 def warm_up_async(file_bytes: int):
     """Start loading numba on a daemon thread when a file of ``file_bytes`` bytes is
-    likely to take the compiled kernels; returns the thread, or None."""
+    likely to take the compiled kernels; returns the thread, or None (also when the
+    ahead-of-time module of :mod:`meshcheck.kernels.ahead` is built: no numba needed)."""
     if mode() == "numpy" or file_bytes < WARM_UP_BYTES or not available():
+        return None
+    from . import ahead
+
+    if ahead.available():
         return None
     import threading
 
@@ -121,12 +127,99 @@ def _import_numba():
     return numba
 
 
-def njit(fn=None, **options):
-    """``numba.njit`` with on-disk caching and the GIL released (usable as a bare
-    decorator or with options, e.g. ``@njit(parallel=True)``)."""
-    numba = _import_numba()
+class Kernel:
+    """A compiled kernel, called like the Python function it wraps.
 
-    opts = {"cache": True, "nogil": True, **options}
+    A call takes the specialisation of the ahead-of-time extension module
+    (:mod:`meshcheck.kernels.ahead`) whose argument types match exactly, when such a
+    module was built for this code; otherwise numba's dispatcher, which is made (and
+    numba imported) on first need, compiled on first use and cached on disk.
+    ``py_func`` is the Python function; :attr:`dispatcher` the numba dispatcher."""
+
+    def __init__(self, fn, options: dict):
+        self.py_func = fn
+        self.options = options
+        self.key = (fn.__module__, fn.__qualname__)
+        self._dispatcher = None
+        self._ahead = None  # {type key: compiled function}, {} when none, None: not looked up
+        functools.update_wrapper(self, fn)
+        _KERNELS.append(self)
+
+    def __call__(self, *args):
+        ahead = self._ahead
+        if ahead is None:
+            from . import ahead as _ahead
+
+            ahead = self._ahead = _ahead.specialisations(self)
+        if ahead:
+            full = args
+            n = self.py_func.__code__.co_argcount
+            if len(args) < n and self.py_func.__defaults__:
+                full = args + self.py_func.__defaults__[len(args) - n:]
+            from .ahead import type_key
+
+            fn = ahead.get(type_key(full))
+            if fn is not None:
+                return fn(*full)
+        return self.dispatcher(*args)
+
+    @property
+    def dispatcher(self):
+        """numba's dispatcher of this kernel (numba is imported on first use)."""
+        if self._dispatcher is None:
+            _make_dispatchers()
+        return self._dispatcher
+
+    @property
+    def signatures(self) -> list:
+        """The argument types numba has compiled or loaded so far in this process."""
+        return self.dispatcher.signatures if self._dispatcher is not None else []
+
+    def __repr__(self):
+        return f"<meshcheck kernel {self.key[0]}.{self.key[1]}>"
+
+
+#: every kernel defined so far, in definition order
+_KERNELS: list[Kernel] = []
+_DISPATCH_LOCK = threading.RLock()
+
+
+def _make_dispatchers() -> None:
+    """Make numba's dispatcher of every kernel that has none yet.
+
+    Each dispatcher compiles a copy of the kernel's function whose globals are a copy of
+    its module's namespace in which every :class:`Kernel` is replaced by its dispatcher:
+    numba resolves the kernels a kernel calls (helpers, inlined or not) as dispatchers,
+    while the modules' own names stay the kernels (so that Python callers keep the
+    ahead-of-time path).  The copies keep the functions' code, file and qualified name,
+    so numba's on-disk cache finds them."""
+    import types
+
+    with _DISPATCH_LOCK:
+        todo = [k for k in _KERNELS if k._dispatcher is None]
+        if not todo:
+            return
+        numba = _import_numba()
+        spaces = {}
+        for k in todo:
+            f = k.py_func
+            ns = spaces.setdefault(f.__module__, dict(f.__globals__))
+            g = types.FunctionType(f.__code__, ns, f.__name__, f.__defaults__, f.__closure__)
+            g.__qualname__, g.__doc__, g.__module__ = f.__qualname__, f.__doc__, f.__module__
+            k._dispatcher = numba.njit(**{"cache": True, "nogil": True, **k.options})(g)
+        # every namespace (also those of earlier calls) sees the dispatchers
+        for k in _KERNELS:
+            if k._dispatcher is not None:
+                glob = k._dispatcher.py_func.__globals__
+                for name, value in list(glob.items()):
+                    if isinstance(value, Kernel) and value._dispatcher is not None:
+                        glob[name] = value._dispatcher
+
+
+def njit(fn=None, **options):
+    """Declare a compiled kernel (a :class:`Kernel`; numba options such as
+    ``inline="always"`` are passed on, with on-disk caching and the GIL released).
+    Usable as a bare decorator or with options."""
     if fn is None:
-        return lambda f: numba.njit(**opts)(f)
-    return numba.njit(**opts)(fn)
+        return lambda f: Kernel(f, options)
+    return Kernel(fn, options)

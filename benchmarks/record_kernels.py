@@ -1,0 +1,58 @@
+"""Record the kernel specialisations that audits use, for the ahead-of-time build.
+
+Usage::
+
+    python benchmarks/record_kernels.py [MESH ...] [--units m] [--out FILE]
+
+Runs the CLI audit (every report but the HTML one, the cost on) with
+``MESHCHECK_KERNELS=numba`` on the bundled sample meshes (linear tetrahedra,
+quadratic tetrahedra in mm, hexahedra with wedges) and on the meshes given (e.g.
+the reference meshes of ``make_reference_meshes.py``: their sizes take the chunked
+code paths), in this one process, then adds every specialisation numba compiled
+or loaded to ``meshcheck/kernels/specialisations.json``
+(:func:`meshcheck.kernels.ahead.record`).  A call whose argument types are not
+listed still runs, through numba's dispatcher.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import tempfile
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+SAMPLES = [("enclosure.msh", "m"), ("silencer_mm.msh", "mm"), ("plenum_hex.msh", "m")]
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("meshes", nargs="*", type=Path)
+    ap.add_argument("--units", default="m", help="unit of the meshes given (default m)")
+    ap.add_argument("--out", type=Path, default=None, help="list to add to (default: the "
+                    "package's specialisations.json)")
+    args = ap.parse_args(argv)
+    os.environ["MESHCHECK_KERNELS"] = "numba"
+    from meshcheck import cli
+    from meshcheck.kernels import ahead
+
+    runs = [(ROOT / "sample_meshes" / m, u) for m, u in SAMPLES]
+    runs += [(m, args.units) for m in args.meshes]
+    with tempfile.TemporaryDirectory() as tmp:
+        for mesh, unit in runs:
+            for extra in ([], ["--order", "2"]):
+                argv = ["audit", str(mesh), "--units", unit, "--fmin", "50", "--fmax",
+                        "2000", "--step", "9.798995", "--quiet", "--out", tmp,
+                        "--reports", "json,md,vtu,pos", *extra]
+                try:
+                    cli.app(argv, standalone_mode=False)
+                except SystemExit:
+                    pass
+                print(f"audited {mesh.name} {' '.join(extra)}", flush=True)
+    known = ahead.record(args.out)
+    print(f"{len(known)} specialisations in {args.out or ahead.SPECIALISATIONS}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,240 @@
+"""The ahead-of-time module of the kernels (meshcheck.kernels.ahead).
+
+References: numba's own typing (``numba.typeof``) for the type keys, numba's
+just-in-time dispatchers for the results (the same kernels compiled on first use),
+and Python's GIL (a pure-Python thread must run while a kernel runs).
+"""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import sys
+import sysconfig
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from meshcheck.kernels import ahead
+
+numba = pytest.importorskip("numba")
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def _can_compile() -> str | None:
+    """Why numba.pycc cannot build here (None when it can)."""
+    if not shutil.which(os.environ.get("CC", "cc")) and not shutil.which("gcc"):
+        return "no C compiler"
+    if not (Path(sysconfig.get_paths()["include"]) / "Python.h").is_file():
+        return "no Python.h"
+    return None
+
+
+def _values():
+    a = np.arange(24, dtype=np.int32).reshape(6, 4)
+    ro = np.linspace(0, 1, 9).reshape(3, 3)
+    ro.setflags(write=False)
+    unaligned = np.frombuffer(b"\0" + np.arange(4.0).tobytes(), np.float64, 4, offset=1)
+    return [a, np.asfortranarray(a.astype(np.float64)), a[:, ::2], a[::2, 0], ro, unaligned,
+            np.zeros(3, bool), np.zeros(5, np.uint8), np.zeros((2, 2, 2), np.float32),
+            np.zeros(0, np.int64), 3, -7, 2.5, True, np.int32(4), np.float32(1.5),
+            np.uint64(9), np.int64(-1), np.bool_(False)]
+
+
+@pytest.mark.parametrize("value", _values(), ids=lambda v: type(v).__name__ + (
+    f"-{v.dtype}-{v.ndim}d" if isinstance(v, np.ndarray) else f"-{v!r}"))
+def test_type_key_matches_numba_typeof(value):
+    # the key of a call must be numba's typing of its arguments: dtype, ndim, layout
+    # (C / F / A), read-only, aligned for arrays; int64 / float64 / bool for Python scalars
+    assert ahead.type_key((value,)) == (ahead._token_of_type(numba.typeof(value)),)
+
+
+def test_type_key_declines_what_it_cannot_type():
+    # other objects and non-native byte orders go to numba's dispatcher
+    assert ahead.type_key((None,)) is None
+    assert ahead.type_key(((1, 2),)) is None
+    assert ahead.type_key((np.zeros(3, ">f8"),)) is None
+    assert ahead.type_key((2**64,)) is None
+
+
+def test_listed_specialisations_name_real_kernels():
+    # every listed entry is a kernel of the package with as many argument types as the
+    # function has parameters, each a type numba can build
+    entries = json.loads(ahead.SPECIALISATIONS.read_text())
+    kernels = {k.key: k for k in ahead._kernels()}
+    assert len(entries) >= 60
+    assert len({json.dumps(e) for e in entries}) == len(entries)
+    for module, qualname, tokens in entries:
+        k = kernels[(module, qualname)]
+        assert len(tokens) == k.py_func.__code__.co_argcount, (module, qualname)
+        for t in tokens:
+            ahead._numba_type(t if isinstance(t, str) else tuple(t))
+
+
+def test_sample_audits_use_only_listed_specialisations(tmp_path):
+    # the list is what the audits of the bundled meshes use: recording them again (numba's
+    # dispatchers, in a fresh process) adds nothing
+    listing = tmp_path / "list.json"
+    shutil.copyfile(ahead.SPECIALISATIONS, listing)
+    before = json.loads(listing.read_text())
+    env = {**os.environ, "MESHCHECK_CACHE_DIR": str(tmp_path / "cache")}
+    subprocess.run([sys.executable, str(ROOT / "benchmarks" / "record_kernels.py"), "--out",
+                    str(listing)], check=True, env=env, capture_output=True, timeout=900)
+    assert json.loads(listing.read_text()) == before
+
+
+#: a few kernels of every kind: arrays in and out, a bool result, a tuple result, a
+#: default argument, a raised exception, inf and nan (a flat tetrahedron)
+_SUBSET = [
+    ["meshcheck.kernels.topology", "mark_used", [["int32", 2, "C", False, True],
+                                                 ["bool", 1, "C", False, True]]],
+    ["meshcheck.kernels.topology", "volumes_tetra", [["float64", 2, "C", True, True],
+                                                     ["int32", 2, "C", False, True],
+                                                     ["float64", 1, "C", False, True]]],
+    ["meshcheck.kernels.cells", "tet_quality", [["float64", 2, "C", True, True],
+                                                ["int32", 2, "C", False, True],
+                                                ["float64", 2, "C", False, True], "int64"]],
+    ["meshcheck.kernels.geometry", "face_jumps", [["int32", 2, "C", False, True],
+                                                  ["uint8", 1, "C", False, True],
+                                                  ["float64", 1, "C", False, True],
+                                                  "float64", "int64", "int64"]],
+    ["meshcheck.kernels.b64", "encode_into", [["uint8", 1, "C", True, True],
+                                              ["uint8", 1, "C", False, True],
+                                              ["uint16", 1, "C", False, True],
+                                              ["uint8", 1, "C", False, True]]],
+    ["meshcheck.kernels.sizefield", "gradation_distances", [
+        "int64", ["int32", 2, "C", False, True], ["float64", 1, "C", False, True],
+        ["float64", 1, "C", False, True], "float64", "int64"]],
+]
+
+_CHECK = r"""
+import sys, threading, numpy as np
+from meshcheck.kernels import ahead, b64
+from meshcheck.kernels import topology as kt, cells as kc, geometry as kg, sizefield as ks
+assert ahead.available()
+rng = np.random.default_rng(5)
+pts = rng.random((400, 3)); pts[7] = pts[8] = pts[9] = pts[10] = 0.5   # one flat tet
+pts.setflags(write=False)
+cells = rng.integers(0, 400, (900, 4)).astype(np.int32); cells[0] = (7, 8, 9, 10)
+fc = rng.integers(0, 900, (1500, 2)).astype(np.int32)
+cnt = rng.integers(1, 3, 1500).astype(np.uint8)
+size = rng.random(900) * 3; size[4] = 0.0; size[5] = np.nan
+src = np.frombuffer(rng.bytes(1000), np.uint8)
+ed = rng.integers(0, 400, (3000, 2)).astype(np.int32)
+w = rng.random(3000); h = np.where(rng.random(400) < 0.1, rng.random(400), np.inf)
+
+def run(call):
+    used = np.zeros(400, bool); vol = np.empty(900); q = np.full((8, 900), -1.0)
+    out = np.zeros(1400, np.uint8)
+    r = [call(kt.mark_used, cells, used), used, call(kt.volumes_tetra, pts, cells, vol), vol,
+         call(kc.tet_quality, pts, cells, q, 0), q,
+         call(kg.face_jumps, fc, cnt, size, 1.5, 0, 1500),
+         call(b64.encode_into, src, out, b64.PAIRS, b64.ALPHABET), out,
+         call(ks.gradation_distances, 400, ed, w, h, 1.3)]
+    try:
+        call(b64.encode_into, src, np.zeros(10, np.uint8), b64.PAIRS, b64.ALPHABET)
+        r.append("no error")
+    except ValueError as e:
+        r.append(str(e))
+    return r
+
+aot = run(lambda k, *a: k(*a))
+loaded_numba = "numba" in sys.modules
+hits = sum(bool(ahead.specialisations(k)) for k in (kt.mark_used, kt.volumes_tetra,
+           kc.tet_quality, kg.face_jumps, b64.encode_into, ks.gradation_distances))
+jit = run(lambda k, *a: k.dispatcher(*a))
+
+def same(a, b):
+    if isinstance(a, tuple):
+        return len(a) == len(b) and all(same(x, y) for x, y in zip(a, b))
+    if isinstance(a, np.ndarray):
+        return a.dtype == b.dtype and a.shape == b.shape and np.array_equal(a, b, equal_nan=True)
+    return a == b or (a != a and b != b)
+
+# GIL: a pure-Python thread counts while the main thread runs one long kernel call.  With
+# a switch interval of 0.2 s, a thread holding the GIL keeps it for 0.2 s: a kernel that
+# does not release it leaves the count unchanged, one that does lets it grow
+import time
+sys.setswitchinterval(0.2)
+big = np.zeros((3_000_000, 4), np.int32); mark = np.zeros(1, bool)
+count = [0]; stop = [False]
+def spin():
+    while not stop[0]:
+        count[0] += 1
+t = threading.Thread(target=spin); t.start()
+def during(fn):
+    time.sleep(0.01)        # the spinner runs; the main thread gets the GIL back, then
+    c0 = count[0]           # holds it for up to 0.2 s unless the call releases it
+    fn(big, mark)
+    return count[0] - c0
+free_aot = during(kt.mark_used)
+free_jit = during(kt.mark_used.dispatcher)
+held = during(lambda a, b: sum(range(300_000)))   # Python code keeps the GIL (reference)
+stop[0] = True; t.join()
+print(loaded_numba, hits, all(same(a, b) for a, b in zip(aot, jit)), np.isnan(aot[5][:, 0]).any()
+      or np.isinf(aot[5][:, 0]).any(), aot[-1], free_aot > 1000, free_jit > 1000, held == 0)
+"""
+
+
+@pytest.mark.skipif(_can_compile() is not None, reason=str(_can_compile()))
+def test_built_module_runs_the_kernels_as_numba_without_numba(tmp_path):
+    # a module of a few specialisations: its calls give numba's results bit for bit
+    # (arrays written, bool and tuple results, a default argument, the kernel's
+    # ValueError, inf and nan of a flat tetrahedron), numba is never
+    # imported for them, and they release the GIL as numba's nogil kernels do
+    listing = tmp_path / "subset.json"
+    listing.write_text(json.dumps(_SUBSET))
+    env = {**os.environ, "MESHCHECK_CACHE_DIR": str(tmp_path / "cache")}
+    env.pop("MESHCHECK_KERNELS", None)
+    code = "from meshcheck.kernels import ahead; from pathlib import Path; " \
+           f"print(ahead.build(Path({str(listing)!r})))"
+    built = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                           text=True, timeout=900)
+    assert built.returncode == 0, built.stderr
+    path = Path(built.stdout.split()[-1])
+    assert path.is_file() and path.parent == tmp_path / "cache"
+    manifest = json.loads(path.with_suffix(".json").read_text())
+    assert len(manifest["functions"]) == len(_SUBSET)
+    out = subprocess.run([sys.executable, "-c", _CHECK], env=env, capture_output=True,
+                         text=True, timeout=600)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == ["False", "6", "True", "True", "base64", "output", "buffer",
+                                  "too", "short", "True", "True", "True"], out.stdout
+
+
+def test_a_broken_module_is_ignored_and_numba_takes_the_calls(tmp_path, monkeypatch):
+    # a file at the module's place that does not load (here: not a shared library) costs
+    # only speed: no module, and the kernels run through numba's dispatchers
+    monkeypatch.setenv("MESHCHECK_CACHE_DIR", str(tmp_path))
+    monkeypatch.delenv("MESHCHECK_KERNELS", raising=False)
+    ahead._loaded.cache_clear()
+    try:
+        path = ahead.module_path()
+        path.write_bytes(b"not a shared library")
+        path.with_suffix(".json").write_text(json.dumps({"functions": []}))
+        assert not ahead.available()
+        from meshcheck.kernels import topology as kt
+
+        used = np.zeros(4, bool)
+        assert kt.mark_used(np.array([[0, 2]], np.int64), used)
+        assert used.tolist() == [True, False, True, False]
+    finally:
+        ahead._loaded.cache_clear()
+
+
+def test_cli_kernels_reports_the_module_state(tmp_path, monkeypatch, capsys):
+    from meshcheck.cli import main
+
+    monkeypatch.setenv("MESHCHECK_CACHE_DIR", str(tmp_path))
+    ahead._loaded.cache_clear()
+    try:
+        assert main(["kernels"]) == 0
+        text = " ".join(capsys.readouterr().out.split())
+        assert "not built (meshcheck kernels --build)" in text
+        assert f"specialisations listed │ {len(json.loads(ahead.SPECIALISATIONS.read_text()))}" \
+            in text
+    finally:
+        ahead._loaded.cache_clear()
