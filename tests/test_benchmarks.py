@@ -17,7 +17,7 @@ def test_bench_audit_small(tmp_path):
     text = out.stdout
     for line in ("ratio audit / meshio.read", "ratio audit 1000 / 10 frequencies",
                  "ratio sweep 1000 / 10 frequencies",
-                 "peak memory of the audit"):
+                 "peak memory of the audit", "meshcheck kernels --build"):
         assert line in text
 
 
