@@ -161,6 +161,8 @@ class Kernel:
             fn = ahead.get(type_key(full))
             if fn is not None:
                 return fn(*full)
+            if not _JIT_USED:  # a call the module lacks: numba is set up here, not beside
+                return _first_jit_call(self.dispatcher, args)  # the reading
         return self.dispatcher(*args)
 
     @property
@@ -177,6 +179,24 @@ class Kernel:
 
     def __repr__(self):
         return f"<meshcheck kernel {self.key[0]}.{self.key[1]}>"
+
+
+#: whether a dispatcher ran a call the ahead-of-time module lacks (see _first_jit_call)
+_JIT_USED = False
+
+
+def _first_jit_call(dispatcher, args):
+    """The first call of a kernel that the built module lacks: numba's set-up runs here
+    (not on the warm-up thread, which is not started when the module is built), so its
+    LLVM library pages are dropped after it, as the warm-up does (:func:`_warm_up`)."""
+    global _JIT_USED
+    out = dispatcher(*args)
+    if not _JIT_USED:
+        _JIT_USED = True
+        from ..threads import release_library_pages
+
+        release_library_pages(LLVM_LIBRARY)
+    return out
 
 
 #: every kernel defined so far, in definition order

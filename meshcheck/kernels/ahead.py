@@ -21,6 +21,7 @@ import hashlib
 import json
 import os
 import sys
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -129,9 +130,26 @@ def module_path() -> Path | None:
     return folder / (module_name() + importlib.machinery.EXTENSION_SUFFIXES[0])
 
 
-@functools.lru_cache(maxsize=1)
+_LOAD_LOCK = threading.Lock()
+_LOADED: list = []
+
+
 def _loaded():
-    """(module, {kernel key: {type key: function}}) of the built module, or None."""
+    """(module, {kernel key: {type key: function}}) of the built module, or None (looked
+    up once per process; :func:`_forget` looks again)."""
+    if not _LOADED:
+        with _LOAD_LOCK:  # the threads' first kernel calls: the module is loaded once
+            if not _LOADED:
+                _LOADED.append(_load())
+    return _LOADED[0]
+
+
+def _forget() -> None:
+    """Look for the module again at the next call (after a build; the tests)."""
+    _LOADED.clear()
+
+
+def _load():
     from . import mode
 
     if mode() == "numpy":
@@ -220,7 +238,7 @@ def build(listing: Path | None = None, timeout: float = 1800.0) -> Path:
         raise SettingsError(f"building the kernels' module failed: "
                             f"{lines[-1] if lines else 'no message'} (numba's ahead-of-time "
                             "compiler needs a C compiler, e.g. gcc)")
-    _loaded.cache_clear()
+    _forget()
     return path
 
 
