@@ -253,3 +253,42 @@ def test_cli_kernels_reports_the_module_state(tmp_path, monkeypatch, capsys):
             in text
     finally:
         ahead._forget()
+
+
+_RACE = r"""
+import threading, time, numpy as np
+from meshcheck import kernels as K
+from meshcheck.kernels import cells as kc, topology as kt
+numba = K._import_numba()
+orig = numba.njit
+total = sum(k._dispatcher is None for k in K._KERNELS)
+made = [0]
+def slow_njit(*args, **opts):
+    if opts.get("cache"):     # ours (numba's own modules call njit too)
+        made[0] += 1
+        if made[0] == total:  # the last dispatcher: the others are made, the namespaces
+            time.sleep(1.0)   # not yet filled
+    return orig(*args, **opts)
+numba.njit = slow_njit
+t = threading.Thread(target=lambda: kt.mark_used.dispatcher(np.zeros((1, 1), np.int32),
+                                                            np.zeros(1, bool)))
+t.start()
+time.sleep(0.3)
+pts = np.array([[0.0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]])
+q = np.zeros((8, 1))
+kc.tet_quality(pts, np.array([[0, 1, 2, 3]], np.int32), q, 0)   # calls helper kernels
+t.join()
+print(round(q[3, 0], 12))
+"""
+
+
+def test_dispatchers_appear_only_with_their_namespaces_complete(tmp_path):
+    # two threads' first kernel calls at once (the audit's topology and cell checks): the
+    # second must wait until every namespace maps kernels to dispatchers, or numba, with
+    # an empty cache, fails to type the helper kernels it calls
+    env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path / "numba"),
+           "MESHCHECK_CACHE_DIR": str(tmp_path / "cache")}
+    out = subprocess.run([sys.executable, "-c", _RACE], env=env, capture_output=True,
+                         text=True, timeout=600)
+    assert out.returncode == 0, out.stderr[-3000:]
+    assert out.stdout.split() == ["0.707106781187"]  # scaled Jacobian of the corner tet

@@ -212,7 +212,9 @@ def _make_dispatchers() -> None:
     numba resolves the kernels a kernel calls (helpers, inlined or not) as dispatchers,
     while the modules' own names stay the kernels (so that Python callers keep the
     ahead-of-time path).  The copies keep the functions' code, file and qualified name,
-    so numba's on-disk cache finds them."""
+    so numba's on-disk cache finds them.  The kernels get their dispatchers only once
+    every namespace is complete: another thread never compiles against a namespace that
+    still holds kernels (numba would not know their type)."""
     import types
 
     with _DISPATCH_LOCK:
@@ -220,20 +222,23 @@ def _make_dispatchers() -> None:
         if not todo:
             return
         numba = _import_numba()
+        made = {}
         spaces = {}
         for k in todo:
             f = k.py_func
             ns = spaces.setdefault(f.__module__, dict(f.__globals__))
             g = types.FunctionType(f.__code__, ns, f.__name__, f.__defaults__, f.__closure__)
             g.__qualname__, g.__doc__, g.__module__ = f.__qualname__, f.__doc__, f.__module__
-            k._dispatcher = numba.njit(**{"cache": True, "nogil": True, **k.options})(g)
-        # every namespace (also those of earlier calls) sees the dispatchers
-        for k in _KERNELS:
-            if k._dispatcher is not None:
-                glob = k._dispatcher.py_func.__globals__
+            made[k] = numba.njit(**{"cache": True, "nogil": True, **k.options})(g)
+        for k in _KERNELS:  # every namespace (also those made before) sees the dispatchers
+            d = made.get(k, k._dispatcher)
+            if d is not None:
+                glob = d.py_func.__globals__
                 for name, value in list(glob.items()):
-                    if isinstance(value, Kernel) and value._dispatcher is not None:
-                        glob[name] = value._dispatcher
+                    if isinstance(value, Kernel):
+                        glob[name] = made.get(value, value._dispatcher)
+        for k, d in made.items():
+            k._dispatcher = d
 
 
 def njit(fn=None, **options):
