@@ -57,11 +57,13 @@ def _child(code: str, env: dict | None = None) -> tuple[float, float, str]:
 def _measured(cmd: list[str], env: dict | None = None, cwd: str | None = None):
     """Wall time, peak MiB, exit code and resource usage (``os.wait4``: user and system
     CPU seconds, minor page faults) of a command."""
-    t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env,
-                            cwd=cwd)
-    _, status, usage = os.wait4(proc.pid, 0)
-    dt = time.perf_counter() - t0
+    with tempfile.TemporaryFile() as err:  # a file, not a pipe nobody reads while waiting
+        t0 = time.perf_counter()
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=err, env=env, cwd=cwd)
+        _, status, usage = os.wait4(proc.pid, 0)
+        dt = time.perf_counter() - t0
+        err.seek(0)
+        _measured.stderr_tail = err.read()[-2000:].decode(errors="replace")
     return dt, usage.ru_maxrss / 1024.0, os.waitstatus_to_exitcode(status), usage
 
 
@@ -180,9 +182,12 @@ def main(argv=None) -> int:
                    "--fmin", "50", "--fmax", "2000", "--step", f"{1950 / 199:.6f}", "--quiet",
                    "--out", tmp] + (["--reports", "json,vtu", "--no-cost"] if lean else [])
             t, peak, code, usage = _measured(cmd, {**env, **(extra_env or {})})
-            if code not in (0, 1):
-                raise SystemExit(f"audit failed with exit code {code}")
-            report = json.loads(next(Path(tmp).glob("*.audit.json")).read_text())
+            found = list(Path(tmp).glob("*.audit.json"))
+            if code not in (0, 1) or not found:
+                raise SystemExit(f"audit failed with exit code {code}, files "
+                                 f"{sorted(p.name for p in Path(tmp).iterdir())}:\n"
+                                 f"{_measured.stderr_tail}")
+            report = json.loads(found[0].read_text())
         return t, peak, report, usage
 
     run_audit("audit json+vtu, empty numba cache (compiles)")
