@@ -292,3 +292,33 @@ def test_dispatchers_appear_only_with_their_namespaces_complete(tmp_path):
                          text=True, timeout=600)
     assert out.returncode == 0, out.stderr[-3000:]
     assert out.stdout.split() == ["0.707106781187"]  # scaled Jacobian of the corner tet
+
+
+def test_audit_suggests_the_build_only_where_it_would_serve(tmp_path, monkeypatch, capsys):
+    # a mesh that takes the compiled kernels (here: MIN_CELLS lowered to 1) without a built
+    # module ends its summary with the tip; a small mesh, or the numpy mode, does not
+    import meshio
+
+    import meshcheck.kernels as K
+    from meshcheck.cli import main
+    from meshes import tet_box
+
+    m = tet_box((2, 2, 2))
+    path = tmp_path / "box.vtu"
+    meshio.write(path, meshio.Mesh(m.points, [("tetra", m.blocks[0].cells)]))
+    monkeypatch.setenv("MESHCHECK_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.delenv("MESHCHECK_KERNELS", raising=False)
+    ahead._forget()
+    args = ["audit", str(path), "-u", "m", "--fmax", "100", "--reports", "json", "--no-cost",
+            "--out", str(tmp_path / "o")]
+    try:
+        main(args)
+        assert "kernels --build" not in capsys.readouterr().out   # 48 cells: numpy
+        monkeypatch.setattr(K, "MIN_CELLS", 1)
+        main(args)
+        assert "tip: `meshcheck kernels --build`" in " ".join(capsys.readouterr().out.split())
+        monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+        main(args)
+        assert "kernels --build" not in capsys.readouterr().out
+    finally:
+        ahead._forget()
