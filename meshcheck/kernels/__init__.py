@@ -86,7 +86,6 @@ def warm_up_async(file_bytes: int):
 
     if ahead.available():
         return None
-    import threading
 
     def run():
         try:
@@ -146,19 +145,15 @@ class Kernel:
         _KERNELS.append(self)
 
     def __call__(self, *args):
-        ahead = self._ahead
-        if ahead is None:
-            from . import ahead as _ahead
-
-            ahead = self._ahead = _ahead.specialisations(self)
-        if ahead:
+        specs = self._ahead
+        if specs is None:
+            specs = self._ahead = _ahead.specialisations(self)
+        if specs:
             full = args
             n = self.py_func.__code__.co_argcount
             if len(args) < n and self.py_func.__defaults__:
                 full = args + self.py_func.__defaults__[len(args) - n:]
-            from .ahead import type_key
-
-            fn = ahead.get(type_key(full))
+            fn = specs.get(_ahead.type_key(full))
             if fn is not None:
                 return fn(*full)
             if not _JIT_USED:  # a call the module lacks: numba is set up here, not beside
@@ -248,3 +243,6 @@ def njit(fn=None, **options):
     if fn is None:
         return lambda f: Kernel(f, options)
     return Kernel(fn, options)
+
+
+from . import ahead as _ahead  # noqa: E402 (it needs Kernel's module loaded first)
