@@ -8,9 +8,9 @@ Runs the CLI audit (every report but the HTML one, the cost on) with
 ``MESHCHECK_KERNELS=numba`` on the bundled sample meshes (linear tetrahedra,
 quadratic tetrahedra in mm, hexahedra with wedges) and on the meshes given (e.g.
 the reference meshes of ``make_reference_meshes.py``: their sizes take the chunked
-code paths), in this one process, then adds every specialisation numba compiled
-or loaded to ``meshcheck/kernels/specialisations.json``
-(:func:`meshcheck.kernels.ahead.record`).  A call whose argument types are not
+code paths), in this one process, then adds the argument types of every kernel call from Python to
+``meshcheck/kernels/specialisations.json`` (:func:`meshcheck.kernels.ahead.recording`,
+:func:`~meshcheck.kernels.ahead.record`; helper kernels compile into their callers).  A call whose argument types are not
 listed still runs, through numba's dispatcher.
 """
 from __future__ import annotations
@@ -38,7 +38,7 @@ def main(argv=None) -> int:
 
     runs = [(ROOT / "sample_meshes" / m, u) for m, u in SAMPLES]
     runs += [(m, args.units) for m in args.meshes]
-    with tempfile.TemporaryDirectory() as tmp:
+    with tempfile.TemporaryDirectory() as tmp, ahead.recording() as calls:
         for mesh, unit in runs:
             for extra in ([], ["--order", "2"]):
                 argv = ["audit", str(mesh), "--units", unit, "--fmin", "50", "--fmax",
@@ -49,7 +49,7 @@ def main(argv=None) -> int:
                 except SystemExit:
                     pass
                 print(f"audited {mesh.name} {' '.join(extra)}", flush=True)
-    known = ahead.record(args.out)
+    known = ahead.record(calls, args.out)
     print(f"{len(known)} specialisations in {args.out or ahead.SPECIALISATIONS}")
     return 0
 

@@ -148,12 +148,15 @@ class Kernel:
         specs = self._ahead
         if specs is None:
             specs = self._ahead = _ahead.specialisations(self)
-        if specs:
+        if specs or _ahead.RECORDING is not None:
             full = args
             n = self.py_func.__code__.co_argcount
             if len(args) < n and self.py_func.__defaults__:
                 full = args + self.py_func.__defaults__[len(args) - n:]
-            fn = specs.get(_ahead.type_key(full))
+            key = _ahead.type_key(full)
+            if _ahead.RECORDING is not None and key is not None:
+                _ahead.RECORDING.add((self.key, key))
+            fn = specs.get(key)
             if fn is not None:
                 return fn(*full)
             if not _JIT_USED:  # a call the module lacks: numba is set up here, not beside

@@ -16,6 +16,7 @@ the kernel's error model), for this machine's processor.
 """
 from __future__ import annotations
 
+import contextlib
 import functools
 import hashlib
 import json
@@ -67,7 +68,8 @@ def type_key(args: tuple):
 
 
 def _token_of_type(t):
-    """The token of a numba type (build side; the inverse of :func:`_numba_type`)."""
+    """The token of a numba type (the inverse of :func:`_numba_type`; the tests check
+    :func:`type_key` against ``numba.typeof`` with it)."""
     from numba.core import types
     from numba.np.numpy_support import as_dtype
 
@@ -197,20 +199,35 @@ def _kernels():
     return list(_KERNELS)
 
 
-def record(path: Path | None = None) -> list:
-    """Add the specialisations numba has compiled or loaded in this process to the list
-    ``path`` (default :data:`SPECIALISATIONS`) and return the list (sorted, unique).
-    Run after audits in ``MESHCHECK_KERNELS=numba`` mode (benchmarks/record_kernels.py)."""
+#: the (kernel key, type key) of every call from Python while :func:`recording`, else None
+RECORDING: set | None = None
+
+
+@contextlib.contextmanager
+def recording():
+    """Collect the kernels' calls from Python (their type keys, defaults filled in) while
+    the block runs: the specialisations a module needs.  Only calls from Python count:
+    the helper kernels that kernels call are compiled into their callers."""
+    global RECORDING
+    RECORDING = set()
+    try:
+        yield RECORDING
+    finally:
+        RECORDING = None
+
+
+def record(calls, path: Path | None = None) -> list:
+    """Add ``calls`` (from :func:`recording`) to the list ``path`` (default
+    :data:`SPECIALISATIONS`) and return the list (sorted, unique).  For
+    benchmarks/record_kernels.py, which audits meshes in ``MESHCHECK_KERNELS=numba`` mode."""
     path = Path(path) if path is not None else SPECIALISATIONS
     known = json.loads(path.read_text()) if path.is_file() else []
     seen = {json.dumps(e) for e in known}
-    for k in _kernels():
-        for sig in k.signatures:
-            e = [k.key[0], k.key[1], [_token_of_type(t) for t in sig]]
-            e[2] = [list(t) if isinstance(t, tuple) else t for t in e[2]]
-            if None not in e[2] and json.dumps(e) not in seen:
-                seen.add(json.dumps(e))
-                known.append(e)
+    for (module, qualname), key in calls:
+        e = [module, qualname, [list(t) if isinstance(t, tuple) else t for t in key]]
+        if json.dumps(e) not in seen:
+            seen.add(json.dumps(e))
+            known.append(e)
     known.sort(key=json.dumps)
     path.write_text("[\n" + ",\n".join(json.dumps(e) for e in known) + "\n]\n")
     return known
