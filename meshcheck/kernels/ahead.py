@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 
 __all__ = ["type_key", "code_tag", "module_path", "available", "specialisations", "build",
-           "record", "SPECIALISATIONS"]
+           "recording", "record", "SPECIALISATIONS"]
 
 #: the specialisations built: [module, qualified name, [argument tokens]] (:func:`record`)
 SPECIALISATIONS = Path(__file__).with_name("specialisations.json")
