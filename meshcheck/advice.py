@@ -18,11 +18,11 @@ from functools import cached_property
 import numpy as np
 
 from . import kernels
-from .cost import _chunks, condensed_dofs, lagrange_dofs, variable_order_dofs
+from .cost import condensed_dofs, lagrange_dofs, variable_order_dofs
 from .dispersion import _segments, usable_kh
 from .errors import SettingsError
 from .mesh import Mesh
-from .threads import thread_map
+from .threads import ranges as _chunks, thread_map
 from .topology import Topology
 
 __all__ = ["AdviceSettings", "Advice", "Cluster", "Sweep", "advise", "sweep", "clusters",

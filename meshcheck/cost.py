@@ -49,7 +49,7 @@ import numpy as np
 
 from . import kernels
 from .mesh import Mesh
-from .threads import thread_map
+from .threads import ranges as _chunks, thread_map
 from .topology import Topology
 
 __all__ = ["face_dofs", "interior_dofs", "lagrange_dofs", "condensed_dofs",
@@ -239,12 +239,6 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
     total = np.empty(n_f, np.int64)
     total[order] = _used_vertices(mesh) + np.cumsum(hist)[:n_f]
     return total
-
-
-def _chunks(n: int, parts: int) -> list[tuple[int, int]]:
-    """(lo, hi) ranges splitting range(n) into at most ``parts`` pieces."""
-    cuts = np.linspace(0, n, max(1, min(parts, n)) + 1).astype(np.int64)
-    return [(int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
 
 
 def _variable_order_dofs_compiled(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,

@@ -10,12 +10,27 @@ import os
 from concurrent.futures import ThreadPoolExecutor
 from typing import Callable, Iterable
 
-__all__ = ["thread_map", "MAX_WORKERS", "share_malloc_arena", "fix_mmap_threshold",
+__all__ = ["thread_map", "ranges", "workers", "MAX_WORKERS", "share_malloc_arena", "fix_mmap_threshold",
            "can_release", "release_tail", "reuse_or_empty", "release_library_pages"]
 
 #: most threads used (the project's target machine has 2 cores); the environment
 #: variable MESHCHECK_THREADS sets it (1 = everything serial)
 MAX_WORKERS = max(1, int(os.environ.get("MESHCHECK_THREADS", "4") or 4))
+
+
+def ranges(n: int, parts: int) -> list[tuple[int, int]]:
+    """(lo, hi) ranges splitting range(n) into at most ``parts`` pieces of nearly equal
+    size (for kernels that take a range of items, run by :func:`thread_map`)."""
+    import numpy as np
+
+    cuts = np.linspace(0, n, max(1, min(parts, n)) + 1).astype(np.int64)
+    return [(int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
+
+
+def workers() -> int:
+    """Threads :func:`thread_map` would use for many items: the cores, at most
+    :data:`MAX_WORKERS`."""
+    return max(1, min(os.cpu_count() or 1, MAX_WORKERS))
 
 
 def thread_map(fn: Callable, items: Iterable, parallel: bool = True) -> list:

@@ -7,7 +7,7 @@ import sys
 import numpy as np
 import pytest
 
-from meshcheck.threads import release_tail, reuse_or_empty, thread_map
+from meshcheck.threads import ranges, release_tail, reuse_or_empty, thread_map
 
 
 def test_results_in_input_order_and_equal_to_serial():
@@ -217,3 +217,13 @@ def test_reuse_or_empty_takes_nothing_where_pages_cannot_be_given_back(monkeypat
     assert got.shape == (600,) and not np.shares_memory(got, big) and len(spare) == 1
     assert release_tail(np.ones(1 << 16), 0) == 0
     assert th.release_library_pages("libllvmlite") == 0
+
+
+@pytest.mark.parametrize("n, parts", [(0, 2), (1, 2), (7, 2), (10, 3), (5, 8), (1000, 1)])
+def test_ranges_cover_the_items_once_in_order(n, parts):
+    r = ranges(n, parts)
+    assert 1 <= len(r) <= max(1, min(parts, n))
+    assert r[0][0] == 0 and r[-1][1] == n
+    assert all(a[1] == b[0] for a, b in zip(r, r[1:]))
+    sizes = [b - a for a, b in r]
+    assert max(sizes) - min(sizes) <= 1
