@@ -132,6 +132,32 @@ def test_fuzz_nastran(tmp_path, text):
     _check(tmp_path, "bdf", text)
 
 
+def _outcome(path):
+    """A reading's result: the error message, or the mesh's points, cells and regions."""
+    try:
+        m = read_mesh(path, units="m")
+    except (MeshReadError, UnitsError) as exc:
+        return str(exc)
+    return (m.points.tobytes(), [(b.type, b.cells.tobytes()) for b in m.blocks],
+            m.region.tobytes(), m.region_names)
+
+
+@pytest.mark.skipif(not __import__("meshcheck.kernels").kernels.available(),
+                    reason="numba not installed")
+@FUZZ
+@given(text=mutated("bdf"))
+def test_fuzz_nastran_compiled_reads_as_numpy(tmp_path, text, monkeypatch):
+    """The Nastran reader's compiled parsers (line table, fields; MESHCHECK_KERNELS=numba)
+    give the numpy reader's mesh bit for bit, or its error message word for word."""
+    p = tmp_path / "fuzz.bdf"
+    p.write_bytes(text.encode("utf-8"))
+    got = {}
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        got[mode] = _outcome(p)
+    assert got["numba"] == got["numpy"]
+
+
 @FUZZ
 @given(text=mutated("inp"))
 def test_fuzz_abaqus(tmp_path, text):

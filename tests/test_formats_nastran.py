@@ -23,6 +23,15 @@ from meshcheck.reading import read_mesh
 from meshes import KUHN
 
 
+@pytest.fixture(autouse=True, params=["numpy", pytest.param("numba", marks=pytest.mark.skipif(
+    not __import__("meshcheck.kernels").kernels.available(), reason="numba not installed"))])
+def kernels(request, monkeypatch):
+    """Every test twice: the numpy reader, and the compiled line table and field parsers
+    (which a small file takes only in MESHCHECK_KERNELS=numba mode)."""
+    monkeypatch.setenv("MESHCHECK_KERNELS", request.param)
+    return request.param
+
+
 def _write(tmp_path, text, name="m.bdf"):
     p = tmp_path / name
     p.write_bytes(text.encode() if isinstance(text, str) else text)
@@ -371,3 +380,51 @@ def test_round_trip_external_writers(tmp_path, writer):
     m = read_mesh(p, units="m")
     assert np.allclose(m.points, pts, atol=1e-6)
     assert np.array_equal(m.blocks[0].cells, cells)
+
+
+@pytest.mark.skipif(not __import__("meshcheck.kernels").kernels.available(),
+                    reason="numba not installed")
+@pytest.mark.parametrize("seed", range(6))
+def test_compiled_line_table_equals_numpy(seed):
+    """The compiled line table and card names (kernels.text.lines, heads) give the numpy
+    ones' line starts, ends (cut at '$'), commas, first bytes, tab / CR flags, names,
+    large-field and mixed-case flags on texts of random lines: comments, free-field
+    commas (also after a '$'), blank and short lines, tabs, CR, lower and mixed case,
+    with and without a newline at the end."""
+    from meshcheck.formats.nastran import _Lines, _names
+    from meshcheck.formats.textscan import ByteText
+
+    rng = np.random.default_rng(seed)
+    pieces = ["GRID", "CTETRA", "1", "2.5", "  ", "        ", ",", "$ note, x", "*", "+",
+              "grid*", "\t", "\r", "ENDDATA", "", "12345678901", "$", "cTetra", "Grid*",
+              "\xe9", "z{"]
+    lines = ["".join(rng.choice(pieces, int(rng.integers(0, 7)))) for _ in range(400)]
+    text = "\n".join(lines) + ("\n" if seed % 2 else "")
+    if seed == 5:
+        text = "\n" * 50 + "a"          # lines shorter than the buffers' guess
+    data = text.encode()
+    got = {}
+    for compiled in (False, True):
+        t = ByteText(data, compiled=compiled)
+        L = _Lines(t)
+        names = _names(t, L)
+        got[compiled] = (L.starts, L.ends, L.commas, L.ccount, L.head, L.has_tab, L.has_cr,
+                         *names)
+    for a, b in zip(got[False], got[True]):
+        assert np.array_equal(a, b)
+
+
+def test_columns_73_to_80_hold_no_data(tmp_path):
+    """Small and large field: columns 73-80 are the continuation field, not data (here
+    digits, which would read as a fifth node)."""
+    lines = ["BEGIN BULK"] + [nas_small("GRID", [i + 1, "", *map(float, p)])
+                              for i, p in enumerate(CUBE)]
+    for k, cell in enumerate(KUHN):
+        card = "CTETRA  " + "".join(f"{v:<8d}" for v in (k + 1, 1, *(cell + 1)))
+        lines.append(card.ljust(72) + "12345678")
+    # a large field GRID* on one line: its z would be field 5, on a continuation line
+    lines[1] = "GRID*   1" + " " * 31 + f"{0.0:<16.1f}" * 2 + "1.5"
+    lines.append("ENDDATA")
+    m = read_mesh(_write(tmp_path, "\n".join(lines) + "\n"), units="m")
+    assert m.blocks[0].type == "tetra" and np.array_equal(m.blocks[0].cells, KUHN)
+    assert m.points[0].tolist() == [0.0, 0.0, 0.0]

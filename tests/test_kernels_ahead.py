@@ -74,6 +74,15 @@ def test_listed_specialisations_name_real_kernels():
             ahead._numba_type(t if isinstance(t, str) else tuple(t))
 
 
+def test_recording_drops_entries_of_kernels_gone_or_changed(tmp_path):
+    listing = tmp_path / "list.json"
+    real = json.loads(ahead.SPECIALISATIONS.read_text())[:3]
+    stale = [["meshcheck.kernels.text", "line_table", [["uint8", 1, "C", True, True]]],
+             [real[0][0], real[0][1], real[0][2][:-1]]]       # one argument fewer
+    listing.write_text(json.dumps(real + stale))
+    assert ahead.record(set(), listing) == sorted(real, key=json.dumps)
+
+
 def test_sample_audits_use_only_listed_specialisations(tmp_path):
     # the list is what the audits of the bundled meshes use: recording them again (numba's
     # dispatchers, in a fresh process) adds nothing

@@ -38,10 +38,12 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import MeshReadError
+from ..threads import thread_map
 from .includes import Source, load_text
 from .raw import RawBlock, RawMesh, SpeedHint, clean_name
 from .ids import distinct, first_duplicate, index_of
-from .textscan import CHUNK, ByteText, FieldError, parse_floats, parse_ints
+from .textscan import (CHUNK, CHUNK_COMPILED, ByteText, FieldError, compiled_rows, int_rows,
+                       real_rows)
 
 __all__ = ["read_nastran", "load_nastran", "parse_nastran", "ELEMENT_CARDS", "find_includes"]
 
@@ -174,6 +176,23 @@ def _stride(s: np.ndarray) -> int:
     return d if (np.diff(s) == d).all() else 0
 
 
+def _line_table(text: ByteText):
+    """(starts, ends) of the lines (ends at the newlines): the compiled scan
+    (:func:`meshcheck.kernels.text.lines`).  Its arrays are views of buffers sized for
+    lines of 24 bytes on average (pages never written cost no memory), or for the
+    exact count when the lines are shorter."""
+    from ..kernels import text as kx
+
+    cap = text.n // 24 + 16
+    for _ in range(2):
+        starts, ends = np.empty(cap, np.int64), np.empty(cap, np.int64)
+        m = kx.lines(text.u8, starts, ends)
+        if m >= 0:
+            return starts[:m], ends[:m]
+        cap = text.data.count(b"\n") + 1
+    raise AssertionError("line table: more lines than newlines")
+
+
 class _Lines:
     """Per-line arrays of the merged text (all (n_lines,) int64 unless noted).
 
@@ -183,18 +202,26 @@ class _Lines:
 
     def __init__(self, text: ByteText):
         a = text.u8[:text.n]
-        nl = np.flatnonzero(a == 10)
-        self.has_tab = text.data.find(b"\t") >= 0
-        self.has_cr = text.data.find(b"\r") >= 0
-        starts = np.concatenate(([0], nl + 1)).astype(np.int64)
-        ends = np.concatenate((nl, [text.n])).astype(np.int64)
-        if starts[-1] >= text.n:
-            starts, ends = starts[:-1], ends[:-1]
-        dol = _positions(text.data, a, b"$")
+        if text.compiled:  # the scan (which releases the GIL) beside the byte searches
+            def searches():
+                return (text.data.find(b"\t") >= 0, text.data.find(b"\r") >= 0,
+                        _positions(text.data, a, b"$"), _positions(text.data, a, b","))
+
+            (starts, ends), (self.has_tab, self.has_cr, dol, com) = thread_map(
+                lambda f: f(), [lambda: _line_table(text), searches])
+        else:
+            nl = np.flatnonzero(a == 10)
+            starts = np.concatenate(([0], nl + 1)).astype(np.int64)
+            ends = np.concatenate((nl, [text.n])).astype(np.int64)
+            if starts[-1] >= text.n:
+                starts, ends = starts[:-1], ends[:-1]
+            self.has_tab = text.data.find(b"\t") >= 0
+            self.has_cr = text.data.find(b"\r") >= 0
+            dol = _positions(text.data, a, b"$")
+            com = _positions(text.data, a, b",")
         if dol.size:
             li = np.searchsorted(starts, dol, side="right") - 1
             np.minimum.at(ends, li, dol)
-        com = _positions(text.data, a, b",")
         if com.size:
             cl = np.searchsorted(starts, com, side="right") - 1
             keep = com < ends[cl]
@@ -217,6 +244,14 @@ def _names(text: ByteText, L: _Lines):
     else:
         first_comma = L.ends
     width = np.minimum(np.minimum(L.length, first_comma - L.starts), 8)
+    if text.compiled:
+        from ..kernels import text as kx
+
+        n = len(width)
+        L.head, x = np.empty(n, np.uint64), np.empty(n, np.uint64)
+        large, mixed, first = np.empty(n, bool), np.empty(n, bool), np.empty(n, np.uint8)
+        kx.heads(text.u8, L.starts, width, L.head, x, large, mixed, first)
+        return x, large, mixed, first
     x = text.load(L.starts, width)
     L.head = x                                        # raw first bytes, for the pre-scan
     first = (x & np.uint64(0xFF)).astype(np.uint8)     # first byte (space on empty lines)
@@ -246,13 +281,16 @@ _CONT[[ord(" "), ord("+"), ord("*"), ord(",")]] = True
 
 
 # ---- fields of a group of cards with one layout ----------------------------
-def _slots(L: _Lines, lines: np.ndarray, kinds: list[int], src: Source, n_fields: int):
+def _slots(L: _Lines, lines: np.ndarray, kinds: list[int], src: Source, n_fields: int,
+           words: bool = True):
     """Byte position and width of the first data fields of cards laid out alike.
 
     lines : (nc, n_lines_per_card) line indices; kinds : per line 0 small,
     1 large, 2 free small, 3 free large.  Returns a list of (pos, width)
     pairs of (nc,) int64 arrays, one per field, at most ``n_fields``; trailing
-    fields that no card reaches are left out (they are blank).
+    fields that no card reaches are left out (they are blank).  With ``words``,
+    small fields of evenly spaced lines come as (pos, width, words), the fields'
+    8 bytes loaded by one strided copy (for the numpy parsers).
     """
     out = []
     for j, kind in enumerate(kinds):
@@ -268,7 +306,7 @@ def _slots(L: _Lines, lines: np.ndarray, kinds: list[int], src: Source, n_fields
             lim = np.minimum(e, s + 72)
             reach = min(need, nf, max(0, -(-(int((lim - s).max(initial=0)) - 8) // fw)))
             room = int((lim - s).min()) if len(s) else 0
-            stride = _stride(s) if fw == 8 and reach and room >= 8 + fw * reach else 0
+            stride = _stride(s) if words and fw == 8 and reach and room >= 8 + fw * reach else 0
             for k in range(reach):
                 pos = s + (8 + fw * k)
                 if stride:                              # lines evenly spaced: strided view
@@ -301,6 +339,54 @@ def _slots(L: _Lines, lines: np.ndarray, kinds: list[int], src: Source, n_fields
     while out and not np.any(out[-1][1]):
         out.pop()
     return out
+
+
+class _Fixed:
+    """Data fields ``first`` .. ``first + count - 1`` of single-line small field (fw 8)
+    or large field (fw 16) cards, the lines ``lines`` of the line table L, as
+    :func:`_slots` lays them out (from column 9, fw wide, cut at the line's end and at
+    column 72), for the compiled parsers, which locate the fields themselves (no
+    position arrays).  Sliced, padded with blank fields (``+``) and iterated (as
+    (pos, width) pairs) like the list :func:`_slots` returns."""
+
+    def __init__(self, L: _Lines, lines: np.ndarray, fw: int, first: int, count: int):
+        self.L, self.lines, self.fw, self.first, self.count = L, lines, fw, first, count
+
+    def __len__(self):
+        return self.count
+
+    def __getitem__(self, sl: slice):
+        start, stop, step = sl.indices(self.count)
+        assert step == 1
+        return _Fixed(self.L, self.lines, self.fw, self.first + start, max(stop - start, 0))
+
+    def __add__(self, blanks: list):
+        # fields past a line's end read as blank: padding is more fields
+        return _Fixed(self.L, self.lines, self.fw, self.first, self.count + len(blanks))
+
+    def _where(self, k: int, rows):
+        ln = self.lines[rows]
+        s = self.L.starts[ln]
+        pos = s + (8 + self.fw * (self.first + k))
+        return pos, np.clip(np.minimum(self.L.ends[ln], s + 72) - pos, 0, self.fw)
+
+    def __iter__(self):
+        return iter([self._where(k, slice(None)) for k in range(self.count)])
+
+    def rows(self, text: ByteText, kind: str):
+        """(count, n) values and blank flags (kind "uints" or "reals"), see
+        :func:`.textscan.compiled_rows`."""
+        from ..kernels import text as kx
+
+        L, ln, fw, f0 = self.L, self.lines, self.fw, self.first
+        if kind == "uints":
+            def run(val, status, lo, hi):
+                return kx.fixed_uints(text.u8, L.starts, L.ends, ln, fw, f0, val, status, lo, hi)
+        else:
+            def run(val, status, lo, hi):
+                return kx.fixed_reals(text.u8, L.starts, L.ends, ln, fw, f0, kx.P10, val,
+                                      status, lo, hi)
+        return compiled_rows(text, (self.count, len(ln)), kind, run, self._where)
 
 
 class _Cards:
@@ -384,16 +470,22 @@ class _Cards:
         else:
             self.distinct = []
         self._distinct_set = set(self.distinct)
+        self._selected: dict = {}
         self.mixed = mixed[self.line]                       # name in mixed case
         fl = first[self.line]
         self.has_lower = bool(((fl >= 97) & (fl <= 122)).any())
         self.bulk_lines = (lo, hi)
 
     def select(self, name: str) -> np.ndarray:
+        """Indices of the cards named ``name`` (read-only; found once per name)."""
         code = _code(name)
         if code not in self._distinct_set:
             return np.zeros(0, np.int64)
-        return np.flatnonzero(self.name == np.uint64(code))
+        got = self._selected.get(code)
+        if got is None:
+            got = self._selected[code] = np.flatnonzero(self.name == np.uint64(code))
+            got.flags.writeable = False
+        return got
 
     def where(self, card: int) -> str:
         return self.src.where(int(self.L.starts[self.line[card]]))
@@ -413,39 +505,47 @@ class _Cards:
             sub = cards[keys == k] if len(uk) > 1 else cards
             nlines = int(k & 15)
             kinds = [int((k >> (4 + 2 * j)) & 3) for j in range(nlines)]
-            for c0 in range(0, len(sub), CHUNK):
-                part = sub[c0:c0 + CHUNK]
+            step = CHUNK_COMPILED if self.text.compiled else CHUNK
+            if self.text.compiled and nlines == 1 and kinds[0] < 2:
+                # single-line small or large field cards: the compiled parsers locate
+                # the fields themselves
+                fw, nf = (16, 4) if kinds[0] else (8, 8)
+                for c0 in range(0, len(sub), step):
+                    part = sub[c0:c0 + step]
+                    ln = self.li[self.first_idx[part]]
+                    longest = min(int(self.L.length[ln].max(initial=0)), 72)
+                    yield part, _Fixed(self.L, ln, fw, 0,
+                                       min(n_fields, nf, max(0, -(-(longest - 8) // fw))))
+                continue
+            for c0 in range(0, len(sub), step):
+                part = sub[c0:c0 + step]
                 first = self.first_idx[part]
                 lines = self.li[first[:, None] + np.arange(nlines)[None, :]] if nlines > 1 \
                     else self.li[first][:, None]
-                yield part, _slots(self.L, lines, kinds, self.src, n_fields)
+                yield part, _slots(self.L, lines, kinds, self.src, n_fields,
+                                   words=not self.text.compiled)
 
     def ints(self, cols, cards, label, first_field: int = 0):
         """(F, n) values and blank flags of integer fields ``cols`` [(pos, width), ...]."""
-        n = len(cards)
-        v = np.zeros((len(cols), n), np.int64)
-        b = np.ones((len(cols), n), bool)
-        for j, col in enumerate(cols):
-            try:
-                v[j], b[j] = parse_ints(self.text, col[0], col[1], col[2] if len(col) > 2 else None)
-            except FieldError as exc:
-                raise MeshReadError(f"{self.where(cards[exc.index])}: {label} field "
-                                    f"{first_field + j + 2} is '{exc.text[:24]}', not an "
-                                    "integer; fix the card") from None
-        return v, b
+        try:
+            if isinstance(cols, _Fixed):
+                return cols.rows(self.text, "uints")
+            return int_rows(self.text, cols)
+        except FieldError as exc:
+            raise MeshReadError(f"{self.where(cards[exc.index])}: {label} field "
+                                f"{first_field + exc.row + 2} is '{exc.text[:24]}', not an "
+                                "integer; fix the card") from None
 
     def floats(self, cols, cards, label, first_field: int = 0):
-        n = len(cards)
-        v = np.zeros((len(cols), n))
-        b = np.ones((len(cols), n), bool)
-        for j, (pos, wid, *_) in enumerate(cols):
-            try:
-                v[j], b[j] = parse_floats(self.text, pos, wid)
-            except FieldError as exc:
-                raise MeshReadError(f"{self.where(cards[exc.index])}: {label} field "
-                                    f"{first_field + j + 2} is '{exc.text[:24]}', not a real "
-                                    "number; fix the card") from None
-        return v, b
+        """(F, n) values and blank flags of real fields ``cols`` [(pos, width), ...]."""
+        try:
+            if isinstance(cols, _Fixed):
+                return cols.rows(self.text, "reals")
+            return real_rows(self.text, cols)
+        except FieldError as exc:
+            raise MeshReadError(f"{self.where(cards[exc.index])}: {label} field "
+                                f"{first_field + exc.row + 2} is '{exc.text[:24]}', not a real "
+                                "number; fix the card") from None
 
     def small_table(self, name: str, n_fields: int):
         """Rows of a rare card as Python lists of stripped strings (slow path)."""
@@ -458,6 +558,11 @@ class _Cards:
                 out.append((int(c), row + [""] * (n_fields - len(row))))
         out.sort()
         return out
+
+
+def _cat(parts: list) -> np.ndarray:
+    """np.concatenate(parts), without a copy when there is one part."""
+    return parts[0] if len(parts) == 1 else np.concatenate(parts)
 
 
 def _fname(base: str):
@@ -620,10 +725,10 @@ def _parse(C: "_Cards") -> RawMesh:
         xyz_l.append(xv.T)
         card_l.append(part)
     if ids_l:
-        gcard = np.concatenate(card_l)
-        gids = np.concatenate(ids_l)
-        cps = np.concatenate(cp_l)
-        points = np.concatenate(xyz_l)
+        gcard = _cat(card_l)
+        gids = _cat(ids_l)
+        cps = _cat(cp_l)
+        points = _cat(xyz_l)
         if len(gcard) > 1 and not (np.diff(gcard) > 0).all():   # layouts interleaved
             order = np.argsort(gcard, kind="stable")
             gids, cps, points, gcard = gids[order], cps[order], points[order], gcard[order]
@@ -699,10 +804,10 @@ def _parse(C: "_Cards") -> RawMesh:
                                     f"numbers where {allowed} are expected (missing or partial "
                                     "mid-side nodes?); export complete elements")
         for ctype, items in per_type.items():
-            idx = np.concatenate([i[0] for i in items])
-            pid = np.concatenate([i[1] for i in items])
-            eid = np.concatenate([i[2] for i in items])
-            ecard = np.concatenate([i[3] for i in items])
+            idx = _cat([i[0] for i in items])
+            pid = _cat([i[1] for i in items])
+            eid = _cat([i[2] for i in items])
+            ecard = _cat([i[3] for i in items])
             if idx.min(initial=0) < 0:
                 r = int(np.argwhere(idx < 0)[0, 0])
                 raise MeshReadError(f"{C.where(ecard[r])}: {nm} {int(eid[r])} refers to a GRID "
@@ -712,10 +817,10 @@ def _parse(C: "_Cards") -> RawMesh:
             eids_all.append(eid)
             ecards_all.append(ecard)
     if eids_all:
-        eids = np.concatenate(eids_all)
+        eids = _cat(eids_all)
         dup = first_duplicate(eids)
         if dup is not None:
-            ecards = np.concatenate(ecards_all)
+            ecards = _cat(ecards_all)
             raise MeshReadError(f"{C.where(ecards[dup[1]])}: element number {int(eids[dup[1]])} "
                                 f"is used twice (first at {C.where(ecards[dup[0]])}); "
                                 "renumber the elements")
@@ -749,7 +854,7 @@ def _parse(C: "_Cards") -> RawMesh:
     known = set(ELEMENT_CARDS) | set(ALIASES) | {"GRID", "GRDSET", "PSOLID", "MAT10", *_CORD2}
     for nm, code in names.items():
         if nm not in known:
-            ignored[nm] = int((C.name == np.uint64(code)).sum())
+            ignored[nm] = len(C.select(nm))
     from .prescan import nastran_counts
     lo, hi = C.bulk_lines
     expected = nastran_counts(C.L.head[lo:hi], [k for k, v in counts.items() if v],

@@ -17,9 +17,11 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..threads import ranges, thread_map, workers
 from .raw import clean_name
 
-__all__ = ["ByteText", "parse_ints", "parse_floats", "FieldError"]
+__all__ = ["ByteText", "parse_ints", "parse_floats", "int_rows", "real_rows", "compiled_rows",
+           "FieldError"]
 
 _U = np.uint64
 _ONES = _U(0x0101010101010101)
@@ -34,15 +36,21 @@ _PAD = 160
 _FILL = _SPACES & ~_MASKS
 #: fields converted per step (temporaries of a step stay in the CPU cache)
 CHUNK = 32768
+#: records per step of the compiled parsers (no temporaries; one step for a million
+#: cards, so that no step's results are copied into the whole's, shared among threads)
+CHUNK_COMPILED = 1 << 20
+#: fields from which the compiled parsers split the work among threads
+PARALLEL_FIELDS = 65536
 
 
 class FieldError(ValueError):
-    """A field that is not a number; ``index`` is its position in the input arrays."""
+    """A field that is not a number; ``index`` is its position in the input arrays
+    (``row`` its row, for :func:`int_rows` / :func:`real_rows`)."""
 
-    def __init__(self, index: int, text: str, kind: str):
+    def __init__(self, index: int, text: str, kind: str, row: int = 0):
         text = clean_name(text, 40)             # file content: shown as data only
         super().__init__(f"'{text}' is not {kind}")
-        self.index, self.text, self.kind = int(index), text, kind
+        self.index, self.text, self.kind, self.row = int(index), text, kind, int(row)
 
 
 class ByteText:
@@ -50,13 +58,23 @@ class ByteText:
 
     data : the text; ``load(p, w)`` gives the uint64 holding bytes p..p+7
     (little-endian, so character p is the lowest byte), bytes past the end
-    of the text read as spaces.
+    of the text read as spaces.  compiled : whether the field parsers take the
+    compiled kernels (default: :func:`meshcheck.kernels.use_built` of the text's size).
     """
 
-    def __init__(self, data: bytes):
+    def __init__(self, data: bytes, compiled: bool | None = None):
         self.data = data
         self.n = n = len(data)
+        if compiled is None:
+            from ..kernels import use_built
+
+            compiled = use_built(n)
+        #: whether parse_ints / parse_floats take the compiled parsers (meshcheck.kernels.text)
+        self.compiled = bool(compiled)
         self.u8 = np.frombuffer(data, dtype=np.uint8) if n else np.zeros(0, np.uint8)
+        if self.u8.flags.writeable:  # one compiled signature for bytes and bytearray
+            self.u8 = self.u8.view()
+            self.u8.flags.writeable = False
         body = max(n - 7, 0)
         self.words = (np.ndarray((body,), dtype="<u8", buffer=data, offset=0, strides=(1,))
                       if body else np.zeros(0, np.uint64))
@@ -155,7 +173,103 @@ def parse_ints(text: ByteText, pos: np.ndarray, width: np.ndarray | int, pre=Non
     Raises FieldError for the first field that is neither blank nor an integer.
     Works in chunks of ``CHUNK`` fields so that temporaries stay in cache.
     """
-    pos = np.asarray(pos, dtype=np.int64).ravel()
+    pos = np.ascontiguousarray(pos, dtype=np.int64).ravel()
+    if text.compiled:
+        v, b = _rows_compiled(text, [(pos, np.ravel(width) if np.ndim(width) else width)],
+                              "uints")
+        return v[0], b[0]
+    return _ints_numpy(text, pos, width, pre)
+
+
+def int_rows(text: ByteText, cols: list) -> tuple[np.ndarray, np.ndarray]:
+    """Integer fields of n records, F per record: cols is [(pos, width[, words]), ...]
+    as :func:`parse_ints` takes them, one per field.  Returns (values (F, n) int64,
+    blank (F, n) bool); raises FieldError (``row`` the field) for the first bad field of
+    the first row that has one."""
+    if text.compiled:
+        return _rows_compiled(text, cols, "uints")
+    return _rows_numpy(text, cols, "uints")
+
+
+def real_rows(text: ByteText, cols: list, max_width: int = 40):
+    """Real fields of n records, F per record (see :func:`int_rows`, :func:`parse_floats`)."""
+    wmax = max((int(np.max(c[1], initial=0)) for c in cols), default=0)
+    if text.compiled and wmax <= max_width:
+        return _rows_compiled(text, cols, "reals", max_width)
+    return _rows_numpy(text, cols, "reals", max_width)
+
+
+def _rows_numpy(text, cols, kind, max_width=40):
+    n = len(cols[0][0]) if cols else 0
+    val = np.zeros((len(cols), n), np.int64 if kind == "uints" else np.float64)
+    blank = np.ones((len(cols), n), bool)
+    for j, (pos, wid, *pre) in enumerate(cols):
+        try:
+            if kind == "uints":
+                val[j], blank[j] = parse_ints(text, pos, wid, pre[0] if pre else None)
+            else:
+                val[j], blank[j] = parse_floats(text, pos, wid, max_width)
+        except FieldError as exc:
+            raise FieldError(exc.index, exc.text, exc.kind, row=j) from None
+    return val, blank
+
+
+def _rows_compiled(text, cols, kind, max_width=40):
+    """int_rows / real_rows by the compiled kernels of :mod:`meshcheck.kernels.text`."""
+    from ..kernels import text as kx
+
+    n_rows = len(cols)
+    n = len(cols[0][0]) if cols else 0
+    pos = np.empty((n_rows, n), np.int64)
+    scalar = all(np.ndim(c[1]) == 0 for c in cols)
+    width = np.empty((n_rows, 1 if scalar else n), np.int64)
+    for j, (p, w, *_) in enumerate(cols):
+        pos[j] = p
+        width[j] = w
+    if kind == "uints":
+        def run(val, status, lo, hi):
+            return kx.uints(text.u8, pos, width, val, status, lo, hi)
+    else:
+        def run(val, status, lo, hi):
+            return kx.reals(text.u8, pos, width, kx.P10, val, status, lo, hi)
+    return compiled_rows(text, (n_rows, n), kind, run,
+                         lambda j, idx: (pos[j, idx], width[j, 0] if scalar else width[j, idx]),
+                         max_width)
+
+
+def compiled_rows(text: ByteText, shape: tuple, kind: str, run, where, max_width: int = 40):
+    """(F, n) values and blank flags of F fields of n records by a compiled kernel,
+    ``run(val, status, lo, hi)`` (records lo..hi-1; returns the fields it left), shared
+    among threads when there are at least :data:`PARALLEL_FIELDS` fields; the fields
+    left (rare forms, errors) go to the numpy parsers row by row, located by
+    ``where(row, records) -> (pos, width)``.  kind: "uints" or "reals".  Raises
+    FieldError (``row`` set) for the first bad field of the first row that has one."""
+    from ..kernels import text as kx
+
+    n_rows, n = shape
+    status = np.empty(shape, np.uint8)
+    val = np.empty(shape, np.int64 if kind == "uints" else np.float64)
+    parts = ranges(n, workers() if n_rows * n >= PARALLEL_FIELDS else 1)
+    left = sum(thread_map(lambda r: run(val, status, r[0], r[1]), parts,
+                          parallel=len(parts) > 1))
+    for j in range(n_rows) if left else ():
+        idx = np.flatnonzero(status[j] == kx.OTHER)
+        if not idx.size:
+            continue
+        p, w = where(j, idx)
+        try:
+            if kind == "uints":
+                v, b = _ints_numpy(text, p, int(w) if np.ndim(w) == 0 else w)
+            else:
+                v, b = _floats_numpy(text, p, w, max_width)
+        except FieldError as exc:
+            raise FieldError(int(idx[exc.index]), exc.text, exc.kind, row=j) from None
+        val[j, idx] = v
+        status[j, idx] = np.where(b, kx.BLANK, kx.NUMBER)
+    return val, status == kx.BLANK
+
+
+def _ints_numpy(text, pos, width, pre=None):
     scalar = np.ndim(width) == 0
     if not scalar:
         width = np.asarray(width, dtype=np.int64).ravel()
@@ -204,6 +318,10 @@ def _ints_chunk(text, pos, width, offset, pre=None):
         val[wide] = np.where(lblank, hv, np.where(hblank, lv, lv * _POW10[hnd] + hv))
         ok[wide] = np.where(lblank, hok, np.where(hblank, lok, across))
         blank[wide] = lblank & hblank
+        long = np.asarray(width > 16)
+        if long.any():  # more than two words (free fields padded with spaces): the
+            ok &= ~long  # general parser below
+            blank &= ~long
     bad = np.flatnonzero(~ok & ~blank) if not ok.all() else ()
     for i in bad:
         s = text.text(int(pos[i]), int(width if scalar else width[i]))
@@ -316,9 +434,16 @@ def parse_floats(text: ByteText, pos: np.ndarray, width: np.ndarray, max_width: 
     Returns (values (N,) float64, blank (N,) bool); blank fields give 0.0.
     Raises FieldError naming the first field that is not a real.
     """
-    pos = np.asarray(pos, dtype=np.int64)
-    width = np.broadcast_to(np.asarray(width, dtype=np.int64), pos.shape).ravel()
-    pos = pos.ravel()
+    pos = np.ascontiguousarray(pos, dtype=np.int64).ravel()
+    if text.compiled and int(np.max(width, initial=0)) <= max_width:
+        v, b = _rows_compiled(text, [(pos, np.ravel(width) if np.ndim(width) else width)],
+                              "reals", max_width)
+        return v[0], b[0]
+    return _floats_numpy(text, pos, width, max_width)
+
+
+def _floats_numpy(text, pos, width, max_width):
+    width = np.broadcast_to(np.ravel(np.asarray(width, dtype=np.int64)), pos.shape)
     n = len(pos)
     val = np.zeros(n, dtype=np.float64)
     blank = np.zeros(n, dtype=bool)
@@ -345,9 +470,9 @@ def _floats_chunk(text, pos, width, max_width):
     blank = (words == _SPACES).all(axis=1) if nw > 1 else (words[:, 0] == _SPACES)
     okc = _FLOAT_OK[b].view("<u8").reshape(n, nw)
     good = (okc == _ONES).all(axis=1) if nw > 1 else (okc[:, 0] == _ONES)
-    # D/d exponent -> E, and Nastran's implicit exponent "1.5-3" (a sign right
+    # D/d/e exponent -> E, and Nastran's implicit exponent "1.5-3" (a sign right
     # after a digit or point); both are rare, so look before touching the bytes
-    dexp = (b == 68) | (b == 100)
+    dexp = (b == 68) | (b == 100) | (b == 101)
     if dexp.any():
         b = b.copy()
         b[dexp] = 69
@@ -370,6 +495,8 @@ def _floats_chunk(text, pos, width, max_width):
     bad = np.flatnonzero(~good & ~blank)
     if bad.size:
         i = int(bad[0])
+        if i:  # a field before it may fail the conversion: that one is named
+            _floats_chunk(text, pos[:i], width[:i], max_width)
         raise FieldError(i, text.text(int(pos[i]), int(width[i])).strip(), "a real number")
     fast, val = _fast_reals(b)
     out[fast] = val[fast]

@@ -19,7 +19,8 @@ import importlib.util
 import os
 import threading
 
-__all__ = ["MIN_CELLS", "Kernel", "available", "use_compiled", "njit", "warm_up_async"]
+__all__ = ["MIN_CELLS", "Kernel", "available", "use_compiled", "use_built", "njit",
+           "warm_up_async"]
 
 #: smallest mesh (cells) for which ``auto`` takes the compiled kernels. Loading numba and
 #: the cached kernels costs about 1 s per process; measured analysis times (2 cores,
@@ -49,6 +50,23 @@ def use_compiled(n_items: int) -> bool:
     if m == "numpy" or not available():
         return False
     return m == "numba" or n_items >= MIN_CELLS
+
+
+def use_built(n_bytes: int) -> bool:
+    """Whether reading a file of ``n_bytes`` bytes takes the compiled field parsers
+    (:mod:`meshcheck.kernels.text`): in ``auto`` mode only when the file is at least
+    :data:`WARM_UP_BYTES` and the ahead-of-time module (:mod:`meshcheck.kernels.ahead`)
+    is built, since the reading comes before numba could be set up beside it (the
+    module loads in milliseconds, numba's set-up takes about 0.25 s); always in
+    ``numba`` mode, never in ``numpy`` mode."""
+    m = mode()
+    if m == "numpy" or not available():
+        return False
+    if m == "numba":
+        return True
+    from . import ahead
+
+    return n_bytes >= WARM_UP_BYTES and ahead.available()
 
 
 #: input files of at least this many bytes start loading numba while they are read

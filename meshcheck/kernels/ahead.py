@@ -35,7 +35,7 @@ SPECIALISATIONS = Path(__file__).with_name("specialisations.json")
 
 #: the kernels' modules (their sources make the hash of the built module's name)
 _MODULES = ("advice", "b64", "cells", "directional", "geometry", "sizefield", "stats",
-            "topology")
+            "text", "topology")
 
 
 def _token(a):
@@ -218,11 +218,14 @@ def recording():
 
 def record(calls, path: Path | None = None) -> list:
     """Add ``calls`` (from :func:`recording`) to the list ``path`` (default
-    :data:`SPECIALISATIONS`) and return the list (sorted, unique).  For
+    :data:`SPECIALISATIONS`) and return the list (sorted, unique; entries of kernels that
+    no longer exist, or now take another number of arguments, are dropped).  For
     benchmarks/record_kernels.py, which audits meshes in ``MESHCHECK_KERNELS=numba`` mode."""
     path = Path(path) if path is not None else SPECIALISATIONS
     known = json.loads(path.read_text()) if path.is_file() else []
-    seen = {json.dumps(e) for e in known}
+    arity = {k.key: k.py_func.__code__.co_argcount for k in _kernels()}
+    known = [e for e in known if arity.get((e[0], e[1])) == len(e[2])]  # kernels gone or
+    seen = {json.dumps(e) for e in known}                                # changed: dropped
     for (module, qualname), key in calls:
         e = [module, qualname, [list(t) if isinstance(t, tuple) else t for t in key]]
         if json.dumps(e) not in seen:
