@@ -21,6 +21,19 @@ def test_bench_audit_small(tmp_path):
         assert line in text
 
 
+def test_bench_nastran_small(tmp_path):
+    pytest.importorskip("gmsh")
+    out = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "bench_nastran.py"),
+                          str(tmp_path), "--cells", "5e3", "--repeat", "1", "--fresh", "1"],
+                         capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr[-2000:]
+    text = out.stdout
+    for line in ("identical to gmsh: coordinates True, tetrahedra True",
+                 "identical to meshio: coordinates and tetrahedra True",
+                 "speed-up vs gmsh", "speed-up vs meshio", "first read in a fresh process"):
+        assert line in text
+
+
 def test_bench_ab_runs_each_version_from_its_own_tree(tmp_path):
     # "python -m" puts the working folder first on sys.path: a child started inside a
     # checkout would import that checkout whatever PYTHONPATH says
