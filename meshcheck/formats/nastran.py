@@ -227,13 +227,14 @@ class _Lines:
             keep = com < ends[cl]
             com, cl = com[keep], cl[keep]
             ccount = np.bincount(cl, minlength=len(starts)).astype(np.int64)
-        else:
-            ccount = np.zeros(len(starts), np.int64)
+        else:  # no free fields: zeros that take no memory
+            ccount = np.broadcast_to(np.int64(0), starts.shape)
         self.starts, self.ends, self.commas, self.ccount = starts, ends, com, ccount
         self.data = text.data
-        self.cstart = np.concatenate(([0], np.cumsum(ccount)[:-1])).astype(np.int64)
+        self.cstart = (np.concatenate(([0], np.cumsum(ccount)[:-1])).astype(np.int64)
+                       if com.size else ccount)
         self.length = ends - starts
-        self.free = ccount > 0
+        self.free = ccount > 0 if com.size else np.broadcast_to(False, starts.shape)
 
 
 def _names(text: ByteText, L: _Lines):
@@ -398,9 +399,17 @@ class _Cards:
         L = self.L = _Lines(text)
         names, large, mixed, first_byte = _names(text, L)
         self.needs_normalising = L.has_tab or L.has_cr
-        inc = np.uint64(_code("INCLUDE") & ((1 << 56) - 1))
-        self.has_include = bool(((names & np.uint64((1 << 56) - 1)) == inc).any())
         first = first_byte
+        initial = first & np.uint8(0xDF)             # first letters in upper case
+
+        def named(word: str, n_chars: int) -> np.ndarray:
+            """Lines whose name starts with the first n_chars of ``word`` (the candidates
+            by their first letter: no pass over all the names)."""
+            cand = np.flatnonzero(initial == ord(word[0]))
+            mask = np.uint64((1 << (8 * n_chars)) - 1)
+            return cand[(names[cand] & mask) == (np.uint64(_code(word)) & mask)]
+
+        self.has_include = bool(named("INCLUDE", 7).size)
         cont = _CONT[first]
         blank = L.length == 0
         cand = np.flatnonzero(~blank & (first == 32))
@@ -408,9 +417,7 @@ class _Cards:
             ln = np.minimum(L.length[cand], 80)
             words = text.load_wide(L.starts[cand], ln, 10)
             blank[cand] = (words == np.uint64(0x2020202020202020)).all(axis=1)
-        active = ~blank
-        begin = np.flatnonzero(active & ((names & np.uint64((1 << 40) - 1))
-                                         == np.uint64(_code("BEGIN") & ((1 << 40) - 1))))
+        begin = named("BEGIN", 5)                   # (blank lines start with a space)
         lo = 0
         if begin.size:
             lo = int(begin[0]) + 1
@@ -419,11 +426,11 @@ class _Cards:
                                     "(part superelements) is not supported; export the "
                                     "assembled model as one bulk data section")
         else:
-            cend = np.flatnonzero(active & (names == np.uint64(_code("CEND"))))
+            cend = named("CEND    ", 8)
             if cend.size:
                 raise MeshReadError(f"{src.where(int(L.starts[cend[0]]))}: case control (CEND) "
                                     "but no BEGIN BULK line; add BEGIN BULK before the bulk data")
-        end = np.flatnonzero(active & (names == np.uint64(_code("ENDDATA"))))
+        end = named("ENDDATA ", 8)
         end = end[end >= lo]
         hi = int(end[0]) if end.size else len(names)
         self.bulk_span = (int(L.starts[lo]) if lo < len(names) else text.n,
@@ -432,6 +439,7 @@ class _Cards:
             li = np.arange(lo, hi)
             sub = slice(lo, hi)
         else:
+            active = ~blank
             active[:lo] = False
             active[hi:] = False
             li = np.flatnonzero(active)
@@ -445,23 +453,24 @@ class _Cards:
             kind += 2 * L.free[sub]
         if is_start.all():                          # common: no continuation lines
             self.line = li
-            first_idx = np.arange(len(li))
-            self.n_lines = np.ones(len(li), np.int64)
+            first_idx = None                          # card k starts at li[k]
             key = (kind << 4) + 1
+            per_card = sub                            # a card's first line: li itself
         else:
             self.line = li[is_start]                  # first line of each card
             card_of = np.cumsum(is_start) - 1
             first_idx = np.flatnonzero(is_start)
-            self.n_lines = np.diff(np.append(first_idx, len(li)))
+            n_lines = np.diff(np.append(first_idx, len(li)))
             rel = np.arange(len(li)) - first_idx[card_of]
             contrib = kind << (4 + 2 * np.minimum(rel, 27))
             key = np.add.reduceat(contrib, first_idx) if li.size else np.zeros(0, np.int64)
-            key = key + np.minimum(self.n_lines, 15)
-            key[self.n_lines > 28] = -1
+            key = key + np.minimum(n_lines, 15)
+            key[n_lines > 28] = -1
+            per_card = self.line
         self.key = key
         self.li = li
         self.first_idx = first_idx
-        self.name = names[self.line]
+        self.name = names[per_card]
         # distinct names from runs (cards of one kind usually come together)
         if len(self.name):
             change = np.flatnonzero(self.name[1:] != self.name[:-1]) + 1
@@ -471,10 +480,14 @@ class _Cards:
             self.distinct = []
         self._distinct_set = set(self.distinct)
         self._selected: dict = {}
-        self.mixed = mixed[self.line]                       # name in mixed case
-        fl = first[self.line]
+        self.mixed = mixed[per_card]                        # name in mixed case
+        fl = first[per_card]
         self.has_lower = bool(((fl >= 97) & (fl <= 122)).any())
         self.bulk_lines = (lo, hi)
+
+    def _first(self, cards: np.ndarray) -> np.ndarray:
+        """Index in ``li`` of the first line of each card."""
+        return cards if self.first_idx is None else self.first_idx[cards]
 
     def select(self, name: str) -> np.ndarray:
         """Indices of the cards named ``name`` (read-only; found once per name)."""
@@ -512,14 +525,14 @@ class _Cards:
                 fw, nf = (16, 4) if kinds[0] else (8, 8)
                 for c0 in range(0, len(sub), step):
                     part = sub[c0:c0 + step]
-                    ln = self.li[self.first_idx[part]]
+                    ln = self.li[self._first(part)]
                     longest = min(int(self.L.length[ln].max(initial=0)), 72)
                     yield part, _Fixed(self.L, ln, fw, 0,
                                        min(n_fields, nf, max(0, -(-(longest - 8) // fw))))
                 continue
             for c0 in range(0, len(sub), step):
                 part = sub[c0:c0 + step]
-                first = self.first_idx[part]
+                first = self._first(part)
                 lines = self.li[first[:, None] + np.arange(nlines)[None, :]] if nlines > 1 \
                     else self.li[first][:, None]
                 yield part, _slots(self.L, lines, kinds, self.src, n_fields,
