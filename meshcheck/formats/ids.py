@@ -10,13 +10,14 @@ _LOOKUP_SLACK = 1_000_000
 
 
 def index_of(ids: np.ndarray):
-    """Map from node numbers to 0-based rows: returns a function ids -> rows (-1 if missing)."""
+    """Map from node numbers to 0-based rows: returns a function ids -> rows (-1 if missing),
+    int32 from the lookup table (the mesh's own index type: half the memory of int64)."""
     n = len(ids)
     if n == 0:
         return lambda q: np.full(np.shape(q), -1, np.int64)
     lo, hi = int(ids.min()), int(ids.max())
     if lo >= 1 and hi < 8 * n + _LOOKUP_SLACK:
-        lut = np.full(hi + 2, -1, dtype=np.int64)
+        lut = np.full(hi + 2, -1, dtype=np.int32 if n < 2**31 else np.int64)
         lut[ids] = np.arange(n)
 
         def look(q):

@@ -20,7 +20,8 @@ class RawBlock:
     """Cells of one type as read.
 
     type : meshio cell type name (``tetra``, ``hexahedron20``, ...).
-    cells : (m, k) int64 0-based indices into ``RawMesh.points``, meshio/VTK node order.
+    cells : (m, k) int32 or int64 0-based indices into ``RawMesh.points``, meshio/VTK node
+        order.
     region : (m,) int64 region tag of each cell (0 = none).
     ids : (m,) int64 element numbers of the file (for messages), or None.
     """
