@@ -267,6 +267,30 @@ def test_cli_kernels_reports_the_module_state(tmp_path, monkeypatch, capsys):
         ahead._forget()
 
 
+def test_prune_removes_only_this_installations_modules_for_other_code(tmp_path):
+    suffix = ".cpython-311-x86_64-linux-gnu"
+
+    def module(tag, package):
+        so = tmp_path / f"meshcheck_kernels_{tag}{suffix}.so"
+        so.write_bytes(b"x")
+        meta = {"tag": tag, "functions": []}
+        if package is not None:
+            meta["package"] = package
+        so.with_suffix(".json").write_text(json.dumps(meta))
+        return so
+
+    keep = module("0000000000000000", ahead._package())
+    old = module("1111111111111111", ahead._package())
+    other = module("2222222222222222", "/elsewhere/meshcheck | /other/venv")
+    legacy = module("3333333333333333", None)
+    (tmp_path / "usable_kh_table.npy").write_bytes(b"y")        # not a module: left
+    assert ahead.prune(keep) == [old]
+    left = sorted(p.name for p in tmp_path.iterdir())
+    assert left == sorted([keep.name, keep.with_suffix(".json").name, other.name,
+                           other.with_suffix(".json").name, legacy.name,
+                           legacy.with_suffix(".json").name, "usable_kh_table.npy"])
+
+
 _RACE = r"""
 import threading, time, numpy as np
 from meshcheck import kernels as K

@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 
 __all__ = ["type_key", "code_tag", "module_path", "available", "specialisations", "build",
-           "recording", "record", "SPECIALISATIONS"]
+           "prune", "recording", "record", "SPECIALISATIONS"]
 
 #: the specialisations built: [module, qualified name, [argument tokens]] (:func:`record`)
 SPECIALISATIONS = Path(__file__).with_name("specialisations.json")
@@ -320,9 +320,41 @@ def _compile(path: Path, listing: Path = SPECIALISATIONS) -> None:
         staged = path.with_name(f"{path.name}.{os.getpid()}.tmp")
         shutil.copyfile(built, staged)
         manifest = path.with_suffix(".json")
-        manifest.write_text(json.dumps({"tag": code_tag(), "functions": done}))
+        manifest.write_text(json.dumps({"tag": code_tag(), "package": _package(),
+                                        "functions": done}))
         os.replace(staged, path)  # the module last: its presence means "complete"
     print(f"{len(done)} of {len(entries)} specialisations in {path}")
+    gone = prune(path)
+    if gone:
+        print(f"removed {len(gone)} module(s) this installation built for other code")
+
+
+def _package() -> str:
+    """This installation, recorded in a module's manifest: the meshcheck package's folder
+    and the Python environment (two environments may share one source checkout)."""
+    return f"{Path(__file__).resolve().parent.parent} | {Path(sys.prefix).resolve()}"
+
+
+def prune(keep: Path) -> list:
+    """Remove the modules (and manifests) in ``keep``'s folder that this installation
+    (the same package folder and Python environment) built for other code: after an
+    upgrade or an edit they can never load again.  Modules of other installations sharing
+    the folder, and those whose manifest names none (built before 2026-12-04), are left.
+    Returns the paths removed."""
+    gone = []
+    for manifest in keep.parent.glob("meshcheck_kernels_*.json"):
+        module = manifest.with_suffix(keep.suffix)
+        if module == keep:
+            continue
+        try:
+            if json.loads(manifest.read_text()).get("package") != _package():
+                continue
+            for f in (module, manifest):
+                f.unlink(missing_ok=True)  # a process that loaded it keeps its mapping
+        except (OSError, ValueError, AttributeError):
+            continue
+        gone.append(module)
+    return gone
 
 
 if __name__ == "__main__":
