@@ -101,20 +101,14 @@ def _check(parse, text_bytes, pos, width, values, compiled, kind):
 
 @pytest.mark.parametrize("compiled", PARSERS)
 @pytest.mark.parametrize("seed", range(4))
-def test_integers_against_python(compiled, seed):
+@pytest.mark.parametrize("gen, parse, kind", [(_ints, parse_ints, np.int64),
+                                              (_reals, parse_floats, np.float64)],
+                         ids=["integers", "reals"])
+def test_fields_against_python(compiled, seed, gen, parse, kind):
     rng = np.random.default_rng(seed)
-    fields, values = _ints(rng, 3000)
+    fields, values = gen(rng, 3000)
     text, pos, width = _pack(fields)
-    _check(parse_ints, text, pos, width, values, compiled, np.int64)
-
-
-@pytest.mark.parametrize("compiled", PARSERS)
-@pytest.mark.parametrize("seed", range(4))
-def test_reals_against_python(compiled, seed):
-    rng = np.random.default_rng(seed)
-    fields, values = _reals(rng, 3000)
-    text, pos, width = _pack(fields)
-    _check(parse_floats, text, pos, width, values, compiled, np.float64)
+    _check(parse, text, pos, width, values, compiled, kind)
 
 
 @pytest.mark.parametrize("compiled", PARSERS)
@@ -175,13 +169,14 @@ def test_kernels_take_the_common_forms():
 
     text, pos, width = _pack([b"  12 ", b"", b"-3", b"1234567890123456789"])
     u8 = np.frombuffer(text, np.uint8)
-    val, st = np.empty((2, 2), np.int64), np.empty((2, 2), np.uint8)
-    assert kx.uints(u8, pos.reshape(2, 2), width.reshape(2, 2), val, st, 0, 2) == 2
+    val, st, no = np.empty((2, 2), np.int64), np.empty((2, 2), np.uint8), np.empty((0, 0))
+    assert kx.fields(u8, pos.reshape(2, 2), width.reshape(2, 2), False, kx.P10, val, no, st,
+                     0, 2) == 2
     assert st.tolist() == [[0, 1], [2, 2]] and val[0, 0] == 12
     text, pos, width = _pack([b"1.5-3", b" -.5E+2", b"1.2345678901234567890", b"1e400", b" "])
     u8 = np.frombuffer(text, np.uint8)
-    val, st = np.empty((1, 5)), np.empty((1, 5), np.uint8)
-    assert kx.reals(u8, pos[None], width[None], kx.P10, val, st, 0, 5) == 2
+    val, st, no = np.empty((1, 5)), np.empty((1, 5), np.uint8), np.empty((0, 0), np.int64)
+    assert kx.fields(u8, pos[None], width[None], True, kx.P10, no, val, st, 0, 5) == 2
     assert st.tolist() == [[0, 0, 2, 2, 1]] and val[0, :2].tolist() == [1.5e-3, -50.0]
 
 

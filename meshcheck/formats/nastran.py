@@ -380,13 +380,11 @@ class _Fixed:
         from ..kernels import text as kx
 
         L, ln, fw, f0 = self.L, self.lines, self.fw, self.first
-        if kind == "uints":
-            def run(val, status, lo, hi):
-                return kx.fixed_uints(text.u8, L.starts, L.ends, ln, fw, f0, val, status, lo, hi)
-        else:
-            def run(val, status, lo, hi):
-                return kx.fixed_reals(text.u8, L.starts, L.ends, ln, fw, f0, kx.P10, val,
-                                      status, lo, hi)
+
+        def run(real, ival, fval, status, lo, hi):
+            return kx.fixed_fields(text.u8, L.starts, L.ends, ln, fw, f0, real, kx.P10, ival,
+                                   fval, status, lo, hi)
+
         return compiled_rows(text, (self.count, len(ln)), kind, run, self._where)
 
 
@@ -540,25 +538,22 @@ class _Cards:
 
     def ints(self, cols, cards, label, first_field: int = 0):
         """(F, n) values and blank flags of integer fields ``cols`` [(pos, width), ...]."""
-        try:
-            if isinstance(cols, _Fixed):
-                return cols.rows(self.text, "uints")
-            return int_rows(self.text, cols)
-        except FieldError as exc:
-            raise MeshReadError(f"{self.where(cards[exc.index])}: {label} field "
-                                f"{first_field + exc.row + 2} is '{exc.text[:24]}', not an "
-                                "integer; fix the card") from None
+        return self._values("uints", cols, cards, label, first_field)
 
     def floats(self, cols, cards, label, first_field: int = 0):
         """(F, n) values and blank flags of real fields ``cols`` [(pos, width), ...]."""
+        return self._values("reals", cols, cards, label, first_field)
+
+    def _values(self, kind, cols, cards, label, first_field):
         try:
             if isinstance(cols, _Fixed):
-                return cols.rows(self.text, "reals")
-            return real_rows(self.text, cols)
+                return cols.rows(self.text, kind)
+            return (int_rows if kind == "uints" else real_rows)(self.text, cols)
         except FieldError as exc:
+            what = "an integer" if kind == "uints" else "a real number"
             raise MeshReadError(f"{self.where(cards[exc.index])}: {label} field "
-                                f"{first_field + exc.row + 2} is '{exc.text[:24]}', not a real "
-                                "number; fix the card") from None
+                                f"{first_field + exc.row + 2} is '{exc.text[:24]}', not "
+                                f"{what}; fix the card") from None
 
     def small_table(self, name: str, n_fields: int):
         """Rows of a rare card as Python lists of stripped strings (slow path)."""

@@ -41,6 +41,8 @@ CHUNK = 32768
 CHUNK_COMPILED = 1 << 20
 #: fields from which the compiled parsers split the work among threads
 PARALLEL_FIELDS = 65536
+#: the compiled parsers' output of the kind not asked for (never written)
+_NO_INTS, _NO_REALS = np.empty((0, 0), np.int64), np.empty((0, 0), np.float64)
 
 
 class FieldError(ValueError):
@@ -226,12 +228,9 @@ def _rows_compiled(text, cols, kind, max_width=40):
     for j, (p, w, *_) in enumerate(cols):
         pos[j] = p
         width[j] = w
-    if kind == "uints":
-        def run(val, status, lo, hi):
-            return kx.uints(text.u8, pos, width, val, status, lo, hi)
-    else:
-        def run(val, status, lo, hi):
-            return kx.reals(text.u8, pos, width, kx.P10, val, status, lo, hi)
+    def run(real, ival, fval, status, lo, hi):
+        return kx.fields(text.u8, pos, width, real, kx.P10, ival, fval, status, lo, hi)
+
     return compiled_rows(text, (n_rows, n), kind, run,
                          lambda j, idx: (pos[j, idx], width[j, 0] if scalar else width[j, idx]),
                          max_width)
@@ -239,7 +238,8 @@ def _rows_compiled(text, cols, kind, max_width=40):
 
 def compiled_rows(text: ByteText, shape: tuple, kind: str, run, where, max_width: int = 40):
     """(F, n) values and blank flags of F fields of n records by a compiled kernel,
-    ``run(val, status, lo, hi)`` (records lo..hi-1; returns the fields it left), shared
+    ``run(real, ival, fval, status, lo, hi)`` (:func:`meshcheck.kernels.text.fields`:
+    records lo..hi-1, into ival or fval; returns the fields it left), shared
     among threads when there are at least :data:`PARALLEL_FIELDS` fields; the fields
     left (rare forms, errors) go to the numpy parsers row by row, located by
     ``where(row, records) -> (pos, width)``.  kind: "uints" or "reals".  Raises
@@ -248,9 +248,11 @@ def compiled_rows(text: ByteText, shape: tuple, kind: str, run, where, max_width
 
     n_rows, n = shape
     status = np.empty(shape, np.uint8)
-    val = np.empty(shape, np.int64 if kind == "uints" else np.float64)
+    real = kind == "reals"
+    val = np.empty(shape, np.float64 if real else np.int64)
+    ival, fval = (_NO_INTS, val) if real else (val, _NO_REALS)
     parts = ranges(n, workers() if n_rows * n >= PARALLEL_FIELDS else 1)
-    left = sum(thread_map(lambda r: run(val, status, r[0], r[1]), parts,
+    left = sum(thread_map(lambda r: run(real, ival, fval, status, r[0], r[1]), parts,
                           parallel=len(parts) > 1))
     for j in range(n_rows) if left else ():
         idx = np.flatnonzero(status[j] == kx.OTHER)

@@ -22,8 +22,7 @@ import numpy as np
 
 from . import njit
 
-__all__ = ["NUMBER", "BLANK", "OTHER", "P10", "uints", "reals", "fixed_uints", "fixed_reals",
-           "lines", "heads"]
+__all__ = ["NUMBER", "BLANK", "OTHER", "P10", "fields", "fixed_fields", "lines", "heads"]
 
 NUMBER, BLANK, OTHER = 0, 1, 2
 #: exact powers of ten 10**0 .. 10**22 (float64)
@@ -125,15 +124,37 @@ def _real(u8, p, e, p10):
     return (-x if neg else x), 0
 
 
+@njit(inline="always")
+def _convert(u8, p, e, real, p10, ival, fval, status, f, i):
+    """Field (f, i), bytes p..e-1, into fval (a real) or ival (an integer) and status;
+    True when it is left to the reference parser."""
+    if real:
+        x, s = _real(u8, p, e, p10)
+        fval[f, i] = x
+    else:
+        v, s = _uint(u8, p, e)
+        ival[f, i] = v
+    status[f, i] = s
+    return s == 2
+
+
 @njit
-def uints(u8, pos, width, val, status, lo, hi):
-    """Unsigned integer fields: spaces, 1 to 18 digits, spaces.
+def fields(u8, pos, width, real, p10, ival, fval, status, lo, hi):
+    """Integer or real fields of records lo..hi-1 (threads share the work by ranges).
+
+    Integers: spaces, 1 to 18 digits, spaces.  Reals, in Nastran, Fortran and C
+    notations: spaces, optional sign, digits with at most one point, an optional
+    exponent (``E``, ``e``, ``D``, ``d`` with an optional sign, or Nastran's implicit
+    form, a sign right after the mantissa: ``1.5-3`` is 1.5e-3) of 1 to 3 digits,
+    spaces; converted when the mantissa has at most 18 digits, is below 2**53 and the
+    decimal exponent is within +-22 (exact, see the module).  Every other field is left
+    to the reference parser.
 
     u8 : (n_bytes,) uint8 text; pos : (F, n) int64 first byte of each field; width :
-    (F, n) int64, or (F, 1) for one width per row; val : (F, n) int64 and status :
-    (F, n) uint8 outputs (val 0 unless status is 0), written for the records lo..hi-1
-    (so that threads can share the work).  Returns the number of fields left to the
-    reference parser."""
+    (F, n) int64, or (F, 1) for one width per row; real : reals (into fval (F, n)
+    float64) or integers (into ival (F, n) int64; the other output is not touched);
+    p10 : :data:`P10`; status : (F, n) uint8 (values 0 unless status is 0).  Returns
+    the number of fields left to the reference parser."""
     size = u8.shape[0]
     n_rows = pos.shape[0]
     one = width.shape[1] == 1
@@ -141,78 +162,27 @@ def uints(u8, pos, width, val, status, lo, hi):
     for i in range(lo, hi):
         for f in range(n_rows):
             p = pos[f, i]
-            e = min(p + width[f, 0 if one else i], size)
-            v, s = _uint(u8, p, e)
-            val[f, i] = v
-            status[f, i] = s
-            left += s == 2
+            left += _convert(u8, p, min(p + width[f, 0 if one else i], size), real, p10,
+                             ival, fval, status, f, i)
     return left
 
 
 @njit
-def reals(u8, pos, width, p10, val, status, lo, hi):
-    """Real fields in Nastran, Fortran and C notations: spaces, optional sign,
-    digits with at most one point, an optional exponent (``E``, ``e``, ``D``, ``d``
-    with an optional sign, or Nastran's implicit form, a sign right after the
-    mantissa: ``1.5-3`` is 1.5e-3) of 1 to 3 digits, spaces.  Converted when the
-    mantissa has at most 18 digits, is below 2**53 and the decimal exponent is within
-    +-22 (exact, see the module); every other field is left to the reference parser.
-
-    u8, pos, width, status, lo, hi as :func:`uints`; p10 : :data:`P10`; val : (F, n)
-    float64.  Returns the number of fields left to the reference parser."""
+def fixed_fields(u8, starts, ends, lines, fw, f0, real, p10, ival, fval, status, lo, hi):
+    """Fields of single-line fixed-format cards (Nastran small field, fw = 8, or large
+    field, fw = 16), as :func:`fields`: card i is the line lines[i] (starts, ends: the
+    line table); its data field k (from 0) is the fw bytes from column 9 + fw * k, cut
+    at the line's end and at column 72 (73-80 hold the continuation marker); a field
+    past them is blank.  Rows f of the outputs are the fields f0 + f."""
     size = u8.shape[0]
-    n_rows = pos.shape[0]
-    one = width.shape[1] == 1
-    left = 0
-    for i in range(lo, hi):
-        for f in range(n_rows):
-            p = pos[f, i]
-            e = min(p + width[f, 0 if one else i], size)
-            v, s = _real(u8, p, e, p10)
-            val[f, i] = v
-            status[f, i] = s
-            left += s == 2
-    return left
-
-
-@njit
-def fixed_uints(u8, starts, ends, lines, fw, f0, val, status, lo, hi):
-    """Integer fields of single-line fixed-format cards (Nastran small field, fw = 8,
-    or large field, fw = 16), as :func:`uints`: card i is the line lines[i] (starts,
-    ends: the line table); its data field k (from 0) is the fw bytes from column
-    9 + fw * k, cut at the line's end and at column 72 (73-80 hold the continuation
-    marker); a field past them is blank.  Rows f of val, status are the fields f0 + f."""
-    size = u8.shape[0]
-    n_rows = val.shape[0]
+    n_rows = status.shape[0]
     left = 0
     for i in range(lo, hi):
         s = starts[lines[i]]
         lim = min(ends[lines[i]], s + 72, size)
         for f in range(n_rows):
             p = s + 8 + fw * (f0 + f)
-            v, st = _uint(u8, p, min(p + fw, lim))
-            val[f, i] = v
-            status[f, i] = st
-            left += st == 2
-    return left
-
-
-@njit
-def fixed_reals(u8, starts, ends, lines, fw, f0, p10, val, status, lo, hi):
-    """Real fields of single-line fixed-format cards (see :func:`fixed_uints`,
-    :func:`reals`)."""
-    size = u8.shape[0]
-    n_rows = val.shape[0]
-    left = 0
-    for i in range(lo, hi):
-        s = starts[lines[i]]
-        lim = min(ends[lines[i]], s + 72, size)
-        for f in range(n_rows):
-            p = s + 8 + fw * (f0 + f)
-            v, st = _real(u8, p, min(p + fw, lim), p10)
-            val[f, i] = v
-            status[f, i] = st
-            left += st == 2
+            left += _convert(u8, p, min(p + fw, lim), real, p10, ival, fval, status, f, i)
     return left
 
 
