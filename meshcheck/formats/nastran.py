@@ -786,7 +786,9 @@ def _parse(C: "_Cards") -> RawMesh:
                 # every card of the chunk lists exactly npres nodes (the common case)
                 ctype, perm = spec.shapes[npres]
                 nodes = v[2:2 + npres] if _is_identity(perm) else v[2:2 + npres][perm]
-                per_type.setdefault(ctype, []).append((look(nodes.T), v[1], v[0], part))
+                # the rows copied, not viewed: the chunk's (F, n) values can go
+                per_type.setdefault(ctype, []).append((look(nodes.T), v[1].copy(),
+                                                       v[0].copy(), part))
                 continue
             present = ~b[2:]
             cnt = present.sum(axis=0)

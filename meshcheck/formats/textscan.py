@@ -268,7 +268,7 @@ def compiled_rows(text: ByteText, shape: tuple, kind: str, run, where, max_width
             raise FieldError(int(idx[exc.index]), exc.text, exc.kind, row=j) from None
         val[j, idx] = v
         status[j, idx] = np.where(b, kx.BLANK, kx.NUMBER)
-    return val, status == kx.BLANK
+    return val, status.view(bool)  # only 0 (NUMBER) and 1 (BLANK) are left
 
 
 def _ints_numpy(text, pos, width, pre=None):
