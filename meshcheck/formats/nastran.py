@@ -194,7 +194,8 @@ def _line_table(text: ByteText):
 
 
 class _Lines:
-    """Per-line arrays of the merged text (all (n_lines,) int64 unless noted).
+    """Per-line arrays of the merged text (all (n_lines,) int64 unless noted; a line's
+    length is ends - starts).
 
     One pass finds every byte that matters for the layout: line ends (and
     tab, CR, which call for normalising the text first), ``$`` and ``,``.
@@ -233,18 +234,17 @@ class _Lines:
         self.data = text.data
         self.cstart = (np.concatenate(([0], np.cumsum(ccount)[:-1])).astype(np.int64)
                        if com.size else ccount)
-        self.length = ends - starts
         self.free = ccount > 0 if com.size else np.broadcast_to(False, starts.shape)
 
 
-def _names(text: ByteText, L: _Lines):
+def _names(text: ByteText, L: _Lines, length: np.ndarray):
     """Per line: uint64 upper-case name padded with spaces, large-field flag, mixed-case
-    flag, first byte."""
+    flag, first byte; ``L.head`` the raw first bytes (length: ends - starts)."""
     if len(L.commas):
         first_comma = np.where(L.free, L.commas[np.minimum(L.cstart, len(L.commas) - 1)], L.ends)
     else:
         first_comma = L.ends
-    width = np.minimum(np.minimum(L.length, first_comma - L.starts), 8)
+    width = np.minimum(np.minimum(length, first_comma - L.starts), 8)
     if text.compiled:
         from ..kernels import text as kx
 
@@ -395,7 +395,8 @@ class _Cards:
         self.src = src
         self.text = text = ByteText(src.data)
         L = self.L = _Lines(text)
-        names, large, mixed, first_byte = _names(text, L)
+        length = L.ends - L.starts
+        names, large, mixed, first_byte = _names(text, L, length)
         self.needs_normalising = L.has_tab or L.has_cr
         first = first_byte
         initial = first & np.uint8(0xDF)             # first letters in upper case
@@ -409,10 +410,10 @@ class _Cards:
 
         self.has_include = bool(named("INCLUDE", 7).size)
         cont = _CONT[first]
-        blank = L.length == 0
+        blank = length == 0
         cand = np.flatnonzero(~blank & (first == 32))
         if cand.size:
-            ln = np.minimum(L.length[cand], 80)
+            ln = np.minimum(length[cand], 80)
             words = text.load_wide(L.starts[cand], ln, 10)
             blank[cand] = (words == np.uint64(0x2020202020202020)).all(axis=1)
         begin = named("BEGIN", 5)                   # (blank lines start with a space)
@@ -482,6 +483,12 @@ class _Cards:
         fl = first[per_card]
         self.has_lower = bool(((fl >= 97) & (fl <= 122)).any())
         self.bulk_lines = (lo, hi)
+        # the pre-scan's counts of the cards read below, from the raw first bytes, which
+        # are then let go (independent of the grouping above: reading.py compares them)
+        from .prescan import nastran_counts
+        read = [k for k in ("GRID", *ELEMENT_CARDS, *ALIASES) if _code(k) in self._distinct_set]
+        self.prescan = nastran_counts(L.head[lo:hi], read, self.has_lower)
+        L.head = None
 
     def _first(self, cards: np.ndarray) -> np.ndarray:
         """Index in ``li`` of the first line of each card."""
@@ -524,7 +531,7 @@ class _Cards:
                 for c0 in range(0, len(sub), step):
                     part = sub[c0:c0 + step]
                     ln = self.li[self._first(part)]
-                    longest = min(int(self.L.length[ln].max(initial=0)), 72)
+                    longest = min(int((self.L.ends[ln] - self.L.starts[ln]).max(initial=0)), 72)
                     yield part, _Fixed(self.L, ln, fw, 0,
                                        min(n_fields, nf, max(0, -(-(longest - 8) // fw))))
                 continue
@@ -865,10 +872,7 @@ def _parse(C: "_Cards") -> RawMesh:
     for nm, code in names.items():
         if nm not in known:
             ignored[nm] = len(C.select(nm))
-    from .prescan import nastran_counts
-    lo, hi = C.bulk_lines
-    expected = nastran_counts(C.L.head[lo:hi], [k for k, v in counts.items() if v],
-                              C.has_lower)
+    expected = {k: C.prescan[k] for k, v in counts.items() if v}
     checks = tuple((f"{k} cards", expected.get(k, 0), _read_count(C, names, k)) for k in expected)
     return RawMesh(points=np.ascontiguousarray(points, dtype=np.float64), blocks=tuple(blocks),
                    region_names=region_names, format=FORMAT, point_ids=gids,
