@@ -31,6 +31,23 @@ _TWO53 = 2 ** 53
 
 
 @njit(inline="always")
+def _digits(u8, k, e, cap):
+    """(value of the first ``cap`` digits, number of digits, position after them) of the
+    digit run at k (before e)."""
+    v = 0
+    nd = 0
+    while k < e:
+        d = np.int64(u8[k]) - 48
+        if d < 0 or d > 9:
+            break
+        if nd < cap:
+            v = v * 10 + d
+        nd += 1
+        k += 1
+    return v, nd, k
+
+
+@njit(inline="always")
 def _uint(u8, p, e):
     """(value, status) of the bytes p..e-1: spaces, 1 to 18 digits, spaces."""
     k = p
@@ -38,16 +55,7 @@ def _uint(u8, p, e):
         k += 1
     if k >= e:
         return 0, 1
-    v = 0
-    nd = 0
-    while k < e:
-        d = np.int64(u8[k]) - 48
-        if d < 0 or d > 9:
-            break
-        if nd < 18:
-            v = v * 10 + d
-        nd += 1
-        k += 1
+    v, nd, k = _digits(u8, k, e, 18)
     while k < e and u8[k] == 32:
         k += 1
     if k < e or nd == 0 or nd > 18:
@@ -102,15 +110,7 @@ def _real(u8, p, e, p10):
             eneg = c == 45
             k += 1
         if marked:
-            ned = 0
-            while k < e:
-                d = np.int64(u8[k]) - 48
-                if d < 0 or d > 9:
-                    break
-                if ned < 3:
-                    ex = ex * 10 + d
-                ned += 1
-                k += 1
+            ex, ned, k = _digits(u8, k, e, 3)
             if ned == 0 or ned > 3:
                 bad = True
             if eneg:
