@@ -159,3 +159,34 @@ def test_compiled_size_jumps_nan_zero_and_no_pairs(monkeypatch):
         monkeypatch.setenv("MESHCHECK_KERNELS", mode)
         r = size_jumps(one, build_topology(one))
         assert r.count == 0 and r.max_ratio == 1.0 and r.pairs.shape == (0, 2)
+
+
+def test_face_jumps_beyond_the_first_buffer():
+    """The compiled face loop keeps the first faces over the ratio in fixed buffers and
+    makes a second pass when there are more: against numpy on 20,000 random faces
+    (about 9,000 over the ratio), zero and NaN sizes and one-cell faces included."""
+    from meshcheck.kernels import geometry as kg
+
+    rng = np.random.default_rng(7)
+    size = rng.uniform(0.1, 1.0, 3000)
+    size[5], size[17] = 0.0, np.nan
+    fc = rng.integers(0, 3000, (20000, 2)).astype(np.int32)
+    fc[::97, 0] = 5
+    fc[::89, 1] = 17
+    count = np.where(rng.random(20000) < 0.9, 2, 1).astype(np.int8)
+    n_pairs, best, ids, rs = kg.face_jumps(fc, count, size, 1.5, 0, len(count))
+    a, b = size[fc[:, 0]], size[fc[:, 1]]
+    lo, hi = np.minimum(a, b), np.maximum(a, b)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(lo > 0, hi / np.where(lo > 0, lo, 1.0), np.inf)
+    r = np.where(np.isfinite(a) & np.isfinite(b), r, np.nan)
+    two = count == 2
+    over = np.flatnonzero(two & (r > 1.5))
+    assert len(over) > kg._JUMPS_FIRST  # the second pass ran
+    assert n_pairs == two.sum()
+    assert best == r[two & np.isfinite(r)].max()
+    np.testing.assert_array_equal(ids, over)
+    np.testing.assert_array_equal(rs, r[over])
+    few = kg.face_jumps(fc, count, size, 1.5, 0, 2000)  # one pass
+    assert len(few[2]) <= kg._JUMPS_FIRST
+    np.testing.assert_array_equal(few[2], over[over < 2000])

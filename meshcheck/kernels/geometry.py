@@ -81,14 +81,34 @@ def mean_edge_length(ce, length, out):
 
 
 @njit
+def _face_ratio(face_cells, size, f):
+    """Size ratio across face f: larger / smaller size, inf when the smaller is not > 0,
+    NaN when a size is not finite (as the numpy path)."""
+    a = size[face_cells[f, 0]]
+    b = size[face_cells[f, 1]]
+    if not (np.isfinite(a) and np.isfinite(b)):
+        return np.nan
+    lo = min(a, b)
+    hi = max(a, b)
+    return hi / lo if lo > 0 else np.inf
+
+
+#: faces over the ratio that :func:`face_jumps` keeps in one pass (more: a second pass)
+_JUMPS_FIRST = 4096
+
+
+@njit
 def face_jumps(face_cells, count, size, ratio, f0, f1):
     """Size ratios across the faces f0 <= f < f1 of count 2: (number of such faces,
     largest finite ratio or -inf when none, face ids (k,) and ratios (k,) of those over
     ``ratio``, in face order).  The ratio is larger / smaller size, inf when the smaller
-    is not > 0, NaN when a size is not finite (as the numpy path)."""
-    cap = 16
-    ids = np.empty(cap, np.int64)
-    rs = np.empty(cap)
+    is not > 0, NaN when a size is not finite (as the numpy path).
+
+    The first :data:`_JUMPS_FIRST` faces over the ratio go to fixed buffers; when there
+    are more, a second pass fills arrays of the exact size (no array is replaced inside
+    the loop: numba would count its references at every step)."""
+    ids = np.empty(_JUMPS_FIRST, np.int64)
+    rs = np.empty(_JUMPS_FIRST)
     k = 0
     n_pairs = 0
     best = -np.inf
@@ -96,26 +116,24 @@ def face_jumps(face_cells, count, size, ratio, f0, f1):
         if count[f] != 2:
             continue
         n_pairs += 1
-        a = size[face_cells[f, 0]]
-        b = size[face_cells[f, 1]]
-        if not (np.isfinite(a) and np.isfinite(b)):
-            continue
-        lo = min(a, b)
-        hi = max(a, b)
-        r = hi / lo if lo > 0 else np.inf
+        r = _face_ratio(face_cells, size, f)
         if np.isfinite(r) and r > best:
             best = r
         if r > ratio:
-            if k == cap:  # grow (element loops: compile fast)
-                cap *= 2
-                ids2 = np.empty(cap, np.int64)
-                rs2 = np.empty(cap)
-                for q in range(k):
-                    ids2[q] = ids[q]
-                    rs2[q] = rs[q]
-                ids = ids2
-                rs = rs2
-            ids[k] = f
-            rs[k] = r
+            if k < _JUMPS_FIRST:
+                ids[k] = f
+                rs[k] = r
             k += 1
-    return n_pairs, best, ids[:k].copy(), rs[:k].copy()
+    if k <= _JUMPS_FIRST:
+        return n_pairs, best, ids[:k].copy(), rs[:k].copy()
+    all_ids = np.empty(k, np.int64)
+    all_rs = np.empty(k)
+    j = 0
+    for f in range(f0, f1):
+        if count[f] == 2:
+            r = _face_ratio(face_cells, size, f)
+            if r > ratio:
+                all_ids[j] = f
+                all_rs[j] = r
+                j += 1
+    return n_pairs, best, all_ids, all_rs
