@@ -3,28 +3,28 @@
 meshio's writer compresses every array with zlib at its default level and
 base64-encodes it inline, which dominates the audit's run time on large meshes.
 This writer follows the VTK XML file format (VTK User's Guide, "VTK File
-Formats", XML formats) with the arrays in an ``AppendedData`` section in
-``base64`` encoding, each compressed at zlib level 1 by the ``vtkZLibDataCompressor``
-block layout (a header of UInt64 words: number of blocks, block size, size of
-the last block, compressed size of each block, then the compressed blocks).
-Arrays are compressed one at a time, block by block on all cores, straight from
-the caller's memory; memory stays at one array's compressed bytes.  At level 0
-(large meshes) nothing is compressed: the file has no compressor and each array is
-its UInt64 byte count and raw bytes as one base64 stream, encoded in pieces: by
-``binascii`` (the reference, which holds the GIL), or on the compiled path
-(:func:`meshcheck.kernels.use_compiled`) by :mod:`meshcheck.kernels.b64` on all cores
-into a few reused buffers, byte for byte the same file.  The base64 text goes to a
-writer thread as it is made, so the writes overlap the encoding.  Connectivity is
-written as Int32 when the node count allows.  (Raw appended data would save the
-base64 step, but meshio 5.3's reader of raw data renumbers the offsets as it goes
-and can then mistake one array for another.)
-Node orders are meshio's, which are VTK's.  The output is tested by re-reading
-it with meshio and with VTK's own reader.
+Formats", XML formats) with the arrays in an ``AppendedData`` section in ``raw``
+encoding (VTK's own default for appended data): each array is its UInt64 byte count
+and its bytes, or, compressed at zlib level 1, the ``vtkZLibDataCompressor`` block
+layout (a header of UInt64 words: number of blocks, block size, size of the last
+block, compressed size of each block, then the compressed blocks).  Arrays are
+compressed one at a time, block by block on all cores, straight from the caller's
+memory; at level 0 (large meshes) nothing is compressed and the bytes are written
+straight from the arrays.  The pieces go to a writer thread, so the file writes
+(which release the GIL) overlap the making of the next array.  Connectivity is
+written as Int32 when the node count allows.
+
+The arrays are appended in the reverse of their tags' order in the XML (the cells'
+arrays first, the point data last).  meshio 5.3's reader of raw data converts the
+arrays one after another in file order, renumbering each tag's offset as it goes and
+finding the next tag by its offset text: a renumbered earlier tag can carry the text
+of a later array's offset, and the first tag in document order with that text wins.
+In reverse order every array's tag comes before the renumbered ones, so it is always
+the one found.  Node orders are meshio's, which are VTK's.  The output is tested by
+re-reading it with meshio and with VTK's own reader.
 """
 from __future__ import annotations
 
-import base64
-import binascii
 import os
 import queue
 import threading
@@ -34,7 +34,6 @@ from pathlib import Path
 
 import numpy as np
 
-from .kernels import use_compiled
 
 __all__ = ["write_vtu", "Deferred", "Chunked", "VTK_CELL_TYPES"]
 
@@ -46,10 +45,9 @@ _VTK_TYPE = {np.dtype(np.int8): "Int8", np.dtype(np.uint8): "UInt8",
              np.dtype(np.int32): "Int32", np.dtype(np.int64): "Int64",
              np.dtype(np.float32): "Float32", np.dtype(np.float64): "Float64"}
 _BLOCK = 1 << 21  # bytes per compressed block (blocks are compressed in parallel)
-#: bytes per base64 piece of an uncompressed array (a multiple of 3); 1.5 MiB rather than
-#: 3 MiB: the reports stage of the 1M-tet audit peaked 10 MiB lower, no slower
+#: bytes per piece handed to the writer thread (1.5 MiB; with 3 MiB base64 pieces the
+#: reports stage of the 1M-tet audit peaked 10 MiB higher, no faster)
 _CHUNK = 3 << 19
-_BUFFERS = 4  # base64 buffers of the compiled level-0 path (4 x 2 MiB in flight at most)
 _OFFSETS_CHUNK = 1 << 20  # cells whose offsets are made at a time
 _SLOT = 32  # characters reserved in each DataArray tag for ``offset="..."`` and blank padding
 
@@ -155,67 +153,25 @@ def _slot_text(slot: int) -> str:
     return f"@slot{slot}@".ljust(_SLOT, "@")
 
 
-def _stored(arr: np.ndarray):
-    """Base64 pieces of one uncompressed array: a UInt64 byte count and the raw bytes as
-    one base64 stream (VTK's layout without a compressor), encoded in pieces of
-    :data:`_CHUNK` bytes (a multiple of 3, so the pieces join into that one stream)."""
-    raw = _raw(arr)
+def _stored(values):
+    """Raw pieces of one uncompressed array: its UInt64 byte count, then its bytes (a
+    :class:`Chunked` made :data:`_CHUNK` bytes at a time, an array as one view)."""
+    raw = _raw(values)
     n = len(raw)
-    head = np.array([n], dtype="<u8").tobytes()
-    yield binascii.b2a_base64(head + raw[:1].tobytes(), newline=False)  # 9 bytes: no padding
-    for i in range(1, n, _CHUNK):
-        yield binascii.b2a_base64(raw[i:i + _CHUNK], newline=False)
-
-
-class _Pieces:
-    """The compiled twin of :func:`_stored`: the same base64 stream, its pieces encoded by
-    :func:`meshcheck.kernels.b64.encode_into` (which releases the GIL) on the pool's
-    threads, into :data:`_BUFFERS` preallocated buffers of 4/3 :data:`_CHUNK` bytes that the
-    writer thread hands back once written (so memory stays at those buffers)."""
-
-    def __init__(self, pool):
-        from .kernels import b64  # loads numba: only on the compiled path
-        self.b64, self.pool = b64, pool
-        self.alive = lambda: True  # the writer thread's is_alive, once it runs
-        self.free: queue.Queue = queue.Queue()
-        for _ in range(_BUFFERS):
-            self.free.put(np.empty(b64.encoded_length(_CHUNK), np.uint8))
-
-    def _buffer(self) -> np.ndarray:
-        while self.alive():
-            try:
-                return self.free.get(timeout=0.1)
-            except queue.Empty:
-                continue
-        raise _WriterStopped
-
-    def stored(self, arr: np.ndarray):
-        """(characters, piece) of one uncompressed array, as :func:`_stored`: a piece is
-        bytes (the first 9 bytes, by binascii) or (future of the text, its buffer)."""
-        raw = _raw(arr)
-        n = len(raw)
-        head = np.array([n], dtype="<u8").tobytes()
-        first = binascii.b2a_base64(head + raw[:1].tobytes(), newline=False)
-        yield len(first), first
-        for i in range(1, n, _CHUNK):
-            src, buf = raw[i:i + _CHUNK], self._buffer()
-            yield (self.b64.encoded_length(len(src)),
-                   (self.pool.submit(self.b64.encode, src, buf), buf))
-
-    def release(self, buf: np.ndarray) -> None:
-        self.free.put(buf)
-
-
-class _WriterStopped(Exception):
-    """The writer thread stopped (its error is raised instead)."""
+    yield np.array([n], dtype="<u8").tobytes()
+    if isinstance(raw, Chunked):
+        for i in range(0, n, _CHUNK):
+            yield raw[i:i + _CHUNK]
+    elif n:
+        yield raw
 
 
 def _deflated(arr: np.ndarray, level: int, pool):
-    """Base64 pieces of one array in the vtkZLibDataCompressor layout (header, then the
-    compressed blocks as one stream)."""
+    """Raw pieces of one array in the vtkZLibDataCompressor layout: the header, then the
+    compressed blocks."""
     header, comp = _compressed(arr, level, pool)
-    yield base64.b64encode(header)
-    yield base64.b64encode(b"".join(comp))
+    yield header
+    yield from comp
 
 
 def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.ndarray]],
@@ -225,10 +181,10 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     """Write points (n, 3), cell blocks [(meshio type, (m, k) int)], and per-cell / per-point
     arrays (concatenated over the blocks, (n_cells,) or (n_cells, c)) as a .vtu file.
     ``level``: zlib level 1..9, or 0 for no compression (the file then has no compressor:
-    each array is its UInt64 byte count and raw bytes in one base64 stream).
+    each array is its UInt64 byte count and its bytes).
 
-    The base64 text is handed to a writer thread as it is made, so the file writes (which
-    release the GIL) overlap the encoding."""
+    The pieces are handed to a writer thread, so the file writes (which release the GIL)
+    overlap the making and compressing of the next ones."""
     path = Path(path)
     points = np.asarray(points, dtype=np.float64)
     n_pts = len(points)
@@ -303,27 +259,22 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
     add("connectivity", Chunked(connectivity, idx, n_conn), 1, n_conn)
     add("offsets", Deferred(offsets, off_t), 1, n_cells)
     add("types", Deferred(types, np.uint8), 1, n_cells)
-    xml.append('</Cells>\n</Piece>\n</UnstructuredGrid>\n<AppendedData encoding="base64">\n_')
+    xml.append('</Cells>\n</Piece>\n</UnstructuredGrid>\n<AppendedData encoding="raw">\n_')
     head = "".join(xml).encode("ascii")
     where = [head.index(_slot_text(k).encode()) for k in range(len(arrays))]
-    # appended data in the order: cell data, points and cells, point data (each array
-    # found by its offset): point data made late (e.g. a field still being computed)
-    # is written last
-    n_point = len(point_data or ())  # added first
-    order = list(range(n_point, len(arrays))) + list(range(n_point))
+    # appended data in the reverse of the tags' order (see the module's notes): the cells'
+    # arrays, the points, the cell data, then the point data, which is made late (e.g. a
+    # field still being computed); each array is found by its offset
+    order = list(range(len(arrays)))[::-1]
     head = bytearray(head)
     workers = max(1, min(os.cpu_count() or 1, 8))
-    pending: queue.Queue = queue.Queue(maxsize=8)  # at most 8 pieces (16 MiB) in flight
+    pending: queue.Queue = queue.Queue(maxsize=8)  # at most 8 pieces (12 MiB) in flight
     failed: list[BaseException] = []
 
     def drain(fh):
         try:
             while (piece := pending.get()) is not None:
-                if isinstance(piece, tuple):  # (future of a compiled piece, its buffer)
-                    fh.write(piece[0].result())
-                    pieces.release(piece[1])
-                else:
-                    fh.write(piece)
+                fh.write(piece)
         except BaseException as exc:  # reported by the producer
             failed.append(exc)
 
@@ -334,17 +285,12 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
                 return
             except queue.Full:
                 continue
-        if failed:
-            raise failed[0]
+        raise failed[0] if failed else OSError(f"the writer of {path} stopped")
 
-    compiled = level == 0 and use_compiled(n_cells)
     with open(path, "wb") as fh, ThreadPoolExecutor(max_workers=workers) as pool:
-        pieces = _Pieces(pool) if compiled else None  # level 0 on both cores
         fh.write(head)
         writer = threading.Thread(target=drain, args=(fh,), daemon=True)
         writer.start()
-        if pieces is not None:
-            pieces.alive = writer.is_alive
         try:
             at = 0
             for k in order:
@@ -353,22 +299,22 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
                 if isinstance(values, Deferred) and not (level == 0 and
                                                          isinstance(values, Chunked)):
                     values = values.array(rows, name)
-                if level > 0:
-                    stream = ((len(p), p) for p in _deflated(values, level, pool))
-                elif pieces is None:
-                    stream = ((len(p), p) for p in _stored(values))
-                else:
-                    stream = pieces.stored(values)
-                for size, piece in stream:
-                    send(piece, writer)
-                    at += size
+                stream = _deflated(values, level, pool) if level > 0 else _stored(values)
+                for piece in stream:
+                    # views of an array go in pieces, so that the queue holds little of it
+                    for i in range(0, max(len(piece), 1), _CHUNK):
+                        send(piece[i:i + _CHUNK], writer)
+                    at += len(piece)
                 # dropped before the next array is made: freed once its last pieces are
                 # written (not held beside the next one)
-                values = stream = None
-        except _WriterStopped:
-            pass  # its error is raised below
+                values = stream = piece = None
         finally:
-            send(None, writer)
+            while writer.is_alive():  # the end mark, unless the writer stopped
+                try:
+                    pending.put(None, timeout=0.1)
+                    break
+                except queue.Full:
+                    continue
             writer.join()
         if failed:
             raise failed[0]
