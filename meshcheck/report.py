@@ -497,10 +497,10 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
     def limits(p, lo, hi):  # Advice.limit_at(p, float32)[lo:hi]
         if a.limit_row is None:
             return a.limit_rows[lo:hi, p - 1]
-        if p not in column:
+        if p not in column:  # cast first (the same values): half the bytes gathered
             column.clear()
-            column[p] = np.ascontiguousarray(a.limit_rows[:, p - 1])
-        return column[p][a.limit_row[lo:hi]]
+            column[p] = np.ascontiguousarray(a.limit_rows[:, p - 1], dtype=f32)
+        return np.take(column[p], a.limit_row[lo:hi])  # 2x fancy indexing's speed
 
     for p in range(1, res.settings.advice.max_order + 1):
         data[f"limit_hz_p{p}"] = parts(lambda lo, hi, p=p: limits(p, lo, hi), f32)
