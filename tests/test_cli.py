@@ -314,3 +314,21 @@ def test_size_field_is_computed_once_when_threads_ask_together(monkeypatch):
     with ThreadPoolExecutor(4) as pool:
         got = list(pool.map(lambda _: sizefield.audit_size_field(res), range(4)))
     assert len(calls) == 1 and all(g is got[0] for g in got)
+
+
+@pytest.mark.parametrize("given", [None, "3"])
+def test_command_runs_blas_on_one_thread_unless_told(given):
+    # the command's process asks OpenBLAS for one thread before numpy loads it (set
+    # before any numpy import: `import meshcheck` loads none); a user's setting stands
+    import os
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    if given:
+        env["OPENBLAS_NUM_THREADS"] = given
+    code = ("import sys, os, meshcheck; assert 'numpy' not in sys.modules; "
+            "import meshcheck.cli; print(os.environ['OPENBLAS_NUM_THREADS'])")
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                         text=True, check=True)
+    assert out.stdout.strip() == (given or "1")
