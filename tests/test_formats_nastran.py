@@ -382,38 +382,6 @@ def test_round_trip_external_writers(tmp_path, writer):
     assert np.array_equal(m.blocks[0].cells, cells)
 
 
-@pytest.mark.skipif(not __import__("meshcheck.kernels").kernels.available(),
-                    reason="numba not installed")
-@pytest.mark.parametrize("seed", range(6))
-def test_compiled_line_table_equals_numpy(seed):
-    """The compiled line table and card names (kernels.text.lines, heads) give the numpy
-    ones' line starts, ends (cut at '$'), commas, first bytes, tab / CR flags, names,
-    large-field and mixed-case flags on texts of random lines: comments, free-field
-    commas (also after a '$'), blank and short lines, tabs, CR, lower and mixed case,
-    with and without a newline at the end."""
-    from meshcheck.formats.nastran import _Lines, _names
-    from meshcheck.formats.textscan import ByteText
-
-    rng = np.random.default_rng(seed)
-    pieces = ["GRID", "CTETRA", "1", "2.5", "  ", "        ", ",", "$ note, x", "*", "+",
-              "grid*", "\t", "\r", "ENDDATA", "", "12345678901", "$", "cTetra", "Grid*",
-              "\xe9", "z{"]
-    lines = ["".join(rng.choice(pieces, int(rng.integers(0, 7)))) for _ in range(400)]
-    text = "\n".join(lines) + ("\n" if seed % 2 else "")
-    if seed == 5:
-        text = "\n" * 50 + "a"          # lines shorter than the buffers' guess
-    data = text.encode()
-    got = {}
-    for compiled in (False, True):
-        t = ByteText(data, compiled=compiled)
-        L = _Lines(t)
-        names = _names(t, L, L.ends - L.starts)
-        got[compiled] = (L.starts, L.ends, L.commas, L.ccount, L.head, L.has_tab, L.has_cr,
-                         *names)
-    for a, b in zip(got[False], got[True]):
-        assert np.array_equal(a, b)
-
-
 def test_columns_73_to_80_hold_no_data(tmp_path):
     """Small and large field: columns 73-80 are the continuation field, not data (here
     digits, which would read as a fifth node)."""
