@@ -34,7 +34,6 @@ from pathlib import Path
 
 import numpy as np
 
-
 __all__ = ["write_vtu", "Deferred", "Chunked", "VTK_CELL_TYPES"]
 
 #: meshio cell type -> VTK cell type id (vtkCellType.h)
@@ -154,16 +153,11 @@ def _slot_text(slot: int) -> str:
 
 
 def _stored(values):
-    """Raw pieces of one uncompressed array: its UInt64 byte count, then its bytes (a
-    :class:`Chunked` made :data:`_CHUNK` bytes at a time, an array as one view)."""
+    """Raw pieces of one uncompressed array: its UInt64 byte count, then its bytes (an
+    array's uint8 view, or the :class:`Chunked` itself, whose slices make its pieces)."""
     raw = _raw(values)
-    n = len(raw)
-    yield np.array([n], dtype="<u8").tobytes()
-    if isinstance(raw, Chunked):
-        for i in range(0, n, _CHUNK):
-            yield raw[i:i + _CHUNK]
-    elif n:
-        yield raw
+    yield np.array([len(raw)], dtype="<u8").tobytes()
+    yield raw
 
 
 def _deflated(arr: np.ndarray, level: int, pool):
@@ -301,8 +295,9 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
                     values = values.array(rows, name)
                 stream = _deflated(values, level, pool) if level > 0 else _stored(values)
                 for piece in stream:
-                    # views of an array go in pieces, so that the queue holds little of it
-                    for i in range(0, max(len(piece), 1), _CHUNK):
+                    # sent :data:`_CHUNK` bytes at a time, so that the queue holds little of
+                    # an array (a Chunked makes each slice when it is taken)
+                    for i in range(0, len(piece), _CHUNK):
                         send(piece[i:i + _CHUNK], writer)
                     at += len(piece)
                 # dropped before the next array is made: freed once its last pieces are
