@@ -272,7 +272,8 @@ def exact_rows(ce, rows, dest, h, c, L, code, A, logA, base, step, scale, top, o
             out[dest[q], p] = m
 
 
-@njit
+@njit  # not inlined: edge_orders calls it on a branch, where an inlined copy left `out`
+#       reference-counted at every step of the loop (objdump of the built module)
 def _finish_row(out, i, fmax, P):
     """Running maximum of row i along the orders (np.maximum.accumulate, NaN
     propagating), in place; returns (cell order, refine) of the row (see
