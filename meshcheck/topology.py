@@ -22,7 +22,7 @@ import numpy as np
 
 from . import kernels
 from .mesh import Mesh
-from .threads import can_release, release_tail, reuse_or_empty, thread_map
+from .threads import can_release, reuse_or_empty, thread_map
 
 __all__ = ["Edges", "Faces", "Topology", "build_edges", "build_faces", "cell_volumes",
            "build_topology", "edge_lengths", "index_type"]
@@ -904,14 +904,14 @@ def _halves(starts: np.ndarray, parts: int) -> list[tuple[int, int]]:
     return [(int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
 
 
-def _refine(cptr, tmp, k, ptr, out, parts: int) -> None:
-    """:func:`meshcheck.kernels.topology.coarse_refine`, on ``parts`` threads."""
+def _refine(cptr, a, k, ptr, parts: int) -> None:
+    """:func:`meshcheck.kernels.topology.coarse_refine` (in place), on ``parts`` threads."""
     from .kernels import topology as kt
 
     if parts == 1:
-        kt.coarse_refine(cptr, tmp, k, ptr, out)
+        kt.coarse_refine(cptr, a, k, ptr)
         return
-    thread_map(lambda r: kt.coarse_refine_range(cptr, tmp, k, ptr, out, r[0], r[1]),
+    thread_map(lambda r: kt.coarse_refine_range(cptr, a, k, ptr, r[0], r[1]),
                _halves(cptr, parts))
     ptr[-1] = cptr[-1]
 
@@ -934,57 +934,27 @@ def _narrow(a: np.ndarray, dtype, parts: int, out: np.ndarray | None = None) -> 
     return out
 
 
-def _emit_edges(ptr, packed, shift, n, inverse, layout, parts, node_t):
+def _emit_edges(ptr, packed, shift, n, n_rows, layout, parts, node_t):
     """Count the distinct edges of the packed buckets and read them off
-    (:func:`meshcheck.kernels.topology.edge_emit_packed`), the buckets in ``parts``
-    ranges on threads: the same (nodes, starts), ``inverse`` and incidence."""
+    (:func:`meshcheck.kernels.topology.edge_emit_rows`), the buckets in ``parts`` ranges
+    on threads: (nodes (n_e, 2), the edge id of every row (n_rows,) of
+    :func:`index_type`)."""
     from .kernels import topology as kt
 
-    n_rows = len(inverse)
-    if parts == 1:
-        n_e = kt.count_distinct_packed(ptr, packed, shift, n)
-        nodes = np.empty((n_e, 2), node_t)
-        starts = np.empty(n_e, index_type(n_rows))
-        kt.edge_emit_packed(ptr, packed, shift, n, nodes, starts, inverse, *layout,
-                            _k2(n_rows, n_e))
-        return nodes, starts
     ranges = _halves(ptr, parts)
-    counts = thread_map(lambda r: kt.count_distinct_range(ptr, packed, shift, n, *r), ranges)
+    counts = thread_map(lambda r: kt.count_distinct_range(ptr, packed, shift, n, *r), ranges,
+                        parallel=parts > 1)
     n_e = int(sum(counts))
     e0 = np.cumsum([0] + counts[:-1])
     nodes = np.empty((n_e, 2), node_t)
-    starts = np.empty(n_e, index_type(n_rows))
-    k2 = _k2(n_rows, n_e)
-    n_blk = ((n_rows - 1) >> k2) + 2 if k2 else 1
-    if k2:  # every range's entries of each block of 2**k2 rows follow the previous ones'
-        def count(r):
-            c = np.zeros(n_blk, np.int64)
-            kt.row_block_counts(ptr, packed, shift, r[0], r[1], *layout, k2, c)
-            return c
-        cnt = thread_map(count, ranges)
-        run = np.arange(n_blk, dtype=np.int64) << k2
-        rfills = []
-        for c in cnt:
-            rfills.append(run.copy())
-            run += c
+    inverse = np.empty(n_rows, index_type(n_e))
+    if parts == 1:
+        kt.edge_emit_rows(ptr, packed, shift, n, nodes, inverse, *layout)
     else:
-        rfills = [np.zeros(1, np.int64)] * parts
-    thread_map(lambda i: kt.edge_emit_range(ptr, packed, shift, n, nodes, starts, inverse,
-                                            *layout, k2, ranges[i][0], ranges[i][1],
-                                            int(e0[i]), rfills[i]), range(parts))
-    if k2:
-        n_used = ((n_rows - 1) >> k2) + 1
-        cuts = [n_used * i // parts for i in range(parts + 1)]
-        thread_map(lambda r: kt.unscramble_range(inverse, k2, r[0], r[1]),
-                   list(zip(cuts[:-1], cuts[1:])))
-    return nodes, starts
-
-
-def _k2(n_rows: int, n_e: int) -> int:
-    """log2 of the row blocks through which the edge read-off writes ``inverse`` (0:
-    directly), when the edge ids leave the bits."""
-    k2 = _coarse_bits(n_rows)
-    return 0 if int(n_e).bit_length() + k2 > 63 else k2
+        thread_map(lambda i: kt.edge_emit_rows_range(ptr, packed, shift, n, nodes, inverse,
+                                                     *layout, *ranges[i], int(e0[i])),
+                   range(parts))
+    return nodes, inverse
 
 
 def _no_mids(mesh: Mesh, n_e: int, node_t) -> np.ndarray:
@@ -1031,17 +1001,15 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
     """:func:`build_edges` by a counting sort of the local edges on their smaller node.
 
     Scratch memory: (larger node, cell, local edge) of every local edge packed in one
-    int64 (which becomes the incidence; two arrays when the bits do not fit) and one
+    int64 (two arrays, int64 and of the node type, when the bits do not fit) and one
     int64 per node.  Large meshes fill the buckets in two levels (coarse buckets of
-    2**k nodes, then the nodes within each) and write the edge of every row block by
-    block, with the output ``inverse`` as the scratch of both: the same arrays with
-    the scattered writes kept within cache-sized ranges.
+    2**k nodes, then the nodes within each, in place), which keeps the scattered writes
+    within cache-sized ranges.  The edge ids of the rows (the cell edges) are written
+    straight into their array of :func:`index_type`.
 
-    The cell edges are narrowed into the pages of the incidence (dead by then, and already
-    written: no new pages for the kernel to clear), whose unused half is given back; the
-    int64 scratch of the edge ids is appended to ``spare`` (a list, when given) for the
-    faces' pass to reuse (:func:`meshcheck.threads.reuse_or_empty`).  Where pages cannot
-    be given back (not Linux) the cell edges get an array of their own, as before."""
+    The packed int64 scratch, dead once read off, is appended to ``spare`` (a list, when
+    given) for the faces' pass to reuse (:func:`meshcheck.threads.reuse_or_empty`: its
+    pages are written already, so the kernel clears no new ones)."""
     from .kernels import topology as kt
 
     if not mesh.blocks:
@@ -1055,14 +1023,13 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
     n_rows = sum(w * m for w, m in zip(widths, lengths))
     parts = _n_parts(n_rows)
     shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 4  # (cell, local edge < 16)
-    inverse = np.empty(n_rows, np.int64)
     k = _coarse_bits(n)
     if n < 2**31 and int(n - 1).bit_length() + shift <= _PACK_BITS:
-        # larger node, cell and local edge packed in one int64, then the incidence
+        # larger node, cell and local edge packed in one int64
         packed = np.empty(n_rows, np.int64)
         ptr = np.empty(n + 1, np.int64)
         if k and int(n - 1).bit_length() + shift + k <= _PACK_BITS:
-            # two-level fill, through ``inverse`` as scratch; cells split over threads
+            # two-level fill; cells split over threads
             pieces = _cell_parts(lengths, widths, parts)
             n_coarse = ((n - 1) >> k) + 2
             blocks, g0s = mesh.blocks, mesh.block_offsets
@@ -1076,12 +1043,12 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
             def fill(j):
                 for i, r0, r1 in pieces[j]:
                     kt.edge_coarse_fill(blocks[i].cells[r0:r1], *loc[i], int(g0s[i]) + r0,
-                                        k, cfill[j], inverse, shift)
+                                        k, cfill[j], packed, shift)
 
             cptr, cfill = _fill_starts(thread_map(count, pieces, parallel=parts > 1))
             thread_map(fill, range(parts), parallel=parts > 1)
             del cfill
-            _refine(cptr, inverse, k, ptr, packed, parts)
+            _refine(cptr, packed, k, ptr, parts)
         else:
             ptr[:] = 0
             for b, (la, lb) in zip(mesh.blocks, loc):
@@ -1091,9 +1058,11 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
             for b, (la, lb), g0 in zip(mesh.blocks, loc, mesh.block_offsets):
                 kt.edge_fill_packed(b.cells, la, lb, int(g0), fill, packed, shift)
             del fill
-        nodes, starts = _emit_edges(ptr, packed, shift, n, inverse,
-                                    (layout[0], layout[1], mesh.block_offsets), parts, node_t)
-        incidence = packed
+        nodes, inverse = _emit_edges(ptr, packed, shift, n, n_rows,
+                                     (layout[0], layout[1], mesh.block_offsets), parts, node_t)
+        del ptr
+        if spare is not None and can_release():  # else its whole length would stay held
+            spare.append(packed)
         del packed
     else:
         ptr = np.zeros(n + 1, np.int64)
@@ -1111,22 +1080,11 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
         n_e = kt.sort_buckets(ptr, bhi, incidence, n)
         nodes = np.empty((n_e, 2), node_t)
         starts = np.empty(n_e, index_type(n_rows))
+        inverse = np.empty(n_rows, np.int64)
         kt.edge_emit(ptr, bhi, incidence, nodes, starts, inverse, *layout)
-        del bhi
-    del ptr, starts  # the incidence is counted again from the cell edges if ever asked for
+        del bhi, ptr, starts, incidence  # counted again from the cell edges if ever asked for
+        inverse = _narrow(inverse, index_type(n_e), parts)
     n_e = len(nodes)
-    it = np.dtype(index_type(n_e))
-    if it.itemsize < inverse.itemsize and incidence.dtype == np.int64 and \
-            incidence.shape == (n_rows,) and incidence.flags.c_contiguous and can_release():
-        narrow = incidence.view(it)[:n_rows]
-        _narrow(inverse, it, parts, narrow)
-        release_tail(incidence, narrow.nbytes)
-        if spare is not None:
-            spare.append(inverse)
-        inverse = narrow
-    else:
-        inverse = _narrow(inverse, it, parts)
-    del incidence
     umid = _no_mids(mesh, n_e, node_t)
     cell_edges, pos = [], 0
     for b, w, m in zip(mesh.blocks, widths, lengths):
@@ -1152,8 +1110,6 @@ def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None,
     otherwise the other sorted nodes and the row of every local face (int32 below
     2**31) and one int64 per node.  ``spare``: int64 scratch arrays the triangles' pass
     may reuse (the list is emptied either way)."""
-    from .kernels import topology as kt
-
     tables = _face_tables(mesh, size)
     if not tables:
         return None
@@ -1176,10 +1132,11 @@ def _group_faces_compiled(mesh: Mesh, size: int, edges: Edges | None = None,
 def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int, spare: list | None = None):
     """(local, cells, count) of the unique triangles, bucketed by the edge of their two
     smallest nodes and sorted on packed integers (largest node << shift | cell << 3 |
-    local face).  Above 2**(_FANOUT_BITS + _MIN_COARSE_BITS) edges the buckets are filled in two
-    levels (:func:`meshcheck.kernels.topology.coarse_refine`), through one more int64
-    per local triangle (153 MB on 4.8M tetrahedra; taken from ``spare`` when it holds an
-    int64 array long enough, see :func:`_build_edges_compiled`) but a third of the
+    local face), one int64 per local triangle (153 MB on 4.8M tetrahedra), taken from
+    ``spare`` when it holds an int64 array long enough (the edge pass's, whose pages are
+    written already, see :func:`_build_edges_compiled`).  Above
+    2**(_FANOUT_BITS + _MIN_COARSE_BITS) edges the buckets are filled in two levels, the
+    second in place (:func:`meshcheck.kernels.topology.coarse_refine`): a third of the
     scattered writes' time.  ``spare`` is emptied."""
     from .kernels import topology as kt
 
@@ -1198,12 +1155,10 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int, spare: list | No
     k = _coarse_bits(n_e)
     two_level = bool(k) and int(mesh.n_points - 1).bit_length() + shift + k <= _PACK_BITS
     # the spare taken first, so that its unused tail is given back before new arrays
-    tmp = reuse_or_empty(spare if spare is not None else [], n_rows, np.int64) \
-        if two_level else None
+    packed = reuse_or_empty(spare if spare is not None else [], n_rows, np.int64)
     if spare is not None:
         spare.clear()
     ptr = np.zeros(n_e + 1, kt.index_dtype(n_rows + 1))
-    packed = np.empty(n_rows, np.int64)
     if two_level:
         # cells split over threads (consecutive ranges: the buckets stay stable)
         pieces = _cell_parts([len(mesh.blocks[bi]) for bi, _ in tables],
@@ -1223,13 +1178,12 @@ def _tri_by_edges(mesh: Mesh, tables, edges: Edges, shift: int, spare: list | No
         def fill(j):
             for i, r0, r1 in pieces[j]:
                 kt.tri_coarse_fill(*args(i, r0, r1), int(mesh.block_offsets[tables[i][0]]) + r0,
-                                   k, cfill[j], tmp, shift)
+                                   k, cfill[j], packed, shift)
 
         cptr, cfill = _fill_starts(thread_map(count, pieces, parallel=parts > 1))
         thread_map(fill, range(parts), parallel=parts > 1)
         del cfill
-        _refine(cptr, tmp, k, ptr, packed, parts)
-        del tmp
+        _refine(cptr, packed, k, ptr, parts)
     else:
         for (bi, t), opp in zip(tables, opps):
             kt.tri_count_edges(mesh.blocks[bi].cells, t, opp, edges.cell_edges[bi], ptr)

@@ -366,19 +366,19 @@ def test_unpacked_buckets_equal_numpy(name, monkeypatch):
 @pytest.mark.parametrize("name", ["tetra", "tetra10", "random-0", "mixed", "defects-1", "hub",
                                   "pyramid", "quad9"])
 def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
-    # large meshes drop rows into coarse buckets first (edges, triangles) and write the
-    # edge numbers of the rows block by block: force those branches on small meshes,
-    # with 2 and 8 coarse buckets, and check they ran
+    # large meshes drop rows into coarse buckets first (edges, triangles), then sort
+    # every coarse bucket into its fine ones in place: force those branches on small
+    # meshes, with 2 and 8 coarse buckets, and check they ran
     from meshcheck.kernels import topology as kt
 
     monkeypatch.setattr(T, "_FANOUT_BITS", fanout)
     monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
-    calls = {"coarse_refine": [], "edge_emit_packed": []}
+    calls = {"coarse_refine": [], "edge_emit_rows": []}
     for fn in calls:
         real = getattr(kt, fn)
 
         def spy(*a, _real=real, _fn=fn):
-            calls[_fn].append(a[-1])
+            calls[_fn].append(a)
             return _real(*a)
         monkeypatch.setattr(kt, fn, spy)
     mesh = MESHES[name]()
@@ -386,7 +386,7 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
     _same_topology(ref, got)
     has_tri = any(len(f) == 3 for b in mesh.blocks if b.info.dim == 3 for f in b.info.faces)
     assert len(calls["coarse_refine"]) == 1 + has_tri
-    assert len(calls["edge_emit_packed"]) == 1 and calls["edge_emit_packed"][0] > 0  # k2
+    assert len(calls["edge_emit_rows"]) == 1
 
 
 def _reuse_calls(monkeypatch):
@@ -407,32 +407,32 @@ def _reuse_calls(monkeypatch):
 
 
 def test_faces_reuse_the_edge_passs_scratch(monkeypatch):
-    # the triangles' two-level pass takes the edge pass's int64 scratch (pages already
-    # written, so the kernel clears no new ones) instead of a new array: check it did, and
-    # that the topology is still numpy's
+    # the triangles' pass takes the edge pass's int64 scratch (pages already written, so
+    # the kernel clears no new ones) instead of a new array: check it did, and that the
+    # topology is still numpy's
     calls = _reuse_calls(monkeypatch)
     ref, got = _both(T.build_topology, MESHES["tetra"](), monkeypatch)
     _same_topology(ref, got)
     assert len(calls) == 1
     offered, out, left = calls[0]
-    assert len(offered) == 1 and np.shares_memory(out, offered[0]) and not left
-    # the cell edges live in the head of the incidence's (int64) pages
+    assert len(offered) == 1 and offered[0].dtype == np.int64
+    assert np.shares_memory(out, offered[0]) and not left
+    # the cell edges were written straight into an array of their own, of the index type
     ce = got.edges.cell_edges[0]
-    assert ce.base is not None and ce.base.dtype == np.int64
+    assert ce.dtype == np.int32 and not np.shares_memory(ce, offered[0])
 
 
 def test_without_giving_pages_back_the_scratch_is_not_reused(monkeypatch):
     # where madvise is missing (not Linux) a reused scratch array would keep its unused
-    # tail resident: the cell edges get an array of their own and the faces a new one
+    # tail resident: the edge pass offers none and the faces get a new one
     import meshcheck.threads as th
 
     monkeypatch.setattr(th, "_madvise", lambda: None)
+    monkeypatch.setattr(T, "can_release", lambda: False)
     calls = _reuse_calls(monkeypatch)
     ref, got = _both(T.build_topology, MESHES["tetra"](), monkeypatch)
     _same_topology(ref, got)
     assert len(calls) == 1 and calls[0][0] == []
-    ce = got.edges.cell_edges[0]
-    assert ce.base is None or ce.base.dtype != np.int64
 
 
 @pytest.mark.parametrize("two_level", [False, True])
@@ -447,7 +447,7 @@ def test_bucket_passes_split_over_threads_equal_numpy(name, two_level, monkeypat
     if two_level:
         monkeypatch.setattr(T, "_FANOUT_BITS", 2)
         monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
-    calls = {"edge_emit_range": 0, "coarse_refine_range": 0, "unscramble_range": 0}
+    calls = {"edge_emit_rows_range": 0, "coarse_refine_range": 0}
     for fn in calls:
         real = getattr(kt, fn)
 
@@ -458,9 +458,8 @@ def test_bucket_passes_split_over_threads_equal_numpy(name, two_level, monkeypat
     mesh = MESHES[name]()
     ref, got = _both(T.build_topology, mesh, monkeypatch)
     _same_topology(ref, got)
-    assert calls["edge_emit_range"] == 2
+    assert calls["edge_emit_rows_range"] == 2
     assert calls["coarse_refine_range"] >= (2 if two_level else 0)
-    assert calls["unscramble_range"] == (2 if two_level else 0)
 
 
 def test_cell_parts_cover_the_rows_once():
@@ -472,23 +471,26 @@ def test_cell_parts_cover_the_rows_once():
             assert seen == [(i, c) for i, m in enumerate(lengths) for c in range(m)]
 
 
-def test_coarse_bits_and_unscramble():
+def test_coarse_bits_and_in_place_refine():
+    # coarse_refine sorts every coarse bucket into its fine buckets in place: the result
+    # is numpy's stable argsort of the fine bucket, values in row order within each
     from meshcheck.kernels import topology as kt
 
     assert T._coarse_bits(10) == 0 and T._coarse_bits(810_000) == 10
     assert T._coarse_bits(28_600_000) == 15
     rng = np.random.default_rng(3)
-    for n, k2 in ((1000, 4), (1024, 5), (7, 3)):
+    for n_b, k, n in ((64, 3, 1000), (37, 2, 500), (8, 3, 7), (5, 4, 0), (1024, 4, 5000)):
+        fine = np.sort(rng.integers(0, n_b, n))  # the coarse buckets are filled in order
+        fine = np.concatenate([rng.permutation(fine[(fine >> k) == c]) for c in
+                               range(((n_b - 1) >> k) + 1)]) if n else fine
         val = rng.integers(0, 1 << 40, n)
-        rows = rng.permutation(n)
-        # entries appended per block of 2**k2 rows, in the order of ``rows``
-        buf = np.empty(n, np.int64)
-        fill = np.arange(0, n + (1 << k2), 1 << k2)
-        for r in rows:
-            buf[fill[r >> k2]] = (val[r] << k2) | (r & ((1 << k2) - 1))
-            fill[r >> k2] += 1
-        kt.unscramble(buf, k2)
-        np.testing.assert_array_equal(buf, val)
+        a = (val << k) | (fine & ((1 << k) - 1))
+        cptr = np.searchsorted(fine >> k, np.arange(((n_b - 1) >> k) + 2)).astype(np.int64)
+        ptr = np.full(n_b + 1, -1, np.int64)
+        kt.coarse_refine(cptr, a, k, ptr)
+        order = np.argsort(fine, kind="stable")
+        np.testing.assert_array_equal(a, val[order])
+        np.testing.assert_array_equal(ptr, np.searchsorted(fine[order], np.arange(n_b + 1)))
 
 
 def test_small_meshes_do_not_load_numba():

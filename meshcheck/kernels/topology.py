@@ -526,138 +526,64 @@ def count_distinct_range(ptr, packed, shift, n_values, b0, b1):
 
 
 @njit
-def edge_emit_packed(ptr, packed, shift, n_values, nodes, starts, inverse,
-                     bounds, widths, offsets, k2):
-    """:func:`edge_emit` from the unsorted packed buckets of :func:`edge_fill_packed`,
-    each grouped by larger node in three passes (distinct values, counts, stable
-    scatter) through a slot per node; ``packed`` is overwritten with the incidence.
-    offsets (n_blocks + 1,): first global cell id of every block, then the cell count.
-
-    k2 > 0: ``inverse`` is written in two steps (:func:`unscramble`): (edge << k2 | row
-    mod 2**k2) appended to the block of 2**k2 rows holding the row, then every block
-    put in place, so the scattered writes stay within few streams and one small block
-    (edge ids below 2**(63 - k2))."""
-    n_rows = inverse.shape[0]
-    rfill = np.empty(((n_rows - 1) >> k2) + 2 if k2 > 0 else 1, np.int64)
-    for c in range(rfill.shape[0]):
-        rfill[c] = c << k2
-    edge_emit_range(ptr, packed, shift, n_values, nodes, starts, inverse, bounds, widths,
-                    offsets, k2, 0, ptr.shape[0] - 1, 0, rfill)
-    if k2 > 0:
-        unscramble(inverse, k2)
+def edge_emit_rows(ptr, packed, shift, n_values, nodes, inverse, bounds, widths, offsets):
+    """Read the unsorted packed buckets of :func:`edge_fill_packed` off: the distinct
+    larger nodes of every bucket sorted give the edges (nodes (n_e, 2), numbered in
+    bucket order), and every row's edge id goes to ``inverse`` (n_rows,) (of any integer
+    type holding the ids).  offsets (n_blocks + 1,): first global cell id of every
+    block, then the cell count.  ``packed`` is only read."""
+    edge_emit_rows_range(ptr, packed, shift, n_values, nodes, inverse, bounds, widths,
+                         offsets, 0, ptr.shape[0] - 1, 0)
 
 
 @njit
-def row_block_counts(ptr, packed, shift, b0, b1, bounds, widths, offsets, k2, cnt):
-    """cnt[row >> k2] += 1 for every row in the packed buckets b0 <= b < b1 (of
-    :func:`edge_fill_packed`): how many entries each block of 2**k2 rows receives from
-    these buckets in :func:`edge_emit_range`."""
+def edge_emit_rows_range(ptr, packed, shift, n_values, nodes, inverse, bounds, widths,
+                         offsets, b0, b1, e0):
+    """:func:`edge_emit_rows` of the buckets b0 <= b < b1, their first edge e0; returns
+    the edge after their last.  Disjoint ranges can be read off at the same time."""
     mask = (np.int64(1) << shift) - 1
-    for i in range(ptr[b0], ptr[b1]):
-        v = packed[i]
-        g = (v & mask) >> 4
-        blk = 0
-        while g >= offsets[blk + 1]:
-            blk += 1
-        r = bounds[blk] + (g - offsets[blk]) * widths[blk] + (v & 15)
-        cnt[r >> k2] += 1
-
-
-@njit
-def edge_emit_range(ptr, packed, shift, n_values, nodes, starts, inverse,
-                    bounds, widths, offsets, k2, b0, b1, e0, rfill):
-    """:func:`edge_emit_packed` over the buckets b0 <= b < b1, their first edge e0;
-    rfill (n_rows >> k2 + 2,) the next free entry of every block of 2**k2 rows for
-    these buckets (k2 > 0; the caller unscrambles).  Buckets of disjoint ranges with
-    disjoint rfill ranges can be emitted at the same time."""
-    mask = (np.int64(1) << shift) - 1
-    rmask = (np.int64(1) << k2) - 1
     longest = 0
     for b in range(b0, b1):
         longest = max(longest, ptr[b + 1] - ptr[b])
-    slot = np.full(n_values, -1, np.int32)
+    slot = np.full(n_values, -1, np.int64)
     vals = np.empty(longest, np.int64)
-    pos = np.empty(longest + 1, np.int64)
-    tmp = np.empty(longest, np.int64)
     for lo in range(b0, b1):
         s = ptr[lo]
         k = ptr[lo + 1] - s
         if k == 0:
             continue
         d = 0
-        for i in range(k):
-            v = packed[s + i]
-            tmp[i] = v
-            h = v >> shift
+        for i in range(s, s + k):
+            h = packed[i] >> shift
             if slot[h] < 0:
                 slot[h] = 0
                 vals[d] = h
                 d += 1
         _sort_head(vals, d)
         for j in range(d):
-            slot[vals[j]] = j
-            pos[j + 1] = 0
-        for i in range(k):
-            pos[slot[tmp[i] >> shift] + 1] += 1
-        pos[0] = s
-        for j in range(d):
-            pos[j + 1] += pos[j]
+            slot[vals[j]] = e0 + j
             nodes[e0 + j, 0] = lo
             nodes[e0 + j, 1] = vals[j]
-            starts[e0 + j] = pos[j]
-        for i in range(k):
-            v = tmp[i]
-            j = slot[v >> shift]
+        for i in range(s, s + k):
+            v = packed[i]
             g = (v & mask) >> 4
             blk = 0
             while g >= offsets[blk + 1]:
                 blk += 1
-            p = pos[j]
-            pos[j] = p + 1
-            packed[p] = g
-            r = bounds[blk] + (g - offsets[blk]) * widths[blk] + (v & 15)
-            if k2 == 0:
-                inverse[r] = e0 + j
-            else:  # into the block of 2**k2 rows holding r, unscrambled below
-                q = rfill[r >> k2]
-                rfill[r >> k2] = q + 1
-                inverse[q] = ((e0 + j) << k2) | (r & rmask)
+            inverse[bounds[blk] + (g - offsets[blk]) * widths[blk] + (v & 15)] = slot[v >> shift]
         for j in range(d):
             slot[vals[j]] = -1
         e0 += d
     return e0
 
 
-@njit
-def unscramble(inverse, k2):
-    """Put every block of 2**k2 entries of ``inverse`` (n,) int64 in place: an entry
-    (value << k2) | (index mod 2**k2) of block c goes to c * 2**k2 + index mod 2**k2
-    as value (the block holds exactly the indices c * 2**k2 .. (c + 1) * 2**k2 - 1)."""
-    unscramble_range(inverse, k2, 0, ((inverse.shape[0] - 1) >> k2) + 1)
-
-
-@njit
-def unscramble_range(inverse, k2, c0, c1):
-    """:func:`unscramble` of the blocks c0 <= c < c1 only."""
-    width = np.int64(1) << k2
-    mask = width - 1
-    n = inverse.shape[0]
-    tmp = np.empty(width, np.int64)
-    for base in range(c0 << k2, min(c1 << k2, n), width):
-        m = min(width, n - base)
-        for i in range(m):
-            tmp[i] = inverse[base + i]
-        for i in range(m):
-            x = tmp[i]
-            inverse[base + (x & mask)] = x >> k2
-
-
 # ---------------------------------------------------------------------------
 # two-level bucket fill (most-significant-digit radix): the rows are first dropped in
 # coarse buckets of 2**k fine buckets (few write streams: they stay in cache), each
 # carrying its fine bucket mod 2**k in its low bits, then every coarse bucket is
-# counted and scattered into its fine buckets within a small range of memory.  Same
-# result as the one-level fill (stable: rows ascending in every bucket).
+# counted and scattered from a copy of itself into its fine buckets, in place (a small
+# range of memory, and no second array of the whole length).  Same result as the
+# one-level fill (stable: rows ascending in every bucket).
 
 
 @njit
@@ -688,22 +614,28 @@ def edge_coarse_fill(cells, la, lb, g0, k, cfill, tmp, shift):
 
 
 @njit
-def coarse_refine(cptr, tmp, k, ptr, out):
-    """Scatter every coarse bucket cptr[c]:cptr[c + 1] of ``tmp`` (entries (value << k) |
-    fine bucket mod 2**k) into its fine buckets c * 2**k + i of ``out`` (values, rows
-    in order), filling the fine bucket starts ptr (n_buckets + 1,) on the way."""
-    coarse_refine_range(cptr, tmp, k, ptr, out, 0, cptr.shape[0] - 1)
+def coarse_refine(cptr, a, k, ptr):
+    """Sort every coarse bucket cptr[c]:cptr[c + 1] of ``a`` (entries (value << k) | fine
+    bucket mod 2**k) into its fine buckets c * 2**k + i in place, entries becoming their
+    values (rows in order: stable), filling the fine bucket starts ptr (n_buckets + 1,)
+    on the way.  Each coarse bucket goes through a copy of itself (as long as the
+    longest): no second array of the whole length."""
+    coarse_refine_range(cptr, a, k, ptr, 0, cptr.shape[0] - 1)
     ptr[ptr.shape[0] - 1] = cptr[cptr.shape[0] - 1]
 
 
 @njit
-def coarse_refine_range(cptr, tmp, k, ptr, out, c0, c1):
+def coarse_refine_range(cptr, a, k, ptr, c0, c1):
     """:func:`coarse_refine` of the coarse buckets c0 <= c < c1 only (without the last
     entry of ptr); disjoint ranges can be refined at the same time."""
     nb = ptr.shape[0] - 1
     width = np.int64(1) << k
     low = width - 1
     cnt = np.empty(width + 1, np.int64)
+    longest = 0
+    for c in range(c0, c1):
+        longest = max(longest, cptr[c + 1] - cptr[c])
+    buf = np.empty(longest, np.int64)
     for c in range(c0, c1):
         s = cptr[c]
         e = cptr[c + 1]
@@ -714,17 +646,19 @@ def coarse_refine_range(cptr, tmp, k, ptr, out, c0, c1):
         for j in range(nf + 1):
             cnt[j] = 0
         for i in range(s, e):
-            cnt[(tmp[i] & low) + 1] += 1
+            x = a[i]
+            buf[i - s] = x
+            cnt[(x & low) + 1] += 1
         cnt[0] = s
         for j in range(nf):
             cnt[j + 1] += cnt[j]
             ptr[base + j] = cnt[j]
-        for i in range(s, e):
-            x = tmp[i]
+        for i in range(e - s):
+            x = buf[i]
             f = x & low
             p = cnt[f]
             cnt[f] = p + 1
-            out[p] = x >> k
+            a[p] = x >> k
 
 
 @njit
