@@ -115,7 +115,8 @@ class AuditResult:
     ready : no blocking finding and every cell carries the upper frequency at the
         allowed order.
     timings : stage -> seconds; "analysis": wall time of all stages (the validity and
-        quality stages of large meshes overlap the topology stage).
+        quality stages of large meshes overlap the topology stage, and the size jumps
+        and curvature check of the geometry stage overlap the advice stage).
     media : per-region media, flow and roles (:mod:`meshcheck.job`).
     gradation, curvature, quadratic, layers, directional : results of the geometry
         checks (:mod:`meshcheck.gradation`, :mod:`meshcheck.curvature`,
@@ -210,45 +211,53 @@ def audit(mesh: Mesh, settings: AuditSettings,
         speeds = media.cell_speed  # one array of the same speeds, not two
     adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
                  cell_mach=media.cell_mach if media.has_flow else None, edge_limits=False)
-    # the sweep and the two cluster searches are independent once the advice is known
-    sw, ref, coa = thread_map(lambda job: job(), [
+    # the sweep and the two cluster searches are independent once the advice is known,
+    # and the size jumps and the boundary-curvature check need only the topology: all
+    # five on two threads (large meshes), the longest first, so that neither core waits
+    chk = media.checks
+    spent: dict[str, float] = {}
+
+    def timed(name, fn, *args):
+        t1 = time.perf_counter()
+        out = fn(*args)
+        spent[name] = time.perf_counter() - t1
+        return out
+
+    sw, curv, ref, coa, grad = thread_map(lambda job: job(), [
         lambda: sweep(mesh, topo, adv, np.asarray(settings.frequencies)),
+        lambda: timed("curvature", check_curvature, mesh, topo, media.cell_speed,
+                      settings.fmax, settings.advice.target, chk.feature_angle,
+                      chk.max_listed),
         lambda: clusters(mesh, topo, adv, adv.refine),
-        lambda: clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)],
+        lambda: clusters(mesh, topo, adv, adv.coarsen & ~adv.refine),
+        lambda: timed("size_jumps", size_jumps, mesh, topo, chk.gradation_ratio,
+                      chk.max_listed)],
         parallel=mesh.n_cells > OVERLAP_CELLS)
     done("advice")
     stage("geometry")
-    extra = _geometry_checks(mesh, topo, media, adv, settings)
+    extra = _geometry_checks(mesh, topo, media, adv, settings, grad, curv)
     findings = findings + extra.pop("findings")
     done("geometry")
+    t["geometry"] += sum(spent.values())  # (large meshes: beside the advice's last jobs)
     t["analysis"] = time.perf_counter() - t0  # wall time; stages may overlap
     return AuditResult(mesh, settings, topo, sj, findings, q, flags, adv, sw, ref, coa, t,
                        media=media, quality_summary=summary, **extra)
 
 
 def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
-                     settings: AuditSettings) -> dict:
-    """Gradation, curved boundaries, quadratic cells, absorbing layers, directional
-    orders, and the findings they raise (warnings and notes, never blocking)."""
+                     settings: AuditSettings, grad: SizeJumps, curv: CurvedBoundary | None
+                     ) -> dict:
+    """Quadratic cells, absorbing layers, directional orders, and the findings they and
+    the size jumps ``grad`` and curved boundaries ``curv`` (computed beside the advice)
+    raise (warnings and notes, never blocking)."""
     from .validity import NOTE, WARNING
 
     chk = media.checks
     n = chk.max_listed
     out: list[Finding] = []
-    # the boundary-curvature check on a second core beside the size jumps and the
-    # directional orders (large meshes)
     tensor = any(b.info.linear in ("hexahedron", "wedge", "quad") for b in mesh.blocks)
-    with ThreadPoolExecutor(max_workers=1) as pool:
-        def curvature():
-            return check_curvature(mesh, topo, media.cell_speed, settings.fmax,
-                                   settings.advice.target, chk.feature_angle, n)
-
-        side = (pool.submit(curvature) if mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
-                else None)
-        grad = size_jumps(mesh, topo, chk.gradation_ratio, n)
-        dirs = (directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
-                if tensor else None)  # tets and triangles have no parametric directions
-        curv = side.result() if side is not None else curvature()
+    dirs = (directional_orders(mesh, topo, adv.edge_order, settings.advice.max_order)
+            if tensor else None)  # tets and triangles have no parametric directions
     if grad.count:
         out.append(Finding("size_jumps", WARNING, f"neighbouring cells whose sizes differ by more "
                            f"than x{grad.ratio:g} (largest x{grad.max_ratio:.3g})", grad.count,

@@ -20,7 +20,7 @@ def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch):
         assert np.array_equal(par.quality[name], ser.quality[name], equal_nan=True), name
     assert [f.code for f in par.findings] == [f.code for f in ser.findings]
     assert np.array_equal(par.advice.cell_limit, ser.advice.cell_limit)
-    # the curvature check (beside the size jumps) and the size jumps themselves
+    # the curvature check and the size jumps (beside the sweep and the cluster searches)
     for field in ("face_ids", "kappa", "rho", "chord_height", "misfit", "listed_cells"):
         assert np.array_equal(getattr(par.curvature, field), getattr(ser.curvature, field),
                               equal_nan=True), field
@@ -86,9 +86,10 @@ def test_node_numbers_past_the_int32_key_range_give_the_same_audit(kind, path, m
     assert ca == cb
 
 
-def test_directional_orders_beside_the_curvature_equal_the_serial_audit(monkeypatch):
-    # hexahedra: the directional orders run on the main thread while the curvature check
-    # runs on the second one; the same results as one after the other
+def test_hexahedra_geometry_checks_beside_the_advice_equal_the_serial_audit(monkeypatch):
+    # hexahedra: the curvature check and the size jumps run beside the sweep and the
+    # cluster searches, the directional orders after them; the same results as one
+    # after the other
     mesh = hex_box((8, 6, 5), size=(2.0, 1.5, 1.0))
     settings = AuditSettings((300.0, 900.0))
     monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
