@@ -33,12 +33,10 @@ def node_min_block(out, cells, n_corners, values):
     for i in range(cells.shape[0]):
         for k in range(n_corners):
             j = cells[i, k]
-            for r in range(nr):
+            for r in range(nr):  # branch-free (a select): the outcomes are unpredictable
                 x = values[r, i]
-                if x != x:
-                    out[r, j] = x
-                elif x < out[r, j]:
-                    out[r, j] = x
+                o = out[r, j]
+                out[r, j] = x if (x < o or x != x) else o
 
 
 @njit
