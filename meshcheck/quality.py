@@ -836,8 +836,9 @@ def _chunk_metrics(mesh: Mesh, chunk: int):
     rows (len(METRICS), hi - lo) float64 their metrics by the compiled kernels (NaN where
     undefined), valid until the next chunk.
 
-    One buffer serves every chunk: a new 4 MiB array per chunk is mapped afresh by
-    glibc (threads.MMAP_THRESHOLD) and faulted in page by page, 73 times at 4.77M tets."""
+    One buffer serves every chunk (a new 4 MiB array per chunk was mapped afresh by
+    glibc and faulted in page by page, 73 times at 4.77M tets, while the mmap threshold,
+    threads.MMAP_THRESHOLD, was 4 MiB)."""
     buf = np.empty(len(METRICS) * min(chunk, max(mesh.n_cells, 1)))
     for blk, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
         fam = family_of(blk.type)

@@ -49,7 +49,7 @@ _M_ARENA_MAX = -8
 _M_MMAP_THRESHOLD = -3
 #: blocks from this size (bytes) up are mapped on their own and returned when freed
 #: (smaller blocks reuse the heap's pages without new page faults)
-MMAP_THRESHOLD = 4 * 2**20
+MMAP_THRESHOLD = 64 * 2**20
 
 
 @functools.lru_cache(maxsize=None)
@@ -95,19 +95,24 @@ def share_malloc_arena() -> bool:
 
 def fix_mmap_threshold() -> bool:
     """Keep glibc's mmap threshold at :data:`MMAP_THRESHOLD` (``mallopt(M_MMAP_THRESHOLD)``,
-    the same as MALLOC_MMAP_THRESHOLD_): every block from 4 MiB up is mapped on its own
-    and given back to the system when freed.  True when set, False where the C library is
-    not glibc.  For a process's owner (the CLI calls it first), not for a library.
+    the same as MALLOC_MMAP_THRESHOLD_): every block from 64 MiB up is mapped on its own
+    and given back to the system when freed; smaller ones come from the heap, whose freed
+    pages the next blocks reuse without the kernel clearing new ones.  True when set,
+    False where the C library is not glibc.  For a process's owner (the CLI calls it
+    first), not for a library.
 
-    By default glibc raises the threshold to the size of each mapped block freed (up to
-    32 MiB), so that after the first large temporaries most per-cell arrays of a
-    5M-cell mesh (float32 18 MiB, int8 5 MiB) come from the heap, where freed memory stays
-    resident while any block above it lives.  Measured peak RSS of the json+vtu audit of
-    4.77M tetrahedra with the one arena of :func:`share_malloc_arena`: per-stage sampling,
-    two runs each, 1,196-1,198 -> 1,155 MiB (advice stage 1,196 -> 1,142, validity
-    862 -> 832); ``benchmarks/bench_ab.py``, highest of three runs, 1,207 -> 1,192 MiB,
-    analysis best 5.09 -> 4.79 s.  A 128 KiB threshold (glibc's initial one) gave the
-    same peaks but 5-8 % longer audits (every chunk's scratch mapped and faulted anew).
+    glibc's own rule (raise the threshold to the size of each mapped block freed, up to
+    32 MiB) depends on the order of the frees.  A fixed threshold trades speed against
+    the heap's holes: 4.77M tetrahedra (json+vtu audit, 5 alternating runs each, 2026-12-04)
+    4 MiB: wall 4.14-4.68 s (median 4.35), system CPU 1.05-1.96 s, peak 928-932 MiB;
+    64 MiB (the per-cell float64 arrays of that mesh, 36 MiB, and the chunk buffers from
+    the heap): 3.93-4.21 s (median 4.05), 0.76-1.00 s, 940-963 MiB; 32 MiB between the
+    two.  966k tetrahedra: the same time and peak (251 MiB) with either; 1M hexahedra
+    (3 runs) 2.02-2.04 -> 1.75-1.92 s, peak 386-395 -> 447-449 MiB; 966k tetra10 (2 runs)
+    2.09-2.29 -> 1.94-2.00 s, 403-404 -> 408-415 MiB.  On this
+    virtual machine the kernel's clearing of new pages was a fifth of the 4.77M audit's
+    CPU samples (``perf``).  The eighth session measured glibc's dynamic rule against
+    4 MiB: peaks 1,196-1,198 -> 1,155 MiB at the time.
     """
     mallopt = _mallopt()
     return mallopt is not None and mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD) == 1

@@ -72,28 +72,33 @@ class Info(ctypes.Structure):  # glibc's struct mallinfo2 (malloc.h)
 libc.mallinfo2.restype = Info
 libc.malloc.restype, libc.malloc.argtypes = ctypes.c_void_p, (ctypes.c_size_t,)
 libc.free.argtypes = (ctypes.c_void_p,)
-libc.free(libc.malloc(20 << 20))   # a large temporary, mapped and freed
-before = libc.mallinfo2().hblks    # mapped blocks in use
-p = libc.malloc(8 << 20)           # then an 8 MiB array
-print(libc.mallinfo2().hblks - before)
+out = []
+for size in (40 << 20, 80 << 20):  # a block below MMAP_THRESHOLD (64 MiB), one above
+    before = libc.mallinfo2().hblks    # mapped blocks in use
+    p = libc.malloc(size)
+    out.append(libc.mallinfo2().hblks - before)
+print(*out)
 """
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux") or platform.libc_ver()[0] != "glibc"
                     or tuple(map(int, platform.libc_ver()[1].split(".")[:2])) < (2, 33),
                     reason="glibc's mmap threshold, mallinfo2 from glibc 2.33")
-def test_fixed_mmap_threshold_maps_a_chunk_after_a_large_temporary():
-    """glibc's own count of mapped blocks (mallinfo2().hblks): by default a freed 20 MiB
-    block raises the threshold and the next 8 MiB block comes from the heap (where freed
-    memory stays resident); with fix_mmap_threshold it is mapped on its own."""
+def test_fixed_mmap_threshold_takes_the_blocks_below_it_from_the_heap():
+    """glibc's own count of mapped blocks (mallinfo2().hblks): by default (a threshold of at
+    most 32 MiB) a 40 MiB block is mapped on its own; with fix_mmap_threshold it comes from
+    the heap, whose freed pages are reused without new page faults, and an 80 MiB block
+    is still mapped (and given back when freed)."""
+    from meshcheck.threads import MMAP_THRESHOLD
+
     def mapped(mode):
         out = subprocess.run([sys.executable, "-c", _MMAP_CHILD, mode], capture_output=True,
                              text=True, check=True)
-        return int(out.stdout.strip())
+        return [int(x) for x in out.stdout.split()]
 
-    assert mapped("default") == 0
-    assert mapped("fixed") == 1
-
+    assert 40 << 20 < MMAP_THRESHOLD <= 80 << 20
+    assert mapped("default") == [1, 1]
+    assert mapped("fixed") == [0, 1]
 
 
 _RELEASE_CHILD = r"""
