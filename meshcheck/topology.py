@@ -916,18 +916,13 @@ def _refine(cptr, a, k, ptr, parts: int) -> None:
     ptr[-1] = cptr[-1]
 
 
-def _narrow(a: np.ndarray, dtype, parts: int, out: np.ndarray | None = None) -> np.ndarray:
-    """``a.astype(dtype, copy=False)``, the copy cast in ``parts`` pieces on threads (into
-    ``out`` when given: an array of a's shape and type ``dtype``)."""
-    if a.dtype == dtype and out is None:
+def _narrow(a: np.ndarray, dtype, parts: int) -> np.ndarray:
+    """``a.astype(dtype, copy=False)``, the copy cast in ``parts`` pieces on threads."""
+    if a.dtype == dtype:
         return a
     if parts == 1:
-        if out is None:
-            return a.astype(dtype)
-        np.copyto(out, a, casting="unsafe")
-        return out
-    if out is None:
-        out = np.empty(a.shape, dtype)
+        return a.astype(dtype)
+    out = np.empty(a.shape, dtype)
     cuts = [len(a) * i // parts for i in range(parts + 1)]
     thread_map(lambda r: np.copyto(out[r[0]:r[1]], a[r[0]:r[1]], casting="unsafe"),
                list(zip(cuts[:-1], cuts[1:])))

@@ -505,15 +505,9 @@ def edge_fill_packed(cells, la, lb, g0, fill, packed, shift):
 
 
 @njit
-def count_distinct_packed(ptr, packed, shift, n_values):
-    """Number of distinct values (packed >> shift, in [0, n_values < 2**31)) summed
-    over the buckets ptr[b]:ptr[b + 1]."""
-    return count_distinct_range(ptr, packed, shift, n_values, 0, ptr.shape[0] - 1)
-
-
-@njit
 def count_distinct_range(ptr, packed, shift, n_values, b0, b1):
-    """:func:`count_distinct_packed` over the buckets b0 <= b < b1 only."""
+    """Number of distinct values (packed >> shift, in [0, n_values < 2**31)) summed
+    over the buckets ptr[b]:ptr[b + 1], b0 <= b < b1."""
     seen = np.full(n_values, -1, np.int32)
     total = 0
     for b in range(b0, b1):
