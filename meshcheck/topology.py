@@ -931,8 +931,8 @@ def _narrow(a: np.ndarray, dtype, parts: int) -> np.ndarray:
 
 def _emit_edges(ptr, packed, shift, n, n_rows, layout, parts, node_t):
     """Count the distinct edges of the packed buckets and read them off
-    (:func:`meshcheck.kernels.topology.edge_emit_rows`), the buckets in ``parts`` ranges
-    on threads: (nodes (n_e, 2), the edge id of every row (n_rows,) of
+    (:func:`meshcheck.kernels.topology.edge_emit_rows_range`), the buckets in ``parts``
+    ranges on threads: (nodes (n_e, 2), the edge id of every row (n_rows,) of
     :func:`index_type`)."""
     from .kernels import topology as kt
 
@@ -943,12 +943,9 @@ def _emit_edges(ptr, packed, shift, n, n_rows, layout, parts, node_t):
     e0 = np.cumsum([0] + counts[:-1])
     nodes = np.empty((n_e, 2), node_t)
     inverse = np.empty(n_rows, index_type(n_e))
-    if parts == 1:
-        kt.edge_emit_rows(ptr, packed, shift, n, nodes, inverse, *layout)
-    else:
-        thread_map(lambda i: kt.edge_emit_rows_range(ptr, packed, shift, n, nodes, inverse,
-                                                     *layout, *ranges[i], int(e0[i])),
-                   range(parts))
+    thread_map(lambda i: kt.edge_emit_rows_range(ptr, packed, shift, n, nodes, inverse,
+                                                 *layout, *ranges[i], int(e0[i])),
+               range(parts), parallel=parts > 1)
     return nodes, inverse
 
 

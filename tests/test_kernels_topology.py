@@ -373,7 +373,7 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
 
     monkeypatch.setattr(T, "_FANOUT_BITS", fanout)
     monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
-    calls = {"coarse_refine": [], "edge_emit_rows": []}
+    calls = {"coarse_refine": [], "edge_emit_rows_range": []}
     for fn in calls:
         real = getattr(kt, fn)
 
@@ -386,7 +386,7 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
     _same_topology(ref, got)
     has_tri = any(len(f) == 3 for b in mesh.blocks if b.info.dim == 3 for f in b.info.faces)
     assert len(calls["coarse_refine"]) == 1 + has_tri
-    assert len(calls["edge_emit_rows"]) == 1
+    assert len(calls["edge_emit_rows_range"]) == 1
 
 
 def _reuse_calls(monkeypatch):

@@ -520,21 +520,15 @@ def count_distinct_range(ptr, packed, shift, n_values, b0, b1):
 
 
 @njit
-def edge_emit_rows(ptr, packed, shift, n_values, nodes, inverse, bounds, widths, offsets):
-    """Read the unsorted packed buckets of :func:`edge_fill_packed` off: the distinct
-    larger nodes of every bucket sorted give the edges (nodes (n_e, 2), numbered in
-    bucket order), and every row's edge id goes to ``inverse`` (n_rows,) (of any integer
-    type holding the ids).  offsets (n_blocks + 1,): first global cell id of every
-    block, then the cell count.  ``packed`` is only read."""
-    edge_emit_rows_range(ptr, packed, shift, n_values, nodes, inverse, bounds, widths,
-                         offsets, 0, ptr.shape[0] - 1, 0)
-
-
-@njit
 def edge_emit_rows_range(ptr, packed, shift, n_values, nodes, inverse, bounds, widths,
                          offsets, b0, b1, e0):
-    """:func:`edge_emit_rows` of the buckets b0 <= b < b1, their first edge e0; returns
-    the edge after their last.  Disjoint ranges can be read off at the same time."""
+    """Read the unsorted packed buckets b0 <= b < b1 of :func:`edge_fill_packed` off,
+    their first edge e0: the distinct larger nodes of every bucket sorted give the edges
+    (nodes (n_e, 2), numbered in bucket order), and every row's edge id goes to
+    ``inverse`` (n_rows,) (of any integer type holding the ids).  offsets (n_blocks +
+    1,): first global cell id of every block, then the cell count.  ``packed`` is only
+    read.  Returns the edge after the range's last; disjoint ranges can be read off at
+    the same time."""
     mask = (np.int64(1) << shift) - 1
     longest = 0
     for b in range(b0, b1):
