@@ -1,8 +1,10 @@
 """The mesh meshcheck works on: points in metres and blocks of cells.
 
 Normalised once when read (dtypes, units, node order) and frozen afterwards.
-Cells are numbered globally by concatenating the blocks in order; that
-0-based number is the "cell id" every report uses.
+Cells are numbered globally by concatenating the blocks in order (0-based). A mesh
+renumbered for memory locality (:mod:`meshcheck.ordering`) keeps the file's numbers in
+``file_cell_ids`` and ``file_point_ids``; the reports give every id in the file's
+numbering (:meth:`Mesh.file_cells`, :meth:`Mesh.file_points`).
 """
 from __future__ import annotations
 
@@ -83,6 +85,9 @@ class Mesh:
         the file's material cards (Nastran MAT10, Abaqus *ACOUSTIC MEDIUM), converted
         with the length unit.
     notes : (code, message, count) of reading decisions reported as notes.
+    file_point_ids, file_cell_ids : (n_points,) and (n_cells,) the file's 0-based number
+        of every point and cell when the mesh was renumbered (:mod:`meshcheck.ordering`),
+        else None (the file's order).
     """
 
     points: np.ndarray
@@ -93,6 +98,8 @@ class Mesh:
     unit: str = "m"
     material_speeds: dict[int, tuple[float, str]] = field(default_factory=dict)
     notes: tuple[tuple[str, str, int], ...] = ()
+    file_point_ids: np.ndarray | None = None
+    file_cell_ids: np.ndarray | None = None
 
     def __post_init__(self):
         pts = np.ascontiguousarray(self.points, dtype=np.float64)
@@ -105,6 +112,16 @@ class Mesh:
         object.__setattr__(self, "blocks", tuple(self.blocks))
 
     # ---- sizes and global numbering -------------------------------------
+    def file_cells(self, ids) -> np.ndarray:
+        """(k,) int64 the file's numbers of cell ids ``ids`` of this mesh."""
+        ids = np.asarray(ids, dtype=np.int64)
+        return ids if self.file_cell_ids is None else self.file_cell_ids[ids].astype(np.int64)
+
+    def file_points(self, ids) -> np.ndarray:
+        """(k,) int64 the file's numbers of point ids ``ids`` of this mesh."""
+        ids = np.asarray(ids, dtype=np.int64)
+        return ids if self.file_point_ids is None else self.file_point_ids[ids].astype(np.int64)
+
     @property
     def n_points(self) -> int:
         return self.points.shape[0]

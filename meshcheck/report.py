@@ -104,11 +104,12 @@ def file_sha256(path: str | Path | None, aside: bool = False):
     return None if aside else fut.result()
 
 
-def _cluster(c, scale: float) -> dict:
+def _cluster(c, scale: float, mesh) -> dict:
     return {"cells": c.cells, "volume_m3": c.volume, "centroid": (c.centroid / scale).tolist(),
             "box_min": (c.lo / scale).tolist(), "box_max": (c.hi / scale).tolist(),
             "largest_edge": c.size / scale, "target_size": c.target / scale,
-            "factor": _f(c.factor), "regions": list(c.regions), "some_cell_ids": c.ids.tolist()}
+            "factor": _f(c.factor), "regions": list(c.regions),
+            "some_cell_ids": mesh.file_cells(c.ids).tolist()}
 
 
 def _quality(res: AuditResult, scale: float) -> dict:
@@ -127,7 +128,7 @@ def _quality(res: AuditResult, scale: float) -> dict:
             **st, "out_of_range": flags.count(name) if name in flags else 0,
             "worse_when": bad,
             "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
-            "worst": [{"cell": int(i), "value": float(v),
+            "worst": [{"cell": int(res.mesh.file_cells(i)), "value": float(v),
                        "type": res.mesh.cell_type_of(int(i)),
                        "region": int(res.mesh.region[i]),
                        "centroid": (c / scale).tolist()}
@@ -153,6 +154,16 @@ def _region_cells(region: np.ndarray, cell_volume: np.ndarray, region_lim: dict)
                    float(np.abs(cell_volume[sel]).sum()))
 
 
+def _file_ids(mesh, f) -> np.ndarray:
+    """The ids of finding ``f`` in the file's numbering (cells and nodes of a renumbered
+    mesh, :mod:`meshcheck.ordering`)."""
+    if f.id_kind == "cell":
+        return mesh.file_cells(f.ids)
+    if f.id_kind == "node":
+        return mesh.file_points(f.ids)
+    return np.asarray(f.ids)
+
+
 def to_dict(res: AuditResult, cost: bool = True) -> dict:
     """The JSON report as plain Python data; ``cost`` False leaves out the quote of the
     sweep (the section is then null and ``assumptions.cost_quote`` says so)."""
@@ -176,7 +187,7 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
     limiting = None
     if len(a.cell_size):
         worst = a.lowest_cell(P)
-        limiting = {"cell": worst, "region": int(m.region[worst]),
+        limiting = {"cell": int(m.file_cells(worst)), "region": int(m.region[worst]),
                     "region_name": m.region_name(m.region[worst]),
                     "largest_edge": float(a.cell_size[worst] / scale),
                     "centroid": (m.centroids_of([worst])[0] / scale).tolist()}
@@ -208,7 +219,7 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
                     "limiting_cell": limiting},
         "limits_hz": {"mesh": {str(p): _f(a.mesh_limit[p - 1]) for p in orders}},
         "findings": [{"code": f.code, "severity": f.severity, "message": f.message,
-                      "count": f.count, "id_kind": f.id_kind, "ids": f.ids.tolist(),
+                      "count": f.count, "id_kind": f.id_kind, "ids": _file_ids(m, f).tolist(),
                       "locations": (f.locations / scale).tolist()} for f in res.findings],
         "quality": _quality(res, scale),
         "sweep": {"frequencies_hz": freq.tolist(),
@@ -219,8 +230,8 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
                   "dofs_kind": ("hierarchical, interiors condensed, maximum rule"
                                 if s.advice.order is None else f"Lagrange order {s.advice.order}"),
                   "condensed_fixed_dofs": sw.condensed_fixed},
-        "refine": [_cluster(c, scale) for c in res.refine_clusters],
-        "coarsen": [_cluster(c, scale) for c in res.coarsen_clusters],
+        "refine": [_cluster(c, scale, m) for c in res.refine_clusters],
+        "coarsen": [_cluster(c, scale, m) for c in res.coarsen_clusters],
         "topology": {"edges": len(topo.edges), "faces": len(topo.faces),
                      "boundary_faces": int(topo.faces.boundary.sum()),
                      "components": [{"volume_m3": float(v), "extent_m": float(e)} for v, e in
@@ -284,7 +295,8 @@ def _physics_sections(res: AuditResult, scale: float) -> dict:
         out["gradation"] = {
             "ratio": g.ratio, "count": g.count, "max_ratio": _f(g.max_ratio),
             "size_measure": "mean edge length",
-            "worst": [{"cells": p.tolist(), "ratio": _f(r), "sizes": loc(sz), "location": loc(x)}
+            "worst": [{"cells": res.mesh.file_cells(p).tolist(), "ratio": _f(r), "sizes": loc(sz),
+                       "location": loc(x)}
                       for p, r, sz, x in zip(g.pairs, g.ratios, g.sizes, g.locations)]}
     c = getattr(res, "curvature", None)
     if c is not None:
@@ -297,7 +309,7 @@ def _physics_sections(res: AuditResult, scale: float) -> dict:
             "curved_quadratic_faces": int(c.curved.sum()),
             "midnode_over_chord_height": c.midnode_on_surface,
             "criterion": "chord height <= target / (2k) at the upper frequency",
-            "worst": [{"face": int(f), "cell": int(ce), "location": loc(x),
+            "worst": [{"face": int(f), "cell": int(res.mesh.file_cells(ce)), "location": loc(x),
                        "gap_over_tolerance": _f(r), "max_straight_size": _f(hl / scale),
                        "max_quadratic_size": _f(hq / scale)}
                       for f, ce, x, r, hl, hq in zip(c.listed, c.listed_cells, c.listed_locations,
@@ -311,7 +323,7 @@ def _physics_sections(res: AuditResult, scale: float) -> dict:
             "jacobian_ratio_min": _f(q.jacobian_ratio.min()),
             "jacobian_ratio_median": _f(np.median(q.jacobian_ratio)),
             "threshold": q.threshold, "below_threshold": q.low,
-            "worst": [{"cell": int(i), "location": loc(x)}
+            "worst": [{"cell": int(res.mesh.file_cells(i)), "location": loc(x)}
                       for i, x in zip(q.listed, q.listed_locations)]}
     for lc in getattr(res, "layers", ()):
         out["absorbing_layers"].append({
@@ -467,7 +479,9 @@ VTU_COMPRESS_CELLS = 500_000
 
 
 def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) -> Path:
-    """VTU with per-cell results; coordinates and lengths in the mesh's own unit.
+    """VTU with per-cell results; coordinates and lengths in the mesh's own unit. Cells
+    and points in the order of ``res.mesh``: a renumbered mesh (:mod:`meshcheck.ordering`)
+    adds the file's numbers as ``file_cell_id`` and ``file_point_id``.
     ``compress``: zlib level 1 (True) or stored (False); None: compressed up to
     :data:`VTU_COMPRESS_CELLS` cells."""
     m, a = res.mesh, res.advice
@@ -482,7 +496,9 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
         return vtkxml.Chunked(lambda lo, hi: np.asarray(fn(lo, hi)).astype(dtype, copy=False),
                               dtype, n)
 
-    data = {"region": parts(lambda lo, hi: m.region[lo:hi], np.int32),
+    data = {} if m.file_cell_ids is None else {  # a renumbered mesh: the file's numbers
+        "file_cell_id": parts(lambda lo, hi: m.file_cell_ids[lo:hi], np.int32)}
+    data |= {"region": parts(lambda lo, hi: m.region[lo:hi], np.int32),
             "min_scaled_jacobian": lazy(lambda: res.min_scaled_jacobian.astype(f32, copy=False),
                                         f32),
             "order_needed": lazy(lambda: a.cell_order.astype(i8, copy=False), i8),
@@ -520,6 +536,9 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
         return made.pop(name)
 
     point = {name: lazy(lambda name=name: point_array(name), f32) for name in POINT_ARRAYS}
+    if m.file_point_ids is not None:
+        point["file_point_id"] = lazy(lambda: m.file_point_ids.astype(np.int32, copy=False),
+                                      np.int32)
     pts = m.points if scale == 1.0 else m.points / scale  # no copy for metres
     return vtkxml.write_vtu(path, pts, cells, cell_data=data,
                             point_data=point, level=1 if compress else 0)
