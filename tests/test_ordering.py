@@ -125,6 +125,27 @@ def test_renumbered_mesh_is_the_same_mesh(case, mode, monkeypatch):
     _same_cells(mesh, again)
 
 
+@pytest.mark.skipif(not ordering.kernels.available(), reason="numba not installed")
+@pytest.mark.parametrize("case", ["one_region", "region_runs"])
+def test_cells_sorted_on_two_threads_equal_one_thread_and_numpy(case, monkeypatch):
+    # the compiled counting sort splits the rows in two parts (one per thread) from
+    # 2 * MIN_CELLS rows: the parts' offsets must give the one-part (stable) order
+    mesh = _shuffled(_mixed(None if case == "one_region" else np.repeat([2, 1, 2], 20)))
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    one = ordering.renumbered(mesh)
+    monkeypatch.setattr(ordering.kernels, "MIN_CELLS", 4)
+    assert len(ordering._halves(mesh.n_cells)) == 2
+    two = ordering.renumbered(mesh)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    ref = ordering.renumbered(mesh)
+    for m in (one, two):
+        assert np.array_equal(m.file_cell_ids, ref.file_cell_ids)
+        assert np.array_equal(m.file_point_ids, ref.file_point_ids)
+        for a, b in zip(m.blocks, ref.blocks):
+            assert np.array_equal(a.cells, b.cells) and a.cells.dtype == b.cells.dtype
+    _same_cells(mesh, two)
+
+
 def test_renumbering_brings_the_nodes_of_a_cell_together():
     # a shuffled mesh: each cell's node ids span about half of all ids (median);
     # renumbered (node order along a Z curve, which jumps at its block edges), a small
@@ -146,11 +167,27 @@ def test_renumbering_brings_the_nodes_of_a_cell_together():
 
 
 def test_small_meshes_are_audited_in_the_files_order():
-    mesh = tet_box((3, 3, 3))
+    mesh = _shuffled(tet_box((3, 3, 3)))
+    assert mesh.n_cells < ordering.RENUMBER_CELLS
     same, t = ordering.renumbered_for_audit(mesh)
     assert same is mesh and t is None
-    big = tet_box((3, 3, 3))
-    assert big.n_cells < ordering.RENUMBER_CELLS
+
+
+def test_only_meshes_in_an_order_unrelated_to_space_are_renumbered(monkeypatch):
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS", 1)
+    grid = tet_box((40, 40, 3))  # cells and nodes row by row: already local (a cell
+    span, step = ordering.locality(grid)  # spans one x step: 41 * 4 of 41 * 41 * 4 nodes)
+    assert span < 0.03 and step < 0.01
+    same, t = ordering.renumbered_for_audit(grid)
+    assert same is grid and t is None
+    shuffled = _shuffled(grid, seed=3)  # median span about 0.6, step about 0.14
+    span, step = ordering.locality(shuffled)
+    assert span > 0.3 and step > 0.1
+    new, t = ordering.renumbered_for_audit(shuffled)
+    assert new.file_cell_ids is not None and t > 0
+    assert ordering.locality(new)[0] < 0.2 * span and ordering.locality(new)[1] < 0.2 * step
+    again, t = ordering.renumbered_for_audit(new)  # renumbered already
+    assert again is new and t is None
 
 
 def _broken(mesh: Mesh) -> Mesh:

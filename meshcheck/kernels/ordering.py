@@ -47,30 +47,57 @@ def _lowest(cells, c, k, new_id):
 
 
 @njit
-def lowest_corner_order(cells, k, new_id, n_keys, order):
-    """order = the stable argsort of the rows' lowest new_id over their first k nodes
-    (0 <= new_id < n_keys): a counting sort in two passes, O(rows + n_keys), the keys
-    computed in each pass (no array of them)."""
-    start = np.zeros(n_keys + 1, order.dtype)
-    for c in range(cells.shape[0]):
-        start[_lowest(cells, c, k, new_id) + 1] += 1
-    for v in range(n_keys):
-        start[v + 1] += start[v]
-    for c in range(cells.shape[0]):
-        v = _lowest(cells, c, k, new_id)
-        order[start[v]] = c
-        start[v] += 1
+def bounds(points, lo, hi):
+    """lo, hi = smallest and largest finite coordinate of (n, 3) ``points`` per axis
+    (+inf and -inf for an axis without any)."""
+    for d in range(3):
+        lo[d] = np.inf
+        hi[d] = -np.inf
+    for i in range(points.shape[0]):
+        for d in range(3):
+            v = points[i, d]
+            if np.isfinite(v):
+                if v < lo[d]:
+                    lo[d] = v
+                if v > hi[d]:
+                    hi[d] = v
 
 
 @njit
-def gather_relabel(cells, order, new_id, out, i0, i1):
-    """out[i, j] = new_id[cells[order[i], j]] for rows i0 <= i < i1: the rows in their
-    new order, with their nodes' new numbers."""
+def lowest_corner_counts(cells, k, new_id, counts, c0, c1):
+    """counts[v] += 1 for the lowest new_id v over the first k nodes of each row
+    c0 <= c < c1 of ``cells``."""
+    for c in range(c0, c1):
+        counts[_lowest(cells, c, k, new_id)] += 1
+
+
+@njit
+def part_starts(counts):
+    """Turn the per-part counts (parts, n_keys) of :func:`lowest_corner_counts` into each
+    part's first position per key, in place: keys in order, within a key the parts in
+    order (a stable counting sort's offsets)."""
+    parts, n = counts.shape
+    total = 0
+    for v in range(n):
+        for q in range(parts):
+            c = counts[q, v]
+            counts[q, v] = total
+            total += c
+
+
+@njit
+def scatter_rows(cells, k, new_id, start, out, order, c0, c1):
+    """Rows c0 <= c < c1 of ``cells`` to their places by lowest new_id over the first k
+    nodes (``start``: this part's next position per key, advanced): out[pos] =
+    new_id[cells[c]], order[pos] = c."""
     w = cells.shape[1]
-    for i in range(i0, i1):
-        r = order[i]
+    for c in range(c0, c1):
+        v = _lowest(cells, c, k, new_id)
+        pos = start[v]
+        start[v] += 1
+        order[pos] = c
         for j in range(w):
-            out[i, j] = new_id[cells[r, j]]
+            out[pos, j] = new_id[cells[c, j]]
 
 
 @njit
