@@ -209,7 +209,8 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
 
     feature_angle : deg; adjacent faces whose normals differ by more are not smooth.
     compiled : smooth patches by the union-find kernel (large meshes, numba loaded)
-        instead of scipy's connected_components (the same labels).
+        instead of scipy's connected_components (the same labels), and the fits by
+        :func:`meshcheck.kernels.geometry.fit_curvatures` (the same to rounding).
     """
     n_t = len(surface.triangles)
     if n_t == 0:
@@ -236,6 +237,10 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
     with np.errstate(divide="ignore", invalid="ignore"):
         acc /= norm[:, None]
     k1, k2 = np.empty(n_t), np.empty(n_t)
+    if compiled:  # one pass, corners and normals read in place
+        from .kernels import geometry as kg
+        kg.fit_curvatures(surface.points, tri, acc, inv.reshape(n_t, 3), fn, k1, k2)
+        return SurfaceCurvature(k1, k2, patch, int(n_patch), n_feature, area)
     for s in range(0, n_t, _FIT_CHUNK):  # the per-triangle fits a chunk at a time
         t = slice(s, min(s + _FIT_CHUNK, n_t))
         N = acc[inv.reshape(n_t, 3)[t]]                              # corner normals

@@ -62,9 +62,15 @@ def cylinder():
     return R, mesh, build_topology(mesh)
 
 
-def test_sphere_principal_curvatures_are_one_over_r(sphere):
+COMPILED = [False, pytest.param(True, marks=pytest.mark.skipif(
+    not __import__("meshcheck.kernels", fromlist=["available"]).available(),
+    reason="numba not installed"))]
+
+
+@pytest.mark.parametrize("compiled", COMPILED)
+def test_sphere_principal_curvatures_are_one_over_r(sphere, compiled):
     R, mesh, topo = sphere
-    c = surface_curvature(boundary_surface(mesh, topo))
+    c = surface_curvature(boundary_surface(mesh, topo), compiled=compiled)
     assert c.n_patches == 1 and c.feature_edges == 0
     # median within 3 %, 90 % of the triangles within 15 % (discretisation noise)
     for k in (c.k1, c.k2):
@@ -72,10 +78,11 @@ def test_sphere_principal_curvatures_are_one_over_r(sphere):
         assert np.mean(np.abs(k * R - 1) < 0.15) > 0.9
 
 
-def test_cylinder_principal_curvatures(cylinder):
+@pytest.mark.parametrize("compiled", COMPILED)
+def test_cylinder_principal_curvatures(cylinder, compiled):
     R, mesh, topo = cylinder
     surf = boundary_surface(mesh, topo)
-    c = surface_curvature(surf)
+    c = surface_curvature(surf, compiled=compiled)
     X = surf.points[surf.triangles]
     n = np.cross(X[:, 1] - X[:, 0], X[:, 2] - X[:, 0])
     side = np.abs(n[:, 2]) < 0.5 * np.linalg.norm(n, axis=1)
@@ -281,8 +288,10 @@ def _curvature_reference(mesh, topo, speed):
     """kappa and rho per boundary face by the general formula (np.unique of the faces of
     the triangles, maximum over each face's triangles), the reference of the shortcut
     check_curvature takes when every face is one triangle."""
+    from meshcheck import kernels
+
     surf = boundary_surface(mesh, topo)
-    curv = surface_curvature(surf, 50.0)
+    curv = surface_curvature(surf, 50.0, kernels.use_compiled(mesh.n_cells))  # as the check
     rho_t = enclosing_radius(surf.points[surf.triangles])
     kap_t = np.where(np.isfinite(curv.kmax), curv.kmax, 0.0)
     fids, inv = np.unique(surf.face, return_inverse=True)
@@ -378,3 +387,25 @@ def test_curvature_fits_in_chunks_equal_one_pass(sphere, cylinder, monkeypatch):
             many = check_curvature(mesh, topo, c, 2000.0, 0.01)
         for name in ("rho", "kappa", "chord_height", "tolerance"):
             assert np.array_equal(getattr(one, name), getattr(many, name)), name
+
+
+@pytest.mark.skipif(not __import__("meshcheck.kernels", fromlist=["available"]).available(),
+                    reason="numba not installed")
+def test_compiled_curvature_fits_equal_numpy(sphere, cylinder):
+    # the kernel solves the same normal equations by Gaussian elimination with partial
+    # pivoting (numpy: LAPACK's gesv): the same curvatures to rounding, NaN in the same
+    # places (degenerate triangles: a collapsed one added)
+    hexes = _hex_cylinder()
+    for mesh, topo in ((sphere[1], sphere[2]), (cylinder[1], cylinder[2]),
+                       (hexes, build_topology(hexes))):
+        surf = boundary_surface(mesh, topo)
+        tri = np.vstack([surf.triangles, [[0, 0, 1]]])
+        surf = BoundarySurface(surf.vertex_ids, surf.points, tri,
+                               np.r_[surf.face, surf.face[-1]], np.r_[surf.cell, surf.cell[-1]])
+        ref = surface_curvature(surf, 50.0, compiled=False)
+        got = surface_curvature(surf, 50.0, compiled=True)
+        scale = np.nanmax(np.abs(ref.k1))
+        for a, b in ((ref.k1, got.k1), (ref.k2, got.k2)):
+            assert np.array_equal(np.isnan(a), np.isnan(b)) and np.isnan(a[-1])
+            np.testing.assert_allclose(b, a, rtol=1e-9, atol=1e-12 * scale)
+        assert np.array_equal(ref.patch, got.patch)

@@ -137,3 +137,109 @@ def face_jumps(face_cells, count, size, ratio, f0, f1):
                 all_rs[j] = r
                 j += 1
     return n_pairs, best, all_ids, all_rs
+
+
+@njit(error_model="numpy")  # divisions by zero give inf / NaN, as numpy's
+def fit_curvatures(points, tri, normals, corner, fn, k1, k2):
+    """Principal curvatures k1 >= k2 of every triangle t (points[tri[t]]) by the
+    least-squares fit of :func:`meshcheck.curvature._fit_curvatures`: the shape operator
+    [[a, b], [b, c]] in the frame (u along side 0-1, v = fn x u) solving S e = dn over
+    the three sides in the least-squares sense, dn the change of the corner normals
+    normals[corner[t, i]]; the 3x3 normal equations by Gaussian elimination with partial
+    pivoting (as LAPACK's gesv). NaN where the system is not finite or singular."""
+    for t in range(tri.shape[0]):
+        p0 = tri[t, 0]
+        p1 = tri[t, 1]
+        ux = points[p1, 0] - points[p0, 0]
+        uy = points[p1, 1] - points[p0, 1]
+        uz = points[p1, 2] - points[p0, 2]
+        nu = np.sqrt(ux * ux + uy * uy + uz * uz)
+        ux /= nu
+        uy /= nu
+        uz /= nu
+        vx = fn[t, 1] * uz - fn[t, 2] * uy
+        vy = fn[t, 2] * ux - fn[t, 0] * uz
+        vz = fn[t, 0] * uy - fn[t, 1] * ux
+        m00 = 0.0
+        m01 = 0.0
+        m11 = 0.0
+        m12 = 0.0
+        m22 = 0.0
+        r0 = 0.0
+        r1 = 0.0
+        r2 = 0.0
+        for s in range(3):
+            i = (s + 1) % 3
+            j = (s + 2) % 3
+            a = tri[t, i]
+            b = tri[t, j]
+            ex = points[b, 0] - points[a, 0]
+            ey = points[b, 1] - points[a, 1]
+            ez = points[b, 2] - points[a, 2]
+            na = corner[t, i]
+            nb = corner[t, j]
+            dx = normals[nb, 0] - normals[na, 0]
+            dy = normals[nb, 1] - normals[na, 1]
+            dz = normals[nb, 2] - normals[na, 2]
+            eu = ex * ux + ey * uy + ez * uz
+            ev = ex * vx + ey * vy + ez * vz
+            yu = dx * ux + dy * uy + dz * uz
+            yv = dx * vx + dy * vy + dz * vz
+            # rows (eu, ev, 0) -> yu and (0, eu, ev) -> yv
+            m00 += eu * eu
+            m01 += eu * ev
+            m11 += ev * ev + eu * eu
+            m12 += eu * ev
+            m22 += ev * ev
+            r0 += eu * yu
+            r1 += ev * yu + eu * yv
+            r2 += ev * yv
+        M = np.empty((3, 4))
+        M[0, 0] = m00
+        M[0, 1] = m01
+        M[0, 2] = 0.0
+        M[0, 3] = r0
+        M[1, 0] = m01
+        M[1, 1] = m11
+        M[1, 2] = m12
+        M[1, 3] = r1
+        M[2, 0] = 0.0
+        M[2, 1] = m12
+        M[2, 2] = m22
+        M[2, 3] = r2
+        ok = True
+        for q in range(3):
+            for w in range(4):
+                if not np.isfinite(M[q, w]):
+                    ok = False
+        det = 1.0
+        if ok:
+            for col in range(3):
+                piv = col
+                for q in range(col + 1, 3):
+                    if abs(M[q, col]) > abs(M[piv, col]):
+                        piv = q
+                if piv != col:
+                    det = -det
+                    for w in range(4):
+                        tmp = M[col, w]
+                        M[col, w] = M[piv, w]
+                        M[piv, w] = tmp
+                det *= M[col, col]
+                if M[col, col] == 0.0:
+                    break
+                for q in range(col + 1, 3):
+                    f = M[q, col] / M[col, col]
+                    for w in range(col, 4):
+                        M[q, w] -= f * M[col, w]
+        if not ok or not abs(det) > 1e-300:
+            k1[t] = np.nan
+            k2[t] = np.nan
+            continue
+        c = M[2, 3] / M[2, 2]
+        b = (M[1, 3] - M[1, 2] * c) / M[1, 1]
+        a = (M[0, 3] - M[0, 1] * b - M[0, 2] * c) / M[0, 0]
+        mean = 0.5 * (a + c)
+        dev = np.sqrt(0.25 * (a - c) ** 2 + b * b)
+        k1[t] = mean + dev
+        k2[t] = mean - dev
