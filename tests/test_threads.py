@@ -101,6 +101,36 @@ def test_fixed_mmap_threshold_takes_the_blocks_below_it_from_the_heap():
     assert mapped("fixed") == [0, 1]
 
 
+_TRIM_CHILD = r"""
+import ctypes, ctypes.util
+import numpy as np
+from meshcheck.threads import fix_mmap_threshold, release_free_heap
+assert fix_mmap_threshold() is True
+def rss():
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * 4096
+hole = np.empty(40 << 20, np.uint8)   # below the threshold: from the heap
+hole[:] = 1                           # resident
+keep = np.ones(1 << 20, np.uint8)     # after it in the heap: the hole is not the heap's top
+del hole                              # freed: a hole, still resident
+before = rss()
+done = release_free_heap()
+print(int(done), before - rss(), int(keep.sum() == 1 << 20))
+"""
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux") or platform.libc_ver()[0] != "glibc",
+                    reason="glibc's malloc_trim")
+def test_release_free_heap_gives_a_freed_hole_back():
+    """A 40 MiB block freed inside the heap stays resident (the kernel's count,
+    /proc/self/statm) until release_free_heap, which gives its pages back."""
+    out = subprocess.run([sys.executable, "-c", _TRIM_CHILD], capture_output=True, text=True,
+                         check=True)
+    done, dropped, kept = (int(x) for x in out.stdout.split())
+    assert done == 1 and kept == 1
+    assert dropped >= 36 << 20
+
+
 _RELEASE_CHILD = r"""
 import numpy as np
 from meshcheck.threads import release_tail
