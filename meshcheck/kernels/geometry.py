@@ -147,6 +147,7 @@ def fit_curvatures(points, tri, normals, corner, fn, k1, k2):
     the three sides in the least-squares sense, dn the change of the corner normals
     normals[corner[t, i]]; the 3x3 normal equations by Gaussian elimination with partial
     pivoting (as LAPACK's gesv). NaN where the system is not finite or singular."""
+    M = np.empty((3, 4))  # the normal equations [A^T A | A^T y], reused per triangle
     for t in range(tri.shape[0]):
         p0 = tri[t, 0]
         p1 = tri[t, 1]
@@ -160,14 +161,9 @@ def fit_curvatures(points, tri, normals, corner, fn, k1, k2):
         vx = fn[t, 1] * uz - fn[t, 2] * uy
         vy = fn[t, 2] * ux - fn[t, 0] * uz
         vz = fn[t, 0] * uy - fn[t, 1] * ux
-        m00 = 0.0
-        m01 = 0.0
-        m11 = 0.0
-        m12 = 0.0
-        m22 = 0.0
-        r0 = 0.0
-        r1 = 0.0
-        r2 = 0.0
+        for q in range(3):
+            for w in range(4):
+                M[q, w] = 0.0
         for s in range(3):
             i = (s + 1) % 3
             j = (s + 2) % 3
@@ -186,27 +182,16 @@ def fit_curvatures(points, tri, normals, corner, fn, k1, k2):
             yu = dx * ux + dy * uy + dz * uz
             yv = dx * vx + dy * vy + dz * vz
             # rows (eu, ev, 0) -> yu and (0, eu, ev) -> yv
-            m00 += eu * eu
-            m01 += eu * ev
-            m11 += ev * ev + eu * eu
-            m12 += eu * ev
-            m22 += ev * ev
-            r0 += eu * yu
-            r1 += ev * yu + eu * yv
-            r2 += ev * yv
-        M = np.empty((3, 4))
-        M[0, 0] = m00
-        M[0, 1] = m01
-        M[0, 2] = 0.0
-        M[0, 3] = r0
-        M[1, 0] = m01
-        M[1, 1] = m11
-        M[1, 2] = m12
-        M[1, 3] = r1
-        M[2, 0] = 0.0
-        M[2, 1] = m12
-        M[2, 2] = m22
-        M[2, 3] = r2
+            M[0, 0] += eu * eu
+            M[0, 1] += eu * ev
+            M[1, 1] += ev * ev + eu * eu
+            M[1, 2] += eu * ev
+            M[2, 2] += ev * ev
+            M[0, 3] += eu * yu
+            M[1, 3] += ev * yu + eu * yv
+            M[2, 3] += ev * yv
+        M[1, 0] = M[0, 1]
+        M[2, 1] = M[1, 2]
         ok = True
         for q in range(3):
             for w in range(4):
