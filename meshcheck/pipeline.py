@@ -312,9 +312,10 @@ def _geometry_checks(mesh: Mesh, topo: Topology, media: Media, adv: Advice,
 def audit_file(path: str | Path, settings: AuditSettings, units: str | None = None,
                progress: Callable[[str], None] | None = None) -> AuditResult:
     """Read a mesh file and audit it; ``units`` as in :func:`meshcheck.reading.read_mesh`.
-    Meshes of :data:`~meshcheck.ordering.RENUMBER_CELLS` cells or more are renumbered for
-    memory locality (the result's arrays index ``result.mesh``; reports give the file's
-    ids)."""
+    Meshes of :data:`~meshcheck.ordering.RENUMBER_CELLS` cells or more whose file order is
+    unrelated to space are renumbered for memory locality
+    (:func:`meshcheck.ordering.renumbered_for_audit`; the result's arrays index
+    ``result.mesh``, the reports give the file's ids)."""
     if progress:
         progress("read")
     t0 = time.perf_counter()
