@@ -30,6 +30,7 @@ import warnings
 import numpy as np
 
 from . import kernels
+from .advice import region_runs
 from .mesh import CellBlock, Mesh
 from .threads import MAX_WORKERS, thread_map
 
@@ -109,18 +110,18 @@ def point_order(points: np.ndarray) -> np.ndarray:
 
 
 def _groups(region: np.ndarray) -> np.ndarray | None:
-    """(m,) int64 group of each cell so that sorting by it keeps the region runs in their
-    order (regions interleaved in more than 256 runs: the region's rank), or None for
-    one region."""
+    """(m,) int64 group of each cell so that sorting by it keeps the region runs
+    (:func:`meshcheck.advice.region_runs`) in their order (regions interleaved in more
+    than 256 runs: the region's rank), or None for one run."""
     if region.strides == (0,) or len(region) < 2:
         return None
-    change = region[1:] != region[:-1]
-    if not change.any():
+    runs = region_runs(region)
+    if runs is None:
+        return np.unique(region, return_inverse=True)[1].reshape(-1)
+    bounds = sorted(r for rs in runs.values() for r in rs)
+    if len(bounds) < 2:
         return None
-    runs = np.concatenate([[0], np.cumsum(change)])
-    if runs[-1] < 256:
-        return runs
-    return np.unique(region, return_inverse=True)[1].reshape(-1)
+    return np.repeat(np.arange(len(bounds)), [hi - lo for lo, hi in bounds])
 
 
 def sorted_cells(cells: np.ndarray, n_corners: int, new_id: np.ndarray, n_points: int,

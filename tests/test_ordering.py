@@ -72,7 +72,7 @@ def _mixed(regions: np.ndarray | None = None) -> Mesh:
     pts = grid_points((6, 5, 4))
     hexes = grid_hexes((6, 5, 4))
     from meshes import KUHN
-    tets = hexes[60:].__getitem__((slice(None), KUHN)).reshape(-1, 4)
+    tets = hexes[60:][:, KUHN].reshape(-1, 4)
     regions = np.ones(60, int) if regions is None else regions
     return Mesh(pts, (CellBlock("hexahedron", hexes[:60], regions),
                       CellBlock("tetra", tets, np.full(len(tets), 9))), {1: "a", 9: "b"})
