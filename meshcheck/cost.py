@@ -179,7 +179,10 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
     B = np.full((lim.shape[0], 0 if ncol == 0 else 8 * -(-ncol // 8)), len(f) + 1, dtype)
     par = lim.shape[0] > 50_000
     chunks = _chunks(lim.shape[0], 2 if par else 1)
-    weight = np.zeros(0 if limit_row is None else lim.shape[0], np.int64)
+    # cells per row, in 4 bytes when the cells' count fits (8.5 MiB less at the sweep's
+    # peak for 4.77M tets)
+    wtype = np.int32 if limit_row is None or len(limit_row) < 2**31 - 1 else np.int64
+    weight = np.zeros(0 if limit_row is None else lim.shape[0], wtype)
     if limit_row is not None:  # cells per row (np.bincount would copy int32 rows to int64)
         _ka.count_labels(np.ascontiguousarray(limit_row), weight)
 

@@ -87,7 +87,9 @@ class Mesh:
     notes : (code, message, count) of reading decisions reported as notes.
     file_point_ids, file_cell_ids : (n_points,) and (n_cells,) the file's 0-based number
         of every point and cell when the mesh was renumbered (:mod:`meshcheck.ordering`),
-        else None (the file's order).
+        else None (the file's order); arrays, or for a large mesh renumbered for an
+        audit :class:`meshcheck.ordering.SpilledIds` (index them; ``np.asarray`` reads
+        them whole).
     """
 
     points: np.ndarray

@@ -24,6 +24,9 @@ measures the file's :func:`locality`.
 """
 from __future__ import annotations
 
+import dataclasses
+import os
+import tempfile
 import time
 import warnings
 
@@ -34,8 +37,8 @@ from .advice import region_runs
 from .mesh import CellBlock, Mesh
 from .threads import MAX_WORKERS, thread_map
 
-__all__ = ["RENUMBER_CELLS", "POOR_LOCALITY", "morton_keys", "point_order", "sorted_cells",
-           "renumbered", "locality", "renumbered_for_audit"]
+__all__ = ["RENUMBER_CELLS", "POOR_LOCALITY", "SPILL_CELLS", "SpilledIds", "morton_keys",
+           "point_order", "sorted_cells", "renumbered", "locality", "renumbered_for_audit"]
 
 #: meshes with at least this many cells are renumbered before an audit of a file (the
 #: size from which the compiled kernels serve, :data:`meshcheck.kernels.MIN_CELLS`)
@@ -48,6 +51,13 @@ RENUMBER_CELLS = kernels.MIN_CELLS
 #: (renumbered: analysis 0.75 -> 0.64 s); its 1M quadratic tets 0.042 and 0.017 (as fast
 #: either way); the structured 1M hexahedra 0.0067 and 0 (renumbered: 1.36 -> 1.55 s)
 POOR_LOCALITY = 0.05
+
+#: renumbered meshes with at least this many cells keep the file's numbers in a temporary
+#: file (:class:`SpilledIds`) while they are audited: only the reports read them, and
+#: at 4.77M tets they are 21 MiB of the audit's peak (the advice stage's, numba's cache:
+#: 1,017-1,021 -> 990-1,000 MiB with the numbers dropped, 3 fresh runs each,
+#: 2026-12-04). Below it the arrays stay in memory (the reports then gather faster)
+SPILL_CELLS = 2_000_000
 
 #: cells sampled by :func:`locality`
 LOCALITY_SAMPLE = 4096
@@ -233,11 +243,103 @@ def renumbered_for_audit(mesh: Mesh) -> tuple[Mesh, float | None]:
     :data:`RENUMBER_CELLS` cells or more, is not renumbered yet and its :func:`locality`
     is poor (either figure at least :data:`POOR_LOCALITY`), else (mesh, None). Call it
     as ``mesh, t = renumbered_for_audit(mesh)``: the two meshes are not meant to be held
-    together."""
+    together. From :data:`SPILL_CELLS` cells the file's numbers are :class:`SpilledIds`
+    (kept in memory where no temporary file can be written)."""
     if mesh.n_cells < RENUMBER_CELLS or mesh.file_cell_ids is not None:
         return mesh, None
     t0 = time.perf_counter()
     if max(locality(mesh)) < POOR_LOCALITY:
         return mesh, None
     out = renumbered(mesh)
+    if out.n_cells >= SPILL_CELLS:
+        try:
+            out = dataclasses.replace(out, file_point_ids=SpilledIds(out.file_point_ids),
+                                      file_cell_ids=SpilledIds(out.file_cell_ids))
+        except OSError:  # no temporary folder to write to: the arrays stay in memory
+            pass
     return out, time.perf_counter() - t0
+
+
+class SpilledIds:
+    """A read-only (n,) integer array kept in an unlinked temporary file, read back a
+    part at a time: the file's numbers of a renumbered mesh (:data:`SPILL_CELLS`), which
+    only the reports read. Supports ``len``, indexing by an int, a slice or an integer
+    array (a new ndarray), ``astype`` and ``np.asarray``. Reads use ``os.pread`` (no
+    shared file position): threads may read at once."""
+
+    #: values read at a time when gathering by an index array (4 MiB of int32)
+    CHUNK = 1 << 20
+    #: index arrays up to this long are read one value at a time
+    FEW = 64
+
+    def __init__(self, values: np.ndarray):
+        values = np.ascontiguousarray(values)
+        if values.ndim != 1 or values.dtype.kind not in "iu":
+            raise ValueError("SpilledIds holds a 1D integer array")
+        self._file = tempfile.TemporaryFile(prefix="meshcheck-ids-")  # unlinked already
+        values.tofile(self._file)
+        self._file.flush()
+        self.dtype, self.shape = values.dtype, values.shape
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    @property
+    def ndim(self) -> int:
+        return 1
+
+    def _read(self, lo: int, hi: int) -> np.ndarray:
+        """values[lo:hi], 0 <= lo <= hi <= n."""
+        size = self.dtype.itemsize
+        out = np.empty(hi - lo, self.dtype)
+        view, done = memoryview(out.view(np.uint8)), 0
+        while done < len(view):  # pread may return fewer bytes than asked
+            got = os.preadv(self._file.fileno(), [view[done:]], lo * size + done)
+            if got <= 0:
+                raise OSError(f"temporary file of {self.shape[0]} ids ended early")
+            done += got
+        return out
+
+    def __getitem__(self, key) -> np.ndarray:
+        n = self.shape[0]
+        if isinstance(key, slice):
+            lo, hi, step = key.indices(n)
+            return self._read(lo, max(lo, hi))[::step] if step > 0 else \
+                np.asarray(self)[key]
+        idx = np.asarray(key)
+        if idx.dtype == bool:
+            return np.asarray(self)[idx]
+        if idx.ndim == 0:
+            i = int(idx)
+            if not -n <= i < n:
+                raise IndexError(f"index {i} is out of bounds for {n} ids")
+            return self._read(i % n, i % n + 1)[0]
+        idx = idx.astype(np.int64, copy=False)
+        if len(idx) and (idx.min() < -n or idx.max() >= n):
+            raise IndexError(f"index out of bounds for {n} ids")
+        idx = np.where(idx < 0, idx + n, idx)
+        out = np.empty(idx.shape, self.dtype)
+        if idx.size <= self.FEW:  # a few ids (the JSON's): one read each
+            for k, i in enumerate(idx.flat):
+                out.flat[k] = self._read(int(i), int(i) + 1)[0]
+            return out
+        lo_all, hi_all = int(idx.min()), int(idx.max()) + 1
+        for lo in range(lo_all, hi_all, self.CHUNK):  # a part at a time, the asked-for ones
+            hi = min(lo + self.CHUNK, hi_all)
+            sel = (idx >= lo) & (idx < hi)
+            if sel.any():
+                out[sel] = self._read(lo, hi)[idx[sel] - lo]
+        return out
+
+    def __array__(self, dtype=None, copy=None) -> np.ndarray:
+        out = self._read(0, self.shape[0])
+        return out if dtype is None else out.astype(dtype, copy=False)
+
+    def astype(self, dtype, copy: bool = True) -> np.ndarray:
+        return np.asarray(self).astype(dtype, copy=False)
+
+    def __reduce__(self):  # pickled as the plain array
+        return np.asarray, (np.asarray(self),)
+
+    def __repr__(self) -> str:
+        return f"SpilledIds(n={self.shape[0]}, dtype={self.dtype})"

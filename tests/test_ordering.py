@@ -7,6 +7,7 @@ by cell; the audit of the renumbered mesh against the audit of the input, report
 report, with every id mapped back to the file's numbering.
 """
 import json
+import pickle
 
 import meshio
 import numpy as np
@@ -18,6 +19,7 @@ from meshcheck.cli import main
 from meshcheck.mesh import CellBlock, Mesh
 from meshcheck.pipeline import AuditSettings, audit
 from meshcheck.report import to_dict
+from meshcheck.threads import thread_map
 from meshes import grid_hexes, grid_points, tet_box
 
 MODES = ["numpy", pytest.param("numba", marks=pytest.mark.skipif(
@@ -190,6 +192,55 @@ def test_only_meshes_in_an_order_unrelated_to_space_are_renumbered(monkeypatch):
     assert again is new and t is None
 
 
+def test_large_renumbered_meshes_keep_the_files_numbers_in_a_temporary_file(monkeypatch):
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS", 1)
+    shuffled = _shuffled(tet_box((12, 10, 3)), seed=4)
+    kept, _ = ordering.renumbered_for_audit(shuffled)
+    assert isinstance(kept.file_cell_ids, np.ndarray)
+    monkeypatch.setattr(ordering, "SPILL_CELLS", 1)
+    spilled, _ = ordering.renumbered_for_audit(shuffled)
+    assert isinstance(spilled.file_cell_ids, ordering.SpilledIds)
+    assert isinstance(spilled.file_point_ids, ordering.SpilledIds)
+    assert np.array_equal(np.asarray(spilled.file_cell_ids), kept.file_cell_ids)
+    assert np.array_equal(np.asarray(spilled.file_point_ids), kept.file_point_ids)
+    for n, of in ((shuffled.n_cells, "file_cells"), (shuffled.n_points, "file_points")):
+        ids = [0, 7, n - 1]
+        assert np.array_equal(getattr(spilled, of)(ids), getattr(kept, of)(ids))
+
+    def no_temporary_file(*a, **k):
+        raise OSError("read-only file system")
+
+    monkeypatch.setattr(ordering.tempfile, "TemporaryFile", no_temporary_file)
+    fallback, _ = ordering.renumbered_for_audit(shuffled)  # kept in memory instead
+    assert np.array_equal(fallback.file_cell_ids, kept.file_cell_ids)
+
+
+def test_spilled_ids_index_as_the_array_they_hold(monkeypatch):
+    rng = np.random.default_rng(11)
+    a = rng.permutation(100_003).astype(np.int32)
+    s = ordering.SpilledIds(a)
+    monkeypatch.setattr(ordering.SpilledIds, "CHUNK", 4096)  # many parts per gather
+    assert len(s) == len(a) and s.dtype == a.dtype and s.ndim == 1
+    assert np.array_equal(np.asarray(s), a) and np.asarray(s, np.int64).dtype == np.int64
+    for key in (slice(5, 100), slice(None), slice(-10, None), slice(0, 1000, 7),
+                slice(100, 5), slice(None, None, -3)):
+        assert np.array_equal(s[key], a[key]), key
+    for idx in ([3], [0, -1, 5], rng.integers(0, len(a), 50),
+                rng.integers(-len(a), len(a), 5000), rng.permutation(len(a)),
+                np.zeros(0, int), np.arange(12).reshape(3, 4), a > 50_000):
+        assert np.array_equal(s[idx], a[idx]), idx
+    assert s[7] == a[7] and s[-1] == a[-1]
+    assert s.astype(np.int64).dtype == np.int64
+    assert np.array_equal(pickle.loads(pickle.dumps(s)), a)
+    for bad in (len(a), -len(a) - 1, [0, len(a)]):
+        with pytest.raises(IndexError):
+            s[bad]
+    with pytest.raises(ValueError):
+        ordering.SpilledIds(np.zeros((2, 2), np.int32))
+    parts = [(lo, lo + 30_000) for lo in range(0, 70_000, 1000)]  # threads read at once
+    assert all(thread_map(lambda r: np.array_equal(s[r[0]:r[1]], a[r[0]:r[1]]), parts))
+
+
 def _broken(mesh: Mesh) -> Mesh:
     """``mesh`` with one cell inverted and a node no cell uses."""
     c = mesh.blocks[0].cells.copy()
@@ -259,7 +310,11 @@ def _assert_close(a, b, path=""):
         assert a == b, path
 
 
-def test_command_renumbers_large_meshes_and_reports_the_files_ids(tmp_path, monkeypatch):
+@pytest.mark.parametrize("spill", [False, True])
+def test_command_renumbers_large_meshes_and_reports_the_files_ids(tmp_path, monkeypatch,
+                                                                 spill):
+    if spill:  # the file's numbers in a temporary file (large meshes): the same reports
+        monkeypatch.setattr(ordering, "SPILL_CELLS", 1)
     mesh = _graded((6, 5, 4))
     c = mesh.blocks[0].cells.copy()
     c[5, [0, 1]] = c[5, [1, 0]]  # an inverted cell: file id 5
