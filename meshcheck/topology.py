@@ -682,6 +682,62 @@ def _components(mesh: Mesh, faces: Faces, edges: Edges) -> tuple[int, np.ndarray
     return connected_components(g, directed=False)
 
 
+def _join_crowded_faces(mesh: Mesh, faces: Faces, n_comp: int, comp: np.ndarray
+                        ) -> tuple[int, np.ndarray]:
+    """(n_comp, comp) with the cells of every face shared by more than two cells joined.
+
+    The face arrays keep two of such a face's cells (the lowest ids), so the components
+    of the pairs alone depend on the numbering (an interior cell listed twice, numbered
+    before its neighbours, made a component of its own). Every cell having one of those
+    faces is found (its corners include three of the faces' nodes, then its faces'
+    sorted corners match) and joined to the face's first cell; the labels are numbered
+    again in the order of each component's lowest cell, as connected_components numbers
+    them. Only meshes with such faces (broken meshes) pay for it."""
+    from scipy import sparse
+    from scipy.sparse.csgraph import connected_components
+
+    fids = np.flatnonzero(faces.count > 2)
+    if mesh.dim != 3 or not len(fids):
+        return n_comp, comp
+    n = np.int64(mesh.n_points)
+    fn = faces.nodes_of(fids).astype(np.int64)
+    hit = np.zeros(mesh.n_points, bool)
+    hit[fn[fn >= 0]] = True
+    keys, owners = [np.sort(np.where(fn < 0, n, fn), axis=1)], [np.full(len(fids), -1)]
+    for b, off in zip(mesh.blocks, mesh.block_offsets):
+        if b.info.dim != 3:
+            continue
+        table = _padded_faces(b.type)
+        k = b.info.n_corners
+        for s in range(0, len(b), _NODES_CHUNK):
+            corners = b.cells[s:s + _NODES_CHUNK, :k]
+            cand = np.flatnonzero(np.count_nonzero(hit[corners], axis=1) >= 3)
+            if not len(cand):
+                continue
+            got = corners[cand][:, np.maximum(table, 0)].astype(np.int64)  # (m, f, 4)
+            got[:, table < 0] = n
+            keys.append(np.sort(got.reshape(-1, 4), axis=1))
+            owners.append(np.repeat(cand + int(off) + s, len(table)))
+    _, inv = np.unique(np.concatenate(keys), axis=0, return_inverse=True)
+    inv = inv.ravel()
+    which = np.full(inv.max() + 1, -1, np.int64)
+    which[inv[:len(fids)]] = np.arange(len(fids))
+    owner = np.concatenate(owners)[len(fids):]
+    match = which[inv[len(fids):]]
+    cells, first = owner[match >= 0], faces.cells[fids[match[match >= 0]], 0]
+    a, b_ = comp[cells].astype(np.int64), comp[first].astype(np.int64)
+    g = sparse.coo_matrix((np.ones(len(a), np.int8), (a, b_)), shape=(n_comp, n_comp))
+    n_new, merged = connected_components(g.tocsr(), directed=False)
+    if n_new == n_comp:
+        return n_comp, comp
+    lab = merged[comp]
+    lowest = np.full(n_new, len(lab))
+    np.minimum.at(lowest, lab, np.arange(len(lab)))
+    rank = np.empty(n_new, np.int64)
+    rank[np.argsort(lowest, kind="stable")] = np.arange(n_new)
+    return int(n_new), rank[lab].astype(comp.dtype)
+
+
 def _per_label_bbox(points: np.ndarray, mesh: Mesh, label: np.ndarray, n_label: int):
     if n_label == 1:
         bb = mesh.bounding_box
@@ -812,7 +868,7 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     vol = cell_volumes(mesh)
     dup = _duplicate_nodes(mesh.points, used, edges, rel_tol)
     dup_cells = _duplicate_cells(mesh)
-    n_comp, comp = _components(mesh, faces, edges)
+    n_comp, comp = _join_crowded_faces(mesh, faces, *_components(mesh, faces, edges))
     comp = comp.astype(index_type(mesh.n_cells))  # as the compiled path's labels
     lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
     return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)
@@ -1336,6 +1392,8 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
     else:
         n_comp, comp = 0, np.zeros(0, np.int64)
     del parent
+    if mesh.dim == 3:
+        n_comp, comp = _join_crowded_faces(mesh, faces, n_comp, comp)
     comp = comp.astype(index_type(mesh.n_cells), copy=False)  # as the numpy path's
     lo, hi = _per_label_bbox_compiled(mesh.points, mesh, comp, n_comp)
     return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)

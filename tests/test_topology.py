@@ -289,3 +289,29 @@ def test_index_arrays_are_int32(path, monkeypatch):
     pairs = {tuple(sorted((int(c[a]), int(c[b])))) for c in cells
              for a, b, _ in mesh.blocks[0].info.edges}
     assert {tuple(map(int, r)) for r in e.nodes} == pairs
+
+
+@pytest.mark.parametrize("path", ["numpy", "numba"])
+@pytest.mark.parametrize("first", [True, False])
+def test_a_duplicated_cell_joins_its_neighbours_in_any_numbering(path, first, monkeypatch):
+    # an interior tetrahedron listed twice: its four faces each have three cells (the
+    # two copies and a neighbour), of which the face arrays keep two. Numbered first, the
+    # copies were joined to each other only and made a component of their own; the
+    # components are those of the cells sharing faces, whatever the numbering
+    monkeypatch.setenv("MESHCHECK_KERNELS", path)
+    box = tet_box((3, 3, 3))
+    cells = box.blocks[0].cells
+    topo = build_topology(box)
+    inner = int(np.flatnonzero(~np.isin(np.arange(len(cells)),
+                                        topo.faces.cells[topo.faces.boundary, 0]))[0])
+    rest = np.delete(np.arange(len(cells)), inner)
+    order = np.r_[inner, inner, rest] if first else np.r_[rest, inner, inner]
+    mesh = Mesh(box.points, (CellBlock("tetra", cells[order], np.ones(len(order))),))
+    topo = build_topology(mesh)
+    assert len(topo.nonmanifold_faces) == 4
+    assert topo.duplicate_cells.tolist() == ([[0, 1]] if first else [[len(order) - 2,
+                                                                       len(order) - 1]])
+    assert topo.n_components == 1
+    assert not topo.component.any()
+    assert topo.component_volume[0] == pytest.approx(1.0 + abs(topo.cell_volume[0 if first
+                                                                               else -1]))
