@@ -725,9 +725,10 @@ def main(argv: list[str] | None = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     if argv is None:  # a process of its own (not a test calling main in-process)
-        from .threads import fix_mmap_threshold, share_malloc_arena
+        from .threads import fix_mmap_threshold, no_huge_page_advice, share_malloc_arena
         share_malloc_arena()
         fix_mmap_threshold()
+        no_huge_page_advice()
     err = Console(stderr=True, highlight=False, soft_wrap=True)
     try:
         rc = app(args=args, prog_name="meshcheck", standalone_mode=False)

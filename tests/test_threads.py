@@ -1,6 +1,7 @@
 """thread_map: the serial result, in input order, whatever the number of threads; the
 CLI's one malloc arena and fixed mmap threshold; scratch pages given back and reused."""
 import platform
+from pathlib import Path
 import subprocess
 import sys
 
@@ -262,3 +263,38 @@ def test_ranges_cover_the_items_once_in_order(n, parts):
     assert all(a[1] == b[0] for a, b in zip(r, r[1:]))
     sizes = [b - a for a, b in r]
     assert max(sizes) - min(sizes) <= 1
+
+
+_HUGE_CHILD = r"""
+import numpy as np
+from meshcheck.threads import no_huge_page_advice
+def advised(a):  # the kernel's flags of the mapping holding a's middle: 'hg' = MADV_HUGEPAGE
+    addr = a.ctypes.data + a.nbytes // 2  # (numpy advises from the first whole page on)
+    with open("/proc/self/smaps") as f:
+        lines = f.read().splitlines()
+    for i, line in enumerate(lines):
+        head = line.split()[0]
+        if "-" in head and ":" not in head:
+            lo, hi = (int(x, 16) for x in head.split("-"))
+            if lo <= addr < hi:
+                flags = next(l for l in lines[i + 1:] if l.startswith("VmFlags:"))
+                return int("hg" in flags.split()[1:])
+    return -1
+a = np.ones(64 << 20, np.uint8)
+done = no_huge_page_advice()
+b = np.ones(64 << 20, np.uint8)
+print(advised(a), int(done), advised(b))
+"""
+
+
+@pytest.mark.skipif(platform.system() != "Linux", reason="/proc/self/smaps is Linux's")
+def test_no_huge_page_advice_leaves_new_arrays_unadvised():
+    # Linux proc(5): VmFlags 'hg' marks a mapping advised MADV_HUGEPAGE. numpy advises
+    # its arrays from 4 MiB (where the kernel has transparent huge pages); after the
+    # call a new array's mapping must not carry the flag
+    out = subprocess.run([sys.executable, "-c", _HUGE_CHILD], capture_output=True,
+                         text=True, check=True).stdout.split()
+    before, done, after = map(int, out)
+    assert done == 1 and after == 0
+    if Path("/sys/kernel/mm/transparent_hugepage/enabled").exists():
+        assert before == 1  # numpy's own advice, which the call turns off
