@@ -507,6 +507,22 @@ def test_small_meshes_do_not_load_numba():
                    cwd=Path(__file__).parent)
 
 
+def test_compiled_topology_of_a_valid_mesh_does_not_import_scipy_sparse():
+    # scipy.sparse takes 0.1-0.2 s to import; the compiled path needs it only to join
+    # the cells of faces shared by more than two cells (broken meshes)
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    code = ("import sys; from meshes import tet_box; from meshcheck.topology import "
+            "build_topology; t = build_topology(tet_box((3, 3, 3))); "
+            "assert t.n_components == 1; "
+            "assert 'scipy.sparse' not in sys.modules, 'scipy.sparse imported'")
+    env = {**__import__("os").environ, "MESHCHECK_KERNELS": "numba"}
+    subprocess.run([sys.executable, "-c", code], check=True, env=env,
+                   cwd=Path(__file__).parent)
+
+
 def test_warm_up_loads_numba_only_for_large_files():
     # the CLI starts loading numba on a thread for input files of WARM_UP_BYTES or more;
     # never for smaller files or in numpy mode (run in fresh processes: numba unloaded)
