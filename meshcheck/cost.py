@@ -74,7 +74,12 @@ def interior_dofs(cell: str, p: int) -> int:
             "triangle": q * (q - 1) // 2, "quad": q ** 2}[cell]
 
 
-def _used_vertices(mesh: Mesh) -> int:
+def _used_vertices(mesh: Mesh, topo: Topology) -> int:
+    """Nodes that are a corner of some cell: with linear cells only, the nodes the
+    topology found used (no pass over the cells: 0.1-0.15 s of the sweep at 4.77M tets,
+    mostly numpy's int32 -> intp copy of the cells for the scatter)."""
+    if all(b.cells.shape[1] == b.info.n_corners for b in mesh.blocks):
+        return mesh.n_points - len(topo.unused_nodes)
     used = np.zeros(mesh.n_points, bool)
     for b in mesh.blocks:
         used[b.cells[:, :b.info.n_corners]] = True
@@ -89,7 +94,7 @@ def _face_kinds(topo: Topology) -> tuple[int, int]:
 def condensed_dofs(mesh: Mesh, topo: Topology, p: int) -> int:
     """Global unknowns at uniform order p with cell interiors condensed."""
     n_tri, n_quad = _face_kinds(topo)
-    return int(_used_vertices(mesh) + (p - 1) * len(topo.edges)
+    return int(_used_vertices(mesh, topo) + (p - 1) * len(topo.edges)
                + n_tri * face_dofs(3, p) + n_quad * face_dofs(4, p))
 
 
@@ -97,7 +102,7 @@ def lagrange_dofs(mesh: Mesh, topo: Topology, p: int) -> int:
     """Global unknowns of the order-p Lagrange space (interiors included)."""
     inner = sum(len(b) * interior_dofs(b.info.linear, p) for b in mesh.blocks)
     if mesh.dim == 2:  # the cells are the faces
-        return int(_used_vertices(mesh) + (p - 1) * len(topo.edges) + inner)
+        return int(_used_vertices(mesh, topo) + (p - 1) * len(topo.edges) + inner)
     return condensed_dofs(mesh, topo, p) + int(inner)
 
 
@@ -145,7 +150,7 @@ def variable_order_dofs(mesh: Mesh, topo: Topology, cell_limits: np.ndarray,
                     out += inc(q) * np.searchsorted(np.sort(g_face[idx]), f, side="left")
         return out
 
-    total = np.full(f.shape, _used_vertices(mesh), dtype=np.int64)
+    total = np.full(f.shape, _used_vertices(mesh, topo), dtype=np.int64)
     parts = thread_map(above, range(1, max_order), parallel=mesh.n_cells > 50_000)
     for part in parts:
         total += part
@@ -240,7 +245,7 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
     for part in thread_map(run, jobs, parallel=par):
         hist += part
     total = np.empty(n_f, np.int64)
-    total[order] = _used_vertices(mesh) + np.cumsum(hist)[:n_f]
+    total[order] = _used_vertices(mesh, topo) + np.cumsum(hist)[:n_f]
     return total
 
 

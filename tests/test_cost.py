@@ -298,3 +298,18 @@ def test_float32_limits_are_compared_with_frequencies_in_float64():
     assert np.float32(f) == lim[0, 0]  # the float32 comparison would call it carried
     assert cell_orders_at(lim, f, 3).tolist() == [2]
     assert cell_orders_at(lim, 1000.0, 3).tolist() == [1]
+
+
+@pytest.mark.parametrize("quadratic", [False, True])
+def test_used_vertices_count_the_corners_of_the_grid(quadratic):
+    # a structured (nx, ny, nz) grid has (nx + 1)(ny + 1)(nz + 1) corner nodes; a node no
+    # cell uses and (quadratic cells) the mid-edge nodes are not vertices
+    from meshcheck.cost import _used_vertices
+    from meshes import tet10_box
+
+    n = (2, 3, 1)
+    box = tet10_box(n) if quadratic else tet_box(n)
+    mesh = Mesh(np.vstack([box.points, [[5.0, 5.0, 5.0]]]), box.blocks, box.region_names)
+    topo = build_topology(mesh)
+    assert len(topo.unused_nodes) == 1
+    assert _used_vertices(mesh, topo) == 3 * 4 * 2
