@@ -37,7 +37,7 @@ from .advice import region_runs
 from .mesh import CellBlock, Mesh
 from .threads import MAX_WORKERS, thread_map
 
-__all__ = ["RENUMBER_CELLS", "POOR_LOCALITY", "SPILL_CELLS", "SpilledIds", "morton_keys",
+__all__ = ["RENUMBER_CELLS", "RENUMBER_CELLS_JIT", "POOR_LOCALITY", "SPILL_CELLS", "SpilledIds", "morton_keys",
            "point_order", "sorted_cells", "renumbered", "locality", "renumbered_for_audit"]
 
 #: meshes with at least this many cells are renumbered before an audit of a file (the
@@ -51,6 +51,13 @@ RENUMBER_CELLS = kernels.MIN_CELLS
 #: (renumbered: analysis 0.75 -> 0.64 s); its 1M quadratic tets 0.042 and 0.017 (as fast
 #: either way); the structured 1M hexahedra 0.0067 and 0 (renumbered: 1.36 -> 1.55 s)
 POOR_LOCALITY = 0.05
+
+#: without the kernels' built module (numba's cache serves them, each loaded on first
+#: use) meshes are renumbered from this many cells only: at 966k tets renumbering then
+#: saved 0.05 s of a 1.5 s audit (6 alternating runs, medians 1.47 against 1.52 s) but
+#: loading its six kernels raised the peak by 5 MiB (301-305 against 296-300 MiB, over
+#: the 300 MiB target), 2026-12-04
+RENUMBER_CELLS_JIT = 2_000_000
 
 #: renumbered meshes with at least this many cells keep the file's numbers in a temporary
 #: file (:class:`SpilledIds`) while they are audited: only the reports read them, and
@@ -243,10 +250,16 @@ def renumbered_for_audit(mesh: Mesh) -> tuple[Mesh, float | None]:
     :data:`RENUMBER_CELLS` cells or more, is not renumbered yet and its :func:`locality`
     is poor (either figure at least :data:`POOR_LOCALITY`), else (mesh, None). Call it
     as ``mesh, t = renumbered_for_audit(mesh)``: the two meshes are not meant to be held
-    together. From :data:`SPILL_CELLS` cells the file's numbers are :class:`SpilledIds`
+    together. Without the kernels' built module, only from :data:`RENUMBER_CELLS_JIT`
+    cells. From :data:`SPILL_CELLS` cells the file's numbers are :class:`SpilledIds`
     (kept in memory where no temporary file can be written)."""
     if mesh.n_cells < RENUMBER_CELLS or mesh.file_cell_ids is not None:
         return mesh, None
+    if mesh.n_cells < RENUMBER_CELLS_JIT and kernels.use_compiled(mesh.n_cells):
+        from .kernels import ahead
+
+        if not ahead.available():
+            return mesh, None
     t0 = time.perf_counter()
     if max(locality(mesh)) < POOR_LOCALITY:
         return mesh, None

@@ -177,6 +177,7 @@ def test_small_meshes_are_audited_in_the_files_order():
 
 def test_only_meshes_in_an_order_unrelated_to_space_are_renumbered(monkeypatch):
     monkeypatch.setattr(ordering, "RENUMBER_CELLS", 1)
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS_JIT", 1)
     grid = tet_box((40, 40, 3))  # cells and nodes row by row: already local (a cell
     span, step = ordering.locality(grid)  # spans one x step: 41 * 4 of 41 * 41 * 4 nodes)
     assert span < 0.03 and step < 0.01
@@ -192,8 +193,30 @@ def test_only_meshes_in_an_order_unrelated_to_space_are_renumbered(monkeypatch):
     assert again is new and t is None
 
 
+@pytest.mark.parametrize("built", [False, True])
+def test_without_the_built_kernels_only_larger_meshes_are_renumbered(monkeypatch, built):
+    # numba's cache serving the kernels: loading the renumbering's own costs more memory
+    # than it saves below RENUMBER_CELLS_JIT cells (see its comment)
+    from meshcheck.kernels import ahead
+
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numba")
+    monkeypatch.setattr(ahead, "available", lambda: built)
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS", 1)
+    shuffled = _shuffled(tet_box((12, 10, 3)), seed=4)
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS_JIT", shuffled.n_cells + 1)
+    got, t = ordering.renumbered_for_audit(shuffled)
+    assert (got is not shuffled) == built and (t is not None) == built
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS_JIT", shuffled.n_cells)
+    got, t = ordering.renumbered_for_audit(shuffled)
+    assert got is not shuffled and t is not None
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")  # no kernels to load: renumbered
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS_JIT", shuffled.n_cells + 1)
+    assert ordering.renumbered_for_audit(shuffled)[0] is not shuffled
+
+
 def test_large_renumbered_meshes_keep_the_files_numbers_in_a_temporary_file(monkeypatch):
     monkeypatch.setattr(ordering, "RENUMBER_CELLS", 1)
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS_JIT", 1)
     shuffled = _shuffled(tet_box((12, 10, 3)), seed=4)
     kept, _ = ordering.renumbered_for_audit(shuffled)
     assert isinstance(kept.file_cell_ids, np.ndarray)
@@ -324,6 +347,7 @@ def test_command_renumbers_large_meshes_and_reports_the_files_ids(tmp_path, monk
             "--no-cost", "--quiet", "--out"]
     main(args + [str(tmp_path / "file")])
     monkeypatch.setattr(ordering, "RENUMBER_CELLS", 1)
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS_JIT", 1)
     main(args + [str(tmp_path / "renumbered")])
     d = {k: json.loads((tmp_path / k / "m.audit.json").read_text())
          for k in ("file", "renumbered")}
