@@ -608,3 +608,25 @@ def test_compiled_edges_count_their_incidence_only_when_asked(monkeypatch):
     again = T._count_incidence(got.cell_edges, len(got))
     _same_int(ref.incidence, again[0], "incidence (numpy count)")
     _same_int(ref.incidence_starts, again[1], "starts (numpy count)")
+
+
+@pytest.mark.parametrize("k", [4, 5, 8])
+@pytest.mark.parametrize("dtype", [np.int32, np.int64])
+def test_corner_hash_is_the_numpy_paths_hash_of_the_sorted_corners(k, dtype):
+    # the numpy path's hash (topology._duplicate_cells): sum of sorted corner * mult,
+    # then h ^= h >> 29; four corners go through the sorting network, more by insertion
+    from meshcheck.kernels import topology as kt
+    from meshcheck.topology import _HASH_MULT
+
+    rng = np.random.default_rng(k)
+    cells = rng.integers(0, 50, (20_000, k)).astype(dtype)  # many ties within a cell
+    cells[:50] = rng.permuted(cells[50:100], axis=1)  # the same corners, another order
+    mult = _HASH_MULT[:k].copy()
+    got = np.empty(len(cells), np.uint64)
+    kt.corner_hash(cells, k, mult, got)
+    s = np.sort(cells, axis=1).astype(np.uint64)
+    with np.errstate(over="ignore"):
+        want = (s * mult).sum(axis=1, dtype=np.uint64)
+        want ^= want >> np.uint64(29)
+    np.testing.assert_array_equal(got, want)
+    np.testing.assert_array_equal(got[:50], got[50:100])

@@ -895,7 +895,24 @@ def min_edge_at_nodes(nodes, length, hmin):
 @njit
 def corner_hash(cells, k, mult, out):
     """64-bit multiplicative hash of the sorted corners cells[:, :k] of every cell
-    (the numpy path's: sum of sorted corner * mult, then h ^= h >> 29)."""
+    (the numpy path's: sum of sorted corner * mult, then h ^= h >> 29).  Four corners
+    (tetrahedra) are sorted by a five-comparator network of minima and maxima, free of
+    branches (4.77M tets: 0.105 -> 0.03 s), more by insertion."""
+    if k == 4:
+        m0, m1, m2, m3 = mult[0], mult[1], mult[2], mult[3]
+        for c in range(cells.shape[0]):
+            a, b = np.int64(cells[c, 0]), np.int64(cells[c, 1])
+            d, e = np.int64(cells[c, 2]), np.int64(cells[c, 3])
+            a, b = min(a, b), max(a, b)
+            d, e = min(d, e), max(d, e)
+            a, d = min(a, d), max(a, d)
+            b, e = min(b, e), max(b, e)
+            b, d = min(b, d), max(b, d)
+            h = (np.uint64(a) * m0 + np.uint64(b) * m1 + np.uint64(d) * m2
+                 + np.uint64(e) * m3)
+            h ^= h >> np.uint64(29)
+            out[c] = h
+        return
     s = np.empty(k, np.int64)
     for c in range(cells.shape[0]):
         for i in range(k):
