@@ -165,8 +165,12 @@ def _surface_geometry(points: np.ndarray, triangles: np.ndarray):
     adj = (order[np.column_stack([start[two], start[two] + 1])] // 3).astype(np.int64)
     del order, start, two
     adj = np.sort(adj[adj[:, 0] != adj[:, 1]], axis=1)
-    pairs = fn[adj]
-    ang = np.abs(np.arccos(np.clip(np.dot(pairs[:, 0] * pairs[:, 1], [1.0] * 3), -1.0, 1.0)))
+    # the angles a chunk of pairs at a time (no (n_a, 2, 3) array of their normals)
+    ang = np.empty(len(adj))
+    for s in range(0, len(adj), _FIT_CHUNK):
+        pairs = fn[adj[s:s + _FIT_CHUNK]]
+        ang[s:s + len(pairs)] = np.abs(np.arccos(np.clip(
+            np.dot(pairs[:, 0] * pairs[:, 1], [1.0] * 3), -1.0, 1.0)))
     return fn, area, adj, ang, corner
 
 

@@ -254,10 +254,16 @@ def _geometry_cases(sphere, cylinder):
     return out
 
 
-def test_surface_geometry_equals_trimesh(sphere, cylinder):
+@pytest.mark.parametrize("chunk", [None, 7])
+def test_surface_geometry_equals_trimesh(sphere, cylinder, chunk, monkeypatch):
     """Normals, areas, adjacency, adjacency angles and corner angles computed without
-    trimesh equal trimesh's, bit for bit (adjacent pairs compared as sorted rows)."""
+    trimesh equal trimesh's, bit for bit (adjacent pairs compared as sorted rows); also
+    computed a few triangles and pairs at a time."""
+    import meshcheck.curvature as cv
     from meshcheck.curvature import _surface_geometry, _trimesh_geometry
+
+    if chunk:
+        monkeypatch.setattr(cv, "_FIT_CHUNK", chunk)
 
     for surf in _geometry_cases(sphere, cylinder):
         fn, area, adj, ang, corner = _surface_geometry(surf.points, surf.triangles)
