@@ -37,8 +37,9 @@ from .advice import region_runs
 from .mesh import CellBlock, Mesh
 from .threads import MAX_WORKERS, thread_map
 
-__all__ = ["RENUMBER_CELLS", "RENUMBER_CELLS_JIT", "POOR_LOCALITY", "SPILL_CELLS", "SpilledIds", "morton_keys",
-           "point_order", "sorted_cells", "renumbered", "locality", "renumbered_for_audit"]
+__all__ = ["RENUMBER_CELLS", "RENUMBER_CELLS_JIT", "POOR_LOCALITY", "SPILL_CELLS",
+           "SpilledIds", "morton_keys", "point_order", "sorted_cells", "renumbered",
+           "locality", "renumbered_for_audit"]
 
 #: meshes with at least this many cells are renumbered before an audit of a file (the
 #: size from which the compiled kernels serve, :data:`meshcheck.kernels.MIN_CELLS`)

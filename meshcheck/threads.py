@@ -109,7 +109,9 @@ def no_huge_page_advice() -> bool:
     median wall): 4.77M tets 4.33 / 4.50 -> 3.71 / 3.92 s (analysis 3.30 -> 2.58 s, 5
     runs; system CPU 2.0-2.6 -> 0.9-1.2 s under ``time``), 966k tets 1.30 / 1.31 -> 1.14 /
     1.18 s, 1M hexahedra 1.95 / 2.04 -> 1.92 / 1.94 s, 966k tetra10 2.12 / 2.28 -> 2.08 /
-    2.15 s (4 runs each), peaks within 7 MiB."""
+    2.15 s (4 runs each), peaks within 7 MiB.  The gain depends on how fragmented free
+    memory is: alternating the switch alone later (5 runs each), 4.77M tets 3.68-4.83 ->
+    3.61-3.76 s, 966k tets 1.02-1.10 and 1.03-1.08 s (no change)."""
     try:
         from numpy._core.multiarray import _set_madvise_hugepage
     except ImportError:
