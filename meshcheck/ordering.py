@@ -253,7 +253,8 @@ def renumbered_for_audit(mesh: Mesh) -> tuple[Mesh, float | None]:
     as ``mesh, t = renumbered_for_audit(mesh)``: the two meshes are not meant to be held
     together. Without the kernels' built module, only from :data:`RENUMBER_CELLS_JIT`
     cells. From :data:`SPILL_CELLS` cells the file's numbers are :class:`SpilledIds`
-    (kept in memory where no temporary file can be written)."""
+    (kept in memory where no temporary file can be written, or where the system has no
+    ``preadv``)."""
     if mesh.n_cells < RENUMBER_CELLS or mesh.file_cell_ids is not None:
         return mesh, None
     if mesh.n_cells < RENUMBER_CELLS_JIT and kernels.use_compiled(mesh.n_cells):
@@ -265,7 +266,7 @@ def renumbered_for_audit(mesh: Mesh) -> tuple[Mesh, float | None]:
     if max(locality(mesh)) < POOR_LOCALITY:
         return mesh, None
     out = renumbered(mesh)
-    if out.n_cells >= SPILL_CELLS:
+    if out.n_cells >= SPILL_CELLS and hasattr(os, "preadv"):  # (not on Windows)
         try:
             out = dataclasses.replace(out, file_point_ids=SpilledIds(out.file_point_ids),
                                       file_cell_ids=SpilledIds(out.file_cell_ids))

@@ -235,6 +235,15 @@ def test_large_renumbered_meshes_keep_the_files_numbers_in_a_temporary_file(monk
 
     monkeypatch.setattr(ordering.tempfile, "TemporaryFile", no_temporary_file)
     fallback, _ = ordering.renumbered_for_audit(shuffled)  # kept in memory instead
+    assert isinstance(fallback.file_cell_ids, np.ndarray)
+    assert np.array_equal(fallback.file_cell_ids, kept.file_cell_ids)
+    monkeypatch.undo()
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS", 1)
+    monkeypatch.setattr(ordering, "RENUMBER_CELLS_JIT", 1)
+    monkeypatch.setattr(ordering, "SPILL_CELLS", 1)
+    monkeypatch.delattr(ordering.os, "preadv")  # e.g. Windows: kept in memory
+    fallback, _ = ordering.renumbered_for_audit(shuffled)
+    assert isinstance(fallback.file_cell_ids, np.ndarray)
     assert np.array_equal(fallback.file_cell_ids, kept.file_cell_ids)
 
 
