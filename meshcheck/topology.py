@@ -719,8 +719,15 @@ def _join_crowded_faces(mesh: Mesh, faces: Faces, n_comp: int, comp: np.ndarray
             got[:, table < 0] = n
             keys.append(np.sort(got.reshape(-1, 4), axis=1))
             owners.append(np.repeat(cand + int(off) + s, len(table)))
-    _, inv = np.unique(np.concatenate(keys), axis=0, return_inverse=True)
-    inv = inv.ravel()
+    # equal sorted corner rows grouped by a sort of two packed keys (np.unique(axis=0)
+    # is far slower on many rows, e.g. a whole mesh listed twice)
+    rows = np.concatenate(keys)
+    w = n + 1
+    hi, lo = rows[:, 0] * w + rows[:, 1], rows[:, 2] * w + rows[:, 3]
+    order = np.lexsort((lo, hi))
+    hi, lo = hi[order], lo[order]
+    inv = np.empty(len(rows), np.int64)
+    inv[order] = np.cumsum(np.r_[True, (hi[1:] != hi[:-1]) | (lo[1:] != lo[:-1])]) - 1
     which = np.full(inv.max() + 1, -1, np.int64)
     which[inv[:len(fids)]] = np.arange(len(fids))
     owner = np.concatenate(owners)[len(fids):]

@@ -315,3 +315,17 @@ def test_a_duplicated_cell_joins_its_neighbours_in_any_numbering(path, first, mo
     assert not topo.component.any()
     assert topo.component_volume[0] == pytest.approx(1.0 + abs(topo.cell_volume[0 if first
                                                                                else -1]))
+
+
+@pytest.mark.parametrize("path", ["numpy", "numba"])
+def test_a_mesh_listed_twice_is_one_component(path, monkeypatch):
+    # every interior face has four cells and every boundary face two (the copies): one
+    # part of twice the volume, every cell a duplicate
+    monkeypatch.setenv("MESHCHECK_KERNELS", path)
+    box = tet_box((4, 3, 3))
+    cells = box.blocks[0].cells
+    twice = np.vstack([cells, cells[:, ::-1]])
+    topo = build_topology(Mesh(box.points, (CellBlock("tetra", twice, np.ones(len(twice))),)))
+    assert len(topo.nonmanifold_faces) > 0 and len(topo.duplicate_cells) == len(cells)
+    assert topo.n_components == 1
+    assert topo.component_volume[0] == pytest.approx(2.0)
