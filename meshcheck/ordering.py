@@ -35,7 +35,7 @@ import numpy as np
 from . import kernels
 from .advice import region_runs
 from .mesh import CellBlock, Mesh
-from .threads import MAX_WORKERS, thread_map
+from .threads import MAX_WORKERS, ranges, thread_map
 
 __all__ = ["RENUMBER_CELLS", "RENUMBER_CELLS_JIT", "POOR_LOCALITY", "SPILL_CELLS",
            "SpilledIds", "morton_keys", "point_order", "sorted_cells", "renumbered",
@@ -182,8 +182,7 @@ def sorted_cells(cells: np.ndarray, n_corners: int, new_id: np.ndarray, n_points
 
 def _halves(m: int) -> list[tuple[int, int]]:
     """Two row ranges of ``m`` rows for the two threads (one when it is small)."""
-    h = m // 2 if m >= 2 * kernels.MIN_CELLS and MAX_WORKERS > 1 else m
-    return [(0, h), (h, m)] if h < m else [(0, m)]
+    return ranges(m, 2 if m >= 2 * kernels.MIN_CELLS and MAX_WORKERS > 1 else 1)
 
 
 def _points(points: np.ndarray, old: np.ndarray) -> np.ndarray:
