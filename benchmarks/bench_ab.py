@@ -2,7 +2,7 @@
 
 Usage::
 
-    python benchmarks/bench_ab.py MESH --rev REV [--runs 3] [--tree DIR]
+    python benchmarks/bench_ab.py MESH --rev REV [--runs 3] [--tree DIR] [--pause S]
 
 The project's machine changes speed by tens of percent within the hour (the same audit
 of 4.77M tets took 9.5 s at one time of a day and 12.5-14 s an hour later, the
@@ -14,6 +14,14 @@ fresh processes, after writing each tree's bytecode (``compileall``, as an insta
 package has it) and one untimed run of each (which fills its numba cache), and prints
 for both the best and median wall time, the best analysis time (from the JSON report)
 and the highest peak resident memory, and the ratios new / old.
+
+``--pause S`` waits S seconds before each timed run. The project's machine is a virtual
+machine whose host takes back the memory its guest leaves free for a few seconds (free
+page reporting), and a page it must then supply anew costs about 2 ms per MiB at its first
+touch (a 529 MB file written through the page cache: 0.12 s right after another process
+freed its memory, 1.2-1.4 s after a pause of 4 s). Runs back to back measure the first
+case, runs after a pause of 5 s the second, which is that of an audit started on a machine
+left idle.
 """
 from __future__ import annotations
 
@@ -25,6 +33,7 @@ import statistics
 import subprocess
 import sys
 import tempfile
+import time
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
@@ -68,6 +77,8 @@ def main(argv=None) -> int:
     ap.add_argument("--tree", type=Path, default=HERE.parent,
                     help="source tree of the version under test (default: this checkout)")
     ap.add_argument("--runs", type=int, default=3, help="timed runs of each version")
+    ap.add_argument("--pause", type=float, default=0.0,
+                    help="seconds to wait before each timed run (see above)")
     args = ap.parse_args(argv)
     repo = HERE.parent
     base = Path(tempfile.mkdtemp(prefix="meshcheck-ab-")) / "tree"
@@ -84,13 +95,15 @@ def main(argv=None) -> int:
         runs = {k: [] for k in trees}
         for _ in range(max(1, args.runs)):
             for name, tree in trees.items():
+                time.sleep(args.pause)
                 runs[name].append(audit_once(tree, args.mesh))
     finally:
         subprocess.run(["git", "-C", str(repo), "worktree", "remove", "--force", str(base)],
                        capture_output=True)
         shutil.rmtree(base.parent, ignore_errors=True)
     print(f"mesh: {args.mesh.name}; old = {args.rev}, new = {trees['new']}; "
-          f"{len(runs['old'])} alternating runs each")
+          f"{len(runs['old'])} alternating runs each"
+          + (f", each after a pause of {args.pause:g} s" if args.pause else ""))
     print(f"{'version':8s} {'wall best':>10s} {'median':>8s} {'analysis best':>14s} "
           f"{'peak MiB':>9s}")
     figures = {}

@@ -62,6 +62,7 @@ from typing import Callable
 import numpy as np
 
 from . import kernels
+from .bulkfile import BulkFile
 from .errors import SettingsError
 from .mesh import Mesh
 from .topology import Topology
@@ -428,7 +429,10 @@ def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "tar
     def lit(text: str) -> np.ndarray:
         return np.frombuffer(text.encode(), np.uint8)
 
-    with open(path, "wb") as fh:
+    # the file's size at most (padded fields): large ones go past the page cache
+    bound = sum(len(c) * (8 + c.shape[1] * (pts.shape[1] + vals.shape[1] + 2))
+                for _, c in _corners(mesh))
+    with BulkFile(path, bound) as fh:
         fh.write(f'View "{name}" {{\n'.encode())
         for b, c in _corners(mesh):
             nc = c.shape[1]
@@ -449,7 +453,7 @@ def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "tar
                         parts.append(np.broadcast_to(comma, (len(cc), 1)))
                 parts.append(np.broadcast_to(tail, (len(cc), len(tail))))
                 rows = np.hstack(parts).ravel()
-                fh.write(rows[rows != 0].tobytes())
+                fh.write(rows[rows != 0])
         fh.write(b"};\n")
     return path
 

@@ -11,7 +11,8 @@ block, compressed size of each block, then the compressed blocks).  Arrays are
 compressed one at a time, block by block on all cores, straight from the caller's
 memory; at level 0 (large meshes) nothing is compressed and the bytes are written
 straight from the arrays.  The pieces go to a writer thread, so the file writes
-(which release the GIL) overlap the making of the next array.  Connectivity is
+(which release the GIL) overlap the making of the next array; a large uncompressed
+file is written past the page cache (:mod:`meshcheck.bulkfile`).  Connectivity is
 written as Int32 when the node count allows.
 
 The arrays are appended in the reverse of their tags' order in the XML (the cells'
@@ -33,6 +34,8 @@ from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
+
+from .bulkfile import BulkFile
 
 __all__ = ["write_vtu", "Deferred", "Chunked", "VTK_CELL_TYPES"]
 
@@ -118,6 +121,13 @@ class Chunked(Deferred):
         if got.shape != (hi - lo,):
             raise ValueError(f"chunk {lo}..{hi} has shape {got.shape}")
         return got.view(np.uint8)[i - lo * size:j - lo * size]
+
+
+def _nbytes(values, rows: int) -> int:
+    """Bytes of an array or of a :class:`Deferred` of ``rows`` rows."""
+    if isinstance(values, Deferred):
+        return rows * values.ncomp * values.dtype.itemsize
+    return values.nbytes
 
 
 def _raw(values):
@@ -281,7 +291,11 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
                 continue
         raise failed[0] if failed else OSError(f"the writer of {path} stopped")
 
-    with open(path, "wb") as fh, ThreadPoolExecutor(max_workers=workers) as pool:
+    # an uncompressed file's size is known: large ones go past the page cache (bulkfile)
+    tail = b"\n</AppendedData>\n</VTKFile>\n"
+    size = (len(head) + len(tail) + sum(8 + _nbytes(v, rows) for _, v, rows in arrays)
+            if level == 0 else 0)
+    with BulkFile(path, size) as fh, ThreadPoolExecutor(max_workers=workers) as pool:
         fh.write(head)
         writer = threading.Thread(target=drain, args=(fh,), daemon=True)
         writer.start()
@@ -313,7 +327,6 @@ def write_vtu(path: str | Path, points: np.ndarray, blocks: list[tuple[str, np.n
             writer.join()
         if failed:
             raise failed[0]
-        fh.write(b"\n</AppendedData>\n</VTKFile>\n")
-        fh.seek(0)
-        fh.write(head)  # the offsets, now known (same length as before)
+        fh.write(tail)
+        fh.pwrite(head, 0)  # the offsets, now known (same length as before)
     return path

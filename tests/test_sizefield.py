@@ -201,6 +201,23 @@ def test_pos_writer_equals_number_by_number_formatting(tmp_path, scale):
     assert pos.read_text() == _pos_reference(mesh, vals, scale)
 
 
+def test_pos_written_past_the_page_cache_is_the_same_text(tmp_path, monkeypatch):
+    # a large view goes through meshcheck.bulkfile's direct writes (here: any size, 4 KiB
+    # at a time): the text of number-by-number formatting all the same
+    from meshcheck import bulkfile
+    monkeypatch.setattr(bulkfile, "DIRECT_MIN_BYTES", 0)
+    monkeypatch.setattr(bulkfile, "BUFFER_BYTES", 4096)
+    calls = []
+    real = bulkfile._direct_write
+    monkeypatch.setattr(bulkfile, "_direct_write", lambda fd, mv: calls.append(1) or real(fd, mv))
+    mesh = tet_box((4, 3, 3), size=(0.7, 0.3, 0.2))
+    vals = 0.01 + np.random.default_rng(4).random(mesh.n_points) / 7
+    pos = write_pos(tmp_path / "d.pos", mesh, vals, scale=1e-3, chunk=50)
+    assert pos.read_text() == _pos_reference(mesh, vals, 1e-3)
+    if bulkfile.supports_direct(tmp_path):
+        assert len(calls) == pos.stat().st_size // 4096
+
+
 def test_scenario_sums_equal_a_pass_per_frequency():
     # the sorted step sums of scenario_systems against the plain loop over frequencies
     from meshcheck.sizefield import GMSH_TET_RATIOS, _scenario_terms, _step_sums

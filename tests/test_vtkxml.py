@@ -275,8 +275,6 @@ def test_meshio_reads_arrays_whose_file_order_offsets_collide(tmp_path):
 def test_writer_errors_reach_the_caller(tmp_path, monkeypatch):
     # an array that fails while being made, and a write that fails on the writer thread:
     # both raised to the caller, nothing hangs
-    import builtins
-
     from meshcheck import vtkxml
     from meshcheck.vtkxml import Deferred
     mesh = tet_box((3, 3, 3))
@@ -289,26 +287,16 @@ def test_writer_errors_reach_the_caller(tmp_path, monkeypatch):
                   cell_data={"x": Deferred(broken, np.float32)}, level=0)
     monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 11)
 
-    class Full:
-        def __init__(self, fh):
-            self.fh, self.n = fh, 0
+    class Full(vtkxml.BulkFile):
+        n = 0
 
         def write(self, data):
-            self.n += 1
-            if self.n == 5:
+            Full.n += 1
+            if Full.n == 5:
                 raise OSError("disk full")
-            return self.fh.write(data)
+            return super().write(data)
 
-        def __getattr__(self, name):
-            return getattr(self.fh, name)
-
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            return self.fh.__exit__(*exc)
-
-    monkeypatch.setattr(vtkxml, "open", lambda *a: Full(builtins.open(*a)), raising=False)
+    monkeypatch.setattr(vtkxml, "BulkFile", Full)
     with pytest.raises(OSError, match="disk full"):
         write_vtu(tmp_path / "b.vtu", mesh.points, cells,
                   cell_data={"v": np.zeros(len(cells[0][1]))}, level=0)
@@ -405,3 +393,27 @@ def test_level0_connectivity_in_pieces_across_blocks(tmp_path, monkeypatch):
                      level=0)
     back = meshio.read(path)
     assert np.array_equal(back.cells[0].data, tets) and np.array_equal(back.cells[1].data, hexes)
+
+
+@pytest.mark.parametrize("level", [0, 1])
+def test_direct_writes_give_the_same_file(tmp_path, monkeypatch, level):
+    # a file written past the page cache (meshcheck.bulkfile, tiny buffers so that the
+    # arrays cross many of them) has the bytes of the ordinary one, read back by both
+    from meshcheck import bulkfile
+    mesh, b, cd, pd = _level0_case(tet10_box)
+    plain = write_vtu(tmp_path / "plain.vtu", mesh.points, [(b.type, b.cells)],
+                      cell_data=cd, point_data=pd, level=level)
+    monkeypatch.setattr(bulkfile, "DIRECT_MIN_BYTES", 0)
+    monkeypatch.setattr(bulkfile, "BUFFER_BYTES", 8192)
+    monkeypatch.setattr(bulkfile, "PROBE_BYTES", 1 << 40)
+    used = []
+    real = bulkfile._direct_write
+    monkeypatch.setattr(bulkfile, "_direct_write", lambda fd, mv: used.append(1) or real(fd, mv))
+    direct = write_vtu(tmp_path / "direct.vtu", mesh.points, [(b.type, b.cells)],
+                       cell_data=cd, point_data=pd, level=level)
+    assert direct.read_bytes() == plain.read_bytes()
+    if level == 0 and bulkfile.supports_direct(tmp_path):
+        assert len(used) >= plain.stat().st_size // 8192 - 1  # written directly
+    elif level == 1:
+        assert not used  # a compressed file's size is unknown: the ordinary way
+    _read_back_by_both(direct, mesh.points, b.cells, cd, pd)
