@@ -313,3 +313,32 @@ def test_used_vertices_count_the_corners_of_the_grid(quadratic):
     topo = build_topology(mesh)
     assert len(topo.unused_nodes) == 1
     assert _used_vertices(mesh, topo) == 3 * 4 * 2
+
+
+@pytest.mark.parametrize("spread", [0, 3, 70], ids=["uniform", "few-orders", "many-orders"])
+def test_edge_orders_equal_the_edge_to_cell_reduction(spread):
+    # the orders scattered one at a time (or, above 64 distinct, the edge-to-cell table's
+    # reduction) equal the maximum over each edge's cells read from the incidence table
+    from meshcheck.cost import entity_orders
+    mesh = mixed_hex_wedge((3, 2, 2))
+    topo = build_topology(mesh)
+    q = 1 + np.random.default_rng(spread).integers(0, spread + 1, mesh.n_cells)
+    q_edge, q_face = entity_orders(mesh, topo, q)
+    inc, st = topo.edges.incidence, topo.edges.incidence_starts
+    ref = np.array([q[inc[a:b]].max() for a, b in zip(st, np.append(st[1:], len(inc)))])
+    assert np.array_equal(q_edge, ref)
+    fc = topo.faces.cells
+    assert np.array_equal(q_face, [q[c[c >= 0]].max() for c in fc])
+
+
+def test_face_edges_are_the_sides_of_each_face():
+    # each face's edge ids name exactly the node pairs of its sides (searched by nodes)
+    from meshcheck.cost import build_adjacency
+    mesh = mixed_hex_wedge((3, 2, 2))
+    topo = build_topology(mesh)
+    adj = build_adjacency(mesh, topo)
+    pairs = {tuple(sorted(map(int, e))): i for i, e in enumerate(topo.edges.nodes)}
+    for f, fe in zip(topo.faces.nodes, adj.face_edges):
+        f = [int(v) for v in f if v >= 0]
+        sides = sorted(pairs[tuple(sorted((f[i], f[(i + 1) % len(f)])))] for i in range(len(f)))
+        assert sorted(int(e) for e in fe if e >= 0) == sides
