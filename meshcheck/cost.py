@@ -276,6 +276,9 @@ class Adjacency:
     cell_corners : (n_cells,) int64 corner count of every cell.
     cell_kind : (n_cells,) int8 index into ``kinds`` (linear cell type names).
     kinds : tuple of linear cell type names present.
+    cell_faces : (n_cells, 2) int64 faces listing each cell as one of their two cells,
+        quadrilaterals then triangles ((n_cells, 0) in 2D): the face terms of a cell's
+        unknowns at a uniform order.
     """
 
     dim: int
@@ -289,6 +292,7 @@ class Adjacency:
     cell_corners: np.ndarray
     cell_kind: np.ndarray
     kinds: tuple[str, ...]
+    cell_faces: np.ndarray | None = None
 
 
 #: faces handled at a time where a per-face table is gathered (bounded scratch memory)
@@ -321,12 +325,12 @@ def _face_edges(mesh: Mesh, topo: Topology) -> np.ndarray:
     out = np.full((len(faces), 4), -1, index_type(max(len(topo.edges), 1)))
     for part, (bi, off) in _block_parts(mesh, c0):
         ce = topo.edges.cell_edges[bi]
+        flat, k = ce.reshape(-1), ce.shape[1]
         table = _face_edge_table(mesh.blocks[bi].type)
-        pos = np.arange(len(c0)) if part is None else part
-        for s in range(0, len(pos), _FACE_CHUNK):
-            p = pos[s:s + _FACE_CHUNK]
+        for s in range(0, len(c0) if part is None else len(part), _FACE_CHUNK):
+            p = slice(s, s + _FACE_CHUNK) if part is None else part[s:s + _FACE_CHUNK]
             t = table[loc[p]]
-            got = ce[(c0[p] - off)[:, None], np.maximum(t, 0)]
+            got = flat[(c0[p].astype(np.int64) - off)[:, None] * k + np.maximum(t, 0)]
             got[t < 0] = -1
             out[p] = got
     return out
@@ -361,15 +365,22 @@ def build_adjacency(mesh: Mesh, topo: Topology) -> Adjacency:
         fc = np.where(tri, 3, 4).astype(np.int64)
         face_edges = _face_edges(mesh, topo)
         faces_per_edge = np.zeros(len(edges), np.int64)
-        face_per_node = np.zeros(n_pts, np.int64)
         for s in range(0, len(faces), _FACE_CHUNK):
             fe = face_edges[s:s + _FACE_CHUNK]
-            faces_per_edge += np.bincount(fe[fe >= 0], minlength=len(edges))
-            fn = faces.nodes_of(slice(s, s + _FACE_CHUNK))
-            face_per_node += np.bincount(fn[fn >= 0], minlength=n_pts)
+            faces_per_edge += np.bincount(fe.reshape(-1) + 1, minlength=len(edges) + 1)[1:]
+        # every corner of a face lies on two of its sides: the faces at a node are half
+        # the faces of the edges at it (exact; no pass over the faces' nodes)
+        face_per_node = np.bincount(edges.nodes.ravel(), np.repeat(faces_per_edge, 2),
+                                    minlength=n_pts).astype(np.int64) // 2
         chi_face = 1 - faces.count.astype(np.int64)
         chi_edge = 1 - faces_per_edge + cells_per_edge
         chi_vertex = 1 - edge_per_node + face_per_node - cell_per_node
+        n, c = mesh.n_cells, faces.cells
+        kind = tri.view(np.int8)  # 0 quadrilateral, 1 triangle
+        cell_faces = np.bincount(2 * c[:, 0].astype(np.int64) + kind, minlength=2 * n)
+        second = np.where(c[:, 1] >= 0, 2 * c[:, 1].astype(np.int64) + kind, 2 * n)
+        cell_faces += np.bincount(second, minlength=2 * n + 1)[:2 * n]
+        cell_faces = cell_faces.reshape(n, 2)
     else:
         face_edges = np.zeros((0, 4), np.int64)
         fc = np.zeros(0, np.int64)
@@ -377,8 +388,9 @@ def build_adjacency(mesh: Mesh, topo: Topology) -> Adjacency:
         chi_face = np.zeros(0, np.int64)
         chi_edge = 1 - cells_per_edge
         chi_vertex = 1 - edge_per_node + cell_per_node
+        cell_faces = np.zeros((mesh.n_cells, 0), np.int64)
     return Adjacency(mesh.dim, vertices, chi_vertex[vertices], chi_edge, chi_face, face_edges,
-                     fc, tri, cell_corners, cell_kind, kinds)
+                     fc, tri, cell_corners, cell_kind, kinds, cell_faces)
 
 
 #: at most this many distinct cell orders are scattered one order at a time
@@ -458,6 +470,46 @@ def system_size(mesh: Mesh, topo: Topology, cell_order, condensed: bool = True,
     q = np.broadcast_to(np.asarray(cell_order, dtype=np.int64), (mesh.n_cells,))
     if mesh.n_cells and q.min() < 1:
         raise ValueError("cell orders must be at least 1")
+    if mesh.n_cells and adj.cell_faces is not None and (np.ndim(cell_order) == 0
+                                                        or q.min() == q.max()):
+        return _uniform_system(mesh, topo, adj, int(q[0]), condensed)
+    return _system_size(mesh, topo, q, condensed, adj)
+
+
+def _uniform_system(mesh: Mesh, topo: Topology, adj: Adjacency, p: int,
+                    condensed: bool) -> SystemSize:
+    """:func:`system_size` with every cell at order ``p``: every edge, triangle and
+    quadrilateral then has the same unknowns, so the sums over them are star-count sums
+    times constants, and a cell's coupled unknowns follow from its type and face counts
+    (4.77M tets: 1.5 s per order before)."""
+    w_e = p - 1
+    nnz = int(adj.chi_vertex.sum()) + (2 + w_e) ** 2 * int(adj.chi_edge.sum())
+    ndof = len(adj.vertices) + w_e * len(topo.edges)
+    edges_of = np.concatenate([np.full(len(ce), ce.shape[1], np.int64)
+                               for ce in topo.edges.cell_edges])
+    t_cell = adj.cell_corners + w_e * edges_of
+    if adj.dim == 3 and len(adj.chi_face):
+        w_quad, w_tri = (p - 1) ** 2, (p - 1) * (p - 2) // 2
+        n_tri = int(np.count_nonzero(adj.face_tri))
+        ndof += n_tri * w_tri + (len(adj.face_tri) - n_tri) * w_quad
+        chi_tri = int(adj.chi_face[adj.face_tri].sum())
+        chi_quad = int(adj.chi_face.sum()) - chi_tri
+        nnz += (3 + 3 * w_e + w_tri) ** 2 * chi_tri + (4 + 4 * w_e + w_quad) ** 2 * chi_quad
+        t_cell += adj.cell_faces @ np.array([w_quad, w_tri], np.int64)
+    w_cell = _interior_table(adj.kinds, p)[adj.cell_kind, p]
+    n_int = int(w_cell.sum())
+    n_loc = t_cell + w_cell
+    if not condensed:
+        t_cell = n_loc
+        ndof += n_int
+    nnz += int(np.dot(t_cell, t_cell))
+    return SystemSize(int(ndof), int(nnz), n_int, bool(condensed), int(np.dot(n_loc, n_loc)),
+                      int(np.dot(n_loc * n_loc, n_loc)))
+
+
+def _system_size(mesh: Mesh, topo: Topology, q: np.ndarray, condensed: bool,
+                 adj: Adjacency) -> SystemSize:
+    """:func:`system_size` for any orders ``q`` (n_cells,) int64."""
     q_edge, q_face = entity_orders(mesh, topo, q)
     w_edge = q_edge - 1
     # vertices: T = 1

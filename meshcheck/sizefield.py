@@ -539,9 +539,15 @@ def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
     vol = np.abs(topo.cell_volume)
     # new cells per old cell (the boundary share spread in proportion), and their size
     h_cell = []
+    size = np.ascontiguousarray(field.size, dtype=np.float64)
+    compiled = kernels.use_compiled(mesh.n_cells)
     for b, c in _corners(mesh):
+        if compiled:  # the same means, no (cells, corners) gather
+            from .kernels import sizefield as _ks
+            h_cell.append(_ks.corner_nanmean(b.cells, b.info.n_corners, size))
+            continue
         with np.errstate(divide="ignore", invalid="ignore"):
-            h_cell.append(np.nanmean(field.size[c], axis=1))
+            h_cell.append(np.nanmean(size[c], axis=1))
     h = np.concatenate(h_cell)
     n_new = vol * _cell_density(mesh, topo, field.mesher_size)
     total = estimate_cells(mesh, topo, field.mesher_size)
@@ -560,14 +566,35 @@ def scenario_systems(mesh: Mesh, topo: Topology, advice, field: SizeField,
         # the new cells are unstructured gmsh tetrahedra: the free tetrahedron factors
         a = (kind_factors("tetra", max_order, advice.settings.target) if
              advice.settings.correction_3d else np.ones(max_order))
-        limits = np.column_stack([c * table.max_kh(p, L / (a[p - 1] * h))
-                                  / (2 * np.pi * a[p - 1] * h) for p in range(1, max_order + 1)])
-        np.maximum.accumulate(limits, axis=1, out=limits)
-        sums = _step_sums(limits[:, :max_order - 1], n_new, f, _scenario_terms(ratios))
+        # the limits f_p = c t_max(p, L / (a_p h)) / (2 pi a_p h) of the orders below the
+        # highest (the steps), made and binned among the frequencies a chunk of cells at
+        # a time (no (cells, orders) table; ln(L / h) and c / (2 pi h) once per chunk)
+        steps = max_order - 1
+        fs = np.sort(f)
+        hist = np.zeros((steps, len(f) + 1))
+        buf = np.empty((max(steps, 1), min(_LIMIT_CHUNK, len(h))))
+        for s in range(0, len(h), _LIMIT_CHUNK):
+            e = min(s + _LIMIT_CHUNK, len(h))
+            ratio = L[s:e] / h[s:e]
+            if not np.all(ratio > 0):  # also False for NaN (as table.max_kh)
+                raise SettingsError("L/h ratios must be > 0")
+            log_r = np.log(ratio)
+            per_h = c[s:e] / (2 * np.pi * h[s:e])
+            rows = buf[:steps, :e - s]
+            for p in range(1, steps + 1):
+                kh = table.max_kh_log(p, log_r - math.log(a[p - 1]))
+                np.multiply(kh, per_h / a[p - 1], out=rows[p - 1])
+            np.maximum.accumulate(rows, axis=0, out=rows)
+            hist += _below_hist(rows.T, n_new[s:e], fs)
+        sums = _sums_of_hist(hist, f, float(n_new.sum()), _scenario_terms(ratios))
     nd, nz, a2, a3 = sums
     out = [SystemSize(int(round(nd[i])), int(round(nz[i])), 0, fixed_order is None,
                       int(round(a2[i])), int(round(a3[i]))) for i in range(len(f))]
     return out, float(n_new.sum())
+
+
+#: cells whose order limits :func:`scenario_systems` computes at a time (scratch in cache)
+_LIMIT_CHUNK = 1 << 16
 
 
 def _scenario_terms(ratios: TetRatios):
@@ -582,18 +609,38 @@ def _step_sums(thresholds: np.ndarray, weights: np.ndarray, frequencies: np.ndar
     q_i(f) = 1 + #{j : thresholds[i, j] < f} (rows non-decreasing).
 
     The sum telescopes over the order steps, g(q) = g(1) + sum_j [t_ij < f] (g(j+2) -
-    g(j+1)), so one sort per column and a search of the frequencies replace a pass
-    over the cells per frequency: O(P n log n + P m log n) for n cells, m frequencies.
+    g(j+1)), so a search of each threshold among the sorted frequencies replaces a pass
+    over the cells per frequency: O(P n log m) for n cells, m frequencies.
     """
-    n_steps = thresholds.shape[1]
+    f = np.asarray(frequencies, dtype=float)
+    hist = _below_hist(thresholds, weights, np.sort(f))
+    return _sums_of_hist(hist, f, float(np.sum(weights)), terms)
+
+
+def _below_hist(thresholds: np.ndarray, weights: np.ndarray, fs: np.ndarray) -> np.ndarray:
+    """(n_steps, len(fs) + 1): per step j, the weights of the cells binned at the first
+    of the sorted frequencies ``fs`` above t_ij (NaN: past the last); summable over
+    chunks of cells."""
+    out = np.empty((thresholds.shape[1], len(fs) + 1))
+    for j in range(thresholds.shape[1]):
+        out[j] = np.bincount(np.searchsorted(fs, thresholds[:, j], side="right"), weights,
+                             minlength=len(fs) + 1)
+    return out
+
+
+def _sums_of_hist(hist: np.ndarray, frequencies: np.ndarray, total: float,
+                  terms) -> list[np.ndarray]:
+    """:func:`_step_sums` from :func:`_below_hist` (of the frequencies sorted) and the
+    total weight."""
+    n_steps = hist.shape[0]
+    f = np.asarray(frequencies, dtype=float)
     qs = np.arange(1, n_steps + 2, dtype=float)
     gq = [np.asarray(g(qs), dtype=float) for g in terms]
-    total = float(weights.sum())
-    out = [np.full(len(frequencies), total * v[0]) for v in gq]
+    out = [np.full(len(f), total * v[0]) for v in gq]
+    by_f = np.argsort(f, kind="stable")
+    below = np.empty(len(f))
     for j in range(n_steps):
-        order = np.argsort(thresholds[:, j], kind="stable")
-        cum = np.concatenate([[0.0], np.cumsum(weights[order])])
-        below = cum[np.searchsorted(thresholds[order, j], frequencies, side="left")]
+        below[by_f] = np.cumsum(hist[j, :len(f)])  # weights of cells below each frequency
         for acc, v in zip(out, gq):
             acc += below * (v[j + 1] - v[j])
     return out

@@ -342,3 +342,52 @@ def test_face_edges_are_the_sides_of_each_face():
         f = [int(v) for v in f if v >= 0]
         sides = sorted(pairs[tuple(sorted((f[i], f[(i + 1) % len(f)])))] for i in range(len(f)))
         assert sorted(int(e) for e in fe if e >= 0) == sides
+
+
+def _listed_twice(mesh: Mesh) -> Mesh:
+    """The mesh with its first cell listed again (faces of three cells: crowded)."""
+    b = mesh.blocks[0]
+    return Mesh(mesh.points, (CellBlock(b.type, np.vstack([b.cells, b.cells[:1]]),
+                                        np.append(b.region, b.region[:1])),) + mesh.blocks[1:])
+
+
+@pytest.mark.parametrize("condensed", [True, False], ids=["condensed", "full"])
+@pytest.mark.parametrize("name", [*MESHES, "tet listed twice"])
+def test_uniform_order_sums_equal_the_entity_by_entity_count(name, condensed):
+    # the closed sums at one order for every cell against the count entity by entity
+    # (which the brute-force pair count above checks), also where faces have 3 cells
+    from meshcheck.cost import _system_size, _uniform_system, build_adjacency
+    mesh = _listed_twice(MESHES["tet"]()) if name == "tet listed twice" else MESHES[name]()
+    topo = build_topology(mesh)
+    adj = build_adjacency(mesh, topo)
+    for p in range(1, 6):
+        q = np.full(mesh.n_cells, p, np.int64)
+        assert _uniform_system(mesh, topo, adj, p, condensed) == \
+            _system_size(mesh, topo, q, condensed, adj), p
+
+
+@pytest.mark.parametrize("name", ["tet", "hex", "wedge", "pyramid", "hex+wedge",
+                                  "tet listed twice", "collapsed tet"])
+def test_vertex_star_counts_equal_a_count_over_face_nodes(name):
+    # chi(v) = 1 - edges + faces - cells at v, the faces at v counted over the faces'
+    # node lists (the adjacency halves the faces of the edges at v instead)
+    from meshcheck.cost import build_adjacency
+    if name == "tet listed twice":
+        mesh = _listed_twice(MESHES["tet"]())
+    elif name == "collapsed tet":  # one tetrahedron with a repeated node
+        m = MESHES["tet"]()
+        cells = m.blocks[0].cells.copy()
+        cells[0, 3] = cells[0, 2]
+        mesh = Mesh(m.points, (CellBlock("tetra", cells, m.blocks[0].region),))
+    else:
+        mesh = MESHES[name]()
+    topo = build_topology(mesh)
+    adj = build_adjacency(mesh, topo)
+    n = mesh.n_points
+    fn = topo.faces.nodes
+    faces_at = np.bincount(fn[fn >= 0], minlength=n)
+    edges_at = np.bincount(topo.edges.nodes.ravel(), minlength=n)
+    cells_at = sum(np.bincount(b.cells[:, :b.info.n_corners].ravel(), minlength=n)
+                   for b in mesh.blocks)
+    ref = 1 - edges_at + faces_at - cells_at
+    assert np.array_equal(adj.chi_vertex, ref[adj.vertices])

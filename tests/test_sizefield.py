@@ -225,8 +225,10 @@ def test_scenario_sums_equal_a_pass_per_frequency():
     rng = np.random.default_rng(7)
     thr = np.sort(rng.uniform(50, 3000, (500, 6)), axis=1)
     thr[::37, 3:] = np.inf
+    thr[::53, 4:] = np.nan  # never below a frequency
     w = rng.uniform(0.5, 2.0, 500)
-    f = np.concatenate([rng.uniform(10, 4000, 40), thr[:5, 2]])  # incl. ties with thresholds
+    # unsorted, ties with thresholds, a repeated frequency
+    f = np.concatenate([rng.uniform(10, 4000, 40), thr[:5, 2], thr[:1, 2]])
     terms = _scenario_terms(GMSH_TET_RATIOS)
     fast = _step_sums(thr, w, f, terms)
     for i, fi in enumerate(f):
