@@ -418,13 +418,20 @@ def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "tar
     P = (mesh.points[idx] / scale).tolist()
     pts = np.zeros((mesh.n_points, 1), np.uint8)
     vals = np.zeros((mesh.n_points, 1), np.uint8)
+    plen = np.zeros(mesh.n_points, np.int64)
+    vlen = np.zeros(mesh.n_points, np.int64)
     if len(idx):
-        pw = _fixed_width(["%.8g,%.8g,%.8g" % tuple(x) for x in P])
-        vw = _fixed_width(["%.5g" % x for x in v[idx].tolist()])
+        ps = ["%.8g,%.8g,%.8g" % tuple(x) for x in P]
+        vs = ["%.5g" % x for x in v[idx].tolist()]
+        pw, vw = _fixed_width(ps), _fixed_width(vs)
         pts = np.zeros((mesh.n_points, pw.shape[1]), np.uint8)
         vals = np.zeros((mesh.n_points, vw.shape[1]), np.uint8)
         pts[idx], vals[idx] = pw, vw
+        plen[idx] = np.fromiter(map(len, ps), np.int64, len(ps))
+        vlen[idx] = np.fromiter(map(len, vs), np.int64, len(vs))
+        del ps, vs
     finite = np.isfinite(v)
+    compiled = kernels.use_compiled(mesh.n_cells)
 
     def lit(text: str) -> np.ndarray:
         return np.frombuffer(text.encode(), np.uint8)
@@ -438,6 +445,16 @@ def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "tar
             nc = c.shape[1]
             head, comma = lit(_POS_KIND[b.info.linear] + "("), lit(",")
             mid, tail = lit("){"), lit("};\n")
+            if compiled:  # one pass per chunk writing the lines straight into a buffer
+                from .kernels import sizefield as _ks
+                line = len(head) + nc * (pts.shape[1] + vals.shape[1] + 2) + 3  # at most
+                buf = np.empty(min(chunk, len(c)) * line, np.uint8)
+                ok = finite.view(np.uint8)
+                for s in range(0, len(c), chunk):
+                    n = _ks.pos_lines(np.ascontiguousarray(b.cells[s:s + chunk]), nc, pts, plen,
+                                      vals, vlen, ok, head.copy(), buf)
+                    fh.write(buf[:n])
+                continue
             for s in range(0, len(c), chunk):
                 cc = c[s:s + chunk]
                 cc = cc[np.all(finite[cc], axis=1)]

@@ -257,3 +257,18 @@ def test_mid_nodes_read_the_values_before_any_is_set(monkeypatch):
     h = _sizes(broken, 4)
     ref, got = _both(monkeypatch, lambda: limit_gradation(broken, topo, h, 0.3))
     assert np.array_equal(ref, got, equal_nan=True)
+
+
+@pytest.mark.parametrize("name", list(MESHES))
+def test_pos_view_text_equals_the_numpy_assembly(monkeypatch, tmp_path, name):
+    # the compiled lines (kernels.sizefield.pos_lines) against the numpy code's padded
+    # byte rows, byte for byte: every cell kind, nan values (their cells dropped),
+    # chunks ending mid-block; the numpy text is itself checked against number-by-number
+    # formatting in test_sizefield.py
+    from meshcheck.sizefield import write_pos
+    mesh = MESHES[name]()
+    vals = 0.01 + np.random.default_rng(5).random(mesh.n_points) / 7
+    vals[::11] = np.nan
+    a, b = _both(monkeypatch, lambda: write_pos(tmp_path / f"{len(list(tmp_path.iterdir()))}.pos",
+                                                mesh, vals, scale=1e-3, chunk=7).read_bytes())
+    assert a == b and b.count(b"\n") > 2

@@ -11,7 +11,10 @@
   heap of the improved nodes) over a CSR adjacency built here; bit-identical to scipy;
 * :func:`corner_nanmean`: per cell, the mean of a node value over the corners ignoring
   nan (``np.nanmean(v[c], axis=1)``; the sum runs corner by corner, numpy's groups 8
-  terms pairwise: equal to rounding, ~1e-16 relative).
+  terms pairwise: equal to rounding, ~1e-16 relative);
+* :func:`pos_lines`: the text lines of a gmsh view, one per cell, from each node's
+  formatted coordinates and value (the numpy code gathers padded fields into byte rows
+  and drops the padding: the same bytes).
 """
 from __future__ import annotations
 
@@ -19,7 +22,8 @@ import numpy as np
 
 from . import njit
 
-__all__ = ["node_min_block", "mid_mean_block", "mids_are_corners", "gradation_distances", "corner_nanmean"]
+__all__ = ["node_min_block", "mid_mean_block", "mids_are_corners", "gradation_distances",
+           "corner_nanmean", "pos_lines"]
 
 
 @njit
@@ -253,3 +257,47 @@ def corner_nanmean(cells, n_corners, hp):
                 cnt += 1
         out[i] = s / cnt if cnt > 0 else np.nan
     return out
+
+
+@njit
+def pos_lines(cells, n_corners, pts, plen, vals, vlen, finite, head, out):
+    """Write into ``out`` (uint8) one line per cell whose corners' values are all finite:
+    ``head`` (e.g. b"SS("), the corners' coordinate fields pts[j, :plen[j]] separated by
+    commas, ``){``, the corners' value fields vals[j, :vlen[j]] separated by commas,
+    ``};`` and a newline; returns the bytes written. ``out`` must hold the longest lines.
+
+    cells : (m, >= n_corners) int; pts, vals : (n_points, w) uint8; plen, vlen :
+    (n_points,) int64; finite : (n_points,) uint8 (1 finite value)."""
+    at = 0
+    for i in range(cells.shape[0]):
+        ok = True
+        for k in range(n_corners):
+            if finite[cells[i, k]] == 0:
+                ok = False
+        if not ok:
+            continue
+        for b in range(head.shape[0]):
+            out[at] = head[b]
+            at += 1
+        for k in range(n_corners):
+            j = cells[i, k]
+            for b in range(plen[j]):
+                out[at] = pts[j, b]
+                at += 1
+            out[at] = 44 if k < n_corners - 1 else 41  # "," or ")"
+            at += 1
+        out[at] = 123  # "{"
+        at += 1
+        for k in range(n_corners):
+            j = cells[i, k]
+            for b in range(vlen[j]):
+                out[at] = vals[j, b]
+                at += 1
+            if k < n_corners - 1:
+                out[at] = 44
+                at += 1
+        out[at] = 125  # "}"
+        out[at + 1] = 59  # ";"
+        out[at + 2] = 10  # newline
+        at += 3
+    return at
