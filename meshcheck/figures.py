@@ -493,7 +493,7 @@ def order_map(res: AuditResult, data: dict | None = None, max_points: int = 6000
     refine = a.refine
     coarsen = a.coarsen & ~a.refine
     ids = _sample(m.n_cells, refine, max_points)
-    xyz = m.centroids[ids] / scale
+    xyz = m.centroids_of(ids) / scale  # the sampled cells only
     order = np.minimum(a.cell_order[ids], P + 1)
     ref, coa = refine[ids], coarsen[ids]
     ext = np.ptp(xyz, axis=0) if len(xyz) else np.ones(3)
