@@ -266,14 +266,15 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
             res.timings["renumber"] = t_renumber
         step("reports")
         big = mesh.n_cells > OVERLAP_CELLS
-        vtu = None
+        vtu = pos = None
         if out is not None:
             out.mkdir(parents=True, exist_ok=True)
             stem = mesh_path.stem
             if "vtu" in kinds and big:  # the VTU (and its size field) beside the JSON
                 vtu = _aside(write_vtu, res, out / f"{stem}.audit.vtu")
-            elif "pos" in kinds and big:
-                _size_field_aside(res)
+            if "pos" in kinds and big:  # the gmsh view too (the field computed once)
+                from .sizefield import write_size_view
+                pos = _aside(write_size_view, res, out / f"{stem}.size.pos")
         data = to_dict(res, cost=cost)
         if vtu is not None:  # the size field the VTU writes last: computed here meanwhile
             from .sizefield import audit_size_field
@@ -292,7 +293,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
                 files["vtu"] = vtu.result() if vtu else write_vtu(res, out / f"{stem}.audit.vtu")
             if "pos" in kinds:
                 from .sizefield import write_size_view
-                files["size view (gmsh)"] = write_size_view(res, out / f"{stem}.size.pos")
+                files["size view (gmsh)"] = (pos.result() if pos else
+                                             write_size_view(res, out / f"{stem}.size.pos"))
             if "html" in kinds:
                 try:  # figures need matplotlib; without it the other reports still stand
                     from .html_report import write_html
@@ -335,15 +337,6 @@ def _aside(fn, *args):
 
     threading.Thread(target=run, name="meshcheck-report", daemon=True).start()
     return fut
-
-
-def _size_field_aside(res) -> None:
-    """Compute the audit's size field (VTU point data, gmsh view) on a daemon thread
-    while the JSON report is built; the writers then find it cached.  An error here is
-    left to the writer, which computes the field again and reports it."""
-    from .sizefield import audit_size_field
-
-    _aside(audit_size_field, res)  # the future (and any error in it) is not kept
 
 
 REPORT_KINDS = ("json", "md", "vtu", "html", "pos")
