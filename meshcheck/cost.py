@@ -270,7 +270,8 @@ class Adjacency:
     vertices : (n_v,) int64 ids of the used vertices.
     chi_vertex, chi_edge, chi_face : (n_v,), (n_e,), (n_f,) int64 signed star
         counts chi(S) (see the module docstring); ``chi_face`` empty in 2D.
-    face_edges : (n_f, 4) int64 edge ids of every face, -1 padded (triangles).
+    face_edges : (n_f, 4) edge ids of every face (int32 unless an id exceeds it), -1
+        padded (triangles).
     face_corners : (n_f,) int64 3 or 4.
     face_tri : (n_f,) bool.
     cell_corners : (n_cells,) int64 corner count of every cell.
