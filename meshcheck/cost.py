@@ -268,8 +268,8 @@ class Adjacency:
     """Incidence data for exact non-zero counts (built once per mesh).
 
     vertices : (n_v,) int64 ids of the used vertices.
-    chi_vertex, chi_edge, chi_face : (n_v,), (n_e,), (n_f,) int64 signed star
-        counts chi(S) (see the module docstring); ``chi_face`` empty in 2D.
+    chi_vertex, chi_edge, chi_face : (n_v,), (n_e,), (n_f,) signed star counts chi(S)
+        (see the module docstring), int64 (``chi_face`` int16, empty in 2D).
     face_edges : (n_f, 4) edge ids of every face (int32 unless an id exceeds it), -1
         padded (triangles).
     face_corners : (n_f,) int64 3 or 4.
@@ -277,7 +277,7 @@ class Adjacency:
     cell_corners : (n_cells,) int64 corner count of every cell.
     cell_kind : (n_cells,) int8 index into ``kinds`` (linear cell type names).
     kinds : tuple of linear cell type names present.
-    cell_faces : (n_cells, 2) int64 faces listing each cell as one of their two cells,
+    cell_faces : (n_cells, 2) uint8 faces listing each cell as one of their two cells,
         quadrilaterals then triangles ((n_cells, 0) in 2D): the face terms of a cell's
         unknowns at a uniform order.
     """
@@ -337,6 +337,45 @@ def _face_edges(mesh: Mesh, topo: Topology) -> np.ndarray:
     return out
 
 
+def _face_counts(mesh: Mesh, topo: Topology, tri: np.ndarray
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(face edges (n_f, 4), faces per edge (n_e,) int32, ends of face sides at each
+    node (n_points,) int64, faces per cell by kind (n_cells, 2) uint8: quadrilaterals,
+    triangles); one compiled pass over the faces
+    (:func:`meshcheck.kernels.cost.face_pass`) for large meshes of one volume block."""
+    from .topology import _block_parts, index_type
+
+    faces, edges, n = topo.faces, topo.edges, mesh.n_cells
+    n_e, n_pts = len(edges), mesh.n_points
+    parts = _block_parts(mesh, faces.cells[:, 0])
+    if kernels.use_compiled(n) and len(parts) == 1 and parts[0][0] is None:
+        from .kernels import cost as _kc
+
+        bi, off = parts[0][1]
+        face_edges = np.empty((len(faces), 4), index_type(max(n_e, 1)))
+        faces_per_edge = np.zeros(n_e, np.int32)
+        side_ends = np.zeros(n_pts, np.int64)
+        cell_faces = np.zeros((n, 2), np.uint8)
+        _kc.face_pass(np.ascontiguousarray(faces.cells), np.ascontiguousarray(faces.local),
+                      tri.view(np.uint8), np.ascontiguousarray(edges.cell_edges[bi]), off,
+                      _face_edge_table(mesh.blocks[bi].type), np.ascontiguousarray(edges.nodes),
+                      face_edges, faces_per_edge, side_ends, cell_faces)
+        return face_edges, faces_per_edge, side_ends, cell_faces
+    face_edges = _face_edges(mesh, topo)
+    faces_per_edge = np.zeros(n_e, np.int32)
+    for s in range(0, len(faces), _FACE_CHUNK):
+        fe = face_edges[s:s + _FACE_CHUNK]
+        faces_per_edge += np.bincount(fe.reshape(-1) + 1, minlength=n_e + 1)[1:].astype(np.int32)
+    side_ends = np.bincount(edges.nodes.ravel(), np.repeat(faces_per_edge, 2),
+                            minlength=n_pts).astype(np.int64)
+    c = faces.cells
+    kind = tri.view(np.int8)  # 0 quadrilateral, 1 triangle
+    cell_faces = np.bincount(2 * c[:, 0].astype(np.int64) + kind, minlength=2 * n)
+    second = np.where(c[:, 1] >= 0, 2 * c[:, 1].astype(np.int64) + kind, 2 * n)
+    cell_faces += np.bincount(second, minlength=2 * n + 1)[:2 * n]
+    return face_edges, faces_per_edge, side_ends, cell_faces.reshape(n, 2).astype(np.uint8)
+
+
 def build_adjacency(mesh: Mesh, topo: Topology) -> Adjacency:
     """Star counts chi of every vertex, edge and face, and face -> edge ids.
 
@@ -364,32 +403,21 @@ def build_adjacency(mesh: Mesh, topo: Topology) -> Adjacency:
         faces = topo.faces
         tri = faces.is_tri
         fc = np.where(tri, 3, 4).astype(np.int64)
-        face_edges = _face_edges(mesh, topo)
-        faces_per_edge = np.zeros(len(edges), np.int64)
-        for s in range(0, len(faces), _FACE_CHUNK):
-            fe = face_edges[s:s + _FACE_CHUNK]
-            faces_per_edge += np.bincount(fe.reshape(-1) + 1, minlength=len(edges) + 1)[1:]
+        face_edges, faces_per_edge, side_ends, cell_faces = _face_counts(mesh, topo, tri)
         # every corner of a face lies on two of its sides: the faces at a node are half
-        # the faces of the edges at it (exact; no pass over the faces' nodes)
-        face_per_node = np.bincount(edges.nodes.ravel(), np.repeat(faces_per_edge, 2),
-                                    minlength=n_pts).astype(np.int64) // 2
-        chi_face = 1 - faces.count.astype(np.int64)
+        # the ends of face sides at it (exact; no pass over the faces' nodes)
+        face_per_node = side_ends // 2
+        chi_face = 1 - faces.count.astype(np.int16)  # (counts are uint8)
         chi_edge = 1 - faces_per_edge + cells_per_edge
         chi_vertex = 1 - edge_per_node + face_per_node - cell_per_node
-        n, c = mesh.n_cells, faces.cells
-        kind = tri.view(np.int8)  # 0 quadrilateral, 1 triangle
-        cell_faces = np.bincount(2 * c[:, 0].astype(np.int64) + kind, minlength=2 * n)
-        second = np.where(c[:, 1] >= 0, 2 * c[:, 1].astype(np.int64) + kind, 2 * n)
-        cell_faces += np.bincount(second, minlength=2 * n + 1)[:2 * n]
-        cell_faces = cell_faces.reshape(n, 2)
     else:
         face_edges = np.zeros((0, 4), np.int64)
         fc = np.zeros(0, np.int64)
         tri = np.zeros(0, bool)
-        chi_face = np.zeros(0, np.int64)
+        chi_face = np.zeros(0, np.int16)
         chi_edge = 1 - cells_per_edge
         chi_vertex = 1 - edge_per_node + cell_per_node
-        cell_faces = np.zeros((mesh.n_cells, 0), np.int64)
+        cell_faces = np.zeros((mesh.n_cells, 0), np.uint8)
     return Adjacency(mesh.dim, vertices, chi_vertex[vertices], chi_edge, chi_face, face_edges,
                      fc, tri, cell_corners, cell_kind, kinds, cell_faces)
 
@@ -496,7 +524,8 @@ def _uniform_system(mesh: Mesh, topo: Topology, adj: Adjacency, p: int,
         chi_tri = int(adj.chi_face[adj.face_tri].sum())
         chi_quad = int(adj.chi_face.sum()) - chi_tri
         nnz += (3 + 3 * w_e + w_tri) ** 2 * chi_tri + (4 + 4 * w_e + w_quad) ** 2 * chi_quad
-        t_cell += adj.cell_faces @ np.array([w_quad, w_tri], np.int64)
+        t_cell += w_quad * adj.cell_faces[:, 0].astype(np.int64)
+        t_cell += w_tri * adj.cell_faces[:, 1].astype(np.int64)
     w_cell = _interior_table(adj.kinds, p)[adj.cell_kind, p]
     n_int = int(w_cell.sum())
     n_loc = t_cell + w_cell

@@ -34,7 +34,7 @@ __all__ = ["type_key", "code_tag", "module_path", "available", "specialisations"
 SPECIALISATIONS = Path(__file__).with_name("specialisations.json")
 
 #: the kernels' modules (their sources make the hash of the built module's name)
-_MODULES = ("advice", "cells", "directional", "geometry", "ordering", "sizefield",
+_MODULES = ("advice", "cells", "cost", "directional", "geometry", "ordering", "sizefield",
             "stats", "text", "topology")
 
 
