@@ -270,18 +270,17 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         if out is not None:
             out.mkdir(parents=True, exist_ok=True)
             stem = mesh_path.stem
-            if "vtu" in kinds and big:  # the VTU (and its size field) beside the JSON
+            if ("vtu" in kinds or "pos" in kinds) and big:
+                # the size field both need (the VTU last), on a thread of its own beside
+                # the JSON; the writers wait for it and find it cached
+                from .sizefield import audit_size_field
+                _aside(audit_size_field, res)  # (an error here: the writer raises it again)
+            if "vtu" in kinds and big:  # the VTU beside the JSON
                 vtu = _aside(write_vtu, res, out / f"{stem}.audit.vtu")
             if "pos" in kinds and big:  # the gmsh view too (the field computed once)
                 from .sizefield import write_size_view
                 pos = _aside(write_size_view, res, out / f"{stem}.size.pos")
         data = to_dict(res, cost=cost)
-        if vtu is not None:  # the size field the VTU writes last: computed here meanwhile
-            from .sizefield import audit_size_field
-            try:
-                audit_size_field(res)
-            except Exception:
-                pass  # the VTU writer computes it again and reports the error
         files = None
         if out is not None:
             files = {}
