@@ -378,11 +378,13 @@ class SizeCorrection:
     mixed: np.ndarray
     alignment: dict
 
-    def at(self, p: int) -> np.ndarray:
-        """(n_e,) factor of every edge at order p (the largest over its cells)."""
-        out = np.where(self.touched_plain, 1.0, 0.0)
+    def at(self, p: int, edges=None) -> np.ndarray:
+        """(n_e,) factor of every edge at order p (the largest over its cells), or of the
+        edges ``edges`` (ids) only."""
+        pick = (lambda x: x) if edges is None else (lambda x: x[edges])
+        out = np.where(pick(self.touched_plain), 1.0, 0.0)
         for touched, a in self.classes:
-            np.maximum(out, np.where(touched, a[p - 1], 0.0), out=out)
+            np.maximum(out, np.where(pick(touched), a[p - 1], 0.0), out=out)
         return out
 
 

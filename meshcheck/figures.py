@@ -246,7 +246,7 @@ def _cell_size_factors(res: AuditResult, cell: int, pmax: int) -> np.ndarray:
     corr = size_correction(mesh, topo, pmax, res.settings.advice.target)
     bi = int(np.searchsorted(mesh.block_offsets, cell, side="right") - 1)
     edges = topo.edges.cell_edges[bi][cell - mesh.block_offsets[bi]]
-    return np.array([float(np.max(corr.at(p)[edges])) for p in range(1, pmax + 1)])
+    return np.array([float(np.max(corr.at(p, edges))) for p in range(1, pmax + 1)])
 
 
 def elements_per_wavelength(res: AuditResult, data: dict | None = None,

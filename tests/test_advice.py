@@ -337,3 +337,6 @@ def test_size_correction_marks_the_edges_of_its_cells(kind):
         want[ce[:, sl].ravel()] = True
         assert np.array_equal(touched, want)
     assert (len(corr.mixed) > 0) == (kind == "wedge") and not corr.touched_plain.any()
+    ids = np.array([0, len(topo.edges) - 1, 3, 3])  # factors of some edges only: the same
+    for p in range(1, 9):
+        assert np.array_equal(corr.at(p, ids), corr.at(p)[ids])
