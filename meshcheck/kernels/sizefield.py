@@ -259,6 +259,14 @@ def corner_nanmean(cells, n_corners, hp):
     return out
 
 
+@njit(inline="always")
+def _field(out, at, fields, lengths, j):
+    """Copy fields[j, :lengths[j]] into out at ``at``; the position after it."""
+    for b in range(lengths[j]):
+        out[at + b] = fields[j, b]
+    return at + lengths[j]
+
+
 @njit
 def pos_lines(cells, n_corners, pts, plen, vals, vlen, finite, head, out):
     """Write into ``out`` (uint8) one line per cell whose corners' values are all finite:
@@ -280,19 +288,13 @@ def pos_lines(cells, n_corners, pts, plen, vals, vlen, finite, head, out):
             out[at] = head[b]
             at += 1
         for k in range(n_corners):
-            j = cells[i, k]
-            for b in range(plen[j]):
-                out[at] = pts[j, b]
-                at += 1
+            at = _field(out, at, pts, plen, cells[i, k])
             out[at] = 44 if k < n_corners - 1 else 41  # "," or ")"
             at += 1
         out[at] = 123  # "{"
         at += 1
         for k in range(n_corners):
-            j = cells[i, k]
-            for b in range(vlen[j]):
-                out[at] = vals[j, b]
-                at += 1
+            at = _field(out, at, vals, vlen, cells[i, k])
             if k < n_corners - 1:
                 out[at] = 44
                 at += 1
