@@ -265,6 +265,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         if t_renumber is not None:
             res.timings["renumber"] = t_renumber
         step("reports")
+        from .sizefield import audit_size_field, write_size_view
+
         big = mesh.n_cells > OVERLAP_CELLS
         vtu = pos = None
         if out is not None:
@@ -273,12 +275,10 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
             if ("vtu" in kinds or "pos" in kinds) and big:
                 # the size field both need (the VTU last), on a thread of its own beside
                 # the JSON; the writers wait for it and find it cached
-                from .sizefield import audit_size_field
                 _aside(audit_size_field, res)  # (an error here: the writer raises it again)
             if "vtu" in kinds and big:  # the VTU beside the JSON
                 vtu = _aside(write_vtu, res, out / f"{stem}.audit.vtu")
             if "pos" in kinds and big:  # the gmsh view too (the field computed once)
-                from .sizefield import write_size_view
                 pos = _aside(write_size_view, res, out / f"{stem}.size.pos")
         data = to_dict(res, cost=cost)
         files = None
@@ -291,7 +291,6 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
             if "vtu" in kinds:
                 files["vtu"] = vtu.result() if vtu else write_vtu(res, out / f"{stem}.audit.vtu")
             if "pos" in kinds:
-                from .sizefield import write_size_view
                 files["size view (gmsh)"] = (pos.result() if pos else
                                              write_size_view(res, out / f"{stem}.size.pos"))
             if "html" in kinds:

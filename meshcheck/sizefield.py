@@ -433,8 +433,8 @@ def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "tar
     finite = np.isfinite(v)
     compiled = kernels.use_compiled(mesh.n_cells)
 
-    def lit(text: str) -> np.ndarray:
-        return np.frombuffer(text.encode(), np.uint8)
+    def lit(text: str) -> np.ndarray:  # (writable: the compiled kernel's argument type)
+        return np.frombuffer(text.encode(), np.uint8).copy()
 
     # the file's size at most (padded fields): large ones go past the page cache
     bound = sum(len(c) * (8 + c.shape[1] * (pts.shape[1] + vals.shape[1] + 2))
@@ -452,7 +452,7 @@ def write_pos(path: str | Path, mesh: Mesh, values: np.ndarray, name: str = "tar
                 ok = finite.view(np.uint8)
                 for s in range(0, len(c), chunk):
                     n = _ks.pos_lines(np.ascontiguousarray(b.cells[s:s + chunk]), nc, pts, plen,
-                                      vals, vlen, ok, head.copy(), buf)
+                                      vals, vlen, ok, head, buf)
                     fh.write(buf[:n])
                 continue
             for s in range(0, len(c), chunk):
