@@ -10,7 +10,7 @@ import os
 import sys
 import threading
 import time
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from enum import Enum
 from pathlib import Path
 from typing import List, Optional
@@ -233,7 +233,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     from .job import load_job
     from .pipeline import OVERLAP_CELLS, AuditSettings, audit
     from .reading import read_mesh
-    from .report import to_dict, write_json, write_markdown, write_vtu
+    from .report import EarlyVTU, to_dict, write_json, write_markdown, write_vtu
     from .units import UNIT_FACTORS
 
     console = Console(highlight=False)
@@ -261,23 +261,39 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
                              correction_3d=correction_3d)
         settings = AuditSettings(frequencies=tuple(f), advice=adv, temperature=temperature,
                                  speed=speed, region_speeds=region_speeds, job=job_spec)
-        res = audit(mesh, settings, progress=step)
+        big = mesh.n_cells > OVERLAP_CELLS
+        stem = mesh_path.stem
+        vtu = pos = None
+        if out is not None and "vtu" in kinds and big:
+            # the VTU written while the audit runs: the cells, points and quality metrics
+            # as soon as those are known, the rest once the audit is over (a failed audit
+            # leaves no file of its own)
+            made = not out.exists()
+            out.mkdir(parents=True, exist_ok=True)
+            vtu = EarlyVTU(mesh, settings, out / f"{stem}.audit.vtu")
+        from .sizefield import audit_size_field, write_size_view
+
+        try:
+            res = audit(mesh, settings, progress=step,
+                        cells_checked=vtu.start if vtu is not None else None)
+        except BaseException:
+            if vtu is not None:
+                vtu.abort()
+                if made:
+                    with suppress(OSError):
+                        out.rmdir()  # the folder made for it, if nothing else is there
+            raise
+        if vtu is not None:
+            vtu.finish(res)
         if t_renumber is not None:
             res.timings["renumber"] = t_renumber
         step("reports")
-        from .sizefield import audit_size_field, write_size_view
-
-        big = mesh.n_cells > OVERLAP_CELLS
-        vtu = pos = None
         if out is not None:
             out.mkdir(parents=True, exist_ok=True)
-            stem = mesh_path.stem
             if ("vtu" in kinds or "pos" in kinds) and big:
                 # the size field both need (the VTU last), on a thread of its own beside
                 # the JSON; the writers wait for it and find it cached
                 _aside(audit_size_field, res)  # (an error here: the writer raises it again)
-            if "vtu" in kinds and big:  # the VTU beside the JSON
-                vtu = _aside(write_vtu, res, out / f"{stem}.audit.vtu")
             if "pos" in kinds and big:  # the gmsh view too (the field computed once)
                 pos = _aside(write_size_view, res, out / f"{stem}.size.pos")
         data = to_dict(res, cost=cost)

@@ -171,9 +171,14 @@ TRIM_CELLS = 2_000_000
 
 
 def audit(mesh: Mesh, settings: AuditSettings,
-          progress: Callable[[str], None] | None = None) -> AuditResult:
+          progress: Callable[[str], None] | None = None,
+          cells_checked: Callable[[CellQuality], None] | None = None) -> AuditResult:
     """Audit a mesh already in memory (SI units); the result's arrays index ``mesh`` (for
-    speed on large meshes, audit :func:`meshcheck.ordering.renumbered` ``(mesh)``)."""
+    speed on large meshes, audit :func:`meshcheck.ordering.renumbered` ``(mesh)``).
+
+    cells_checked : called with the cells' quality metrics (the result's ``quality``) as
+        soon as they are known, on the thread that computed them, while the audit goes
+        on (e.g. :class:`meshcheck.report.EarlyVTU` starts writing its file)."""
     say = progress or (lambda stage: None)
     t: dict[str, float] = {}
 
@@ -195,6 +200,8 @@ def audit(mesh: Mesh, settings: AuditSettings,
             # VTU's type; half the memory; compiled: never held whole in float64); the
             # float64 Jacobians after them, so that the two sets are never held together
             q, flags, summary = checked_quality(mesh, settings.quality)
+            if cells_checked is not None:
+                cells_checked(q)
             t2 = time.perf_counter()
             sj = min_scaled_jacobian(mesh)
             return sj, q, flags, summary, time.perf_counter() - t2, t2 - t1

@@ -23,7 +23,7 @@ from . import vtkxml
 from .units import UNIT_FACTORS
 
 __all__ = ["SCHEMA", "SCHEMA_VERSION", "CAUTION", "to_dict", "write_json", "write_markdown",
-           "write_vtu", "write_all", "state", "METRIC_BAD", "CORRECTION_3D"]
+           "write_vtu", "EarlyVTU", "write_all", "state", "METRIC_BAD", "CORRECTION_3D"]
 
 SCHEMA = "meshcheck-audit"
 SCHEMA_VERSION = 1
@@ -478,13 +478,19 @@ def write_markdown(res: AuditResult, path: str | Path, data: dict | None = None,
 VTU_COMPRESS_CELLS = 500_000
 
 
-def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) -> Path:
+def write_vtu(res: "AuditResult | EarlyVTU", path: str | Path,
+              compress: bool | None = None) -> Path:
     """VTU with per-cell results; coordinates and lengths in the mesh's own unit. Cells
     and points in the order of ``res.mesh``: a renumbered mesh (:mod:`meshcheck.ordering`)
     adds the file's numbers as ``file_cell_id`` and ``file_point_id``.
     ``compress``: zlib level 1 (True) or stored (False); None: compressed up to
-    :data:`VTU_COMPRESS_CELLS` cells."""
-    m, a = res.mesh, res.advice
+    :data:`VTU_COMPRESS_CELLS` cells.
+
+    ``res`` may be an :class:`EarlyVTU` of an audit still running: the arrays known
+    before the advice (the cells, points, ids and quality metrics, first in the file) are
+    then written at once, the others when the result is handed over."""
+    m = res.mesh
+    done = res.final if isinstance(res, EarlyVTU) else (lambda: res)  # (waits)
     scale = UNIT_FACTORS.get(m.unit, 1.0)
     cells = [(b.type, b.cells) for b in m.blocks]
 
@@ -496,21 +502,24 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
         return vtkxml.Chunked(lambda lo, hi: np.asarray(fn(lo, hi)).astype(dtype, copy=False),
                               dtype, n)
 
-    data = {} if m.file_cell_ids is None else {  # a renumbered mesh: the file's numbers
-        "file_cell_id": parts(lambda lo, hi: m.file_cell_ids[lo:hi], np.int32)}
-    data |= {"region": parts(lambda lo, hi: m.region[lo:hi], np.int32),
-            "min_scaled_jacobian": lazy(lambda: res.min_scaled_jacobian.astype(f32, copy=False),
-                                        f32),
-            "order_needed": lazy(lambda: a.cell_order.astype(i8, copy=False), i8),
-            "refine": parts(lambda lo, hi: a.refine[lo:hi], i8),
-            "coarsen": parts(lambda lo, hi: a.coarsen[lo:hi], i8),
-            "largest_edge": parts(lambda lo, hi: a.cell_size[lo:hi] / scale, f32),
-            "target_size": parts(lambda lo, hi: a.target_size[lo:hi] / scale, f32),
-            "coarsen_ratio": parts(lambda lo, hi: a.target_size[lo:hi] / a.cell_size[lo:hi],
-                                   f32)}
+    def adv():
+        return done().advice
+
+    # the arrays are written in the reverse of this order: those of the finished audit
+    # first here, those known before the advice last
+    data = {"min_scaled_jacobian": lazy(lambda: done().min_scaled_jacobian.astype(
+                f32, copy=False), f32),
+            "order_needed": lazy(lambda: adv().cell_order.astype(i8, copy=False), i8),
+            "refine": parts(lambda lo, hi: adv().refine[lo:hi], i8),
+            "coarsen": parts(lambda lo, hi: adv().coarsen[lo:hi], i8),
+            "largest_edge": parts(lambda lo, hi: adv().cell_size[lo:hi] / scale, f32),
+            "target_size": parts(lambda lo, hi: adv().target_size[lo:hi] / scale, f32),
+            "coarsen_ratio": parts(lambda lo, hi: adv().target_size[lo:hi] /
+                                   adv().cell_size[lo:hi], f32)}
     column: dict = {}  # the limit column being written (one at a time)
 
     def limits(p, lo, hi):  # Advice.limit_at(p, float32)[lo:hi]
+        a = adv()
         if a.limit_row is None:
             return a.limit_rows[lo:hi, p - 1]
         if p not in column:  # cast first (the same values): half the bytes gathered
@@ -520,6 +529,9 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
 
     for p in range(1, res.settings.advice.max_order + 1):
         data[f"limit_hz_p{p}"] = parts(lambda lo, hi, p=p: limits(p, lo, hi), f32)
+    data["region"] = parts(lambda lo, hi: m.region[lo:hi], np.int32)
+    if m.file_cell_ids is not None:  # a renumbered mesh: the file's numbers
+        data["file_cell_id"] = parts(lambda lo, hi: m.file_cell_ids[lo:hi], np.int32)
     for name, values in res.quality.metrics.items():
         if np.isfinite(values).any():
             data[f"quality_{name}"] = lazy(lambda v=values: v.astype(f32, copy=False), f32)
@@ -532,7 +544,7 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
 
     def point_array(name):  # the three arrays made once, each handed over as written
         if not made:
-            made.update(size_point_data(res, scale))
+            made.update(size_point_data(done(), scale))
         return made.pop(name)
 
     point = {name: lazy(lambda name=name: point_array(name), f32) for name in POINT_ARRAYS}
@@ -542,6 +554,69 @@ def write_vtu(res: AuditResult, path: str | Path, compress: bool | None = None) 
     pts = m.points if scale == 1.0 else m.points / scale  # no copy for metres
     return vtkxml.write_vtu(path, pts, cells, cell_data=data,
                             point_data=point, level=1 if compress else 0)
+
+
+class EarlyVTU:
+    """The VTU report of an audit still running (large meshes; the CLI's).
+
+    Give :meth:`start` to :func:`meshcheck.pipeline.audit` as ``cells_checked``: with
+    the cells' quality metrics known it writes, on a thread of its own, the arrays that
+    need nothing more (cells, points, ids, metrics: about half the file at 4.77M
+    tetrahedra) while the audit goes on, then waits for :meth:`finish` to hand over the
+    result for the rest. The file is written under a hidden temporary name beside
+    ``path`` and renamed to ``path`` when complete; :meth:`abort` (the audit failed)
+    stops the writer and removes the temporary file, so that a failed audit leaves an
+    earlier report at ``path`` as it was.
+    """
+
+    def __init__(self, mesh, settings, path: str | Path):
+        self.mesh, self.settings, self.path = mesh, settings, Path(path)
+        self.quality = None
+        self._result: Future = Future()
+        self._written: Future = Future()
+        self._temp = self.path.with_name(f".{self.path.name}.part")
+        self._thread: threading.Thread | None = None
+
+    def start(self, quality) -> None:
+        """Start writing, the cells' metrics being ``quality``
+        (:class:`~meshcheck.quality.CellQuality`)."""
+        self.quality = quality
+
+        def run():
+            try:
+                write_vtu(self, self._temp)
+                self._temp.replace(self.path)
+                self._written.set_result(self.path)
+            except BaseException as exc:  # raised again by result()
+                self._temp.unlink(missing_ok=True)
+                self._written.set_exception(exc)
+
+        self._thread = threading.Thread(target=run, name="meshcheck-vtu", daemon=True)
+        self._thread.start()
+
+    def final(self) -> AuditResult:
+        """The finished audit's result (waits for :meth:`finish`)."""
+        return self._result.result()
+
+    def finish(self, res: AuditResult) -> None:
+        """Hand over the finished result (returns at once; :meth:`result` waits)."""
+        self._result.set_result(res)
+
+    def result(self) -> Path:
+        """The report's path once it is written (raises the writer's error)."""
+        return self._written.result()
+
+    def abort(self) -> None:
+        """The audit failed: stop the writer and remove its temporary file."""
+        if not self._result.done():
+            self._result.set_exception(_Aborted(f"{self.path}: the audit stopped"))
+        if self._thread is not None:
+            self._thread.join()
+        self._temp.unlink(missing_ok=True)
+
+
+class _Aborted(Exception):
+    """The audit an :class:`EarlyVTU` waited for failed."""
 
 
 #: the VTU's point data (:func:`meshcheck.sizefield.size_point_data`)

@@ -292,6 +292,19 @@ def test_size_field_beside_the_json_gives_the_same_files(box_file, tmp_path, mon
     assert serial == aside
 
 
+def test_audit_failing_after_the_vtu_started_leaves_no_report(box_file, tmp_path, monkeypatch):
+    # large meshes start the VTU when the cells are checked; an audit that then fails
+    # (a region the mesh has not) exits with the one-line error and leaves neither the
+    # VTU, its temporary file nor the folder made for it
+    from meshcheck import pipeline
+
+    monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
+    out = tmp_path / "reports"
+    rc = main(["audit", str(box_file), "-u", "m", "--fmax", "200", "--region-speed",
+               "nowhere=300", "--reports", "json,vtu", "--quiet", "--out", str(out)])
+    assert rc == 2 and not out.exists()
+
+
 def test_report_written_aside_hands_back_its_value_or_its_error():
     from meshcheck.cli import _aside
 

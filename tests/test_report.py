@@ -1,6 +1,7 @@
 """The JSON and Markdown reports state whether the 3D correction of the 1D model is applied;
 the report's statistics equal their numpy references."""
 import json
+import time
 from types import SimpleNamespace
 
 import numpy as np
@@ -247,3 +248,80 @@ def test_vtu_cell_arrays_are_the_audit_arrays(tmp_path, monkeypatch, mode, compr
     assert set(np.unique(mesh.region)) == {2, 7} and len(np.unique(a.cell_size)) > 100
     for k, v in want.items():
         assert got[k].dtype == v.dtype and np.array_equal(got[k], v, equal_nan=True), k
+
+
+# ------------------------------------------------------------------ the VTU written early
+def _early_audit(mesh, settings, path):
+    """(result, path written) of an audit whose VTU an EarlyVTU writes beside it."""
+    from meshcheck.report import EarlyVTU
+
+    early = EarlyVTU(mesh, settings, path)
+    try:
+        res = audit(mesh, settings, cells_checked=early.start)
+    except BaseException:
+        early.abort()
+        raise
+    early.finish(res)
+    return res, early.result()
+
+
+@pytest.mark.parametrize("mode", ["numpy", "numba"])
+@pytest.mark.parametrize("stored", [False, True], ids=["compressed", "stored"])
+def test_vtu_written_during_the_audit_is_the_vtu_of_the_result(tmp_path, monkeypatch, mode,
+                                                               stored):
+    # the cells, points and metrics written while the topology and advice are worked out,
+    # the rest once the audit is over: the same bytes as the finished result's VTU
+    from meshcheck import pipeline, report, vtkxml
+    from meshcheck.report import write_vtu
+
+    if mode == "numba":
+        pytest.importorskip("numba")
+    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+    monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 37)
+    monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)  # the cell checks on their thread
+    if stored:  # as large meshes are written: uncompressed, a piece at a time
+        monkeypatch.setattr(report, "VTU_COMPRESS_CELLS", 0)
+    mesh = tet_box((6, 5, 4))
+    settings = AuditSettings((300.0, 900.0))
+    res, got = _early_audit(mesh, settings, tmp_path / "early.vtu")
+    assert got == tmp_path / "early.vtu"
+    want = write_vtu(res, tmp_path / "after.vtu")
+    assert got.read_bytes() == want.read_bytes()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["after.vtu", "early.vtu"]
+
+
+@pytest.mark.parametrize("when", ["before the advice", "after the advice"])
+def test_vtu_of_a_failed_audit_leaves_no_file_and_an_earlier_one_as_it_was(tmp_path,
+                                                                          monkeypatch, when):
+    # the audit stops after the cell checks (a region the mesh has not), or in its last
+    # stage: the writer is stopped, its temporary file removed and a report already at
+    # the path kept
+    from meshcheck import pipeline
+    from meshcheck.errors import SettingsError
+
+    mesh = tet_box((4, 3, 3))
+    path = tmp_path / "box.audit.vtu"
+    path.write_bytes(b"an earlier report")
+    settings = AuditSettings((300.0,), region_speeds={"nowhere": 300.0})
+    if when == "after the advice":
+        settings = AuditSettings((300.0,))
+
+        def fail(*args):
+            time.sleep(0.2)  # the writer has long written what it can
+            raise SettingsError("no region 'nowhere'")
+        monkeypatch.setattr(pipeline, "_geometry_checks", fail)
+    with pytest.raises(SettingsError, match="no region 'nowhere'"):
+        _early_audit(mesh, settings, path)
+    assert path.read_bytes() == b"an earlier report"
+    assert [p.name for p in tmp_path.iterdir()] == ["box.audit.vtu"]
+
+
+def test_vtu_writer_error_is_raised_by_its_result(tmp_path):
+    from meshcheck.report import EarlyVTU
+
+    early = EarlyVTU(tet_box((2, 2, 2)), AuditSettings((300.0,)), tmp_path / "no" / "x.vtu")
+    res = audit(early.mesh, early.settings, cells_checked=early.start)
+    early.finish(res)
+    with pytest.raises(OSError):
+        early.result()
+    assert not (tmp_path / "no").exists()
