@@ -162,6 +162,14 @@ class AuditResult:
 #: meshes with more cells compute their cell checks on a second thread beside the topology
 OVERLAP_CELLS = 100_000
 
+#: meshes with at least this many cells run the size jumps and the boundary-curvature check
+#: beside the validity and advice stages (on the cell checks' thread) rather than beside
+#: the advice's last jobs: 4.77M tets (6 alternating runs each, 2026-12-05) wall median
+#: 3.36 -> 3.27 s, peak 957-973 -> 940-958 MB; at 966k tets 0.92-0.97 -> 0.89-0.92 s, but
+#: the peak with numba's cached kernels rose from 301-305 to 313-317 MiB (the heap more
+#: fragmented by the two threads' allocations), above the 300 MiB aimed at
+EARLY_GEOMETRY_CELLS = 2_000_000
+
 #: meshes with at least this many cells give the heap's free pages back before the advice
 #: stage's side-by-side jobs (:func:`meshcheck.threads.release_free_heap`), the peak of a
 #: large audit: 4.77M tetrahedra (5 alternating runs each, 2026-12-04) peak 960-982 ->
@@ -190,9 +198,22 @@ def audit(mesh: Mesh, settings: AuditSettings,
         t[name] = time.perf_counter() - t[name]
 
     t0 = time.perf_counter()
+    spent: dict[str, float] = {}
+
+    def timed(name, fn, *args):
+        t1 = time.perf_counter()
+        out = fn(*args)
+        spent[name] = time.perf_counter() - t1
+        return out
+
     stage("topology")
     # the corner Jacobians and the quality metrics need no topology: on a second core
-    # while the topology is built (numpy releases the GIL)
+    # while the topology is built (numpy releases the GIL); then, for the largest meshes,
+    # on the same core, the size jumps and the boundary-curvature check, which need only
+    # the topology, beside the validity and advice stages (whose kernels leave part of a
+    # core idle); else beside the advice's last jobs
+    side = mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
+    early = side and mesh.n_cells >= EARLY_GEOMETRY_CELLS
     with ThreadPoolExecutor(max_workers=1) as pool:
         def cell_checks():
             t1 = time.perf_counter()
@@ -206,53 +227,52 @@ def audit(mesh: Mesh, settings: AuditSettings,
             sj = min_scaled_jacobian(mesh)
             return sj, q, flags, summary, time.perf_counter() - t2, t2 - t1
 
-        side = (pool.submit(cell_checks) if mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
-                else None)
+        checks = pool.submit(cell_checks) if side else None
         topo = build_topology(mesh)
         done("topology")
-        sj, q, flags, summary, t_sj, t_q = side.result() if side is not None else cell_checks()
-    stage("validity")
-    findings = check_validity(mesh, topo, sj, settings.validity)
-    sj = sj.astype(np.float32)  # judged in float64, kept in the VTU's type (half the memory)
-    findings += [Finding(code, NOTE, message, count) for code, message, count in mesh.notes]
-    done("validity")
-    t["validity"] += t_sj
-    stage("quality")
-    done("quality")
-    t["quality"] += t_q
-    stage("advice")
-    media = media_of(mesh, settings)
-    speeds = cell_speeds(mesh, settings)
-    if speeds is not media.cell_speed and np.array_equal(speeds, media.cell_speed):
-        speeds = media.cell_speed  # one array of the same speeds, not two
-    adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
-                 cell_mach=media.cell_mach if media.has_flow else None, edge_limits=False)
-    if mesh.n_cells >= TRIM_CELLS:  # the earlier stages' freed scratch, before the peak
-        release_free_heap()
-    # the sweep and the two cluster searches are independent once the advice is known,
-    # and the size jumps and the boundary-curvature check need only the topology: all
-    # five on two threads (large meshes). The size jumps follow the sweep on its thread:
-    # their scratch (36 and 44 MiB at 4.77M tets) is then never held side by side, and
-    # the two threads' work is about even (0.6-0.7 s each at 4.77M tets)
-    chk = media.checks
-    spent: dict[str, float] = {}
+        media = media_of(mesh, settings)
+        chk = media.checks
 
-    def timed(name, fn, *args):
-        t1 = time.perf_counter()
-        out = fn(*args)
-        spent[name] = time.perf_counter() - t1
-        return out
+        def jumps():
+            return timed("size_jumps", size_jumps, mesh, topo, chk.gradation_ratio,
+                         chk.max_listed)
 
-    (sw, grad), curv, ref, coa = thread_map(lambda job: job(), [
-        lambda: (sweep(mesh, topo, adv, np.asarray(settings.frequencies)),
-                 timed("size_jumps", size_jumps, mesh, topo, chk.gradation_ratio,
-                       chk.max_listed)),
-        lambda: timed("curvature", check_curvature, mesh, topo, media.cell_speed,
-                      settings.fmax, settings.advice.target, chk.feature_angle,
-                      chk.max_listed),
-        lambda: clusters(mesh, topo, adv, adv.refine),
-        lambda: clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)],
-        parallel=mesh.n_cells > OVERLAP_CELLS)
+        def curvature():
+            return timed("curvature", check_curvature, mesh, topo, media.cell_speed,
+                         settings.fmax, settings.advice.target, chk.feature_angle,
+                         chk.max_listed)
+
+        geo = pool.submit(lambda: (jumps(), curvature())) if early else None
+        sj, q, flags, summary, t_sj, t_q = checks.result() if side else cell_checks()
+        stage("validity")
+        findings = check_validity(mesh, topo, sj, settings.validity)
+        sj = sj.astype(np.float32)  # judged in float64, kept in the VTU's type (half memory)
+        findings += [Finding(code, NOTE, message, count) for code, message, count in mesh.notes]
+        done("validity")
+        t["validity"] += t_sj
+        stage("quality")
+        done("quality")
+        t["quality"] += t_q
+        stage("advice")
+        speeds = cell_speeds(mesh, settings)
+        if speeds is not media.cell_speed and np.array_equal(speeds, media.cell_speed):
+            speeds = media.cell_speed  # one array of the same speeds, not two
+        adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
+                     cell_mach=media.cell_mach if media.has_flow else None, edge_limits=False)
+        if mesh.n_cells >= TRIM_CELLS:  # the earlier stages' freed scratch, before the peak
+            release_free_heap()
+        # the sweep and the two cluster searches are independent once the advice is known:
+        # on two threads (large meshes), beside the geometry checks' end or with them (the
+        # size jumps after the sweep: their scratch is then never held beside its)
+        f = np.asarray(settings.frequencies)
+        jobs = [lambda: (sweep(mesh, topo, adv, f), None if early else jumps()),
+                lambda: None if early else curvature(),
+                lambda: clusters(mesh, topo, adv, adv.refine),
+                lambda: clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)]
+        (sw, grad), curv, ref, coa = thread_map(lambda job: job(), jobs,
+                                                parallel=mesh.n_cells > OVERLAP_CELLS)
+        if early:
+            grad, curv = geo.result()
     done("advice")
     stage("geometry")
     extra = _geometry_checks(mesh, topo, media, adv, settings, grad, curv)

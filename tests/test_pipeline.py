@@ -86,13 +86,20 @@ def test_node_numbers_past_the_int32_key_range_give_the_same_audit(kind, path, m
     assert ca == cb
 
 
-def test_hexahedra_geometry_checks_beside_the_advice_equal_the_serial_audit(monkeypatch):
+@pytest.mark.parametrize("early", [False, True], ids=["beside the sweep", "beside the advice"])
+def test_hexahedra_geometry_checks_beside_the_advice_equal_the_serial_audit(monkeypatch,
+                                                                            early):
     # hexahedra: the curvature check and the size jumps run beside the sweep and the
-    # cluster searches, the directional orders after them; the same results as one
-    # after the other
+    # cluster searches, or (the largest meshes) beside the validity and advice stages,
+    # the directional orders after them; the same results as one after the other
+    from dataclasses import replace
+
     mesh = hex_box((8, 6, 5), size=(2.0, 1.5, 1.0))
+    top = mesh.points.max(axis=0)
+    mesh = replace(mesh, points=top * (mesh.points / top) ** 3)  # size jumps near 0
     settings = AuditSettings((300.0, 900.0))
     monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
+    monkeypatch.setattr(pipeline, "EARLY_GEOMETRY_CELLS", 0 if early else 10 ** 12)
     par = audit(mesh, settings)
     monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 10 ** 12)
     ser = audit(mesh, settings)
@@ -103,3 +110,6 @@ def test_hexahedra_geometry_checks_beside_the_advice_equal_the_serial_audit(monk
                               getattr(ser.directional, field)), field
     assert [f.code for f in par.findings] == [f.code for f in ser.findings]
     assert np.array_equal(par.curvature.kappa, ser.curvature.kappa, equal_nan=True)
+    assert par.gradation.count == ser.gradation.count > 0
+    assert np.array_equal(par.gradation.pairs, ser.gradation.pairs)
+    assert par.sweep.dofs.tolist() == ser.sweep.dofs.tolist()
