@@ -304,7 +304,7 @@ def test_remesh_with_gmsh_follows_the_field(tmp_path):
     sf = size_field(mesh, topo, adv)
     h = np.full(mesh.n_points, 0.09)
     sf = type(sf)(sf.order, sf.fmax, sf.gradation, sf.edge_factor, sf.target, sf.geometry,
-                  2 * h, h, sf.current, estimate_cells(mesh, topo, h))
+                  2 * h, h, sf.current, lambda: estimate_cells(mesh, topo, h))
     out = remesh(mesh, topo, sf, tmp_path / "coarse.msh")
     new = read_mesh(out, "m")
     vol = np.abs(build_topology(new).cell_volume).sum()
@@ -416,3 +416,19 @@ def test_scenario_orders_follow_the_free_tetrahedron_factors():
     per_cell = np.array([s.ndof for s in systems]) / n_cells
     # (counts are rounded to whole unknowns)
     np.testing.assert_allclose(per_cell, GMSH_TET_RATIOS.ndof(np.arange(1, 5)), rtol=1e-4)
+
+
+def test_cells_estimate_is_worked_out_once_and_only_when_asked_for(monkeypatch):
+    # only the cost quote reads it: the VTU and the gmsh view need not pay for it
+    from meshcheck import sizefield
+
+    mesh = tet_box((4, 3, 3), size=BOX)
+    topo, adv = _advice(mesh, 500.0)
+    calls = []
+    monkeypatch.setattr(sizefield, "estimate_cells",
+                        lambda *a: calls.append(1) or estimate_cells(*a))
+    sf = size_field(mesh, topo, adv)
+    assert calls == []
+    first = sf.cells_estimate
+    assert sf.cells_estimate == first == estimate_cells(mesh, topo, sf.mesher_size) > 0
+    assert calls == [1]
