@@ -746,9 +746,12 @@ def _join_crowded_faces(mesh: Mesh, faces: Faces, n_comp: int, comp: np.ndarray
     return int(n_new), rank[lab].astype(comp.dtype)
 
 
-def _per_label_bbox(points: np.ndarray, mesh: Mesh, label: np.ndarray, n_label: int):
+def _per_label_bbox(points: np.ndarray, mesh: Mesh, label: np.ndarray, n_label: int,
+                    used: np.ndarray):
+    """(lo, hi) (n_label, 3) bounding boxes of the cells of each label (``used``: the
+    points the cells reference)."""
     if n_label == 1:
-        bb = mesh.bounding_box
+        bb = mesh.bounding_box_from(used)
         return bb[:1].copy(), bb[1:].copy()
     lo = np.full((n_label, 3), np.inf)
     hi = np.full((n_label, 3), -np.inf)
@@ -878,7 +881,7 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     dup_cells = _duplicate_cells(mesh)
     n_comp, comp = _join_crowded_faces(mesh, faces, *_components(mesh, faces, edges))
     comp = comp.astype(index_type(mesh.n_cells))  # as the compiled path's labels
-    lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp)
+    lo, hi = _per_label_bbox(mesh.points, mesh, comp, n_comp, used)
     return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)
 
 
@@ -1361,12 +1364,13 @@ def _duplicate_cells_compiled(mesh: Mesh) -> np.ndarray:
     return np.concatenate(out).astype(np.int64) if out else np.zeros((0, 2), np.int64)
 
 
-def _per_label_bbox_compiled(points, mesh: Mesh, label: np.ndarray, n_label: int):
+def _per_label_bbox_compiled(points, mesh: Mesh, label: np.ndarray, n_label: int,
+                             used: np.ndarray):
     """:func:`_per_label_bbox` in one compiled pass over the corners of each block."""
     from .kernels import topology as kt
 
     if n_label == 1:
-        bb = mesh.bounding_box
+        bb = mesh.bounding_box_from(used)
         return bb[:1].copy(), bb[1:].copy()
     lo = np.full((n_label, 3), np.inf)
     hi = np.full((n_label, 3), -np.inf)
@@ -1403,5 +1407,5 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
     if mesh.dim == 3:
         n_comp, comp = _join_crowded_faces(mesh, faces, n_comp, comp)
     comp = comp.astype(index_type(mesh.n_cells), copy=False)  # as the numpy path's
-    lo, hi = _per_label_bbox_compiled(mesh.points, mesh, comp, n_comp)
+    lo, hi = _per_label_bbox_compiled(mesh.points, mesh, comp, n_comp, used)
     return _topology_of(mesh, edges, faces, used, vol, dup, dup_cells, n_comp, comp, lo, hi)
