@@ -630,3 +630,17 @@ def test_corner_hash_is_the_numpy_paths_hash_of_the_sorted_corners(k, dtype):
         want ^= want >> np.uint64(29)
     np.testing.assert_array_equal(got, want)
     np.testing.assert_array_equal(got[:50], got[50:100])
+
+
+def test_component_volumes_are_numpys_bincount_bit_for_bit():
+    # the compiled sums add in index order, as np.bincount does: the same bits
+    pytest.importorskip("numba")
+    from meshcheck.kernels import topology as kt
+
+    rng = np.random.default_rng(5)
+    vol = rng.normal(size=10_001) * np.exp(rng.uniform(-30, 5, size=10_001))
+    for n_label in (1, 7):
+        label = rng.integers(0, n_label, size=len(vol)).astype(np.int32)
+        got = np.zeros(n_label)
+        kt.label_abs_sums(label, vol, got)
+        assert np.array_equal(got, np.bincount(label, weights=np.abs(vol), minlength=n_label))
