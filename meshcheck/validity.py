@@ -111,10 +111,12 @@ def check_validity(mesh: Mesh, topo: Topology, min_sj: np.ndarray,
     """All validity findings of a mesh (an empty list for a valid one)."""
     s = settings
     out: list[Finding] = []
-    used = np.zeros(mesh.n_points, bool)
-    for b in mesh.blocks:
-        used[b.cells] = True
-    bad_xyz = np.flatnonzero(used & ~np.isfinite(mesh.points).all(axis=1))
+    # non-finite coordinates of used nodes (the topology lists the unused ones: no pass
+    # over the cells; a whole finite array, the usual case, takes one reduction)
+    bad_xyz = np.zeros(0, np.int64)
+    if not np.isfinite(mesh.points).all():
+        bad_xyz = np.flatnonzero(~np.isfinite(mesh.points).all(axis=1))
+        bad_xyz = bad_xyz[~np.isin(bad_xyz, topo.unused_nodes)]
     if len(bad_xyz):
         out.append(_nodes("nonfinite_coordinates", BLOCKING,
                           "nodes with NaN or infinite coordinates", bad_xyz, mesh, s))
