@@ -694,6 +694,12 @@ class CellFlags(Mapping):
         return f"CellFlags({', '.join(f'{k}: {self.count(k)}' for k in self.names)})"
 
 
+def _widened(bounds: tuple[float, float]) -> tuple[float, float]:
+    """A metric's (low, high) range widened by the tolerance of :func:`out_of_range`."""
+    lo, hi = bounds
+    return lo - _BOUND_TOL * abs(lo), hi + _BOUND_TOL * abs(hi)
+
+
 def _flag_rows(flags: CellFlags, rows, names, fam: str, limits: QualityLimits, lo_off: int):
     """Flag the cells lo_off + i whose metric ``rows[k][i]`` (name ``names[k]``) lies
     outside the family's range (see :func:`out_of_range`)."""
@@ -701,9 +707,9 @@ def _flag_rows(flags: CellFlags, rows, names, fam: str, limits: QualityLimits, l
         lo, hi = limits.bounds(fam, name)
         if lo == -_INF and hi == _INF:
             continue
+        lo, hi = _widened((lo, hi))
         v = rows[k]
-        flags.set(name, int(lo_off),
-                  (v < lo - _BOUND_TOL * abs(lo)) | (v > hi + _BOUND_TOL * abs(hi)))
+        flags.set(name, int(lo_off), (v < lo) | (v > hi))
 
 
 def out_of_range(quality: CellQuality, mesh: Mesh, limits: QualityLimits) -> CellFlags:
@@ -821,9 +827,16 @@ def checked_quality(mesh: Mesh, limits: QualityLimits, n_worst: int = 10,
     pos = [METRICS.index(k) for k in names]
     kept = np.empty((len(names), n), np.float32)
     flags = CellFlags.empty(METRICS, n)
+    from .kernels.cells import flag_and_keep
+
+    keep_row = np.full(len(METRICS), -1, np.int64)
+    keep_row[pos] = np.arange(len(pos))
+    bit = np.array([flags._bit(k) for k in METRICS], flags.bits.dtype)
     for fam, lo, hi, rows in _chunk_metrics(mesh, chunk):
-        _flag_rows(flags, rows, METRICS, fam, limits, lo)
-        kept[:, lo:hi] = rows[pos]
+        # flagged and kept in float32 in one compiled pass (as _flag_rows and a cast)
+        low, high = (np.array(b, float) for b in zip(*(
+            _widened(limits.bounds(fam, k)) for k in METRICS)))
+        flag_and_keep(rows, low, high, bit, keep_row, kept, flags.bits, lo)
     kept.setflags(write=False)
     nan = np.broadcast_to(np.float32(np.nan), (n,))
     row = dict(zip(names, kept))

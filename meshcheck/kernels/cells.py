@@ -20,7 +20,7 @@ import numpy as np
 from . import njit
 
 __all__ = ["jacobian_extremes", "tet_quality", "hex_quality", "wedge_quality",
-           "pyramid_quality", "tri_quality", "quad_quality"]
+           "pyramid_quality", "tri_quality", "quad_quality", "flag_and_keep"]
 
 _SQRT2 = math.sqrt(2.0)
 _SQRT3 = math.sqrt(3.0)
@@ -507,3 +507,22 @@ def quad_quality(points, cells, out, off):
         n2 = math.sqrt(_dot2(x20, x21, x20, x21))
         out[SKEW, off + i] = _safe_div(abs(_dot2(x10, x11, x20, x21)), n1 * n2)
         out[MIN_ANGLE, off + i] = ang
+
+
+# ------------------------------------------------------------------ flags and float32 copy
+@njit(**_OPTS)
+def flag_and_keep(rows, low, high, bit, keep_row, kept, flags, off):
+    """One pass over a chunk of metrics ``rows`` (n_metrics, m) float64: the bits
+    ``bit[k]`` of ``flags[off + i]`` set where ``rows[k, i] < low[k]`` or ``> high[k]``
+    (NaN never, the bounds already widened by the tolerance: quality._flag_rows), and
+    ``kept[keep_row[k], off + i]`` the float32 value (rounded as numpy casts it) for every
+    k with ``keep_row[k] >= 0``."""
+    m = rows.shape[1]
+    for k in range(rows.shape[0]):
+        lo, hi, b, r = low[k], high[k], bit[k], keep_row[k]
+        for i in range(m):  # (no branch: vectorised)
+            v = rows[k, i]
+            flags[off + i] |= b * ((v < lo) | (v > hi))
+        if r >= 0:
+            for i in range(m):
+                kept[r, off + i] = np.float32(rows[k, i])
