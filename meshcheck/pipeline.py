@@ -9,6 +9,7 @@ import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Callable
 
 import numpy as np
@@ -228,21 +229,26 @@ def audit(mesh: Mesh, settings: AuditSettings,
             return sj, q, flags, summary, time.perf_counter() - t2, t2 - t1
 
         checks = pool.submit(cell_checks) if side else None
-        topo = build_topology(mesh)
-        done("topology")
         media = media_of(mesh, settings)
         chk = media.checks
 
-        def jumps():
+        def jumps(topo):
             return timed("size_jumps", size_jumps, mesh, topo, chk.gradation_ratio,
                          chk.max_listed)
 
-        def curvature():
+        def curvature(topo):
             return timed("curvature", check_curvature, mesh, topo, media.cell_speed,
                          settings.fmax, settings.advice.target, chk.feature_angle,
                          chk.max_listed)
 
-        geo = pool.submit(lambda: (jumps(), curvature())) if early else None
+        geo = []
+
+        def faces_found(edges, faces):  # the two read only the topology's edges and faces
+            part = SimpleNamespace(edges=edges, faces=faces)
+            geo.append(pool.submit(lambda: (jumps(part), curvature(part))))
+
+        topo = build_topology(mesh, faces_found=faces_found if early else None)
+        done("topology")
         sj, q, flags, summary, t_sj, t_q = checks.result() if side else cell_checks()
         stage("validity")
         findings = check_validity(mesh, topo, sj, settings.validity)
@@ -265,14 +271,14 @@ def audit(mesh: Mesh, settings: AuditSettings,
         # on two threads (large meshes), beside the geometry checks' end or with them (the
         # size jumps after the sweep: their scratch is then never held beside its)
         f = np.asarray(settings.frequencies)
-        jobs = [lambda: (sweep(mesh, topo, adv, f), None if early else jumps()),
-                lambda: None if early else curvature(),
+        jobs = [lambda: (sweep(mesh, topo, adv, f), None if early else jumps(topo)),
+                lambda: None if early else curvature(topo),
                 lambda: clusters(mesh, topo, adv, adv.refine),
                 lambda: clusters(mesh, topo, adv, adv.coarsen & ~adv.refine)]
         (sw, grad), curv, ref, coa = thread_map(lambda job: job(), jobs,
                                                 parallel=mesh.n_cells > OVERLAP_CELLS)
         if early:
-            grad, curv = geo.result()
+            grad, curv = geo[0].result()
     done("advice")
     stage("geometry")
     extra = _geometry_checks(mesh, topo, media, adv, settings, grad, curv)

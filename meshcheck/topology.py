@@ -17,6 +17,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from functools import lru_cache
+from typing import Callable
 
 import numpy as np
 
@@ -860,14 +861,18 @@ def _cracks(mesh: Mesh, faces: Faces, dup_pairs: np.ndarray) -> np.ndarray:
     return np.sort(bnd[count[inverse] > 1])
 
 
-def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
+def build_topology(mesh: Mesh, rel_tol: float = 1e-6,
+                   faces_found: Callable[[Edges, Faces], None] | None = None) -> Topology:
     """Derive edges, faces, components and connectivity defects of a mesh.
 
     rel_tol : two used nodes closer than rel_tol times the shorter of their
         shortest incident edges are duplicates (default 1e-6).
+    faces_found : called with the edges and the faces as soon as both are final, before
+        the components and the rest (e.g. the audit starts the checks that need only
+        them).
     """
     if kernels.use_compiled(mesh.n_cells):
-        return _build_topology_compiled(mesh, rel_tol)
+        return _build_topology_compiled(mesh, rel_tol, faces_found)
     edges = build_edges(mesh)
     used = np.zeros(mesh.n_points, bool)
     for b in mesh.blocks:
@@ -876,6 +881,8 @@ def build_topology(mesh: Mesh, rel_tol: float = 1e-6) -> Topology:
     # (run one after the other: on threads they added 160 MiB of peak memory on 1M
     # tetrahedra for no measurable gain, the sorts being bound by memory bandwidth)
     faces = build_faces(mesh, edges) if mesh.dim == 3 else empty
+    if faces_found is not None:
+        faces_found(edges, faces)
     vol = cell_volumes(mesh)
     dup = _duplicate_nodes(mesh.points, used, edges, rel_tol)
     dup_cells = _duplicate_cells(mesh)
@@ -1386,7 +1393,9 @@ def _per_label_bbox_compiled(points, mesh: Mesh, label: np.ndarray, n_label: int
     return lo, hi
 
 
-def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
+def _build_topology_compiled(mesh: Mesh, rel_tol: float,
+                             faces_found: Callable[[Edges, Faces], None] | None = None
+                             ) -> Topology:
     """:func:`build_topology` with the kernels of :mod:`meshcheck.kernels.topology`."""
     from .kernels import topology as kt
 
@@ -1402,6 +1411,8 @@ def _build_topology_compiled(mesh: Mesh, rel_tol: float) -> Topology:
                  _duplicate_nodes_compiled(mesh.points, used, edges, rel_tol),
                  _duplicate_cells_compiled(mesh))])
     faces, (vol, dup, dup_cells) = tail
+    if faces_found is not None:
+        faces_found(edges, faces)
     parent = np.arange(mesh.n_cells, dtype=kt.index_dtype(mesh.n_cells))
     if mesh.dim == 3:
         n_comp, comp = kt.components_faces(parent, faces.cells, faces.count)
