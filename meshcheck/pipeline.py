@@ -166,7 +166,8 @@ OVERLAP_CELLS = 100_000
 #: meshes with at least this many cells run the size jumps and the boundary-curvature check
 #: beside the validity and advice stages (on the cell checks' thread) rather than beside
 #: the advice's last jobs: 4.77M tets (6 alternating runs each, 2026-12-05) wall median
-#: 3.36 -> 3.27 s, peak 957-973 -> 940-958 MB; at 966k tets 0.92-0.97 -> 0.89-0.92 s, but
+#: 3.36 -> 3.27 s, peak 957-973 -> 940-958 MB (started once the faces exist, before the
+#: topology's last steps: 3.075 -> 3.03 s); at 966k tets 0.92-0.97 -> 0.89-0.92 s, but
 #: the peak with numba's cached kernels rose from 301-305 to 313-317 MiB (the heap more
 #: fragmented by the two threads' allocations), above the 300 MiB aimed at
 EARLY_GEOMETRY_CELLS = 2_000_000
@@ -210,9 +211,10 @@ def audit(mesh: Mesh, settings: AuditSettings,
     stage("topology")
     # the corner Jacobians and the quality metrics need no topology: on a second core
     # while the topology is built (numpy releases the GIL); then, for the largest meshes,
-    # on the same core, the size jumps and the boundary-curvature check, which need only
-    # the topology, beside the validity and advice stages (whose kernels leave part of a
-    # core idle); else beside the advice's last jobs
+    # on the same core, the size jumps and the boundary-curvature check, which read only
+    # the topology's edges and faces, from the moment those exist, beside the topology's
+    # last steps and the validity and advice stages (whose kernels leave part of a core
+    # idle); else beside the advice's last jobs
     side = mesh.n_cells > OVERLAP_CELLS and MAX_WORKERS > 1
     early = side and mesh.n_cells >= EARLY_GEOMETRY_CELLS
     with ThreadPoolExecutor(max_workers=1) as pool:

@@ -604,6 +604,9 @@ class EarlyVTU:
 
     def result(self) -> Path:
         """The report's path once it is written (raises the writer's error)."""
+        if self._thread is None:  # never started (no cell checks were made): written now
+            self.quality = self.final().quality
+            return write_vtu(self, self.path)
         return self._written.result()
 
     def abort(self) -> None:

@@ -325,3 +325,15 @@ def test_vtu_writer_error_is_raised_by_its_result(tmp_path):
     with pytest.raises(OSError):
         early.result()
     assert not (tmp_path / "no").exists()
+
+
+def test_vtu_never_started_is_written_when_asked_for(tmp_path):
+    # an audit that never hands over its cells' metrics (here: run without the hook)
+    # still gets its file, written when the path is asked for
+    from meshcheck.report import EarlyVTU, write_vtu
+
+    mesh, settings = tet_box((3, 2, 2)), AuditSettings((300.0,))
+    early = EarlyVTU(mesh, settings, tmp_path / "late.vtu")
+    res = audit(mesh, settings)
+    early.finish(res)
+    assert early.result().read_bytes() == write_vtu(res, tmp_path / "ref.vtu").read_bytes()
