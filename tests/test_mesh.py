@@ -83,16 +83,12 @@ def test_one_tag_per_block_is_held_as_a_read_only_broadcast():
     assert two.region.tolist() == [4] * 5 + [9] * 5 and two.region_tags.tolist() == [4, 9]
 
 
-@pytest.mark.parametrize("mode", ["numpy", "numba"])
-def test_topology_keeps_the_bounding_box_of_the_points_it_found_used(mode, monkeypatch):
+def test_topology_keeps_the_bounding_box_of_the_points_it_found_used(kernel_mode):
     # the topology hands its used-points mask to the mesh, which keeps the box from it
     # (no second pass over the cells): the same box as the mesh's own, which leaves out
     # the points no cell references
     from meshcheck.topology import build_topology
 
-    if mode == "numba":
-        pytest.importorskip("numba")
-    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
     box = tet_box((3, 2, 2))
     far = np.vstack([box.points, [[50.0, -7.0, 9.0]]])  # a point no cell references
     make = lambda: Mesh(far, box.blocks, dim=3)  # noqa: E731

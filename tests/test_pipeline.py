@@ -7,16 +7,13 @@ from meshcheck.pipeline import AuditSettings, audit
 from meshes import hex_box, tet10_box, tet_box
 
 
-@pytest.mark.parametrize("mode", ["numpy", "numba"])
 @pytest.mark.parametrize("early", [False, True], ids=["geometry beside the sweep",
                                                       "geometry once the faces exist"])
-def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch, mode, early):
+def test_cell_checks_beside_the_topology_equal_the_serial_audit(monkeypatch, kernel_mode,
+                                                                early):
     # large meshes: the cell checks beside the topology; the size jumps and the curvature
     # check beside the sweep, or (from EARLY_GEOMETRY_CELLS) started as soon as the
     # topology's faces exist, reading only its edges and faces
-    if mode == "numba":
-        pytest.importorskip("numba")
-    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
     monkeypatch.setattr(pipeline, "EARLY_GEOMETRY_CELLS", 0 if early else 10 ** 12)
     mesh = tet_box((26, 26, 26), size=(2.0, 1.5, 1.0))
     assert mesh.n_cells > pipeline.OVERLAP_CELLS

@@ -210,9 +210,8 @@ def test_audit_keeps_float32_metrics_and_reports_the_float64_statistics():
         assert np.array_equal(kept, v.astype(np.float32), equal_nan=True), name
 
 
-@pytest.mark.parametrize("mode", ["numpy", "numba"])
 @pytest.mark.parametrize("compress", [True, False])
-def test_vtu_cell_arrays_are_the_audit_arrays(tmp_path, monkeypatch, mode, compress):
+def test_vtu_cell_arrays_are_the_audit_arrays(tmp_path, monkeypatch, kernel_mode, compress):
     # the VTU's cell arrays, made whole (compressed) or a piece at a time (uncompressed,
     # pieces of 111 bytes), read back by meshio: the audit's arrays in the mesh's unit
     import meshio
@@ -221,9 +220,6 @@ def test_vtu_cell_arrays_are_the_audit_arrays(tmp_path, monkeypatch, mode, compr
     from meshcheck.mesh import CellBlock, Mesh
     from meshcheck.report import write_vtu
 
-    if mode == "numba":
-        pytest.importorskip("numba")
-    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
     monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 37)
     box = tet_box((6, 5, 4), size=(600.0, 500.0, 400.0))  # millimetres
     rng = np.random.default_rng(2)
@@ -244,7 +240,7 @@ def test_vtu_cell_arrays_are_the_audit_arrays(tmp_path, monkeypatch, mode, compr
             **{f"limit_hz_p{p}": a.limit_at(p, f32) for p in range(1, 9)},
             **{f"quality_{k}": v for k, v in res.quality.metrics.items()
                if np.isfinite(v).any()}}
-    assert (a.limit_row is not None) == (mode == "numba")
+    assert (a.limit_row is not None) == (kernel_mode == "numba")
     assert set(np.unique(mesh.region)) == {2, 7} and len(np.unique(a.cell_size)) > 100
     for k, v in want.items():
         assert got[k].dtype == v.dtype and np.array_equal(got[k], v, equal_nan=True), k
@@ -265,18 +261,14 @@ def _early_audit(mesh, settings, path):
     return res, early.result()
 
 
-@pytest.mark.parametrize("mode", ["numpy", "numba"])
 @pytest.mark.parametrize("stored", [False, True], ids=["compressed", "stored"])
-def test_vtu_written_during_the_audit_is_the_vtu_of_the_result(tmp_path, monkeypatch, mode,
-                                                               stored):
+def test_vtu_written_during_the_audit_is_the_vtu_of_the_result(tmp_path, monkeypatch,
+                                                               kernel_mode, stored):
     # the cells, points and metrics written while the topology and advice are worked out,
     # the rest once the audit is over: the same bytes as the finished result's VTU
     from meshcheck import pipeline, report, vtkxml
     from meshcheck.report import write_vtu
 
-    if mode == "numba":
-        pytest.importorskip("numba")
-    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
     monkeypatch.setattr(vtkxml, "_CHUNK", 3 * 37)
     monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)  # the cell checks on their thread
     if stored:  # as large meshes are written: uncompressed, a piece at a time

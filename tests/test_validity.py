@@ -1,6 +1,5 @@
 """Validity findings of meshcheck.validity."""
 import numpy as np
-import pytest
 
 from meshcheck.mesh import Mesh
 from meshcheck.topology import build_topology
@@ -8,13 +7,9 @@ from meshcheck.validity import BLOCKING, check_validity, min_scaled_jacobian
 from meshes import tet_box
 
 
-@pytest.mark.parametrize("mode", ["numpy", "numba"])
-def test_nonfinite_coordinates_are_found_at_used_nodes_only(mode, monkeypatch):
+def test_nonfinite_coordinates_are_found_at_used_nodes_only(kernel_mode):
     # a NaN at a node of the cells is blocking; an infinite coordinate at a node no cell
     # references is not a finding (the topology lists such nodes as unused)
-    if mode == "numba":
-        pytest.importorskip("numba")
-    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
     box = tet_box((3, 2, 2))
     pts = np.vstack([box.points, [[np.inf, 0.0, 0.0]]])
     used_bad = 5
