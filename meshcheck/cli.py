@@ -233,7 +233,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     from .job import load_job
     from .pipeline import OVERLAP_CELLS, AuditSettings, audit
     from .reading import read_mesh
-    from .report import EarlyVTU, to_dict, write_json, write_markdown, write_vtu
+    from .report import (EARLY_VTU_CELLS, EarlyVTU, to_dict, write_json, write_markdown,
+                         write_vtu)
     from .units import UNIT_FACTORS
 
     console = Console(highlight=False)
@@ -264,7 +265,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         big = mesh.n_cells > OVERLAP_CELLS
         stem = mesh_path.stem
         vtu = pos = None
-        if out is not None and "vtu" in kinds and big:
+        if out is not None and "vtu" in kinds and big and mesh.n_cells >= EARLY_VTU_CELLS:
             # the VTU written while the audit runs: the cells, points and quality metrics
             # as soon as those are known, the rest once the audit is over (a failed audit
             # leaves no file of its own)
@@ -294,6 +295,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
                 # the size field both need (the VTU last), on a thread of its own beside
                 # the JSON; the writers wait for it and find it cached
                 _aside(audit_size_field, res)  # (an error here: the writer raises it again)
+            if "vtu" in kinds and big and vtu is None:  # the VTU beside the JSON
+                vtu = _aside(write_vtu, res, out / f"{stem}.audit.vtu")
             if "pos" in kinds and big:  # the gmsh view too (the field computed once)
                 pos = _aside(write_size_view, res, out / f"{stem}.size.pos")
         data = to_dict(res, cost=cost)

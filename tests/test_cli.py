@@ -267,9 +267,10 @@ def test_every_cell_kind_audits_end_to_end(tmp_path, capsys, kind, mode):
 def test_size_field_beside_the_json_gives_the_same_files(box_file, tmp_path, monkeypatch,
                                                          reports):
     # large meshes write the VTU and the gmsh view on threads while the JSON is built
-    # (the size field computed once, by whichever comes first): the files must be the
-    # same as when they are written one after another
-    from meshcheck import pipeline, sizefield
+    # (the size field computed once, by whichever comes first), the largest ones the VTU
+    # during the audit: the files must be the same as when they are written one after
+    # another
+    from meshcheck import pipeline, report, sizefield
 
     calls = []
     real = sizefield.size_field
@@ -280,10 +281,13 @@ def test_size_field_beside_the_json_gives_the_same_files(box_file, tmp_path, mon
     assert main(args + [str(tmp_path / "serial")]) == 0
     monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
     assert main(args + [str(tmp_path / "aside")]) == 0
-    assert len(calls) == 2  # once per audit, shared by the VTU and the view
+    monkeypatch.setattr(report, "EARLY_VTU_CELLS", 0)
+    assert main(args + [str(tmp_path / "early")]) == 0
+    assert len(calls) == 3  # once per audit, shared by the VTU and the view
     for name in ("box.audit.vtu", "box.size.pos")[1 if "vtu" not in reports else 0:]:
-        assert (tmp_path / "serial" / name).read_bytes() == \
-            (tmp_path / "aside" / name).read_bytes(), name
+        for d in ("aside", "early"):
+            assert (tmp_path / "serial" / name).read_bytes() == \
+                (tmp_path / d / name).read_bytes(), (d, name)
     # the VTU written on a thread beside the JSON: the JSON is the same (but its time)
     serial, aside = (json.loads((tmp_path / d / "box.audit.json").read_text())
                      for d in ("serial", "aside"))
@@ -296,9 +300,10 @@ def test_audit_failing_after_the_vtu_started_leaves_no_report(box_file, tmp_path
     # large meshes start the VTU when the cells are checked; an audit that then fails
     # (a region the mesh has not) exits with the one-line error and leaves neither the
     # VTU, its temporary file nor the folder made for it
-    from meshcheck import pipeline
+    from meshcheck import pipeline, report
 
     monkeypatch.setattr(pipeline, "OVERLAP_CELLS", 0)
+    monkeypatch.setattr(report, "EARLY_VTU_CELLS", 0)
     out = tmp_path / "reports"
     rc = main(["audit", str(box_file), "-u", "m", "--fmax", "200", "--region-speed",
                "nowhere=300", "--reports", "json,vtu", "--quiet", "--out", str(out)])
