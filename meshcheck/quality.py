@@ -832,11 +832,13 @@ def checked_quality(mesh: Mesh, limits: QualityLimits, n_worst: int = 10,
     keep_row = np.full(len(METRICS), -1, np.int64)
     keep_row[pos] = np.arange(len(pos))
     bit = np.array([flags._bit(k) for k in METRICS], flags.bits.dtype)
+    ranges: dict = {}  # family -> (low, high) of every metric, widened
     for fam, lo, hi, rows in _chunk_metrics(mesh, chunk):
+        if fam not in ranges:
+            ranges[fam] = tuple(np.array(b, float) for b in zip(*(
+                _widened(limits.bounds(fam, k)) for k in METRICS)))
         # flagged and kept in float32 in one compiled pass (as _flag_rows and a cast)
-        low, high = (np.array(b, float) for b in zip(*(
-            _widened(limits.bounds(fam, k)) for k in METRICS)))
-        flag_and_keep(rows, low, high, bit, keep_row, kept, flags.bits, lo)
+        flag_and_keep(rows, *ranges[fam], bit, keep_row, kept, flags.bits, lo)
     kept.setflags(write=False)
     nan = np.broadcast_to(np.float32(np.nan), (n,))
     row = dict(zip(names, kept))
