@@ -232,7 +232,6 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     from .advice import AdviceSettings
     from .job import load_job
     from .pipeline import OVERLAP_CELLS, AuditSettings, audit
-    from .reading import read_mesh
     from .report import (EARLY_VTU_CELLS, EarlyVTU, to_dict, write_json, write_markdown,
                          write_vtu)
     from .units import UNIT_FACTORS
@@ -250,9 +249,9 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         if out is not None and "json" in kinds:  # the JSON's checksum beside the reading
             from .report import file_sha256
             file_sha256(mesh_path, aside=True)
-        mesh = read_mesh(mesh_path, units.value if units is not None else None,
-                         fmax_hint=float(np.max(f)) if len(f) else None,
-                         allow_outside=allow_outside)
+        mesh = _read_mesh(mesh_path, units.value if units is not None else None,
+                          fmax_hint=float(np.max(f)) if len(f) else None,
+                          allow_outside=allow_outside)
         # large meshes in an order that keeps neighbours near each other in memory (the
         # reports give the file's ids); the file's order is dropped, not held beside it
         from .ordering import renumbered_for_audit
@@ -359,6 +358,20 @@ def _aside(fn, *args):
 REPORT_KINDS = ("json", "md", "vtu", "html", "pos")
 
 
+def _read_mesh(path: Path, unit: str | None, **kw):
+    """:func:`meshcheck.reading.read_mesh`; below :data:`meshcheck.pipeline.TRIM_CELLS`
+    cells the heap's free top is no longer held (:func:`meshcheck.threads.hold_heap_top`,
+    where :func:`main` held it)."""
+    from .pipeline import TRIM_CELLS
+    from .reading import read_mesh
+    from .threads import hold_heap_top
+
+    mesh = read_mesh(path, unit, **kw)
+    if mesh.n_cells < TRIM_CELLS:
+        hold_heap_top(False)
+    return mesh
+
+
 def _report_kinds(text: str) -> set[str]:
     """The report files asked for by ``--reports`` (comma separated, or "all")."""
     from .errors import SettingsError
@@ -461,7 +474,6 @@ def calibrate(
     """
     from .calibration import calibrate as run_cal, fit_machine, save_machine, user_machine_path
     from .errors import SettingsError
-    from .reading import read_mesh
 
     console = Console(highlight=False, quiet=quiet)
     try:
@@ -476,7 +488,7 @@ def calibrate(
         raise SettingsError(f"--orders {orders}: give integers, e.g. 1,2,3,4") from None
     if not order_list or min(order_list) < 1 or max(order_list) > 8:
         raise SettingsError("--orders must be between 1 and 8")
-    src = read_mesh(mesh, units.value if units is not None else None) if mesh else None
+    src = _read_mesh(mesh, units.value if units is not None else None) if mesh else None
     kw = dict(orders=order_list, max_dofs=max_dofs, steps=steps)
     if quick:
         kw = dict(orders=order_list[:2], max_dofs=5000, steps=4, assembly_orders=(1, 2, 3, 4),
@@ -575,14 +587,13 @@ def coarsen(
     from .advice import AdviceSettings
     from .cost import job_cost, job_cost_dict
     from .pipeline import AuditSettings, audit
-    from .reading import read_mesh
     from .report import to_dict, write_all
     from .sizefield import remesh_and_audit
     from .units import UNIT_FACTORS
 
     console = Console(highlight=False, quiet=quiet)
     f = _frequencies(fmin, fmax, step, bands, None)
-    m = read_mesh(mesh, units.value if units is not None else None)
+    m = _read_mesh(mesh, units.value if units is not None else None)
     scale = UNIT_FACTORS.get(m.unit, 1.0)
     adv = AdviceSettings(target=target, max_order=max_order, order=order)
     settings = AuditSettings(frequencies=tuple(f), advice=adv, temperature=temperature,
@@ -677,7 +688,6 @@ def verify(
     import json
     from .advice import AdviceSettings, advise
     from .pipeline import AuditSettings, audit, cell_speeds
-    from .reading import read_mesh
     from .units import UNIT_FACTORS
     from . import verify as ver
 
@@ -687,7 +697,7 @@ def verify(
                                                    "not installed: "
                                                    f"{escape(ver.INSTALL_HINT)}")
         raise typer.Exit(2)
-    m = read_mesh(mesh, units.value if units is not None else None)
+    m = _read_mesh(mesh, units.value if units is not None else None)
     dist = None if distance is None else distance * UNIT_FACTORS[m.unit]
     adv_s = AdviceSettings(target=target, max_order=max_order, order=order, distance=dist,
                            correction_3d=not no_3d_correction)
@@ -735,9 +745,11 @@ def main(argv: list[str] | None = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     if argv is None:  # a process of its own (not a test calling main in-process)
-        from .threads import fix_mmap_threshold, no_huge_page_advice, share_malloc_arena
+        from .threads import (fix_mmap_threshold, hold_heap_top, no_huge_page_advice,
+                              share_malloc_arena)
         share_malloc_arena()
         fix_mmap_threshold()
+        hold_heap_top()
         no_huge_page_advice()
     err = Console(stderr=True, highlight=False, soft_wrap=True)
     try:

@@ -132,6 +132,45 @@ def test_release_free_heap_gives_a_freed_hole_back():
     assert dropped >= 36 << 20
 
 
+_HOLD_CHILD = r"""
+import sys
+import numpy as np
+from meshcheck.threads import fix_mmap_threshold, hold_heap_top
+assert fix_mmap_threshold() is True
+undo = hold_heap_top(False)           # nothing held yet: nothing to undo
+if sys.argv[1] == "held":
+    assert hold_heap_top() is True
+def rss():
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * 4096
+top = np.empty(40 << 20, np.uint8)    # below the mmap threshold: the heap's top
+top[:] = 1                            # resident
+before = rss()
+del top                               # freed at the top of the heap
+freed = before - rss()
+off = hold_heap_top(False)
+print(int(undo), freed, before - rss(), int(off))
+"""
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux") or platform.libc_ver()[0] != "glibc",
+                    reason="glibc's M_TRIM_THRESHOLD")
+def test_hold_heap_top_keeps_a_freed_top_until_turned_off():
+    """glibc gives a freed 40 MiB block at the heap's top back at once by default (the
+    kernel's count, /proc/self/statm); held (hold_heap_top), its pages stay resident for
+    the next blocks until hold_heap_top(False), which gives them back."""
+    def run(mode):
+        out = subprocess.run([sys.executable, "-c", _HOLD_CHILD, mode], capture_output=True,
+                             text=True, check=True)
+        return [int(x) for x in out.stdout.split()]
+
+    undo, freed, after_off, off = run("default")
+    assert undo == 0 and off == 0 and freed >= 36 << 20
+    undo, freed, after_off, off = run("held")
+    assert undo == 0 and off == 1
+    assert freed < 4 << 20 and after_off >= 36 << 20
+
+
 _RELEASE_CHILD = r"""
 import numpy as np
 from meshcheck.threads import release_tail
