@@ -7,6 +7,8 @@ reference (:mod:`meshcheck.jacobian`, :mod:`meshcheck.quality`,
 the reference's order, ``min``/``max`` propagate NaN like ``np.minimum`` /
 ``np.maximum``, divisions by zero follow numpy (``error_model="numpy"``), so the
 two paths agree to the last bit in practice (the tests allow 1e-12 relative).
+The tetrahedra's dihedral angles are the exception: their arctangent is
+:func:`_atan2`, within 2 units in the last place of the C library's.
 
 Inputs: ``points`` (n, 3) float64 metres, C-contiguous; ``cells`` (m, n_nodes)
 int64.  Outputs are written into caller-allocated float64 arrays.
@@ -250,6 +252,48 @@ def jacobian_extremes(points, cells, G, ptr, node, col, val, q_ratio, mid_edges,
                     det_hi[s + b] = _max(det_hi[s + b], D[b])
 
 
+# ------------------------------------------------------------------ arctangent
+# Cephes' double-precision arctangent (S. L. Moshier, Cephes Math Library, atan.c,
+# 1984-1998): the rational approximation x + x^3 P(x^2) / Q(x^2) of degree 4 / 5 on
+# |x| <= 0.66 and the reduction (x - 1) / (x + 1) above it.  The coefficients are
+# Cephes', written down from memory and checked by tests/test_kernels_cells.py against
+# the C library (at most 2 units in the last place over 10M random quotients).
+_P0, _P1, _P2, _P3, _P4 = (-8.750608600031904122785e-1, -1.615753718733365076637e1,
+                           -7.500855792314704667340e1, -1.228866684490136173410e2,
+                           -6.485021904942025371773e1)
+_Q0, _Q1, _Q2, _Q3, _Q4 = (2.485846490142306297962e1, 1.650270098316988542046e2,
+                           4.328810604912902668951e2, 4.853903996359136964868e2,
+                           1.945506571482613964425e2)
+_MOREBITS = 6.123233995736765886130e-17  # pi / 2 - float64(pi / 2)
+_PIO2 = math.pi / 2.0
+_PIO4 = math.pi / 4.0
+
+
+@njit(inline="always", **_OPTS)
+def _atan2(y, x):
+    """math.atan2(y, x) without branches (selects only), so that a loop calling it is
+    vectorised: the smaller of |x|, |y| over the larger, its arctangent by Cephes'
+    approximation, then the octant and quadrant; signed zeros, infinities and NaN as
+    the C library's (within 2 ulp of it elsewhere; about 6x its speed in a loop)."""
+    ax, ay = abs(x), abs(y)
+    swap = ay > ax
+    num = ax if swap else ay
+    den = ay if swap else ax
+    t = num / den                                   # in [0, 1]
+    t = 0.0 if num == 0.0 and den == den else t     # 0 / 0
+    t = 1.0 if ax == math.inf and ay == math.inf else t
+    big = t > 0.66
+    u = (t - 1.0) / (t + 1.0) if big else t
+    z = u * u
+    p = (((_P0 * z + _P1) * z + _P2) * z + _P3) * z + _P4
+    q = ((((z + _Q0) * z + _Q1) * z + _Q2) * z + _Q3) * z + _Q4
+    r = u * (z * p / q) + u
+    r = _PIO4 + (r + 0.5 * _MOREBITS) if big else r
+    r = (_PIO2 - r) + _MOREBITS if swap else r      # atan(1 / t) = pi / 2 - atan(t)
+    r = math.pi - r if math.copysign(1.0, x) < 0.0 else r
+    return -r if math.copysign(1.0, y) < 0.0 else r
+
+
 # ------------------------------------------------------------------ 3-vectors as tuples
 @njit(**_OPTS)
 def _sub(a, b):
@@ -324,11 +368,11 @@ def tet_quality(points, cells, out, off):
     """quality._tet for every cell: writes rows 0-5, columns off.. of out (8, n).
 
     Blocks of :data:`_BLOCK` cells: their corners gathered, then every value but the
-    angles in one vectorised loop, then the two atan2 per cell (1.8x the speed of one
-    loop over the cells at 4.77M tetrahedra; the same values)."""
+    angles in one vectorised loop (1.8x the speed of one loop over the cells at 4.77M
+    tetrahedra, the same values), then the angles (:func:`_atan2`) in another."""
     m = cells.shape[0]
     X = np.empty((12, _BLOCK))
-    R = np.empty((8, _BLOCK))
+    R = np.empty((10, _BLOCK))
     for s in range(0, m, _BLOCK):
         nb = min(_BLOCK, m - s)
         for j in range(nb):
@@ -343,10 +387,12 @@ def tet_quality(points, cells, out, off):
             R[0, j], R[1, j], R[2, j], R[3, j] = r[0], r[1], r[2], r[3]
             R[4, j], R[5, j], R[6, j], R[7, j] = r[4], r[5], r[6], r[7]
         for j in range(nb):
+            R[8, j] = _atan2(R[4, j], R[5, j]) * _DEG
+            R[9, j] = _atan2(R[6, j], R[7, j]) * _DEG
+        for j in range(nb):
             i = off + s + j
             out[0, i], out[1, i], out[2, i], out[3, i] = R[0, j], R[1, j], R[2, j], R[3, j]
-            out[MIN_DIHEDRAL, i] = math.atan2(R[4, j], R[5, j]) * _DEG
-            out[MAX_DIHEDRAL, i] = math.atan2(R[6, j], R[7, j]) * _DEG
+            out[MIN_DIHEDRAL, i], out[MAX_DIHEDRAL, i] = R[8, j], R[9, j]
 
 
 @njit(**_OPTS)
