@@ -24,7 +24,8 @@ from .job import Job, Media, resolve_media
 from .layers import LayerCheck, check_layer
 from .mesh import Mesh
 from .ordering import renumbered_for_audit
-from .quality import CellFlags, CellQuality, QualityLimits, checked_quality
+from .quality import (MIN_SJ_TYPES, CellFlags, CellQuality, QualityLimits,
+                      checked_quality)
 from .reading import read_mesh
 from .threads import MAX_WORKERS, release_free_heap, thread_map
 from .topology import Topology, build_topology
@@ -223,11 +224,13 @@ def audit(mesh: Mesh, settings: AuditSettings,
             # flags and statistics of the float64 metrics, which are kept in float32 (the
             # VTU's type; half the memory; compiled: never held whole in float64); the
             # float64 Jacobians after them, so that the two sets are never held together
-            q, flags, summary = checked_quality(mesh, settings.quality)
+            # (the linear tetrahedra's corner Jacobians taken in the same pass)
+            sj = np.empty(mesh.n_cells)
+            q, flags, summary = checked_quality(mesh, settings.quality, min_sj=sj)
             if cells_checked is not None:
                 cells_checked(q)
             t2 = time.perf_counter()
-            sj = min_scaled_jacobian(mesh)
+            sj = min_scaled_jacobian(mesh, out=sj, known=MIN_SJ_TYPES)
             return sj, q, flags, summary, time.perf_counter() - t2, t2 - t1
 
         checks = pool.submit(cell_checks) if side else None

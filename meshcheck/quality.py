@@ -80,6 +80,7 @@ from .mesh import Mesh
 
 __all__ = [
     "METRICS",
+    "MIN_SJ_TYPES",
     "FAMILIES",
     "family_of",
     "block_quality",
@@ -801,12 +802,22 @@ def summarise(quality: CellQuality, n_worst: int = 10,
 #: cells whose float64 metrics :func:`checked_quality` holds at a time (4 MiB)
 CHECK_CHUNK = 1 << 16
 
+#: the cell types whose minimum scaled Jacobian :func:`checked_quality` writes into its
+#: ``min_sj`` (for :func:`meshcheck.validity.min_scaled_jacobian`'s ``known``)
+MIN_SJ_TYPES = ("tetra",)
+
 
 def checked_quality(mesh: Mesh, limits: QualityLimits, n_worst: int = 10,
-                    chunk: int = CHECK_CHUNK):
+                    chunk: int = CHECK_CHUNK, min_sj: np.ndarray | None = None):
     """The audit's cell checks: (metrics kept in float32, :class:`CellFlags` of the cells
     out of range, :func:`summarise` statistics), the flags and statistics those of the
     float64 metrics.
+
+    min_sj : optional (n_cells,) float64 array; the cells of the blocks of
+        :data:`MIN_SJ_TYPES` get their :func:`meshcheck.validity.min_scaled_jacobian`
+        there (the same values; the compiled path computes them from the corners it
+        gathers for the metrics: a second pass over the cells' coordinates saved,
+        0.08 s at 4.77M tetrahedra), the other cells are left as they are.
 
     The numpy path computes the float64 metrics whole, flags and summarises them, then
     narrows them.  The compiled path never holds them: it computes them ``chunk`` cells at
@@ -817,6 +828,13 @@ def checked_quality(mesh: Mesh, limits: QualityLimits, n_worst: int = 10,
     Where too many cells tie (e.g. identical cells), the float64 values of the metrics
     left are computed in one more pass instead."""
     if not kernels.use_compiled(mesh.n_cells):
+        if min_sj is not None:
+            from .jacobian import scaled_jacobian_min
+
+            for blk, lo in zip(mesh.blocks, mesh.block_offsets):
+                if blk.type in MIN_SJ_TYPES:
+                    min_sj[lo:lo + len(blk)] = scaled_jacobian_min(mesh.points, blk.cells,
+                                                                   blk.type, "corners")
         q = mesh_quality(mesh)
         flags = out_of_range(q, mesh, limits)
         summary = summarise(q, n_worst, parallel=False)
@@ -833,7 +851,7 @@ def checked_quality(mesh: Mesh, limits: QualityLimits, n_worst: int = 10,
     keep_row[pos] = np.arange(len(pos))
     bit = np.array([flags._bit(k) for k in METRICS], flags.bits.dtype)
     ranges: dict = {}  # family -> (low, high) of every metric, widened
-    for fam, lo, hi, rows in _chunk_metrics(mesh, chunk):
+    for fam, lo, hi, rows in _chunk_metrics(mesh, chunk, min_sj):
         if fam not in ranges:
             ranges[fam] = tuple(np.array(b, float) for b in zip(*(
                 _widened(limits.bounds(fam, k)) for k in METRICS)))
@@ -846,10 +864,11 @@ def checked_quality(mesh: Mesh, limits: QualityLimits, n_worst: int = 10,
     return q, flags, _summary_of_kept(mesh, q, names, n_worst, chunk)
 
 
-def _chunk_metrics(mesh: Mesh, chunk: int):
+def _chunk_metrics(mesh: Mesh, chunk: int, min_sj: np.ndarray | None = None):
     """(family, lo, hi, rows) for the cells lo..hi-1 of each block, ``chunk`` at a time:
     rows (len(METRICS), hi - lo) float64 their metrics by the compiled kernels (NaN where
-    undefined), valid until the next chunk.
+    undefined), valid until the next chunk; ``min_sj`` (n_cells,) given: the minimum
+    scaled Jacobians of the blocks of :data:`MIN_SJ_TYPES` written there.
 
     One buffer serves every chunk (a new 4 MiB array per chunk was mapped afresh by
     glibc and faulted in page by page, 73 times at 4.77M tets, while the mmap threshold,
@@ -861,8 +880,23 @@ def _chunk_metrics(mesh: Mesh, chunk: int):
             e = min(s + chunk, len(blk))
             rows = buf[:len(METRICS) * (e - s)].reshape(len(METRICS), e - s)  # C order
             rows.fill(np.nan)
-            _compiled_quality(mesh.points, blk.cells[s:e], blk.type, rows, 0)
+            if min_sj is not None and blk.type in MIN_SJ_TYPES:
+                _tet_quality_sj(mesh.points, blk.cells[s:e], rows, min_sj[off + s:off + e])
+            else:
+                _compiled_quality(mesh.points, blk.cells[s:e], blk.type, rows, 0)
             yield fam, int(off + s), int(off + e), rows
+
+
+def _tet_quality_sj(points: np.ndarray, cells: np.ndarray, out: np.ndarray,
+                    sj: np.ndarray) -> None:
+    """:func:`_compiled_quality` of linear tetrahedra into out (columns 0..) and their
+    minimum scaled Jacobians into sj (m,) float64 (one pass over the corners)."""
+    from .jacobian import _gradient_table
+    from .kernels import cells as _kc
+
+    _kc.tet_quality_sj(np.ascontiguousarray(points, dtype=np.float64),
+                       np.ascontiguousarray(cells), out, 0,
+                       _gradient_table("tetra", "corners"), sj)
 
 
 def _metrics_of(mesh: Mesh, ids: np.ndarray) -> np.ndarray:

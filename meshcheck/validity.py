@@ -54,7 +54,8 @@ class ValiditySettings:
     max_listed: int = 20
 
 
-def min_scaled_jacobian(mesh: Mesh, chunk: int = 200_000) -> np.ndarray:
+def min_scaled_jacobian(mesh: Mesh, chunk: int = 200_000, out: np.ndarray | None = None,
+                        known: tuple = ()) -> np.ndarray:
     """(n_cells,) minimum scaled Jacobian over corners and, for quadratic cells,
     over quadrature points (dimensionless; negative = inverted somewhere).
 
@@ -62,36 +63,42 @@ def min_scaled_jacobian(mesh: Mesh, chunk: int = 200_000) -> np.ndarray:
     quadrature points); for quadratic cells it also keeps the det J ratio and the
     mid-node deviation for :func:`meshcheck.curvature.quadratic_geometry`, which
     then needs no second pass.
+
+    out : optional (n_cells,) float64 array written into and returned; the cells of the
+        blocks whose type is in ``known`` hold their values there already and are
+        skipped (e.g. :func:`meshcheck.quality.checked_quality`'s ``min_sj``).
     """
-    if kernels.use_compiled(mesh.n_cells):
-        return _compiled_min_sj(mesh)
-    out = []
-    for b in mesh.blocks:
-        vals = np.empty(len(b))
-        for s in range(0, len(b), chunk):
-            cells = b.cells[s:s + chunk]
-            v = scaled_jacobian_min(mesh.points, cells, b.type, "corners")
-            if b.info.quadratic:
-                v = np.minimum(v, scaled_jacobian_min(mesh.points, cells, b.type, "quadrature"))
-            vals[s:s + chunk] = v
-        out.append(vals)
-    return np.concatenate(out) if out else np.zeros(0)
+    compiled = kernels.use_compiled(mesh.n_cells)
+    out = np.empty(mesh.n_cells) if out is None else out
+    for b, lo in zip(mesh.blocks, mesh.block_offsets):
+        if b.type not in known:
+            out[lo:lo + len(b)] = (_compiled_block_sj(mesh.points, b) if compiled else
+                                   _block_sj(mesh.points, b, chunk))
+    return out
 
 
-def _compiled_min_sj(mesh: Mesh) -> np.ndarray:
-    """min_scaled_jacobian by the compiled kernel (whole blocks, no chunks needed)."""
-    out = []
-    for b in mesh.blocks:
+def _block_sj(points: np.ndarray, b, chunk: int) -> np.ndarray:
+    """min_scaled_jacobian of the cells of block b by numpy, ``chunk`` cells at a time."""
+    vals = np.empty(len(b))
+    for s in range(0, len(b), chunk):
+        cells = b.cells[s:s + chunk]
+        v = scaled_jacobian_min(points, cells, b.type, "corners")
         if b.info.quadratic:
-            table = _gradient_table(b.type, "corners", "quadrature")
-            first_q = len(_gradient_table(b.type, "corners"))
-            sj, ratio, dev = compiled_extremes(mesh.points, b.cells, table, first_q, b.info.edges)
-            remember_quadratic(mesh.points, b.cells, ratio, dev)
-        else:
-            table = _gradient_table(b.type, "corners")
-            sj = compiled_extremes(mesh.points, b.cells, table, None)[0]
-        out.append(sj)
-    return np.concatenate(out) if out else np.zeros(0)
+            v = np.minimum(v, scaled_jacobian_min(points, cells, b.type, "quadrature"))
+        vals[s:s + chunk] = v
+    return vals
+
+
+def _compiled_block_sj(points: np.ndarray, b) -> np.ndarray:
+    """min_scaled_jacobian of the cells of block b by the compiled kernel (the whole
+    block, no chunks needed)."""
+    if b.info.quadratic:
+        table = _gradient_table(b.type, "corners", "quadrature")
+        first_q = len(_gradient_table(b.type, "corners"))
+        sj, ratio, dev = compiled_extremes(points, b.cells, table, first_q, b.info.edges)
+        remember_quadratic(points, b.cells, ratio, dev)
+        return sj
+    return compiled_extremes(points, b.cells, _gradient_table(b.type, "corners"), None)[0]
 
 
 def _cells(code, severity, message, mask_or_ids, mesh: Mesh, s: ValiditySettings):

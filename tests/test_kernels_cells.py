@@ -399,3 +399,34 @@ def test_vectorised_atan2_within_two_ulp_of_the_c_library():
     finite_q = np.isfinite(Y) & np.isfinite(X) & ((Y != 0) | (X != 0))
     assert (same | (near & finite_q)).all(), list(zip(Y[~same], X[~same]))
     assert (same | finite_q).all()  # zeros, infinities, NaN: exactly the C library's
+
+
+@pytest.mark.parametrize("mode", ["numpy", "numba"])
+def test_checked_quality_writes_the_tetrahedra_min_scaled_jacobian(mode, monkeypatch):
+    """checked_quality(min_sj=...) fills the cells of the tetra blocks with exactly
+    validity.min_scaled_jacobian's values (the compiled path from the corners gathered
+    for the metrics; the hard cases included: inverted, collapsed, flat, tiny, huge,
+    NaN and infinite corners), leaves the other blocks' cells as they were, and
+    min_scaled_jacobian(out=..., known=MIN_SJ_TYPES) completes the array to the
+    values of the plain call; the metrics, flags and statistics are those of the call
+    without min_sj."""
+    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+    mesh = _mixed_mesh(["hexahedron", "tetra", "tetra10", "tetra"], m=150)
+    lim = quality.QualityLimits()
+    with np.errstate(all="ignore"):
+        ref = validity.min_scaled_jacobian(mesh)
+        plain = quality.checked_quality(mesh, lim, chunk=64)
+        sj = np.full(mesh.n_cells, -7.0)
+        got = quality.checked_quality(mesh, lim, chunk=64, min_sj=sj)
+    tet = np.concatenate([np.full(len(b), b.type in quality.MIN_SJ_TYPES) for b in mesh.blocks])
+    assert tet.sum() == 300 and quality.MIN_SJ_TYPES == ("tetra",)
+    np.testing.assert_array_equal(sj[tet], ref[tet])  # bit for bit, NaN where NaN
+    assert (sj[~tet] == -7.0).all()
+    for k in quality.METRICS:
+        np.testing.assert_array_equal(got[0][k], plain[0][k])
+    assert np.array_equal(got[1].bits, plain[1].bits)
+    assert str(got[2]) == str(plain[2])
+    with np.errstate(all="ignore"):
+        full = validity.min_scaled_jacobian(mesh, out=sj, known=quality.MIN_SJ_TYPES)
+    assert full is sj
+    np.testing.assert_array_equal(full, ref)
