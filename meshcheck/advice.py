@@ -183,7 +183,15 @@ class Advice:
             return int(np.argmin(col))
         nan = np.isnan(col)
         low = nan if nan.any() else col == np.min(col)
-        return int(np.argmax(low[self.limit_row]))
+        rows = np.flatnonzero(low)
+        if len(rows) > 4:
+            return int(np.argmax(low[self.limit_row]))
+        # a few lowest rows (the usual case): the first cell using one of them, by
+        # comparisons instead of a gather over every cell (4.77M cells: 30 -> 4 ms)
+        hit = self.limit_row == rows[0]
+        for r in rows[1:]:
+            hit |= self.limit_row == r
+        return int(np.argmax(hit))
 
     @cached_property
     def mesh_limit(self) -> np.ndarray:

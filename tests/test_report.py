@@ -127,6 +127,7 @@ def test_lowest_cell_is_numpys_argmin_of_the_per_cell_limits(shared):
     n = 2000
     rows = np.round(np.maximum.accumulate(rng.uniform(10.0, 1e3, (n // 4, 5)), axis=1), -1)
     rows[[5, 90], 3] = np.nan  # a NaN limit at order 4
+    rows[rng.choice(len(rows), 7, replace=False), 4] = 5.0  # 7 rows tied lowest at order 5
     index = rng.permutation(np.r_[np.arange(len(rows)),
                                   rng.integers(0, len(rows), n - len(rows))]).astype(np.int32)
     lim = rows[index]
@@ -136,6 +137,8 @@ def test_lowest_cell_is_numpys_argmin_of_the_per_cell_limits(shared):
         assert Advice.lowest_cell(adv, p) == int(np.argmin(lim[:, p - 1])), p
     assert np.isnan(lim[Advice.lowest_cell(adv, 4), 3])
     assert np.sum(lim[:, 0] == lim[:, 0].min()) > 1  # ties: the first one is meant
+    assert np.sum(rows[:, 0] == rows[:, 0].min()) in (2, 3, 4)  # a few tied rows
+    assert np.sum(rows[:, 4] == 5.0) == 7  # and more than a few
 
 
 def test_file_checksum_is_computed_once_and_follows_the_file(tmp_path, monkeypatch):
