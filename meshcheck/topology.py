@@ -1358,8 +1358,13 @@ def _duplicate_cells_compiled(mesh: Mesh) -> np.ndarray:
         k = b.info.n_corners
         if len(b) < 2:
             continue
-        h = np.empty(len(b), np.uint64)
         mult = _HASH_MULT[:k].copy()
+        # cells ordered by their lowest corner (a renumbered mesh): repeats can only sit
+        # in one run of equal lowest corners, so one pass without a sort settles it when
+        # none repeats (4.77M tetrahedra: 0.03 s against the sort's 0.1-0.25 s)
+        if kt.distinct_in_runs(b.cells, k, mult):
+            continue
+        h = np.empty(len(b), np.uint64)
         kt.corner_hash(b.cells, k, mult, h)
         # repeated hashes by numpy's sort (SIMD, in cache-sized runs): 0.1 s against
         # 0.35 s for an open-addressing table on 4.8M tetrahedra; sorted in place (no

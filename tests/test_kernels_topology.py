@@ -632,6 +632,49 @@ def test_corner_hash_is_the_numpy_paths_hash_of_the_sorted_corners(k, dtype):
     np.testing.assert_array_equal(got[:50], got[50:100])
 
 
+@pytest.mark.parametrize("k", [4, 8])
+def test_duplicate_cells_of_cells_ordered_by_lowest_corner_skip_the_sort(k, monkeypatch):
+    # cells with the same corners share their lowest corner, so in a mesh ordered by it
+    # (a renumbered one) they sit in one run: distinct_in_runs proves there are none
+    # without a sort, and any doubt (a repeat, corners out of order, a run longer than
+    # RUN_MAX) leaves it to the sort of all hashes; the pairs are the numpy path's
+    from meshcheck.kernels import topology as kt
+    from meshcheck.topology import _HASH_MULT, _duplicate_cells, _duplicate_cells_compiled
+
+    rng = np.random.default_rng(k)
+    n_pts = 4000
+    cells = np.array([rng.choice(n_pts, k, replace=False) for _ in range(6000)])
+    cells = np.unique(np.sort(cells, axis=1), axis=0)  # distinct corner sets
+    cells = rng.permuted(cells, axis=1)  # corners in any order within a cell
+    cells = cells[np.argsort(cells.min(axis=1), kind="stable")].astype(np.int32)
+    mult = _HASH_MULT[:k].copy()
+    pts = rng.uniform(size=(n_pts, 3))
+    kind = "tetra" if k == 4 else "hexahedron"
+
+    def pairs(c, path):
+        mesh = Mesh(pts, (CellBlock(kind, c, np.ones(len(c))),))
+        return (_duplicate_cells_compiled if path == "numba" else _duplicate_cells)(mesh)
+
+    assert kt.distinct_in_runs(cells, k, mult)
+    assert len(pairs(cells, "numba")) == 0 == len(pairs(cells, "numpy"))
+    # a repeat (corners in another order) inserted next to its original: caught
+    i = 1234
+    dup = np.insert(cells, i + 1, cells[i][::-1], axis=0)
+    assert not kt.distinct_in_runs(dup, k, mult)
+    np.testing.assert_array_equal(pairs(dup, "numba"), [[i, i + 1]])
+    np.testing.assert_array_equal(pairs(dup, "numpy"), [[i, i + 1]])
+    # out of order: the sort decides (and finds none)
+    shuffled = cells[rng.permutation(len(cells))]
+    assert not kt.distinct_in_runs(shuffled, k, mult)
+    assert len(pairs(shuffled, "numba")) == 0
+    # a run longer than RUN_MAX cells sharing a lowest corner: the sort decides
+    fan = np.column_stack([np.zeros(kt.RUN_MAX + 1, np.int32),
+                           1 + np.arange((kt.RUN_MAX + 1) * (k - 1)).reshape(-1, k - 1)])
+    assert kt.distinct_in_runs(fan[:kt.RUN_MAX], k, mult)
+    assert not kt.distinct_in_runs(fan.astype(np.int32), k, mult)
+    assert len(pairs(fan.astype(np.int32), "numba")) == 0
+
+
 def test_component_volumes_are_numpys_bincount_bit_for_bit():
     # the compiled sums add in index order, as np.bincount does: the same bits
     pytest.importorskip("numba")

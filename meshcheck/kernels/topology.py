@@ -929,6 +929,64 @@ def corner_hash(cells, k, mult, out):
         out[c] = h
 
 
+#: longest run of cells sharing a lowest corner that :func:`distinct_in_runs` compares
+#: pairwise (a longer one sends the block to the sort of all hashes)
+RUN_MAX = 64
+
+
+@njit
+def distinct_in_runs(cells, k, mult):
+    """True when the cells (m, k) are ordered by their lowest corner (as the renumbered
+    mesh's are, :func:`meshcheck.ordering.sorted_cells`) and no two cells with the same
+    lowest corner have the same :func:`corner_hash`: then no two cells have the same
+    corners, since such cells share their lowest corner.  False otherwise (corners out
+    of that order, a repeated hash, or a run longer than :data:`RUN_MAX`), when the caller
+    must sort the hashes.  Stops at the first such cell; allocates nothing per cell."""
+    run = np.empty(RUN_MAX, np.uint64)
+    n_run = 0
+    prev = np.int64(-1)
+    s = np.empty(k, np.int64)
+    for c in range(cells.shape[0]):
+        if k == 4:
+            a, b = np.int64(cells[c, 0]), np.int64(cells[c, 1])
+            d, e = np.int64(cells[c, 2]), np.int64(cells[c, 3])
+            a, b = min(a, b), max(a, b)
+            d, e = min(d, e), max(d, e)
+            a, d = min(a, d), max(a, d)
+            b, e = min(b, e), max(b, e)
+            b, d = min(b, d), max(b, d)
+            lo = a
+            h = (np.uint64(a) * mult[0] + np.uint64(b) * mult[1] + np.uint64(d) * mult[2]
+                 + np.uint64(e) * mult[3])
+        else:
+            for i in range(k):
+                v = np.int64(cells[c, i])
+                j = i - 1
+                while j >= 0 and s[j] > v:
+                    s[j + 1] = s[j]
+                    j -= 1
+                s[j + 1] = v
+            lo = s[0]
+            h = np.uint64(0)
+            for i in range(k):
+                h += np.uint64(s[i]) * mult[i]
+        h ^= h >> np.uint64(29)
+        if lo != prev:
+            if lo < prev:
+                return False
+            prev = lo
+            n_run = 0
+        else:
+            for i in range(n_run):
+                if run[i] == h:
+                    return False
+            if n_run == RUN_MAX:
+                return False
+        run[n_run] = h
+        n_run += 1
+    return True
+
+
 @njit
 def label_abs_sums(label, values, out):
     """out[label[i]] += |values[i]| in index order: np.bincount(label,
