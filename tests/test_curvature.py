@@ -277,6 +277,64 @@ def test_surface_geometry_equals_trimesh(sphere, cylinder, chunk, monkeypatch):
     assert len(adj) > 0 and (fn == 0).all(axis=1).any() and (corner == 0).all(axis=1).any()
 
 
+def test_compact_ids_is_numpys_unique_with_inverse():
+    from meshcheck.curvature import _compact_ids
+
+    rng = np.random.default_rng(3)
+    for n, k in ((50, 400), (10_000, 300), (1, 5), (7, 0)):
+        ids = rng.integers(0, n, k)
+        vid, inv = _compact_ids(ids, n)
+        want, winv = np.unique(ids, return_inverse=True)
+        np.testing.assert_array_equal(vid, want)
+        np.testing.assert_array_equal(inv, winv)
+        assert inv.dtype == np.int64
+
+
+def test_vertex_patch_rows_number_the_distinct_pairs(cylinder):
+    # one row per distinct (vertex, patch) pair, whatever the numbering: the rows and
+    # np.unique's inverse of the pairs' keys are a bijection of the same size; the
+    # cylinder's rims are feature edges, so their vertices are in two patches
+    from meshcheck.curvature import _vertex_patch_rows
+
+    _, mesh, topo = cylinder
+    surf = boundary_surface(mesh, topo)
+    curv = surface_curvature(surf, 50.0)
+    assert curv.n_patches >= 3
+    tri = surf.triangles
+    rows, n_rows = _vertex_patch_rows(tri, curv.patch, len(surf.points), curv.n_patches)
+    uk, want = np.unique((tri * curv.n_patches + curv.patch[:, None]).ravel(),
+                         return_inverse=True)
+    assert n_rows == len(uk) > len(surf.points)
+    assert rows.min() == 0 and rows.max() == n_rows - 1
+    pairs = np.unique(np.column_stack([rows, want.reshape(-1)]), axis=0)
+    assert len(pairs) == n_rows  # rows <-> keys one to one
+    one = np.zeros(len(tri), np.int64)  # a single patch: each vertex its own row
+    rows1, n1 = _vertex_patch_rows(tri, one, len(surf.points), 1)
+    np.testing.assert_array_equal(rows1, tri.ravel())
+    assert n1 == len(surf.points)
+
+
+@pytest.mark.parametrize("compiled", COMPILED)
+def test_curvatures_do_not_depend_on_the_rows_numbering(cylinder, compiled, monkeypatch):
+    # the corner normals summed per (vertex, patch) row in triangle order: numbered by
+    # np.unique of the pairs' keys (the former code) the curvatures are the same bits
+    import meshcheck.curvature as cv
+
+    _, mesh, topo = cylinder
+    surf = boundary_surface(mesh, topo)
+    ours = surface_curvature(surf, 50.0, compiled)
+
+    def by_unique(tri, patch, n_v, n_patch):
+        uk, inv = np.unique((tri * np.int64(n_patch) + patch[:, None]).ravel(),
+                            return_inverse=True)
+        return inv.reshape(-1), len(uk)
+
+    monkeypatch.setattr(cv, "_vertex_patch_rows", by_unique)
+    ref = surface_curvature(surf, 50.0, compiled)
+    np.testing.assert_array_equal(ours.k1, ref.k1)
+    np.testing.assert_array_equal(ours.k2, ref.k2)
+
+
 def test_surface_curvature_unchanged_without_trimesh(sphere, cylinder, monkeypatch):
     import meshcheck.curvature as cv
 
