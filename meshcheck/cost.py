@@ -218,16 +218,21 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
     jobs = []
     if len(edges) and B.shape[1]:
         # every edge's smallest bins over its cells, scattered from the cells' edge lists
-        # into one table on one thread (the audit runs the cluster searches beside the
-        # sweep; a table per thread and their minimum cost 45 MiB more at 4.77M cells
-        # for no shorter advice stage)
-        E = np.full((len(edges), B.shape[1]), n_f + 1, B.dtype)
-        g0 = 0
-        for ce in edges.cell_edges:
-            _ka.edge_min_bins(B, row, ce, g0, 0, len(ce), E)
-            g0 += len(ce)
+        # into one table: each thread reads every cell's edges and takes those of its
+        # own range of edges (no table per thread; 4.77M tets: 0.19 s on one thread ->
+        # about 0.1 s on each of two), then bins them
+        E = np.empty((len(edges), B.shape[1]), B.dtype)
+
+        def edge_job(hist, lo, hi):
+            E[lo:hi] = n_f + 1
+            g0 = 0
+            for ce in edges.cell_edges:
+                _ka.edge_min_bins(B, row, ce, g0, lo, hi, E)
+                g0 += len(ce)
+            _ka.edge_bin_hist(E, lo, hi, hist)
+
         for lo, hi in _chunks(len(edges), parts):
-            jobs.append(lambda hist, lo=lo, hi=hi: _ka.edge_bin_hist(E, lo, hi, hist))
+            jobs.append(lambda hist, lo=lo, hi=hi: edge_job(hist, lo, hi))
     if three and B.shape[1]:
         fcells = np.ascontiguousarray(topo.faces.cells)
         # only triangular faces (tetrahedra): no (n_faces,) mask (9 MiB at 4.8M cells)

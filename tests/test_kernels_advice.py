@@ -296,6 +296,30 @@ def test_direction_sum_is_the_sum_of_d_dT(nan_points):
     assert np.array_equal(T, T.T)
 
 
+@pytest.mark.parametrize("shared", [False, True])
+def test_edge_min_bins_in_disjoint_edge_ranges_are_numpys_minimum_at(shared):
+    # each thread takes one range of edges and reads every cell: the ranges together give
+    # every edge's smallest bins over its cells (np.minimum.at over the cells' edge lists)
+    rng = np.random.default_rng(2)
+    n_cells, n_e, W = 3000, 900, 8
+    ce = rng.integers(0, n_e, (n_cells, 6)).astype(np.int32)
+    row = rng.integers(0, 400, n_cells).astype(np.int32) if shared else np.zeros(0, np.int32)
+    B = rng.integers(0, 250, (400 if shared else n_cells, W)).astype(np.uint8)
+    bins = B[row] if shared else B
+    want = np.full((n_e, W), 255, np.uint8)
+    np.minimum.at(want, ce.ravel(), np.repeat(bins, 6, axis=0))
+    for cuts in ([0, n_e], [0, 450, n_e], [0, 1, 2, 300, 899, n_e]):
+        E = np.full((n_e, W), 255, np.uint8)
+        for lo, hi in zip(cuts[:-1], cuts[1:]):
+            # two blocks of cells (global cell numbers g0 + c)
+            KA.edge_min_bins(B, row, ce[:1000], 0, lo, hi, E)
+            if shared:
+                KA.edge_min_bins(B, row, ce[1000:], 1000, lo, hi, E)
+            else:
+                KA.edge_min_bins(B[1000:], row, ce[1000:], 0, lo, hi, E)
+        np.testing.assert_array_equal(E, want)
+
+
 def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
     # np.argmax: the first of equal maxima, the first NaN if there is one
     h = np.array([1.0, 2.0, 2.0, np.nan, 0.5, np.nan, 3.0])

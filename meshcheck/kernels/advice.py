@@ -527,18 +527,24 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol):
 
 
 @njit
-def edge_min_bins(B, row, ce, g0, lo, hi, E):
-    """E[e, :] = min(E[e, :], bins of cell g0 + c) for every local edge e of the cells
-    lo <= c < hi of one block (ce (m, k) edge ids, global cells g0 + c): each edge's
-    smallest bins over its cells, by the cells' own edge lists (no edge-to-cell
-    incidence).  The bins of cell i are B[row[i]] (rows shared by the cells, see
-    :func:`order_hist`), or B[i] when ``row`` is empty."""
+def edge_min_bins(B, row, ce, g0, e_lo, e_hi, E):
+    """E[e, :] = min(E[e, :], bins of cell g0 + c) for every local edge e of every cell
+    c of one block (ce (m, k) edge ids, global cells g0 + c) with e_lo <= e < e_hi: each
+    edge's smallest bins over its cells, by the cells' own edge lists (no edge-to-cell
+    incidence).  Threads taking disjoint edge ranges write disjoint rows of E (each
+    reads every cell's edge list; minima in any order give the same bins).  The bins of
+    cell i are B[row[i]] (rows shared by the cells, see :func:`order_hist`), or B[i]
+    when ``row`` is empty."""
     W = B.shape[1]
     shared = row.shape[0] > 0
-    for c in range(lo, hi):
-        i = row[g0 + c] if shared else g0 + c
+    for c in range(ce.shape[0]):
+        i = -1
         for k in range(ce.shape[1]):
             e = ce[c, k]
+            if e < e_lo or e >= e_hi:
+                continue
+            if i < 0:
+                i = row[g0 + c] if shared else g0 + c
             for q in range(W):  # branch-free: compiled to vector minima (2.3x faster)
                 E[e, q] = min(E[e, q], B[i, q])
 
