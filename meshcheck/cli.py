@@ -252,6 +252,9 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         mesh = _read_mesh(mesh_path, units.value if units is not None else None,
                           fmax_hint=float(np.max(f)) if len(f) else None,
                           allow_outside=allow_outside)
+        if mesh.n_cells >= FAST_EXIT_CELLS:
+            global _fast_exit
+            _fast_exit = True
         # large meshes in an order that keeps neighbours near each other in memory (the
         # reports give the file's ids); the file's order is dropped, not held beside it
         from .ordering import renumbered_for_audit
@@ -740,8 +743,41 @@ def verify(
     raise typer.Exit(0 if all(v.meets_target for v in runs) else 1)
 
 
+#: a command that read a mesh of this many cells ends its process without the
+#: interpreter's teardown (:func:`_exit_now`): after the lean audit of 4.77M tets the
+#: teardown took 0.055 s (every module's objects freed one by one)
+FAST_EXIT_CELLS = 2_000_000
+_fast_exit = False  # set by an audit (_run) of such a mesh
+
+
+def _exit_now(rc: int):
+    """End the process with exit code ``rc`` as a normal exit would, but for the
+    interpreter's teardown: the threads that are not daemons are waited for, the atexit
+    handlers run and the standard streams are flushed, then ``os._exit``."""
+    import atexit
+
+    me = threading.current_thread()
+    for t in threading.enumerate():
+        if t is not me and not t.daemon:
+            t.join()
+    atexit._run_exitfuncs()
+    for stream in (sys.stdout, sys.stderr):
+        with suppress(Exception):
+            stream.flush()
+    os._exit(rc)
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Entry point; returns the exit code (tests call it in-process)."""
+    """Entry point; returns the exit code (tests call it in-process). In a process of
+    its own (``argv`` None), a command that read a large mesh ends the process itself
+    (:data:`FAST_EXIT_CELLS`)."""
+    rc = _main(argv)
+    if argv is None and _fast_exit:
+        _exit_now(rc)
+    return rc
+
+
+def _main(argv: list[str] | None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     if argv is None:  # a process of its own (not a test calling main in-process)

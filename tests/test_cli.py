@@ -353,3 +353,37 @@ def test_command_runs_blas_on_one_thread_unless_told(given):
     out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
                          text=True, check=True)
     assert out.stdout.strip() == (given or "1")
+
+
+@pytest.mark.parametrize("fast", [True, False])
+def test_a_large_audit_ends_its_process_at_once_with_everything_written(box_file, tmp_path,
+                                                                        fast):
+    # from FAST_EXIT_CELLS cells (lowered here to 1) the audit's process skips the
+    # interpreter's teardown (an object's __del__ at module level is not called) but
+    # still waits for its threads, runs the atexit handlers and flushes its output: the
+    # same exit code, terminal summary and reports as a normal exit
+    import os
+    import subprocess
+    import sys
+
+    script = tmp_path / "run.py"
+    script.write_text(
+        "import atexit, sys\n"
+        "import meshcheck.cli as c\n"
+        f"c.FAST_EXIT_CELLS = {1 if fast else 10**12}\n"
+        "class Probe:\n"
+        "    def __del__(self):\n"
+        "        sys.stdout.write('teardown\\n')\n"
+        "probe = Probe()\n"
+        "atexit.register(lambda: sys.stdout.write('atexit handler\\n'))\n"
+        "sys.exit(c.main())\n")
+    out = tmp_path / f"out{fast}"
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}  # (buffered)
+    run = subprocess.run([sys.executable, str(script), "audit", str(box_file), "--units", "m",
+                          "--fmax", "200", "--out", str(out)], capture_output=True, text=True,
+                         env=env)
+    assert run.returncode == 0, run.stderr
+    assert "READY" in run.stdout and "atexit handler" in run.stdout
+    assert ("teardown" in run.stdout) is not fast
+    assert json.loads((out / "box.audit.json").read_text())["verdict"]["state"] == "ready"
+    assert meshio.read(out / "box.audit.vtu").cell_data["order_needed"][0].shape == (6 * 36,)
