@@ -320,6 +320,32 @@ def test_edge_min_bins_in_disjoint_edge_ranges_are_numpys_minimum_at(shared):
         np.testing.assert_array_equal(E, want)
 
 
+@pytest.mark.parametrize("renumber", [False, True])
+def test_variable_order_dofs_of_a_large_mesh_on_threads(monkeypatch, renumber):
+    # above 50k cells the edges' minima are split by edge ranges over two threads when
+    # the mesh is renumbered (its edges run along its cells), else one job: the same
+    # unknowns as the numpy reference either way
+    from meshcheck.ordering import renumbered
+
+    mesh = tet_box((20, 20, 22))
+    assert mesh.n_cells > 50_000
+    if renumber:
+        mesh = renumbered(mesh)
+    topo = build_topology(mesh)
+    rng = np.random.default_rng(4)
+    lim = np.sort(rng.uniform(100.0, 3000.0, (mesh.n_cells, 8)), axis=1)
+    f = np.linspace(50.0, 3500.0, 40)
+    ranges = []
+    real = KA.edge_min_bins
+    monkeypatch.setattr(KA, "edge_min_bins",
+                        lambda *a: (ranges.append((a[4], a[5])), real(*a))[1])
+    ref, got = _both(monkeypatch, lambda: variable_order_dofs(mesh, topo, lim, f, 8))
+    _same(ref, got, "dofs")
+    n_e = len(topo.edges)
+    assert sorted(set(ranges)) == ([(0, n_e // 2), (n_e // 2, n_e)] if renumber
+                                   else [(0, n_e)])
+
+
 def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
     # np.argmax: the first of equal maxima, the first NaN if there is one
     h = np.array([1.0, 2.0, 2.0, np.nan, 0.5, np.nan, 3.0])
