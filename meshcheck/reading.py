@@ -205,7 +205,9 @@ def mesh_from_raw(raw: RawMesh, source: str = "", units: str | None = None,
     names = {t: nm for t, nm in raw.region_names.items() if t in tags}
     stated = {int(t): (float(s.speed) * factor, s.card) for s in raw.speeds for t in s.regions
               if int(t) in tags}
-    return Mesh(points * factor, blocks, names, dim, label, unit, stated, tuple(raw.notes))
+    # (metres: the reader's array itself, no copy)
+    return Mesh(points if factor == 1.0 else points * factor, blocks, names, dim, label, unit,
+                stated, tuple(raw.notes))
 
 
 def raw_from_meshio(mesh, fmt: str = "meshio") -> RawMesh:

@@ -235,3 +235,20 @@ def test_cli_allow_outside(tmp_path, capsys):
     assert main(args) == 2
     assert "--allow-outside" in capsys.readouterr().err
     assert main(args + ["--allow-outside"]) in (0, 1)
+
+
+def test_points_in_metres_are_the_readers_array_and_other_units_are_scaled():
+    # a file in metres keeps the reader's coordinates as they are (no copy of the
+    # points); another unit gives a scaled copy and leaves the reader's array alone
+    from meshcheck.formats.raw import RawBlock, RawMesh
+    from meshcheck.reading import mesh_from_raw
+
+    box = tet_box((2, 2, 2))
+    raw = RawMesh(points=box.points.copy(),
+                  blocks=(RawBlock("tetra", box.blocks[0].cells, np.ones(box.n_cells, np.int64)),))
+    before = raw.points.copy()
+    m = mesh_from_raw(raw, units="m")
+    assert m.points is raw.points
+    mm = mesh_from_raw(raw, units="mm")
+    np.testing.assert_array_equal(mm.points, before * 1e-3)
+    np.testing.assert_array_equal(raw.points, before)
