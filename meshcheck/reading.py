@@ -159,7 +159,7 @@ def mesh_from_raw(raw: RawMesh, source: str = "", units: str | None = None,
         if len(b.region) != len(b.cells):
             raise MeshReadError(f"{label}: {len(b.region)} region tags for {len(b.cells)} "
                                 f"{b.type} cells; the file's region data are inconsistent")
-        if b.cells.size and (b.cells.min() < 0 or b.cells.max() >= n):
+        if b.cells.size and not b.in_range and (b.cells.min() < 0 or b.cells.max() >= n):
             bad_index = int(b.cells.max()) if b.cells.max() >= n else int(b.cells.min())
             raise MeshReadError(f"{label}: {b.type} cells refer to nodes that do not exist "
                                 f"(index {bad_index} "

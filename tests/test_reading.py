@@ -252,3 +252,30 @@ def test_points_in_metres_are_the_readers_array_and_other_units_are_scaled():
     mm = mesh_from_raw(raw, units="mm")
     np.testing.assert_array_equal(mm.points, before * 1e-3)
     np.testing.assert_array_equal(raw.points, before)
+
+
+def test_cell_indices_are_checked_once(tmp_path):
+    # the MSH 4.1 reader maps every node tag to a row and refuses tags it does not know
+    # (tests/test_gmsh_reader.py), so it marks its blocks in range and the cross-checks
+    # skip their pass over the cells; blocks not so marked are still checked
+    import dataclasses
+
+    from meshcheck.formats.raw import RawBlock, RawMesh
+    from meshcheck.reading import mesh_from_raw, read_raw
+
+    box = tet_box((2, 2, 2))
+    path = tmp_path / "box.msh"
+    meshio.write(path, meshio.Mesh(box.points, [("tetra", box.blocks[0].cells)]),
+                 file_format="gmsh", binary=True)
+    raw = read_raw(path)
+    assert raw.format.startswith("gmsh") or "MSH" in raw.format
+    assert all(b.in_range for b in raw.blocks)
+    for b in raw.blocks:
+        assert 0 <= b.cells.min() and b.cells.max() < len(raw.points)
+    bad = box.blocks[0].cells.copy()
+    bad[3, 2] = len(box.points)
+    unchecked = RawMesh(points=box.points, blocks=(RawBlock("tetra", bad,
+                                                            np.ones(len(bad), np.int64)),))
+    with pytest.raises(MeshReadError, match="refer to nodes that do not exist"):
+        mesh_from_raw(unchecked, units="m")
+    assert not dataclasses.replace(unchecked.blocks[0]).in_range

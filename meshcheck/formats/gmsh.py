@@ -630,7 +630,7 @@ def _raw(src: _Src, nodes, elements, field, phys) -> RawMesh:
                 blocks.append(RawBlock(name, cells, np.zeros(m, np.int64)))
             continue
         blocks.append(RawBlock(name, cells, np.full(m, phys.get((info.dim, int(etag)), 0),
-                                                    np.int64)))
+                                                    np.int64), in_range=True))  # (look)
     vol = any(CELL_TYPES.get(name) is not None and CELL_TYPES[name].dim == 3
               for name, *_ in elements)
     dim_model = 3 if vol else 2

@@ -24,12 +24,15 @@ class RawBlock:
         order.
     region : (m,) int64 region tag of each cell (0 = none).
     ids : (m,) int64 element numbers of the file (for messages), or None.
+    in_range : the reader checked that every index is a row of ``RawMesh.points`` (the
+        cross-checks then skip their pass over the cells).
     """
 
     type: str
     cells: np.ndarray
     region: np.ndarray
     ids: np.ndarray | None = None
+    in_range: bool = False
 
 
 @dataclass(frozen=True)
