@@ -606,3 +606,53 @@ def test_node_tags_past_int32_never_wrap_into_a_node(tmp_path, last):
     path.write_text(_ONE_TET.format(last=last))
     with pytest.raises(MeshReadError, match=f"refers to node {last}, which is not in"):
         read_msh41(path)
+
+
+def _binary_tets(path, points, tets, bad=()):
+    """A binary MSH 4.1 file of one node block and one tetrahedron block (node tags 1..n,
+    element tags 1..m); ``bad``: element rows whose last node tag is replaced by 99999."""
+    n, m = len(points), len(tets)
+    rows = np.column_stack([np.arange(1, m + 1), tets + 1]).astype("<u8")
+    for r in bad:
+        rows[r, -1] = 99999
+    with open(path, "wb") as fh:
+        fh.write(b"$MeshFormat\n4.1 1 8\n" + struct.pack("<i", 1) + b"\n$EndMeshFormat\n")
+        fh.write(b"$Nodes\n" + struct.pack("<QQQQ", 1, n, 1, n) + struct.pack("<iiiQ", 3, 1, 0, n))
+        fh.write(np.arange(1, n + 1, dtype="<u8").tobytes() + points.astype("<f8").tobytes())
+        fh.write(b"\n$EndNodes\n$Elements\n" + struct.pack("<QQQQ", 1, m, 1, m)
+                 + struct.pack("<iiiQ", 3, 1, 4, m) + rows.tobytes() + b"\n$EndElements\n")
+
+
+@pytest.mark.parametrize("bad", [(), (1700,), (200, 1700), (1999,)])
+def test_large_binary_blocks_read_on_two_threads_as_in_one_pass(tmp_path, monkeypatch, bad):
+    # from _PARALLEL_ELEMENTS elements (lowered here) a binary block is read in two halves
+    # by positional reads on two threads: the same cells, and the same error (the first
+    # bad element in the file) as the chunk loop
+    import meshcheck.formats.gmsh as G
+    from meshes import tet_box
+
+    box = tet_box((7, 7, 7))  # 2058 tetrahedra
+    path = tmp_path / "t.msh"
+    _binary_tets(path, box.points, box.blocks[0].cells, bad)
+    monkeypatch.setattr(G, "_ELEMENT_CHUNK", 8 * 5 * 97)  # chunks of 97 rows
+    got = {}
+    calls = []
+    real = G._parallel_block
+    monkeypatch.setattr(G, "_parallel_block", lambda *a: (calls.append(1), real(*a))[1])
+    for name, threshold in (("serial", 10**12), ("threads", 1)):
+        monkeypatch.setattr(G, "_PARALLEL_ELEMENTS", threshold)
+        calls.clear()
+        try:
+            raw = read_raw(path)
+            got[name] = raw.blocks[0].cells
+            assert raw.blocks[0].cells.shape == (len(box.blocks[0].cells), 4)
+        except MeshReadError as exc:
+            got[name] = str(exc)
+        assert len(calls) == (name == "threads")
+    if bad:
+        assert got["serial"] == got["threads"]
+        assert f"element {min(bad) + 1} (in element block 1 of 1) refers to node 99999" \
+            in got["threads"]
+    else:
+        np.testing.assert_array_equal(got["threads"], got["serial"])
+        np.testing.assert_array_equal(got["threads"], box.blocks[0].cells)
