@@ -247,7 +247,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
     with _stages(quiet) as step, _no_gc():
         step("reading")
         if out is not None and "json" in kinds:  # the JSON's checksum beside the reading
-            from .report import file_sha256
+            from .checksum import file_sha256
             file_sha256(mesh_path, aside=True)
         mesh = _read_mesh(mesh_path, units.value if units is not None else None,
                           fmax_hint=float(np.max(f)) if len(f) else None,

@@ -141,27 +141,6 @@ def test_lowest_cell_is_numpys_argmin_of_the_per_cell_limits(shared):
     assert np.sum(rows[:, 4] == 5.0) == 7  # and more than a few
 
 
-def test_file_checksum_is_computed_once_and_follows_the_file(tmp_path, monkeypatch):
-    import hashlib
-
-    from meshcheck import report
-
-    calls = []
-    real = report._sha256
-    monkeypatch.setattr(report, "_sha256", lambda p: calls.append(p) or real(p))
-    f = tmp_path / "mesh.msh"
-    f.write_bytes(b"first version")
-    assert report.file_sha256(f, aside=True) is None  # started on a thread
-    assert report.file_sha256(str(f)) == hashlib.sha256(b"first version").hexdigest()
-    assert report.file_sha256(f) == hashlib.sha256(b"first version").hexdigest()
-    assert len(calls) == 1  # the thread's checksum was shared, not computed again
-    f.write_bytes(b"second, longer version")  # a changed file: a new checksum
-    assert report.file_sha256(f) == hashlib.sha256(b"second, longer version").hexdigest()
-    assert len(calls) == 2
-    assert report.file_sha256(tmp_path / "missing.msh") is None
-    assert report.file_sha256(None) is None
-
-
 def test_quality_section_of_large_meshes_equals_the_numpy_statistics(monkeypatch):
     # large meshes summarise each metric by the compiled radix selection
     # (meshcheck.kernels.stats): the statistics must not change
