@@ -892,6 +892,39 @@ def min_edge_at_nodes(nodes, length, hmin):
             hmin[b] = v
 
 
+@njit(inline="always")
+def _hash4(cells, c, mult):
+    """(lowest corner, :func:`corner_hash`) of the four-corner cell c: its corners sorted
+    by a five-comparator network of minima and maxima, free of branches."""
+    a, b = np.int64(cells[c, 0]), np.int64(cells[c, 1])
+    d, e = np.int64(cells[c, 2]), np.int64(cells[c, 3])
+    a, b = min(a, b), max(a, b)
+    d, e = min(d, e), max(d, e)
+    a, d = min(a, d), max(a, d)
+    b, e = min(b, e), max(b, e)
+    b, d = min(b, d), max(b, d)
+    h = (np.uint64(a) * mult[0] + np.uint64(b) * mult[1] + np.uint64(d) * mult[2]
+         + np.uint64(e) * mult[3])
+    return a, h ^ (h >> np.uint64(29))
+
+
+@njit(inline="always")
+def _hash_k(cells, c, k, mult, s):
+    """(lowest corner, :func:`corner_hash`) of the k-corner cell c, its corners sorted
+    by insertion into the scratch ``s`` (k,) int64."""
+    for i in range(k):
+        v = np.int64(cells[c, i])
+        j = i - 1
+        while j >= 0 and s[j] > v:
+            s[j + 1] = s[j]
+            j -= 1
+        s[j + 1] = v
+    h = np.uint64(0)
+    for i in range(k):
+        h += np.uint64(s[i]) * mult[i]
+    return s[0], h ^ (h >> np.uint64(29))
+
+
 @njit
 def corner_hash(cells, k, mult, out):
     """64-bit multiplicative hash of the sorted corners cells[:, :k] of every cell
@@ -899,34 +932,12 @@ def corner_hash(cells, k, mult, out):
     (tetrahedra) are sorted by a five-comparator network of minima and maxima, free of
     branches (4.77M tets: 0.105 -> 0.03 s), more by insertion."""
     if k == 4:
-        m0, m1, m2, m3 = mult[0], mult[1], mult[2], mult[3]
         for c in range(cells.shape[0]):
-            a, b = np.int64(cells[c, 0]), np.int64(cells[c, 1])
-            d, e = np.int64(cells[c, 2]), np.int64(cells[c, 3])
-            a, b = min(a, b), max(a, b)
-            d, e = min(d, e), max(d, e)
-            a, d = min(a, d), max(a, d)
-            b, e = min(b, e), max(b, e)
-            b, d = min(b, d), max(b, d)
-            h = (np.uint64(a) * m0 + np.uint64(b) * m1 + np.uint64(d) * m2
-                 + np.uint64(e) * m3)
-            h ^= h >> np.uint64(29)
-            out[c] = h
+            out[c] = _hash4(cells, c, mult)[1]
         return
     s = np.empty(k, np.int64)
     for c in range(cells.shape[0]):
-        for i in range(k):
-            v = cells[c, i]
-            j = i - 1
-            while j >= 0 and s[j] > v:
-                s[j + 1] = s[j]
-                j -= 1
-            s[j + 1] = v
-        h = np.uint64(0)
-        for i in range(k):
-            h += np.uint64(s[i]) * mult[i]
-        h ^= h >> np.uint64(29)
-        out[c] = h
+        out[c] = _hash_k(cells, c, k, mult, s)[1]
 
 
 #: longest run of cells sharing a lowest corner that :func:`distinct_in_runs` compares
@@ -948,29 +959,9 @@ def distinct_in_runs(cells, k, mult):
     s = np.empty(k, np.int64)
     for c in range(cells.shape[0]):
         if k == 4:
-            a, b = np.int64(cells[c, 0]), np.int64(cells[c, 1])
-            d, e = np.int64(cells[c, 2]), np.int64(cells[c, 3])
-            a, b = min(a, b), max(a, b)
-            d, e = min(d, e), max(d, e)
-            a, d = min(a, d), max(a, d)
-            b, e = min(b, e), max(b, e)
-            b, d = min(b, d), max(b, d)
-            lo = a
-            h = (np.uint64(a) * mult[0] + np.uint64(b) * mult[1] + np.uint64(d) * mult[2]
-                 + np.uint64(e) * mult[3])
+            lo, h = _hash4(cells, c, mult)
         else:
-            for i in range(k):
-                v = np.int64(cells[c, i])
-                j = i - 1
-                while j >= 0 and s[j] > v:
-                    s[j + 1] = s[j]
-                    j -= 1
-                s[j + 1] = v
-            lo = s[0]
-            h = np.uint64(0)
-            for i in range(k):
-                h += np.uint64(s[i]) * mult[i]
-        h ^= h >> np.uint64(29)
+            lo, h = _hash_k(cells, c, k, mult, s)
         if lo != prev:
             if lo < prev:
                 return False
