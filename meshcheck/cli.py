@@ -252,9 +252,7 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         mesh = _read_mesh(mesh_path, units.value if units is not None else None,
                           fmax_hint=float(np.max(f)) if len(f) else None,
                           allow_outside=allow_outside)
-        if mesh.n_cells >= FAST_EXIT_CELLS:
-            global _fast_exit
-            _fast_exit = True
+        _fast_exit_after(mesh)
         # large meshes in an order that keeps neighbours near each other in memory (the
         # reports give the file's ids); the file's order is dropped, not held beside it
         from .ordering import renumbered_for_audit
@@ -743,11 +741,18 @@ def verify(
     raise typer.Exit(0 if all(v.meets_target for v in runs) else 1)
 
 
-#: a command that read a mesh of this many cells ends its process without the
-#: interpreter's teardown (:func:`_exit_now`): after the lean audit of 4.77M tets the
-#: teardown took 0.055 s (every module's objects freed one by one)
+#: an audit of a mesh of this many cells ends its process without the interpreter's
+#: teardown (:func:`_exit_now`): after the lean audit of 4.77M tets the teardown took
+#: 0.055 s (every module's objects freed one by one)
 FAST_EXIT_CELLS = 2_000_000
-_fast_exit = False  # set by an audit (_run) of such a mesh
+_fast_exit = False  # set by _fast_exit_after
+
+
+def _fast_exit_after(mesh) -> None:
+    """Let :func:`main` end the process at once (:func:`_exit_now`) when ``mesh`` (the
+    audit's) has :data:`FAST_EXIT_CELLS` cells or more."""
+    global _fast_exit
+    _fast_exit = _fast_exit or mesh.n_cells >= FAST_EXIT_CELLS
 
 
 def _exit_now(rc: int):
@@ -760,7 +765,7 @@ def _exit_now(rc: int):
     for t in threading.enumerate():
         if t is not me and not t.daemon:
             t.join()
-    atexit._run_exitfuncs()
+    atexit._run_exitfuncs()  # (CPython's, as at a normal exit)
     for stream in (sys.stdout, sys.stderr):
         with suppress(Exception):
             stream.flush()
