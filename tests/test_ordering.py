@@ -92,6 +92,32 @@ def _same_cells(a: Mesh, b: Mesh):
     assert sorted(b.file_cell_ids) == list(range(a.n_cells))
 
 
+@pytest.mark.parametrize("kind", ["random", "ties", "low bits", "morton"])
+def test_radix_argsort_is_numpys_stable_argsort(kind):
+    # the points' Morton keys sorted by 11-bit digits (digits all keys share skipped):
+    # numpy's stable argsort, ties in index order (duplicate points share a key)
+    pytest.importorskip("numba")
+    from meshcheck.kernels import ordering as ko
+
+    rng = np.random.default_rng(len(kind))
+    n = 30_000
+    if kind == "random":
+        keys = rng.integers(0, 2**63, n, dtype=np.uint64) * np.uint64(2) + np.uint64(1)
+    elif kind == "ties":
+        keys = rng.integers(0, 50, n).astype(np.uint64) << np.uint64(40)
+    elif kind == "low bits":  # only the lowest digit varies: the other passes skipped
+        keys = rng.integers(0, 2000, n).astype(np.uint64)
+    else:
+        pts = rng.uniform(size=(n, 3))
+        pts[::7] = pts[3]  # duplicate points: equal keys
+        keys = ordering.morton_keys(pts)
+    order = np.empty(n, np.int64)
+    ko.radix_argsort(keys, order)
+    np.testing.assert_array_equal(order, np.argsort(keys, kind="stable"))
+    empty = np.empty(0, np.int64)
+    ko.radix_argsort(np.zeros(0, np.uint64), empty)
+
+
 @pytest.mark.parametrize("mode", MODES)
 @pytest.mark.parametrize("case", ["tets", "mixed_blocks", "region_runs", "interleaved"])
 def test_renumbered_mesh_is_the_same_mesh(case, mode, monkeypatch):
