@@ -22,7 +22,7 @@ from .cost import condensed_dofs, lagrange_dofs, variable_order_dofs
 from .dispersion import _segments, usable_kh
 from .errors import SettingsError
 from .mesh import Mesh
-from .threads import ranges as _chunks, thread_map
+from .threads import pieces, ranges as _chunks, thread_map
 from .topology import Topology
 
 __all__ = ["AdviceSettings", "Advice", "Cluster", "Sweep", "advise", "sweep", "clusters",
@@ -409,7 +409,7 @@ def _longest_edges(mesh: Mesh, topo: Topology) -> np.ndarray:
         ce = np.ascontiguousarray(ce)
         thread_map(lambda r, ce=ce, off=off: _ka.governing_edges(ce, r[0], r[1], h, gov,
                                                                  int(off)),
-                   _chunks(len(ce), 2 if par else 1), parallel=par)
+                   pieces(len(ce), par), parallel=par)
     return gov
 
 
@@ -718,7 +718,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
         return _ka.edge_orders(r[0], r[1], *args, float(fmax), P, edge_order, edge_limit,
                                owner, limit_rows, finish, row_order, row_refine)
 
-    if sum(thread_map(edges, _chunks(n_e, 2 if par else 1), parallel=par)):
+    if sum(thread_map(edges, pieces(n_e, par), parallel=par)):
         raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
     # every cell's row, longest edge and size factor
     limit_row = np.empty(n_cells, id_type if n_rows < 2 ** 31 - 1 else np.int64)
@@ -735,14 +735,14 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
                                            float(size), float(settings.coarsen_factor),
                                            finish, row_order, row_refine, cell_order, refine,
                                            cell_size, target_size, coarsen),
-                   _chunks(n_cells, 2 if par else 1), parallel=par)
+                   pieces(n_cells, par), parallel=par)
         code_gov = None
     else:
         cell_size, code_gov = np.empty(n_cells), np.empty(n_cells, np.uint8)
         thread_map(lambda r: _ka.gov_index(gov, owner, r[0], r[1], limit_row, h, code,
                                            cell_size, code_gov, finish, row_order, row_refine,
                                            cell_order, refine),
-                   _chunks(n_cells, 2 if par else 1), parallel=par)
+                   pieces(n_cells, par), parallel=par)
     del owner, gov
     if not finish:
         limit_row[exact] = np.arange(n_shared, n_rows)
@@ -753,7 +753,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
                                limit_rows)
         thread_map(lambda r: _ka.finish_limits(limit_rows, r[0], r[1], float(fmax), P,
                                                row_order, row_refine),
-                   _chunks(n_rows, 2 if par else 1), parallel=par)
+                   pieces(n_rows, par), parallel=par)
         np.take(row_order, limit_row, out=cell_order)
         np.take(row_refine, limit_row, out=refine)
 

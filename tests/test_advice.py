@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
+from meshcheck import kernels, threads
 from meshcheck.advice import SIZE_FACTOR_TABLE, AdviceSettings
 from meshcheck.dispersion import predicted_error, usable_kh
 from meshcheck.pipeline import AuditSettings, audit
@@ -246,21 +247,33 @@ def test_cell_limit_is_min_over_its_edges_with_two_media():
     assert np.allclose(res.advice.cell_limit[:, :8], brute, rtol=LIMIT_RTOL)
 
 
-def test_orders_on_threads_give_the_serial_result(monkeypatch):
-    # above 100k edges the orders are computed on a thread pool; the result must be the
-    # same array for array as one order after the other
+@pytest.mark.parametrize("mode", ["numpy", pytest.param("numba", marks=pytest.mark.skipif(
+    not kernels.available(), reason="numba not installed"))])
+def test_orders_on_threads_give_the_serial_result(monkeypatch, mode):
+    # above 100k edges the orders (numpy) or the ranges of edges and cells (compiled
+    # kernels, in threads.pieces) are computed on a thread pool; the result must be the
+    # same array for array as one after the other, and as the compiled kernels given the
+    # whole range at once
     import meshcheck.advice as A
 
+    monkeypatch.setenv("MESHCHECK_KERNELS", mode)
     mesh = tet_box((26, 26, 26), size=(2.0, 1.5, 1.0))
     from meshcheck.topology import build_topology
     topo = build_topology(mesh)
     assert len(topo.edges) > 100_000
     speeds = np.full(mesh.n_cells, C)
+    split = []
+    real = A.pieces
+    monkeypatch.setattr(A, "pieces", lambda n, par=True: split.append(real(n, par)) or split[-1])
     par = A.advise(mesh, topo, speeds, 900.0, AdviceSettings(max_order=8))
+    assert (max(map(len, split), default=1) >= 4) == (mode == "numba" and threads.workers() > 1)
     monkeypatch.setattr(A, "thread_map", lambda fn, items, parallel=True: [fn(x) for x in items])
     ser = A.advise(mesh, topo, speeds, 900.0, AdviceSettings(max_order=8))
+    monkeypatch.setattr(A, "pieces", lambda n, par=True: [(0, n)])
+    whole = A.advise(mesh, topo, speeds, 900.0, AdviceSettings(max_order=8))
     for name in ("cell_limit", "edge_limit", "edge_order", "cell_order", "target_size"):
         assert np.array_equal(getattr(par, name), getattr(ser, name)), name
+        assert np.array_equal(getattr(par, name), getattr(whole, name)), name
 
 
 @pytest.mark.parametrize("mode", ["numpy", "numba"])

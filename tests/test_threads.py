@@ -337,3 +337,18 @@ def test_no_huge_page_advice_leaves_new_arrays_unadvised():
     assert done == 1 and after == 0
     if Path("/sys/kernel/mm/transparent_hugepage/enabled").exists():
         assert before == 1  # numpy's own advice, which the call turns off
+
+
+@pytest.mark.parametrize("n", [0, 1, 7, 8, 1000, 1_000_003])
+def test_pieces_cover_the_range_once_in_order(n):
+    from meshcheck.threads import PIECES_PER_WORKER, pieces, workers
+
+    for parallel in (True, False):
+        got = pieces(n, parallel)
+        assert [lo for lo, _ in got] == [0] + [hi for _, hi in got[:-1]]
+        assert got[-1][1] == n and all(hi >= lo for lo, hi in got)
+        w = workers()
+        want = min(PIECES_PER_WORKER * w, max(n, 1)) if parallel and w > 1 else 1
+        assert len(got) == want
+        sizes = [hi - lo for lo, hi in got]
+        assert max(sizes) - min(sizes) <= 1
