@@ -14,6 +14,9 @@ export; a BEGIN BULK line is added, which meshio requires), then times on the sa
 * meshio 5.3.5: ``meshio.read(path, file_format="nastran")``,
 * gmsh: ``gmsh.open(path)`` through its Python API,
 
+``--numpy`` reads ours on the numpy path (``MESHCHECK_KERNELS=numpy``, as when the
+kernels' module is not built), here and in the fresh processes.
+
 ``--repeat`` runs each, ours and gmsh alternating (meshio once, it is slow), then
 ``--fresh`` first reads of each in new processes (what a single audit meets: the
 reader's new memory is touched for the first time there), and checks that the
@@ -24,6 +27,7 @@ speed-up ratios.  Run it on an idle machine: the ratios are what matter.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import time
 from pathlib import Path
@@ -124,11 +128,16 @@ def main(argv=None) -> int:
     ap.add_argument("--skip-meshio", action="store_true")
     ap.add_argument("--fresh", type=int, default=3, help="also time the first read in this "
                     "many fresh processes each, ours and gmsh alternating (0: not)")
+    ap.add_argument("--numpy", action="store_true", help="read ours on the numpy path "
+                    "(MESHCHECK_KERNELS=numpy: no kernels' module, no numba)")
     args = ap.parse_args(argv)
+    if args.numpy:
+        os.environ["MESHCHECK_KERNELS"] = "numpy"  # (inherited by the fresh processes)
     outdir = Path(args.outdir)
     outdir.mkdir(parents=True, exist_ok=True)
     bdf = make_bdf(outdir, args.cells)
-    print(f"{bdf}: {bdf.stat().st_size / 1e6:.1f} MB")
+    print(f"{bdf}: {bdf.stat().st_size / 1e6:.1f} MB"
+          + (" (ours on the numpy path)" if args.numpy else ""))
 
     from meshcheck.formats.nastran import read_nastran
     from meshcheck.reading import read_mesh

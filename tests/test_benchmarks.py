@@ -21,13 +21,15 @@ def test_bench_audit_small(tmp_path):
         assert line in text
 
 
-def test_bench_nastran_small(tmp_path):
+@pytest.mark.parametrize("extra", [[], ["--numpy"]])
+def test_bench_nastran_small(tmp_path, extra):
     pytest.importorskip("gmsh")
     out = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "bench_nastran.py"),
-                          str(tmp_path), "--cells", "5e3", "--repeat", "1", "--fresh", "1"],
-                         capture_output=True, text=True, timeout=600)
+                          str(tmp_path), "--cells", "5e3", "--repeat", "1", "--fresh", "1"]
+                         + extra, capture_output=True, text=True, timeout=600)
     assert out.returncode == 0, out.stderr[-2000:]
     text = out.stdout
+    assert ("(ours on the numpy path)" in text) == bool(extra)
     for line in ("identical to gmsh: coordinates True, tetrahedra True",
                  "identical to meshio: coordinates and tetrahedra True",
                  "speed-up vs gmsh", "speed-up vs meshio", "first read in a fresh process"):
