@@ -743,7 +743,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
                                            cell_size, code_gov, finish, row_order, row_refine,
                                            cell_order, refine),
                    pieces(n_cells, par), parallel=par)
-    del owner, gov
+    owner = gov = None  # freed (names the kernels' closures above read stay bound)
     if not finish:
         limit_row[exact] = np.arange(n_shared, n_rows)
         for ce, lo, hi in zip(blocks, offs[:-1], offs[1:]):
@@ -783,9 +783,9 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     else:  # all edges of a cell carry one factor: its longest edge's, A[code[gov], P - 1]
         a_cell = np.empty(n_cells)
         _ka.lookup(np.ascontiguousarray(A[:, P - 1]), code_gov, a_cell)
-    del code_gov
+    code_gov = None
     target64 = np.divide(size, a_cell, out=a_cell)  # the factors' buffer (no third array)
-    del size, a_cell
+    size = a_cell = None
     # decided in float64, kept in float32 (SIZE_DTYPE: 36 MiB less at 4.77M cells); the
     # sizes narrowed first, then their buffer holds the sizes x factor
     kept_size = cell_size.astype(SIZE_DTYPE)
