@@ -297,6 +297,22 @@ def test_spilled_ids_index_as_the_array_they_hold(monkeypatch):
         ordering.SpilledIds(np.zeros((2, 2), np.int32))
     parts = [(lo, lo + 30_000) for lo in range(0, 70_000, 1000)]  # threads read at once
     assert all(thread_map(lambda r: np.array_equal(s[r[0]:r[1]], a[r[0]:r[1]]), parts))
+    assert s._held is None  # written on its thread, then no longer held in memory
+    fresh = ordering.SpilledIds(a)  # threads reading while the writer may still run
+    assert all(thread_map(lambda r: np.array_equal(fresh[r[0]:r[1]], a[r[0]:r[1]]), parts))
+
+
+def test_spilled_ids_stay_in_memory_when_their_write_fails(monkeypatch, tmp_path):
+    # the values are written on a thread; a failed write (here a file that cannot be
+    # written, as a full disk) leaves them in memory, and the reads are served from there
+    (tmp_path / "ro").write_bytes(b"")
+    monkeypatch.setattr(ordering.tempfile, "TemporaryFile",
+                        lambda **k: open(tmp_path / "ro", "rb"))
+    a = np.arange(5000, dtype=np.int32)[::-1].copy()
+    s = ordering.SpilledIds(a)
+    assert np.array_equal(np.asarray(s), a)
+    assert np.array_equal(s[[3, 4999, -1]], a[[3, 4999, -1]]) and s[10] == a[10]
+    assert s._held is not None
 
 
 def _broken(mesh: Mesh) -> Mesh:
