@@ -353,3 +353,26 @@ def test_audit_suggests_the_build_only_where_it_would_serve(tmp_path, monkeypatc
         assert "kernels --build" not in capsys.readouterr().out
     finally:
         ahead._forget()
+
+
+def test_code_tag_follows_numbas_version_without_importing_metadata(monkeypatch):
+    # the built module's name changes with the installed numba: its _version.py is
+    # hashed (found without importing numba, or importlib.metadata, 17-35 ms of a fresh
+    # process); the version importlib.metadata reports is in that file
+    import importlib.metadata
+
+    pytest.importorskip("numba")
+    found = ahead._numba_version()
+    assert importlib.metadata.version("numba").encode() in found
+    tag = ahead.code_tag()
+    ahead.code_tag.cache_clear()
+    monkeypatch.setattr(ahead, "_numba_version", lambda: found + b"# another release\n")
+    try:
+        assert ahead.code_tag() != tag
+    finally:
+        ahead.code_tag.cache_clear()
+    code = ("import sys; from meshcheck.kernels import ahead; ahead.code_tag(); "
+            "print('importlib.metadata' in sys.modules, 'numba' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.split() == ["False", "False"]
