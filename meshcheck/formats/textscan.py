@@ -432,6 +432,8 @@ def _fast_reals(b: np.ndarray):
     return ok, val
 
 
+#: fields of a chunk looked at before the small-field reals' SWAR pass is tried on all
+_PROBE = 64
 _MINUS = _U(0x2D2D2D2D2D2D2D2D)
 _DOTS = _U(0x2E2E2E2E2E2E2E2E)
 _TOP_SPACE = _U(0x20) << _U(56)
@@ -516,7 +518,9 @@ def _floats_chunk(text, pos, width, max_width):
                          "a real of normal length")
     nw = max(1, -(-wmax // 8))
     words = text.load_wide(pos, width, nw)
-    if nw == 1:  # small fields: the common form by one SWAR pass, the others below
+    # small fields: the common form by one SWAR pass, the others below; a chunk whose first
+    # fields hold none of that form (e.g. every real with an exponent) skips the pass
+    if nw == 1 and _swar_real8(words[:_PROBE, 0])[0].any():
         fast, val = _swar_real8(words[:, 0])
         rest = np.flatnonzero(~fast)
         if not rest.size:
