@@ -888,6 +888,16 @@ def clusters(mesh: Mesh, topo: Topology, advice: Advice, mask: np.ndarray,
         k = int(np.count_nonzero(m))
         if not k:
             return []
+        if k == n and not len(topo.nonmanifold_faces):
+            # every cell flagged (a mesh far finer than the sweep needs): the clusters are
+            # the mesh's components, joined through the same faces (edges in 2D) and
+            # numbered the same way; only faces of more than two cells join more there
+            lab = np.zeros(n, itype)
+            if topo.n_components > 1:
+                lab[:] = topo.component
+            cnt = np.bincount(lab, minlength=topo.n_components) if topo.n_components > 1 \
+                else np.array([n], np.int64)
+            return _clusters_compiled(mesh, topo, advice, lab, cnt, limit, max_ids)
         lab = np.empty(n, itype)  # the labels of all cells (-1 not flagged), no ids
         if mesh.dim == 3:
             n_lab = _ka.label_flagged(m, np.ascontiguousarray(topo.faces.cells),

@@ -261,6 +261,52 @@ def test_clusters_equal_the_numpy_reference(monkeypatch, name):
     _clusters_equal(ref, got)
 
 
+def _parts(mesh: Mesh, copies: int, listed_twice: bool = False) -> Mesh:
+    """``copies`` disjoint copies of the mesh side by side along x (one component each),
+    the copies' cells interleaved by blocks of 7 so that no component is a run of ids
+    (a component's label is its smallest cell id's order); with ``listed_twice`` an
+    interior cell listed once more (its faces shared by three cells)."""
+    b = mesh.blocks[0]
+    n_p, span = len(mesh.points), np.ptp(mesh.points[:, 0]) * 1.5
+    shift = np.zeros(mesh.points.shape[1])
+    shift[0] = span
+    pts = np.vstack([mesh.points + i * shift for i in range(copies)])
+    cells = np.stack([b.cells + i * n_p for i in range(copies)])  # (copies, m, k)
+    m = len(b)
+    pad = -m % 7
+    order = np.arange(copies * (m + pad)).reshape(copies, -1, 7).transpose(1, 0, 2).ravel()
+    order = order[order % (m + pad) < m]
+    idx = order // (m + pad) * m + order % (m + pad)
+    flat = cells.reshape(-1, cells.shape[2])[idx]
+    reg = np.tile(b.region, copies)[idx]
+    if listed_twice:  # a cell of the first copy with no boundary face: its copy
+        # shares three-cell faces only, which the clusters' pairs (a face's first two
+        # cells) never join, while the components join it
+        centre = mesh.points.min(0) + 0.5 * np.ptp(mesh.points, axis=0)
+        c = np.argmin(np.linalg.norm(pts[flat].mean(1) - centre, axis=1))
+        flat, reg = np.vstack([flat, flat[c:c + 1]]), np.append(reg, reg[c:c + 1])
+    return Mesh(pts, (CellBlock(b.type, flat, reg),), mesh.region_names, mesh.dim)
+
+
+@pytest.mark.parametrize("name,copies,twice", [("tet", 3, False), ("tet", 1, True),
+                                               ("tet", 2, True), ("hex", 2, False),
+                                               ("triangle 2D", 3, False)])
+def test_every_cell_flagged_clusters_are_the_components(monkeypatch, name, copies, twice):
+    # all cells flagged (a mesh far finer than the sweep): the compiled path takes the
+    # topology's components as clusters unless faces of three cells join more; the
+    # clusters (order, sizes, ids, centroids) must be the numpy reference's union-find
+    mesh = _parts(MESHES[name](), copies, twice)
+    topo = build_topology(mesh)
+    assert topo.n_components == copies and (len(topo.nonmanifold_faces) > 0) == twice
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    adv = advise(mesh, topo, _speeds(mesh), _fmax(mesh, topo, AdviceSettings()))
+    every = np.ones(mesh.n_cells, bool)
+    for limit, max_ids in ((50, 10), (2, 3)):
+        ref, got = _both(monkeypatch, lambda: clusters(mesh, topo, adv, every, limit, max_ids))
+        assert len(ref) == min(copies + twice, limit)  # the listed-again cell alone
+        _clusters_equal(ref, got)
+
+
 @pytest.mark.parametrize("name,kind", [("tet", "tetra"), ("tet structured", "tetra"),
                                        ("tet10", "tetra"), ("wedge", "wedge"),
                                        ("hex+wedge", "wedge"), ("hex structured", "hexahedron"),
