@@ -178,21 +178,28 @@ def _unitize(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return v * norm.reshape((-1, 1)), valid
 
 
-def _surface_geometry(points: np.ndarray, triangles: np.ndarray):
+def _surface_geometry(points: np.ndarray, triangles: np.ndarray, compiled: bool = False):
     """What :func:`surface_curvature` reads of a ``trimesh.Trimesh(process=False)``,
     computed with the same numpy calls as trimesh 5.x but without importing it
     (about 0.5 s): face normals (n_t, 3) (zero for degenerate faces), face areas
     (n_t,) m^2, adjacent face pairs (n_a, 2) int64 (faces sharing an edge used by
     exactly two faces; any order), the angles between their normals (n_a,) rad and
     the corner angles (n_t, 3) rad (zero for degenerate faces).  Tested against
-    trimesh (:func:`_trimesh_geometry`)."""
-    # per triangle a chunk at a time (the same elementwise operations), so that the
-    # (n_t, 3, 3) corners and their differences are never held whole
+    trimesh (:func:`_trimesh_geometry`).  ``compiled``: the triangles' values and the
+    angles by :mod:`meshcheck.kernels.geometry` (the same operations a triangle at a
+    time: equal to rounding, numpy's arccos and sums of three terms against libm's and
+    the kernels')."""
     n_t = len(triangles)
     fn, area, corner = np.empty((n_t, 3)), np.empty(n_t), np.empty((n_t, 3))
-    for s in range(0, n_t, _FIT_CHUNK):
-        t = slice(s, min(s + _FIT_CHUNK, n_t))
-        fn[t], area[t], corner[t] = _triangle_geometry(points[triangles[t]])
+    if compiled:
+        from .kernels import geometry as kg
+        kg.triangle_geometry(points, np.ascontiguousarray(triangles), fn, area, corner)
+    else:
+        # per triangle a chunk at a time (the same elementwise operations), so that the
+        # (n_t, 3, 3) corners and their differences are never held whole
+        for s in range(0, n_t, _FIT_CHUNK):
+            t = slice(s, min(s + _FIT_CHUNK, n_t))
+            fn[t], area[t], corner[t] = _triangle_geometry(points[triangles[t]])
     # faces sharing an edge that exactly two faces use
     a, b = triangles, triangles[:, [1, 2, 0]]  # the sides (0 1), (1 2), (2 0), sorted
     n1 = np.int64(len(points) + 1)
@@ -208,6 +215,9 @@ def _surface_geometry(points: np.ndarray, triangles: np.ndarray):
     adj = np.sort(adj[adj[:, 0] != adj[:, 1]], axis=1)
     # the angles a chunk of pairs at a time (no (n_a, 2, 3) array of their normals)
     ang = np.empty(len(adj))
+    if compiled:
+        kg.normal_angles(fn, adj, ang)
+        return fn, area, adj, ang, corner
     for s in range(0, len(adj), _FIT_CHUNK):
         pairs = fn[adj[s:s + _FIT_CHUNK]]
         ang[s:s + len(pairs)] = np.abs(np.arccos(np.clip(
@@ -254,14 +264,16 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
 
     feature_angle : deg; adjacent faces whose normals differ by more are not smooth.
     compiled : smooth patches by the union-find kernel (large meshes, numba loaded)
-        instead of scipy's connected_components (the same labels), and the fits by
-        :func:`meshcheck.kernels.geometry.fit_curvatures` (the same to rounding).
+        instead of scipy's connected_components (the same labels), the triangles'
+        geometry, the normals' sums and the fits by :mod:`meshcheck.kernels.geometry`
+        (the same to rounding).
     """
     n_t = len(surface.triangles)
     if n_t == 0:
         z = np.zeros(0)
         return SurfaceCurvature(z, z, np.zeros(0, np.int64), 0, 0, z)
-    fn, area, adj, ang, corner_w = _surface_geometry(surface.points, surface.triangles)
+    fn, area, adj, ang, corner_w = _surface_geometry(surface.points, surface.triangles,
+                                                     compiled)
     smooth = ang <= np.radians(feature_angle)
     n_patch, patch = _patches(n_t, adj[smooth], compiled)
     n_feature = int(np.count_nonzero(~smooth))
@@ -270,17 +282,20 @@ def surface_curvature(surface: BoundarySurface, feature_angle: float = 50.0,
     tri = surface.triangles
     inv, n_rows = _vertex_patch_rows(tri, patch, len(surface.points), n_patch)
     acc = np.zeros((n_rows, 3))
-    for s in range(0, n_t, _FIT_CHUNK):  # in triangle order: the same sums, less scratch
-        t = slice(s, min(s + _FIT_CHUNK, n_t))
-        np.add.at(acc, inv[3 * t.start:3 * t.stop],
-                  (corner_w[t, :, None] * fn[t, None, :]).reshape(-1, 3))
+    if compiled:  # the same sums in the same order
+        from .kernels import geometry as kg
+        kg.corner_normal_sums(inv, corner_w, fn, acc)
+    else:
+        for s in range(0, n_t, _FIT_CHUNK):  # in triangle order: the same sums, less scratch
+            t = slice(s, min(s + _FIT_CHUNK, n_t))
+            np.add.at(acc, inv[3 * t.start:3 * t.stop],
+                      (corner_w[t, :, None] * fn[t, None, :]).reshape(-1, 3))
     del corner_w
     norm = np.linalg.norm(acc, axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
         acc /= norm[:, None]
     k1, k2 = np.empty(n_t), np.empty(n_t)
     if compiled:  # one pass, corners and normals read in place
-        from .kernels import geometry as kg
         kg.fit_curvatures(surface.points, tri, acc, inv.reshape(n_t, 3), fn, k1, k2)
         return SurfaceCurvature(k1, k2, patch, int(n_patch), n_feature, area)
     for s in range(0, n_t, _FIT_CHUNK):  # the per-triangle fits a chunk at a time
@@ -422,7 +437,7 @@ def _face_midnode_deviation(mesh: Mesh, topo: Topology, fids: np.ndarray,
              (nodes[:, 1], nodes[:, 2], np.ones(len(fids), bool)),
              (nodes[:, 2], np.where(quad, nodes[:, 3], nodes[:, 0]), np.ones(len(fids), bool)),
              (nodes[:, 3], nodes[:, 0], quad))
-    any_mid = bool((edges.mid >= 0).any())
+    any_mid = edges.has_mids
     # the edges' keys (int64 per edge, 43 MiB for 4.8M tets) only where mid-nodes exist
     ekey = edges.nodes[:, 0] * n + edges.nodes[:, 1] if any_mid else None
     for a, b, valid in sides:
@@ -480,12 +495,16 @@ def check_curvature(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: fl
     else:
         fids, inv = np.unique(surf.face, return_inverse=True)
 
-    curv = surface_curvature(surf, feature_angle, kernels.use_compiled(mesh.n_cells))
-    tri = surf.triangles  # the corners gathered a chunk at a time
-    rho_t = np.concatenate([enclosing_radius(surf.points[tri[s:s + _FIT_CHUNK]])
-                            for s in range(0, len(tri), _FIT_CHUNK)])
-    # (fids are the boundary faces in ascending order, as ``bnd``: their corners known)
-    dev, has_mid, longest = _face_midnode_deviation(mesh, topo, fids, nodes)
+    compiled = kernels.use_compiled(mesh.n_cells)
+    curv = surface_curvature(surf, feature_angle, compiled)
+    tri = surf.triangles
+    if compiled:
+        from .kernels import geometry as kg
+        rho_t = np.empty(len(tri))
+        kg.enclosing_radii(surf.points, tri, rho_t)
+    else:  # the corners gathered a chunk at a time
+        rho_t = np.concatenate([enclosing_radius(surf.points[tri[s:s + _FIT_CHUNK]])
+                                for s in range(0, len(tri), _FIT_CHUNK)])
     kap_t = np.where(np.isfinite(curv.kmax), curv.kmax, 0.0)
     if one_each:
         kappa = np.maximum(np.zeros(len(fids)), kap_t)
@@ -497,8 +516,16 @@ def check_curvature(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: fl
         np.maximum.at(rho, inv, rho_t)
     s_lin = chord_height(rho, kappa)
     s_quad = np.minimum(quadratic_chord_height(rho, kappa), s_lin)
-    expected_edge = chord_height(0.5 * longest, kappa)  # sagitta of the longest side
-    curved = has_mid & (dev > 0.1 * expected_edge) & (expected_edge > 0)
+    if topo.edges.has_mids:
+        # (fids are the boundary faces in ascending order, as ``bnd``: corners known)
+        dev, has_mid, longest = _face_midnode_deviation(mesh, topo, fids, nodes)
+        expected_edge = chord_height(0.5 * longest, kappa)  # sagitta of the longest side
+        curved = has_mid & (dev > 0.1 * expected_edge) & (expected_edge > 0)
+        mids = has_mid & (expected_edge > 0)
+        on_surface = float(np.median(dev[mids] / expected_edge[mids])) if mids.any() \
+            else None
+    else:  # straight-sided geometry: no face has mid-nodes to follow the surface with
+        curved, on_surface = np.zeros(len(fids), bool), None
     cells = topo.faces.cells[fids, 0]
     k = 2.0 * np.pi * fmax / cell_speed[cells]
     tol = target / (2.0 * k)
@@ -520,8 +547,6 @@ def check_curvature(mesh: Mesh, topo: Topology, cell_speed: np.ndarray, fmax: fl
         ok = fn[:, j] >= 0
         centre[ok] += mesh.points[fn[ok, j]]
     centre /= np.maximum(cnt, 1)[:, None]
-    mids = has_mid & (expected_edge > 0)
-    on_surface = float(np.median(dev[mids] / expected_edge[mids])) if mids.any() else None
     pos = kappa[np.isfinite(kappa) & (kappa > 0)]
     return CurvedBoundary(len(fids), curv.n_patches, curv.feature_edges,
                           float(1.0 / pos.max()) if len(pos) else np.inf, fids, kappa, rho,

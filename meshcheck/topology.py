@@ -172,6 +172,14 @@ class Edges:
         return self.nodes.shape[0]
 
     @property
+    def has_mids(self) -> bool:
+        """Whether any edge has a mid-node (quadratic geometry somewhere)."""
+        m = self.mid
+        if len(m) and m.strides == (0,):  # one value broadcast (a linear mesh's -1)
+            return bool(m[0] >= 0)
+        return bool((m >= 0).any())
+
+    @property
     def incidence(self) -> np.ndarray:
         return self._incidence_pair()[0]
 

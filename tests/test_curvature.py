@@ -216,6 +216,39 @@ def test_linear_mesh_faces_have_no_midnodes(sphere):
     np.testing.assert_array_equal(longest, np.max(sides, axis=0))
 
 
+@pytest.mark.skipif(not __import__("meshcheck.kernels", fromlist=["available"]).available(),
+                    reason="numba not installed")
+@pytest.mark.parametrize("quadratic", [False, True], ids=["tetra", "tetra10"])
+def test_check_curvature_on_both_paths(sphere, quadratic, monkeypatch):
+    """The whole check with the kernels (triangle geometry, normal sums, enclosing radii,
+    fits) and with numpy: the same faces flagged, the same radii, curvatures and chord
+    heights to rounding (the fits' 1e-9); a linear mesh has no mid-nodes to look up
+    (``Edges.has_mids`` False), a quadratic one curved faces on both paths."""
+    if quadratic:
+        mesh = _gmsh("sphere", 0.5, 0.15, order=2)
+        topo = build_topology(mesh)
+    else:
+        _, mesh, topo = sphere
+    assert topo.edges.has_mids == quadratic
+    c = np.full(mesh.n_cells, 343.0)
+    gap = np.median(check_curvature(mesh, topo, c, 50.0, 0.01).chord_height)
+    f = 0.01 * 343.0 / (2 * 2 * np.pi * gap)  # about half the faces over the tolerance
+    out = {}
+    for mode in ("numpy", "numba"):
+        monkeypatch.setenv("MESHCHECK_KERNELS", mode)
+        out[mode] = check_curvature(mesh, topo, c, f, 0.01)
+    ref, got = out["numpy"], out["numba"]
+    np.testing.assert_array_equal(got.rho, ref.rho)
+    for name in ("kappa", "chord_height", "tolerance"):
+        np.testing.assert_allclose(getattr(got, name), getattr(ref, name), rtol=1e-9, atol=0)
+    for name in ("face_ids", "curved", "misfit", "needs_quadratic", "needs_refinement",
+                 "listed", "listed_cells"):
+        np.testing.assert_array_equal(getattr(got, name), getattr(ref, name), err_msg=name)
+    assert (ref.n_patches, ref.feature_edges) == (got.n_patches, got.feature_edges)
+    assert got.curved.any() == quadratic and (got.midnode_on_surface is None) != quadratic
+    assert 0 < ref.misfit.sum() + ref.needs_refinement.sum() < len(ref.face_ids)
+
+
 @pytest.mark.parametrize("kernels", ["numpy", "numba"])
 def test_moved_midnode_closed_form_on_both_paths(kernels, monkeypatch):
     """The compiled quadratic_geometry (and the validity pass that keeps the det J ratio)
@@ -275,6 +308,59 @@ def test_surface_geometry_equals_trimesh(sphere, cylinder, chunk, monkeypatch):
         np.testing.assert_array_equal(adj[o], tadj[to])
         np.testing.assert_array_equal(ang[o], tang[to])
     assert len(adj) > 0 and (fn == 0).all(axis=1).any() and (corner == 0).all(axis=1).any()
+
+
+@pytest.mark.skipif(not __import__("meshcheck.kernels", fromlist=["available"]).available(),
+                    reason="numba not installed")
+def test_compiled_surface_geometry_equals_trimesh(sphere, cylinder):
+    """The kernels' normals and areas equal trimesh's bit for bit (the same operations a
+    triangle at a time), the adjacency too; the angles (arccos: libm's against numpy's
+    own) to 1e-12 rad; degenerate faces zero as in trimesh."""
+    from meshcheck.curvature import _surface_geometry, _trimesh_geometry
+
+    # a needle whose one tiny angle (1e-9 rad, below trimesh's 1e-8) is at its third corner
+    needle = BoundarySurface(np.arange(4), np.array([[0, 0, 0], [1, 0, 0], [0.5, 1e9, 0],
+                                                     [0.5, -1, 0]], float),
+                             np.array([[0, 1, 2], [1, 0, 3]]), np.zeros(2, np.int64),
+                             np.zeros(2, np.int64))
+    for surf in _geometry_cases(sphere, cylinder) + [needle]:
+        fn, area, adj, ang, corner = _surface_geometry(surf.points, surf.triangles, True)
+        tfn, tarea, tadj, tang, tcorner = _trimesh_geometry(surf)
+        if surf is not needle:
+            seen = (fn, corner, adj)
+        np.testing.assert_array_equal(fn, tfn)
+        np.testing.assert_array_equal(area, tarea)
+        np.testing.assert_allclose(corner, tcorner, rtol=0.0, atol=1e-12)
+        assert np.array_equal(corner == 0, tcorner == 0)
+        o, to = np.lexsort(adj.T[::-1]), np.lexsort(tadj.T[::-1])
+        np.testing.assert_array_equal(adj[o], tadj[to])
+        np.testing.assert_allclose(ang[o], tang[to], rtol=0.0, atol=1e-12)
+    assert (corner[0] == 0).all() and (corner[1] > 0).all()  # (the needle's)
+    fn, corner, adj = seen  # the hand-made case's: degenerate faces
+    assert len(adj) > 0 and (fn == 0).all(axis=1).any() and (corner == 0).all(axis=1).any()
+
+
+@pytest.mark.skipif(not __import__("meshcheck.kernels", fromlist=["available"]).available(),
+                    reason="numba not installed")
+def test_compiled_enclosing_radii_equal_numpy(sphere, cylinder):
+    """kernels.geometry.enclosing_radii against enclosing_radius (whose circumradius and
+    half longest side are checked against the sphere above): the same bits, also for
+    obtuse, right, degenerate and NaN triangles."""
+    from meshcheck.kernels import geometry as kg
+
+    pts = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [3, 0.1, 0], [2, 0, 0], [np.nan, 0, 0],
+                    [1, 1, 0]], float)
+    odd = np.array([[0, 1, 2], [0, 1, 3], [0, 1, 4], [0, 0, 1], [0, 1, 5], [1, 6, 2],
+                    [2, 6, 0]], np.int64)
+    cases = [(pts, odd)] + [(s.points, s.triangles) for s in _geometry_cases(sphere, cylinder)]
+    for P, T in cases:
+        ref = enclosing_radius(P[T])
+        got = np.empty(len(T))
+        kg.enclosing_radii(P, np.ascontiguousarray(T), got)
+        np.testing.assert_array_equal(got, ref)
+        if P is pts:  # NaN corner; obtuse: half the longest side; right: circumradius
+            assert np.isnan(got[4]) and got[1] == 0.5 * np.linalg.norm(pts[3])
+            assert got[0] == pytest.approx(0.5 * np.sqrt(2.0), rel=1e-15)
 
 
 def test_compact_ids_is_numpys_unique_with_inverse():
@@ -340,7 +426,8 @@ def test_surface_curvature_unchanged_without_trimesh(sphere, cylinder, monkeypat
 
     for surf in _geometry_cases(sphere, cylinder)[:2]:
         ours = surface_curvature(surf, 50.0)
-        monkeypatch.setattr(cv, "_surface_geometry", lambda p, t, s=surf: cv._trimesh_geometry(s))
+        monkeypatch.setattr(cv, "_surface_geometry",
+                            lambda p, t, compiled=False, s=surf: cv._trimesh_geometry(s))
         ref = surface_curvature(surf, 50.0)
         monkeypatch.undo()
         for name in ("k1", "k2", "patch", "area"):

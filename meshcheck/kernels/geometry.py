@@ -1,6 +1,9 @@
 """Compiled kernels of :mod:`meshcheck.gradation` (cell sizes and size jumps across
-faces) and of cell centroids (:attr:`meshcheck.mesh.Mesh.centroids`); the numpy code
-there is the reference they are tested against."""
+faces), of cell centroids (:attr:`meshcheck.mesh.Mesh.centroids`) and of the boundary
+surface's geometry in :mod:`meshcheck.curvature` (triangle normals, areas, corner
+angles and enclosing radii, the angles between adjacent normals, the corner-weighted
+vertex normals, the curvature fits); the numpy code there is the reference they are
+tested against."""
 from __future__ import annotations
 
 import numpy as np
@@ -228,3 +231,139 @@ def fit_curvatures(points, tri, normals, corner, fn, k1, k2):
         dev = np.sqrt(0.25 * (a - c) ** 2 + b * b)
         k1[t] = mean + dev
         k2[t] = mean - dev
+
+
+# ---------------------------------------------------------------------------
+# the boundary surface (meshcheck.curvature): per triangle, the operations of the numpy
+# reference (trimesh 5.x's) one triangle at a time
+
+
+_TOL_ZERO = 1e-13  # trimesh.util.TOL_ZERO: rows of norm at or below it are not unitized
+_TOL_MERGE = 1e-8  # trimesh.constants.tol.merge: corner angles below it zero the triangle
+
+
+@njit(inline="always")
+def _unit(x, y, z):
+    """trimesh.util.unitize of one row: (x, y, z) / |.| above 1e-13 (times the
+    reciprocal), else times the norm; and whether it was above."""
+    n = np.sqrt(x * x + y * y + z * z)
+    if n > _TOL_ZERO:
+        r = 1.0 / n
+        return x * r, y * r, z * r, True
+    return x * n, y * n, z * n, False
+
+
+@njit(inline="always")
+def _acos(x):
+    """np.arccos(np.clip(x, -1, 1)) (NaN stays NaN)."""
+    if x < -1.0:
+        x = -1.0
+    elif x > 1.0:
+        x = 1.0
+    return np.arccos(x)
+
+
+@njit(error_model="numpy")
+def triangle_geometry(points, tri, fn, area, corner):
+    """Unit normals fn (n_t, 3) (zero for degenerate triangles), areas (n_t,) m^2 and
+    corner angles (n_t, 3) rad (all zero when one is below 1e-8) of the triangles
+    points[tri[t]], as :func:`meshcheck.curvature._triangle_geometry` computes them."""
+    for t in range(tri.shape[0]):
+        a = tri[t, 0]
+        b = tri[t, 1]
+        c = tri[t, 2]
+        # sides 0-1, 1-2 and their cross product (numpy's np.cross order)
+        p0 = points[b, 0] - points[a, 0]
+        p1 = points[b, 1] - points[a, 1]
+        p2 = points[b, 2] - points[a, 2]
+        q0 = points[c, 0] - points[b, 0]
+        q1 = points[c, 1] - points[b, 1]
+        q2 = points[c, 2] - points[b, 2]
+        x = p1 * q2 - p2 * q1
+        y = p2 * q0 - p0 * q2
+        z = p0 * q1 - p1 * q0
+        nx, ny, nz, ok = _unit(x, y, z)
+        if not ok:
+            nx, ny, nz = 0.0, 0.0, 0.0
+        fn[t, 0] = nx
+        fn[t, 1] = ny
+        fn[t, 2] = nz
+        area[t] = np.sqrt(x * x + y * y + z * z) / 2.0
+        ux, uy, uz, _ = _unit(p0, p1, p2)  # 0 -> 1
+        vx, vy, vz, _ = _unit(points[c, 0] - points[a, 0], points[c, 1] - points[a, 1],
+                              points[c, 2] - points[a, 2])  # 0 -> 2
+        wx, wy, wz, _ = _unit(q0, q1, q2)  # 1 -> 2
+        a0 = _acos(ux * vx + uy * vy + uz * vz)
+        a1 = _acos(-ux * wx + -uy * wy + -uz * wz)
+        a2 = np.pi - a0 - a1
+        if a0 < _TOL_MERGE or a1 < _TOL_MERGE or a2 < _TOL_MERGE:
+            a0, a1, a2 = 0.0, 0.0, 0.0
+        corner[t, 0] = a0
+        corner[t, 1] = a1
+        corner[t, 2] = a2
+
+
+@njit
+def normal_angles(fn, pairs, out):
+    """out[i] = angle (rad) between the unit normals fn[pairs[i, 0]] and fn[pairs[i, 1]]
+    (|np.arccos(np.clip(dot, -1, 1))|)."""
+    for i in range(pairs.shape[0]):
+        f = pairs[i, 0]
+        g = pairs[i, 1]
+        out[i] = abs(_acos(fn[f, 0] * fn[g, 0] + fn[f, 1] * fn[g, 1] + fn[f, 2] * fn[g, 2]))
+
+
+@njit
+def corner_normal_sums(rows, corner, fn, acc):
+    """acc[rows[3 t + i]] += corner[t, i] * fn[t] for every triangle t and corner i, in
+    that order (np.add.at's sums): the corner-angle-weighted normals of the (vertex,
+    patch) rows."""
+    for t in range(fn.shape[0]):
+        for i in range(3):
+            r = rows[3 * t + i]
+            w = corner[t, i]
+            for j in range(3):
+                acc[r, j] += w * fn[t, j]
+
+
+@njit(error_model="numpy")
+def enclosing_radii(points, tri, out):
+    """out[t] = radius (m) of the smallest circle enclosing triangle points[tri[t]], as
+    :func:`meshcheck.curvature.enclosing_radius`: the circumradius a b c / (2 |cross|),
+    or half the longest side when the triangle is obtuse or that is not finite."""
+    for t in range(tri.shape[0]):
+        i = tri[t, 0]
+        j = tri[t, 1]
+        k = tri[t, 2]
+        x0 = points[k, 0] - points[j, 0]
+        x1 = points[k, 1] - points[j, 1]
+        x2 = points[k, 2] - points[j, 2]
+        a = np.sqrt(x0 * x0 + x1 * x1 + x2 * x2)
+        y0 = points[i, 0] - points[k, 0]
+        y1 = points[i, 1] - points[k, 1]
+        y2 = points[i, 2] - points[k, 2]
+        b = np.sqrt(y0 * y0 + y1 * y1 + y2 * y2)
+        p0 = points[j, 0] - points[i, 0]
+        p1 = points[j, 1] - points[i, 1]
+        p2 = points[j, 2] - points[i, 2]
+        c = np.sqrt(p0 * p0 + p1 * p1 + p2 * p2)
+        lo = min(a, b)
+        hi = max(a, b)
+        mid = min(hi, c)
+        top = max(hi, c)
+        low = min(lo, mid)
+        mid = max(lo, mid)
+        q0 = points[k, 0] - points[i, 0]
+        q1 = points[k, 1] - points[i, 1]
+        q2 = points[k, 2] - points[i, 2]
+        z0 = p1 * q2 - p2 * q1
+        z1 = p2 * q0 - p0 * q2
+        z2 = p0 * q1 - p1 * q0
+        area2 = np.sqrt(z0 * z0 + z1 * z1 + z2 * z2)
+        rc = a * b * c / (2.0 * area2)
+        if a != a or b != b or c != c:  # (np.sort puts NaN last: half of it)
+            out[t] = np.nan
+        elif top ** 2 > low ** 2 + mid ** 2 or not np.isfinite(rc):
+            out[t] = 0.5 * top
+        else:
+            out[t] = rc
