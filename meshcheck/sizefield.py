@@ -369,12 +369,20 @@ def size_field(mesh: Mesh, topo: Topology, advice, order: int | None = None,
     """
     p = advice.settings.allowed_order if order is None else int(order)
     cell_t = cell_target_size(advice, p, mesh, topo)
-    cap = topo.cell_extent() if h_max is None else np.full(mesh.n_cells, float(h_max))
+    cap = topo.cell_extent() if h_max is None else \
+        np.broadcast_to(float(h_max), (mesh.n_cells,))
     def capped(lo, hi):  # the targets, the cap where there is none (made per chunk)
         t = cell_t[lo:hi]
         return np.where(np.isfinite(t), t, cap[lo:hi])
 
-    target, cap_node, current = _node_mins(mesh, [capped, cap, advice.cell_size])
+    if cap.strides == (0,) and len(cap):  # one cap (one part, or h_max): the same at
+        # every node of a cell (mid-nodes: the mean of two equal values), as the minimum
+        # over the cells gives it, without that pass (a node of no cell has no target:
+        # nan, which the minimum below keeps)
+        target, current = _node_mins(mesh, [capped, advice.cell_size])
+        cap_node = np.full(mesh.n_points, cap[0] if np.isfinite(cap[0]) else np.nan)
+    else:
+        target, cap_node, current = _node_mins(mesh, [capped, cap, advice.cell_size])
     raw = np.minimum(target, cap_node, out=cap_node)  # the cap's buffer reused
     geo = np.broadcast_to(np.inf, (mesh.n_points,))  # no limit: one read-only inf
     if geometry_limit is not None:

@@ -259,6 +259,35 @@ def test_size_field_is_the_graded_cell_target():
     assert sf.order == 4
 
 
+@pytest.mark.parametrize("kernels", ["numpy", "numba"])
+@pytest.mark.parametrize("case", ["tet", "tet10", "unused node", "h_max"])
+def test_one_cap_skips_its_node_minimum(monkeypatch, kernels, case):
+    # one part (the cap a broadcast extent) or an h_max: the cap at the nodes is that value
+    # at every node of a cell (tetra10 mid-nodes too), the same field as the minimum over
+    # the cells of a full array of it (the general path); a node of no cell stays nan
+    if kernels == "numba":
+        pytest.importorskip("numba")
+    from meshcheck import topology as T
+    from meshes import tet10_box
+
+    mesh = tet10_box((3, 3, 2), size=BOX) if case == "tet10" else tet_box((6, 5, 4), size=BOX)
+    if case == "unused node":
+        mesh = Mesh(np.vstack([mesh.points, [[9.0, 9.0, 9.0]]]), mesh.blocks)
+    topo, adv = _advice(mesh, 800.0)
+    h_max = 0.05 if case == "h_max" else None  # binds: below the targets here
+    monkeypatch.setenv("MESHCHECK_KERNELS", kernels)
+    one = size_field(mesh, topo, adv, h_max=h_max)
+    extent = topo.cell_extent()
+    assert extent.strides == (0,)
+    full = np.full(mesh.n_cells, h_max if h_max else extent[0])
+    monkeypatch.setattr(T.Topology, "cell_extent", lambda self: full)
+    ref = size_field(mesh, topo, adv, h_max=None)
+    for name in ("target", "size", "mesher_size", "current"):
+        np.testing.assert_array_equal(getattr(one, name), getattr(ref, name), err_msg=name)
+    assert np.isnan(one.size[-1]) == (case == "unused node")
+    assert (case == "h_max") == bool((one.size < one.target - 1e-12).any())
+
+
 def test_chosen_order_gives_smaller_sizes_and_geometry_hook_applies():
     mesh = tet_box((6, 5, 4), size=BOX)
     topo, adv = _advice(mesh, 800.0)
