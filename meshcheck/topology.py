@@ -934,6 +934,14 @@ _PACK_BITS = 63
 _FANOUT_BITS = 10
 #: fewest fine buckets per coarse bucket worth a two-level fill (below: one level)
 _MIN_COARSE_BITS = 4
+#: the edges of a renumbered mesh (cells sorted by their lowest node) filled into their
+#: buckets in one level. Measured (twenty-third session, built kernels): the first
+#: edge build of a fresh process, 4.77M tets, one level 0.47 s wall / 0.63-0.67 s CPU
+#: against two levels on two threads 0.40-0.43 s / 0.73-0.76 s; in the audit, where the
+#: quality metrics run beside the edges, 6 alternating runs: wall median 2.93 -> 2.82 s,
+#: analysis 1.93 -> 1.86 s; 966k tets 1.03 -> 0.97 s, 0.466 -> 0.44 s. The faces'
+#: triangles (bucketed by edge) gained nothing from one level (median 2.74 -> 2.77 s)
+ONE_LEVEL_WHEN_RENUMBERED = True
 
 
 #: local edges (triangles) from which the compiled bucket fills and read-offs split their
@@ -1084,8 +1092,12 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
     int64 (two arrays, int64 and of the node type, when the bits do not fit) and one
     int64 per node.  Large meshes fill the buckets in two levels (coarse buckets of
     2**k nodes, then the nodes within each, in place), which keeps the scattered writes
-    within cache-sized ranges.  The edge ids of the rows (the cell edges) are written
-    straight into their array of :func:`index_type`.
+    within cache-sized ranges, unless renumbered (:mod:`meshcheck.ordering`): with the
+    cells in the order of their lowest node the one-level fill writes near its last
+    writes already, and its count and fill, one pass each on one thread, cost less CPU
+    than the two levels' three on two (:data:`ONE_LEVEL_WHEN_RENUMBERED`).  The edge ids
+    of the rows (the cell edges) are written straight into their array of
+    :func:`index_type`.
 
     The packed int64 scratch, dead once read off, is appended to ``spare`` (a list, when
     given) for the faces' pass to reuse (:func:`meshcheck.threads.reuse_or_empty`: its
@@ -1103,7 +1115,7 @@ def _build_edges_compiled(mesh: Mesh, spare: list | None = None) -> Edges:
     n_rows = sum(w * m for w, m in zip(widths, lengths))
     parts = _n_parts(n_rows)
     shift = max(int(mesh.n_cells - 1).bit_length(), 1) + 4  # (cell, local edge < 16)
-    k = _coarse_bits(n)
+    k = 0 if ONE_LEVEL_WHEN_RENUMBERED and mesh.file_cell_ids is not None else _coarse_bits(n)
     if n < 2**31 and int(n - 1).bit_length() + shift <= _PACK_BITS:
         # larger node, cell and local edge packed in one int64
         packed = np.empty(n_rows, np.int64)

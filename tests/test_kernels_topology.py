@@ -389,6 +389,34 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
     assert len(calls["edge_emit_rows_range"]) == 1
 
 
+@pytest.mark.parametrize("one_level", [True, False])
+def test_renumbered_mesh_fills_its_edges_in_one_level(one_level, monkeypatch):
+    # a renumbered mesh (cells in the order of their lowest node) fills the edges' buckets
+    # in one level even where the size would take two (ONE_LEVEL_WHEN_RENUMBERED); its
+    # triangles still take two: the same topology as numpy's either way
+    from meshcheck.kernels import topology as kt
+    from meshcheck.ordering import renumbered
+
+    monkeypatch.setattr(T, "_FANOUT_BITS", 3)
+    monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
+    monkeypatch.setattr(T, "ONE_LEVEL_WHEN_RENUMBERED", one_level)
+    calls = {"edge_count": 0, "edge_coarse_count": 0, "tri_coarse_count": 0}
+    for fn in calls:
+        real = getattr(kt, fn)
+
+        def spy(*a, _real=real, _fn=fn):
+            calls[_fn] += 1
+            return _real(*a)
+        monkeypatch.setattr(kt, fn, spy)
+    mesh = renumbered(MESHES["tetra"]())
+    assert mesh.file_cell_ids is not None
+    ref, got = _both(T.build_topology, mesh, monkeypatch)
+    _same_topology(ref, got)
+    assert (calls["edge_count"] > 0, calls["edge_coarse_count"] > 0) == (one_level,
+                                                                         not one_level)
+    assert calls["tri_coarse_count"] > 0
+
+
 def _reuse_calls(monkeypatch):
     """Force the two-level passes on small meshes; record every call of reuse_or_empty as
     (spare arrays offered, array returned, spare arrays left)."""
