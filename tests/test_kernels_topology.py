@@ -389,6 +389,19 @@ def test_two_level_bucket_fills_equal_numpy(name, fanout, monkeypatch):
     assert len(calls["edge_emit_rows_range"]) == 1
 
 
+def _count_calls(monkeypatch, module, *names) -> dict:
+    """{name: number of calls} of the module's functions ``names``, counted from now."""
+    calls = dict.fromkeys(names, 0)
+    for fn in names:
+        real = getattr(module, fn)
+
+        def spy(*a, _real=real, _fn=fn):
+            calls[_fn] += 1
+            return _real(*a)
+        monkeypatch.setattr(module, fn, spy)
+    return calls
+
+
 @pytest.mark.parametrize("one_level", [True, False])
 def test_renumbered_mesh_fills_its_edges_in_one_level(one_level, monkeypatch):
     # a renumbered mesh (cells in the order of their lowest node) fills the edges' buckets
@@ -400,14 +413,8 @@ def test_renumbered_mesh_fills_its_edges_in_one_level(one_level, monkeypatch):
     monkeypatch.setattr(T, "_FANOUT_BITS", 3)
     monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
     monkeypatch.setattr(T, "ONE_LEVEL_WHEN_RENUMBERED", one_level)
-    calls = {"edge_count": 0, "edge_coarse_count": 0, "tri_coarse_count": 0}
-    for fn in calls:
-        real = getattr(kt, fn)
-
-        def spy(*a, _real=real, _fn=fn):
-            calls[_fn] += 1
-            return _real(*a)
-        monkeypatch.setattr(kt, fn, spy)
+    calls = _count_calls(monkeypatch, kt, "edge_count", "edge_coarse_count",
+                         "tri_coarse_count")
     mesh = renumbered(MESHES["tetra"]())
     assert mesh.file_cell_ids is not None
     ref, got = _both(T.build_topology, mesh, monkeypatch)
@@ -475,14 +482,7 @@ def test_bucket_passes_split_over_threads_equal_numpy(name, two_level, monkeypat
     if two_level:
         monkeypatch.setattr(T, "_FANOUT_BITS", 2)
         monkeypatch.setattr(T, "_MIN_COARSE_BITS", 1)
-    calls = {"edge_emit_rows_range": 0, "coarse_refine_range": 0}
-    for fn in calls:
-        real = getattr(kt, fn)
-
-        def spy(*a, _real=real, _fn=fn):
-            calls[_fn] += 1
-            return _real(*a)
-        monkeypatch.setattr(kt, fn, spy)
+    calls = _count_calls(monkeypatch, kt, "edge_emit_rows_range", "coarse_refine_range")
     mesh = MESHES[name]()
     ref, got = _both(T.build_topology, mesh, monkeypatch)
     _same_topology(ref, got)

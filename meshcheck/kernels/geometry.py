@@ -254,6 +254,19 @@ def _unit(x, y, z):
 
 
 @njit(inline="always")
+def _diff(points, i, j):
+    """points[j] - points[i], componentwise."""
+    return (points[j, 0] - points[i, 0], points[j, 1] - points[i, 1],
+            points[j, 2] - points[i, 2])
+
+
+@njit(inline="always")
+def _cross(p0, p1, p2, q0, q1, q2):
+    """p x q (np.cross's operations)."""
+    return p1 * q2 - p2 * q1, p2 * q0 - p0 * q2, p0 * q1 - p1 * q0
+
+
+@njit(inline="always")
 def _acos(x):
     """np.arccos(np.clip(x, -1, 1)) (NaN stays NaN)."""
     if x < -1.0:
@@ -272,16 +285,10 @@ def triangle_geometry(points, tri, fn, area, corner):
         a = tri[t, 0]
         b = tri[t, 1]
         c = tri[t, 2]
-        # sides 0-1, 1-2 and their cross product (numpy's np.cross order)
-        p0 = points[b, 0] - points[a, 0]
-        p1 = points[b, 1] - points[a, 1]
-        p2 = points[b, 2] - points[a, 2]
-        q0 = points[c, 0] - points[b, 0]
-        q1 = points[c, 1] - points[b, 1]
-        q2 = points[c, 2] - points[b, 2]
-        x = p1 * q2 - p2 * q1
-        y = p2 * q0 - p0 * q2
-        z = p0 * q1 - p1 * q0
+        # sides 0-1, 1-2 and their cross product
+        p0, p1, p2 = _diff(points, a, b)
+        q0, q1, q2 = _diff(points, b, c)
+        x, y, z = _cross(p0, p1, p2, q0, q1, q2)
         nx, ny, nz, ok = _unit(x, y, z)
         if not ok:
             nx, ny, nz = 0.0, 0.0, 0.0
@@ -290,8 +297,8 @@ def triangle_geometry(points, tri, fn, area, corner):
         fn[t, 2] = nz
         area[t] = np.sqrt(x * x + y * y + z * z) / 2.0
         ux, uy, uz, _ = _unit(p0, p1, p2)  # 0 -> 1
-        vx, vy, vz, _ = _unit(points[c, 0] - points[a, 0], points[c, 1] - points[a, 1],
-                              points[c, 2] - points[a, 2])  # 0 -> 2
+        r0, r1, r2 = _diff(points, a, c)
+        vx, vy, vz, _ = _unit(r0, r1, r2)  # 0 -> 2
         wx, wy, wz, _ = _unit(q0, q1, q2)  # 1 -> 2
         a0 = _acos(ux * vx + uy * vy + uz * vz)
         a1 = _acos(-ux * wx + -uy * wy + -uz * wz)
@@ -335,17 +342,11 @@ def enclosing_radii(points, tri, out):
         i = tri[t, 0]
         j = tri[t, 1]
         k = tri[t, 2]
-        x0 = points[k, 0] - points[j, 0]
-        x1 = points[k, 1] - points[j, 1]
-        x2 = points[k, 2] - points[j, 2]
+        x0, x1, x2 = _diff(points, j, k)
         a = np.sqrt(x0 * x0 + x1 * x1 + x2 * x2)
-        y0 = points[i, 0] - points[k, 0]
-        y1 = points[i, 1] - points[k, 1]
-        y2 = points[i, 2] - points[k, 2]
+        y0, y1, y2 = _diff(points, k, i)
         b = np.sqrt(y0 * y0 + y1 * y1 + y2 * y2)
-        p0 = points[j, 0] - points[i, 0]
-        p1 = points[j, 1] - points[i, 1]
-        p2 = points[j, 2] - points[i, 2]
+        p0, p1, p2 = _diff(points, i, j)
         c = np.sqrt(p0 * p0 + p1 * p1 + p2 * p2)
         lo = min(a, b)
         hi = max(a, b)
@@ -353,12 +354,8 @@ def enclosing_radii(points, tri, out):
         top = max(hi, c)
         low = min(lo, mid)
         mid = max(lo, mid)
-        q0 = points[k, 0] - points[i, 0]
-        q1 = points[k, 1] - points[i, 1]
-        q2 = points[k, 2] - points[i, 2]
-        z0 = p1 * q2 - p2 * q1
-        z1 = p2 * q0 - p0 * q2
-        z2 = p0 * q1 - p1 * q0
+        q0, q1, q2 = _diff(points, i, k)
+        z0, z1, z2 = _cross(p0, p1, p2, q0, q1, q2)
         area2 = np.sqrt(z0 * z0 + z1 * z1 + z2 * z2)
         rc = a * b * c / (2.0 * area2)
         if a != a or b != b or c != c:  # (np.sort puts NaN last: half of it)
