@@ -402,8 +402,9 @@ def _count_calls(monkeypatch, module, *names) -> dict:
     return calls
 
 
+@pytest.mark.parametrize("name", ["tetra", "mixed"])
 @pytest.mark.parametrize("one_level", [True, False])
-def test_renumbered_mesh_fills_its_edges_in_one_level(one_level, monkeypatch):
+def test_renumbered_mesh_fills_its_edges_in_one_level(one_level, name, monkeypatch):
     # a renumbered mesh (cells in the order of their lowest node) fills the edges' buckets
     # in one level even where the size would take two (ONE_LEVEL_WHEN_RENUMBERED); its
     # triangles still take two: the same topology as numpy's either way
@@ -415,7 +416,7 @@ def test_renumbered_mesh_fills_its_edges_in_one_level(one_level, monkeypatch):
     monkeypatch.setattr(T, "ONE_LEVEL_WHEN_RENUMBERED", one_level)
     calls = _count_calls(monkeypatch, kt, "edge_count", "edge_coarse_count",
                          "tri_coarse_count")
-    mesh = renumbered(MESHES["tetra"]())
+    mesh = renumbered(MESHES[name]())
     assert mesh.file_cell_ids is not None
     ref, got = _both(T.build_topology, mesh, monkeypatch)
     _same_topology(ref, got)
