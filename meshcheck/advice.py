@@ -837,7 +837,7 @@ def sweep(mesh: Mesh, topo: Topology, advice: Advice, frequencies: np.ndarray) -
         above[order] = np.cumsum(hist, axis=1)[:, :len(f)].T
         if variable:
             dofs = _dofs_from_bins(mesh, topo, B, order, mesh.dim == 3 and len(topo.faces) > 0,
-                                   advice.limit_row)
+                                   advice.limit_row, hist)
     else:
         above = np.stack([np.searchsorted(np.sort(advice.limit_at(p + 1)), f, side="left")
                           for p in range(pmax)], axis=1)

@@ -203,13 +203,21 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
 
 
 def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray,
-                    three: bool, limit_row: np.ndarray | None = None) -> np.ndarray:
+                    three: bool, limit_row: np.ndarray | None = None,
+                    hist: np.ndarray | None = None) -> np.ndarray:
     """(n_f,) int64 variable-order unknowns from the bins B of :func:`_limit_bins` (one
     row per cell, or per limit row with ``limit_row``): vertices + edge and face
-    unknowns by the maximum rule."""
+    unknowns by the maximum rule.  With its ``hist``, only the orders that some cell
+    exceeds within the sweep are counted (the others add nothing: every bin there is
+    past the last frequency or NaN's): a mesh that needs order 2 at most over the sweep
+    has one column of seven, and its (edges x columns) table fits in cache."""
     from .kernels import advice as _ka
 
     n_f = len(order)
+    qs = np.arange(B.shape[1], dtype=np.int64)
+    if hist is not None and B.shape[1]:
+        qs = np.flatnonzero(hist[:B.shape[1], :n_f].any(axis=1))
+        B = np.ascontiguousarray(B[:, qs])
     edges = topo.edges
     par = mesh.n_cells > 50_000
     parts = 2 if par else 1
@@ -244,7 +252,7 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
                else topo.faces.is_tri)
         for lo, hi in pieces(len(fcells), par):  # (a job per piece: balanced)
             jobs.append(lambda hist, lo=lo, hi=hi:
-                        _ka.face_dof_hist(B, row, fcells, tri, lo, hi, hist))
+                        _ka.face_dof_hist(B, qs, row, fcells, tri, lo, hi, hist))
 
     def run(job):
         hist = np.zeros(n_f + 1, np.int64)
@@ -264,8 +272,8 @@ def _variable_order_dofs_compiled(mesh: Mesh, topo: Topology, cell_limits: np.nd
                                   limit_row: np.ndarray | None = None) -> np.ndarray:
     """:func:`variable_order_dofs` by histograms over the sorted frequencies (kernels of
     :mod:`meshcheck.kernels.advice`): the same (n_f,) int64 counts."""
-    order, _, B = _limit_bins(cell_limits, f, max(max_order - 1, 0), limit_row)
-    return _dofs_from_bins(mesh, topo, B, order, three, limit_row)
+    order, hist, B = _limit_bins(cell_limits, f, max(max_order - 1, 0), limit_row)
+    return _dofs_from_bins(mesh, topo, B, order, three, limit_row, hist)
 
 
 # ---------------------------------------------------------------------------

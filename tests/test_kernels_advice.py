@@ -392,6 +392,49 @@ def test_variable_order_dofs_of_a_large_mesh_on_threads(monkeypatch, renumber):
                                    else [(0, n_e)])
 
 
+@pytest.mark.parametrize("name", ["tet", "hex+wedge"])
+def test_sweep_counts_only_the_orders_exceeded(monkeypatch, name):
+    # a sweep whose cells need order 2 at most: the compiled unknowns read one column of
+    # bins (orders 3..8 are never exceeded, so they add nothing), the same counts as
+    # the numpy reference, which counts every order
+    mesh, topo = _mesh(name)
+    monkeypatch.setenv("MESHCHECK_KERNELS", "numpy")
+    adv = advise(mesh, topo, _speeds(mesh), 1000.0, AdviceSettings())
+    top = float(np.nanmin(adv.limit_at(2)))  # below every cell's order-2 limit
+    assert np.nanmin(adv.limit_at(1)) < top
+    f = np.linspace(0.2 * top, 0.99 * top, 30)
+    widths = []
+    for kernel in ("edge_min_bins", "face_dof_hist"):
+        real = getattr(KA, kernel)
+        monkeypatch.setattr(KA, kernel, lambda B, *a, real=real:
+                            (widths.append(B.shape[1]), real(B, *a))[1])
+    ref, got = _both(monkeypatch, lambda: sweep(mesh, topo, adv, f))
+    _same(ref.dofs, got.dofs, "dofs")
+    assert widths and set(widths) == {1}
+    assert got.dofs[-1] > got.dofs[0]  # order 2 reached somewhere within the sweep
+
+
+def test_face_unknowns_of_the_columns_kept_are_those_of_all():
+    # face_dof_hist on the columns qs of B only equals it on all columns when the others
+    # are never exceeded (n_f + 1 or NaN's 0): the weights follow qs, not the position
+    rng = np.random.default_rng(8)
+    n_f, n_faces, W = 40, 500, 8
+    B = rng.integers(0, n_f + 2, (300, W)).astype(np.uint8)
+    drop = [0, 2, 4, 5, 6, 7]
+    B[:, drop] = np.where(rng.random((300, len(drop))) < 0.1, 0, n_f + 1)
+    fcells = rng.integers(-1, 300, (n_faces, 2)).astype(np.int32)
+    fcells[:, 0] = np.abs(fcells[:, 0])
+    tri = rng.random(n_faces) < 0.5
+    row = np.zeros(0, np.int32)
+    full = np.zeros(n_f + 1, np.int64)
+    KA.face_dof_hist(B, np.arange(W), row, fcells, tri, 0, n_faces, full)
+    kept = np.zeros(n_f + 1, np.int64)
+    qs = np.array([1, 3])
+    KA.face_dof_hist(np.ascontiguousarray(B[:, qs]), qs, row, fcells, tri, 0, n_faces, kept)
+    np.testing.assert_array_equal(kept[:n_f], full[:n_f])  # (bin n_f: never counted)
+    assert full[:n_f].sum() > 0
+
+
 def test_governing_edge_is_numpys_argmax_with_ties_and_nan():
     # np.argmax: the first of equal maxima, the first NaN if there is one
     h = np.array([1.0, 2.0, 2.0, np.nan, 0.5, np.nan, 3.0])

@@ -564,12 +564,13 @@ def edge_bin_hist(E, lo, hi, hist):
 
 
 @njit
-def face_dof_hist(B, row, fcells, tri, lo, hi, hist):
+def face_dof_hist(B, qs, row, fcells, tri, lo, hi, hist):
     """Face unknowns added above order q + 1, binned like :func:`edge_bin_hist`: q per
     triangle (tri True; tri empty: every face), 2 q + 1 per quadrilateral, at the smaller
     bin of the face's
     cells (fcells (n_faces, 2) integers, -1 = no second cell), for faces lo <= f < hi;
-    cell i's bins are B[row[i]], or B[i] when ``row`` is empty."""
+    cell i's bins are B[row[i]], or B[i] when ``row`` is empty; column j of B is the
+    order qs[j] + 1 (qs (W,) integers: the columns kept, see ``cost._dofs_from_bins``)."""
     n_f = hist.shape[0] - 1
     shared = row.shape[0] > 0
     all_tri = tri.shape[0] == 0  # no array: every face a triangle
@@ -581,11 +582,12 @@ def face_dof_hist(B, row, fcells, tri, lo, hi, hist):
             if c1 >= 0:
                 c1 = row[c1]
         t = True if all_tri else tri[f]
-        for q in range(B.shape[1]):
+        for j in range(B.shape[1]):
+            q = qs[j]
             w = q if t else 2 * q + 1
-            b = np.int64(B[c0, q])
+            b = np.int64(B[c0, j])
             if c1 >= 0:
-                b = min(b, np.int64(B[c1, q]))
+                b = min(b, np.int64(B[c1, j]))
             if w > 0:
                 hist[b - 1 if b > 0 else n_f] += w
 
