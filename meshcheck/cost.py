@@ -204,10 +204,10 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
 
 def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray,
                     three: bool, limit_row: np.ndarray | None = None,
-                    hist: np.ndarray | None = None) -> np.ndarray:
+                    limit_hist: np.ndarray | None = None) -> np.ndarray:
     """(n_f,) int64 variable-order unknowns from the bins B of :func:`_limit_bins` (one
     row per cell, or per limit row with ``limit_row``): vertices + edge and face
-    unknowns by the maximum rule.  With its ``hist``, only the orders that some cell
+    unknowns by the maximum rule.  With its histogram ``limit_hist``, only the orders that some cell
     exceeds within the sweep are counted (the others add nothing: every bin there is
     past the last frequency or NaN's): a mesh that needs order 2 at most over the sweep
     has one column of seven, and its (edges x columns) table fits in cache."""
@@ -215,8 +215,8 @@ def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray
 
     n_f = len(order)
     qs = np.arange(B.shape[1], dtype=np.int64)
-    if hist is not None and B.shape[1]:
-        qs = np.flatnonzero(hist[:B.shape[1], :n_f].any(axis=1))
+    if limit_hist is not None and B.shape[1]:
+        qs = np.flatnonzero(limit_hist[:B.shape[1], :n_f].any(axis=1))
         B = np.ascontiguousarray(B[:, qs])
     edges = topo.edges
     par = mesh.n_cells > 50_000
