@@ -224,7 +224,8 @@ def test_float32_bits_widen_as_numpy_widens():
 @pytest.mark.parametrize("bad", ["low", "high"])
 @pytest.mark.parametrize("k", [1, 10, 25])
 @pytest.mark.parametrize("form", ["float64", "float32"])
-def test_summary_of_rounded_equals_the_float64_summary(n, bad, k, form):
+@pytest.mark.parametrize("tuning", ["default", "small"])
+def test_summary_of_rounded_equals_the_float64_summary(n, bad, k, form, tuning):
     # every array of the radix tests, and values that differ only below float32's
     # resolution (all tied after rounding): the statistics and worst cells of x itself,
     # bit for bit, from the rounding and the recomputed tied cells alone
@@ -248,7 +249,9 @@ def test_summary_of_rounded_equals_the_float64_summary(n, bad, k, form):
         else:
             w = _rounded(x)
         want = _metric_stats(x, bad, k)
-        got = KS.summary_of_rounded(w, exact, bad, k, tie_max=n + k)
+        info = {}
+        got = KS.summary_of_rounded(w, exact, bad, k, tie_max=n + k, info=info,
+                                    **TUNINGS[tuning])
         if want is None:
             assert got is None, name
             continue
@@ -261,6 +264,8 @@ def test_summary_of_rounded_equals_the_float64_summary(n, bad, k, form):
         np.testing.assert_array_equal(got["worst"], want["worst"], err_msg=name)
         if name in ("uniform", "normal", "heavy tail") and n >= 1000:
             assert sum(asked) < 100, name  # spread values: a few cells recomputed
+            if tuning == "default":  # the ties come with the selection's two passes
+                assert info["passes"] == 2, name
 
 
 def test_summary_of_rounded_raises_on_too_many_ties():

@@ -172,13 +172,15 @@ def _flush(hist, hmin, hmax, j, s, c, kmin, kmax):
 
 @njit
 def refine_pass(bits, tab, ivb, n_iv, iv_lo, iv_hi, iv_sh, iv_mode, iv_off, fill,
-                 buf, hist, hmin, hmax, wmode, wcut, wkeys, widx):
+                buf, bufid, hist, hmin, hmax, wmode, wcut, wkeys, widx):
     """Pass 2 and later over ``bits``: the keys of the intervals [iv_lo[j], iv_hi[j]]
     (uint64; ivb (int8, one per first-level bin): the interval in the bin, -1 none, -2
-    several) go to ``buf`` from iv_off[j] when iv_mode[j] is 1, else to row j of the
-    histogram over sub-bins (k - iv_lo[j]) >> iv_sh[j] (count, smallest and largest key
-    per sub-bin); with wmode 1 (2) the keys <= (>=) wcut go to wkeys with their ids to
-    widx.  Returns the number of worst candidates gathered."""
+    several) go to ``buf`` from iv_off[j] when iv_mode[j] is 1 (and their ids to
+    ``bufid`` unless it is empty), else to row j of the histogram over sub-bins
+    (k - iv_lo[j]) >> iv_sh[j] (count, smallest and largest key per sub-bin); with
+    wmode 1 (2) the keys <= (>=) wcut go to wkeys with their ids to widx.  Returns the
+    number of worst candidates gathered."""
+    with_ids = bufid.size > 0
     nw = 0
     # the current run of keys in one sub-bin, kept in registers (many equal values would
     # otherwise chain every update through memory)
@@ -218,6 +220,8 @@ def refine_pass(bits, tab, ivb, n_iv, iv_lo, iv_hi, iv_sh, iv_mode, iv_off, fill
             continue
         if iv_mode[j] == 1:
             buf[iv_off[j] + fill[j]] = k
+            if with_ids:
+                bufid[iv_off[j] + fill[j]] = i
             fill[j] += 1
             continue
         s = np.int64((k - iv_lo[j]) >> iv_sh[j])
@@ -280,12 +284,22 @@ def _order(keys: np.ndarray, ids: np.ndarray, low: bool) -> np.ndarray:
     return ids[np.lexsort((ids, keys if low else ~keys))]
 
 
-def _select(bits, n, tab, hist1, ranks, k, low, nb2, gather_max, worst_max, info):
+def _select(bits, n, tab, hist1, ranks, k, low, nb2, gather_max, worst_max, info,
+            tie_max=None):
     """Keys ((m,) uint64) at the sorted distinct ``ranks`` ((m,) int64, 0 <= rank < n)
     of the ``n`` finite values of ``bits`` (first-level ``tab`` and ``hist1`` from
-    :func:`histogram`), and the ids ((k,) int64, k <= n) of the k worst values."""
+    :func:`histogram`), the ids ((k,) int64, k <= n) of the k worst values, and, when
+    ``tie_max`` is given, the ties at every rank: a list of (number of values below the
+    rank's value, ids (ascending) of the values equal to it); :class:`TooManyTies` when a
+    rank's value is shared by more than ``tie_max`` values.
+
+    The ties come with the pass that resolves a rank: its interval's keys are gathered
+    with their ids; a rank resolved by a sub-bin of one key value takes one more pass
+    gathering that key's ids."""
+    ties = tie_max is not None
     nt = len(ranks)
     tkey = [0] * nt
+    tied: list = [None] * nt
     cum1 = np.cumsum(hist1, dtype=np.int64)
     base = tab >> 8
     tb = np.searchsorted(cum1, ranks, side="right")   # first-level bin of each rank
@@ -339,6 +353,7 @@ def _select(bits, n, tab, hist1, ranks, k, low, nb2, gather_max, worst_max, info
         iv_sh = np.array([iv[4] for iv in ivs] or [0], np.uint64)
         iv_mode = np.array([int(iv[3]) for iv in ivs] or [0], np.int64)
         buf = np.empty(g, np.uint64)
+        bufid = np.empty(g if ties else 0, np.int64)
         fill = np.zeros(max(m, 1), np.int64)
         rows = sum(1 for iv in ivs if not iv[3])
         hist = np.zeros((max(m, 1), nb2 if rows else 1), np.int64)
@@ -347,7 +362,7 @@ def _select(bits, n, tab, hist1, ranks, k, low, nb2, gather_max, worst_max, info
         wkeys = np.empty(wcount, np.uint64)
         widx = np.empty(wcount, np.int64)
         nw = refine_pass(bits, tab, ivb, m, iv_lo, iv_hi, iv_sh, iv_mode, off, fill,
-                         buf, hist, hmin, hmax, wmode, np.uint64(wcut), wkeys, widx)
+                         buf, bufid, hist, hmin, hmax, wmode, np.uint64(wcut), wkeys, widx)
         passes += 1
         if wmode:
             worst = _order(wkeys[:nw], widx[:nw], low)[:k]
@@ -361,22 +376,35 @@ def _select(bits, n, tab, hist1, ranks, k, low, nb2, gather_max, worst_max, info
                 continue
             lo, hi, c, gather, _ = ivs[j]
             if gather:
+                seg = slice(off[j], off[j] + c)
                 if last != ("g", j):
-                    buf[off[j]:off[j] + c].sort()
+                    if ties:  # keys ascending, ids ascending among equal keys
+                        o = np.argsort(buf[seg], kind="stable")
+                        buf[seg], bufid[seg] = buf[seg][o], bufid[seg][o]
+                    else:
+                        buf[seg].sort()
                     last = ("g", j)
-                tkey[t] = int(buf[off[j] + t_r[t]])
+                key = buf[off[j] + t_r[t]]
+                tkey[t] = int(key)
+                if ties:
+                    a = int(np.searchsorted(buf[seg], key, side="left"))
+                    b = int(np.searchsorted(buf[seg], key, side="right"))
+                    tied[t] = (int(ranks[t]) - t_r[t] + a, bufid[seg][a:b].copy())
                 t_iv[t] = -1
                 continue
             cum = np.cumsum(hist[j])
             s = int(np.searchsorted(cum, t_r[t], side="right"))
             before = int(cum[s]) - int(hist[j, s])
             lo, hi, c = int(hmin[j, s]), int(hmax[j, s]), int(hist[j, s])
-            if lo == hi:                          # one key value
+            if lo == hi and not ties:             # one key value
                 tkey[t] = lo
                 t_iv[t] = -1
                 continue
+            if lo == hi and c > tie_max:
+                raise TooManyTies
             if last != ("r", j, s):
-                nxt.append((lo, hi, c, c <= gather_max, _shift_for(hi - lo, nb2)))
+                gather = c <= gather_max or lo == hi   # one key: its ids gathered
+                nxt.append((lo, hi, c, gather, _shift_for(hi - lo, nb2)))
                 last = ("r", j, s)
             t_iv[t] = len(nxt) - 1
             t_r[t] -= before
@@ -388,7 +416,9 @@ def _select(bits, n, tab, hist1, ranks, k, low, nb2, gather_max, worst_max, info
         passes += 1
     if info is not None:
         info["passes"] = passes
-    return np.array(tkey, np.uint64), worst.astype(np.int64, copy=False)
+    keys = np.array(tkey, np.uint64)
+    worst = worst.astype(np.int64, copy=False)
+    return (keys, worst, tied) if ties else (keys, worst)
 
 
 def _values(keys: np.ndarray) -> np.ndarray:
@@ -477,42 +507,14 @@ class TooManyTies(Exception):
     """:func:`summary_of_rounded` would recompute more than its ``tie_max`` values."""
 
 
-@njit
-def tie_scan(w, vals, below, equal, ids):
-    """One pass over w for the sorted distinct finite ``vals`` ((m,) float64):
-    below[j] += the finite values of w under vals[j], equal[j] += those equal to it, and
-    the ids (ascending) of the values equal to one of vals written to ``ids`` while it
-    has room.  Returns the number of such values (all of them, written or not)."""
-    m = vals.shape[0]
-    cap = ids.shape[0]
-    hist = np.zeros(m + 1, np.int64)  # of r = the number of vals <= x (no branch on it)
-    k = 0
-    for i in range(w.shape[0]):
-        x = w[i]
-        if not (x - x == 0.0):  # NaN or infinite
-            continue
-        r = 0
-        for j in range(m):
-            r += vals[j] <= x
-        hist[r] += 1
-        if r > 0 and vals[r - 1] == x:
-            equal[r - 1] += 1
-            if k < cap:
-                ids[k] = i
-            k += 1
-    c = 0
-    for j in range(m):  # x < vals[j] exactly when r <= j
-        c += hist[j]
-        below[j] += c
-    return k
-
-
 #: most cells :func:`summary_of_rounded` recomputes (ties at the needed ranks)
 TIE_MAX = 1 << 16
 
 
 def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
-                       tie_max: int | None = None) -> dict | None:
+                       tie_max: int | None = None, nb1: int = NB1, nb2: int = NB2,
+                       gather_max: int = GATHER_MAX, worst_max: int = WORST_MAX,
+                       sample: int = SAMPLE, info: dict | None = None) -> dict | None:
     """:func:`metric_summary` of values x known only through a rounding w and a way to
     recompute a few of them, without the (n,) array of x.
 
@@ -527,35 +529,38 @@ def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
     recomputed (and the candidates for the worst cells), and the dict is the one
     :func:`metric_summary` gives for x (bit for bit).  Raises :class:`TooManyTies` when
     more than ``tie_max`` (default :data:`TIE_MAX`) cells would be recomputed (e.g.
-    identical cells)."""
+    identical cells).  The tied cells are gathered by the selection's own passes (two
+    for spread values, as :func:`metric_summary`); the keyword arguments as there."""
     tie_max = TIE_MAX if tie_max is None else tie_max
     w = np.ascontiguousarray(w)
     if w.dtype not in (np.float32, np.float64) or w.ndim != 1:
         raise TypeError("summary_of_rounded takes a 1D float32 or float64 array")
     bits = w.view(np.uint32 if w.dtype == np.float32 else np.uint64)
     proto = np.empty(0, np.int32 if bits.size < 2**31 else np.int64)
-    nb1 = min(NB1, max(1 << 10, bits.size // 8))
-    n, tab, hist1 = histogram(bits, nb1, SAMPLE, proto)
+    nb1 = min(nb1, max(1 << 10, bits.size // 8))
+    n, tab, hist1 = histogram(bits, nb1, sample, proto)
     if n == 0:
         return None
     plan = _Plan(n, n_worst, bad)
     low = plan.low
-    keys, worst_w = _select(bits, n, tab, hist1, plan.ranks, plan.kk, low, NB2,
-                            GATHER_MAX, WORST_MAX, None)
+    keys, worst_w, tied = _select(bits, n, tab, hist1, plan.ranks, plan.kk, low, nb2,
+                                  gather_max, worst_max, info, tie_max)
     at_w = dict(zip(plan.ranks.tolist(), _values(keys)))
     vals = np.unique(np.fromiter(at_w.values(), np.float64))
+    # per value of w at a needed rank: the number of values below it, the ids equal to it
     below = np.zeros(len(vals), np.int64)
-    equal = np.zeros(len(vals), np.int64)
+    equal = [np.zeros(0, np.int64)] * len(vals)
+    for v, (nb, ids) in zip(at_w.values(), tied):
+        j = int(np.searchsorted(vals, v))
+        below[j], equal[j] = nb, ids
     # the worst candidates: the cells strictly worse than the k-th worst value of w
     # (fewer than k, all among w's k worst) and the cells tied with it
     cut = at_w[plan.kk_rank] if plan.kk else None
     worse = (worst_w[w[worst_w] < cut] if low else worst_w[w[worst_w] > cut]) \
         if plan.kk else np.zeros(0, np.int64)
-    tied = np.empty(max(tie_max - len(worse), 0), np.int64)
-    n_tied = tie_scan(w, vals, below, equal, tied)
-    if n_tied > len(tied):
+    if sum(len(e) for e in equal) > tie_max - len(worse):
         raise TooManyTies
-    ids = np.union1d(tied[:n_tied], worse)
+    ids = np.union1d(np.concatenate(equal), worse)
     x = np.asarray(exact(ids), np.float64)
     xw = w[ids]
     at = {}
