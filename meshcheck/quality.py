@@ -651,6 +651,10 @@ class QualityLimits:
         return QualityLimits(**{f: new.get(f, getattr(self, f)) for f in FAMILIES})
 
 
+#: cells :meth:`CellFlags.counts` counts at a time
+COUNT_PIECE = 1 << 16
+
+
 class CellFlags(Mapping):
     """{metric: (n_cells,) bool} of the cells outside their acceptable range, stored as
     one bit per metric in a single (n_cells,) unsigned array (an eighth of the memory
@@ -683,10 +687,25 @@ class CellFlags(Mapping):
 
     def count(self, name: str) -> int:
         """Number of flagged cells of one metric."""
-        return int(np.count_nonzero(self.bits & self._bit(name)))
+        return self.counts((name,))[name]
+
+    def counts(self, names=None) -> dict[str, int]:
+        """{metric: number of flagged cells} of ``names`` (default: all), counted a piece
+        of the cells at a time (no (n_cells,) temporary)."""
+        names = self.names if names is None else tuple(names)
+        bits = [self._bit(k) for k in names]
+        out = dict.fromkeys(names, 0)
+        for lo in range(0, len(self.bits), COUNT_PIECE):
+            part = self.bits[lo:lo + COUNT_PIECE]
+            for k, b in zip(names, bits):
+                out[k] += int(np.count_nonzero(part & b))
+        return out
 
     def __iter__(self):
         return iter(self.names)
+
+    def __contains__(self, name) -> bool:  # (Mapping's would unpack the bits)
+        return name in self.names
 
     def __len__(self) -> int:
         return len(self.names)

@@ -72,14 +72,15 @@ def _quality(res: AuditResult, scale: float) -> dict:
     summary = res.quality_summary if res.quality_summary is not None else \
         summarise(res.quality, parallel=res.mesh.n_cells > 200_000)
     out = {}
+    flags = res.quality_flags  # a CellFlags: counted without unpacking the bits
+    counts = flags.counts([k for k, st in summary.items() if st is not None and k in flags])
     for name, st in summary.items():
         if st is None:
             continue
         st = dict(st)
         worst, values, bad = st.pop("worst"), st.pop("worst_values"), METRIC_BAD.get(name, "high")
-        flags = res.quality_flags  # a CellFlags: counted without unpacking the bits
         out[name] = {
-            **st, "out_of_range": flags.count(name) if name in flags else 0,
+            **st, "out_of_range": counts.get(name, 0),
             "worse_when": bad,
             "acceptable": lim.describe(name) if hasattr(lim, "describe") else None,
             "worst": [{"cell": int(res.mesh.file_cells(i)), "value": float(v),
@@ -101,11 +102,20 @@ def _region_cells(region: np.ndarray, cell_volume: np.ndarray, region_lim: dict)
             r = runs[tag]
             vals = (cell_volume[r[0][0]:r[0][1]] if len(r) == 1 else
                     np.concatenate([cell_volume[lo:hi] for lo, hi in r]))
-            yield tag, lim, sum(hi - lo for lo, hi in r), r[0][0], float(np.abs(vals).sum())
+            yield tag, lim, sum(hi - lo for lo, hi in r), r[0][0], _abs_sum(vals)
         else:
             sel = region == tag
             yield (tag, lim, int(np.count_nonzero(sel)), int(np.argmax(sel)),
                    float(np.abs(cell_volume[sel]).sum()))
+
+
+def _abs_sum(x: np.ndarray) -> float:
+    """``float(np.abs(x).sum())``, bit for bit, without the (n,) copy when no value is
+    negative (the usual cell volumes; 38 MB of new memory at 4.77M cells): the sum of x
+    itself then, with -0.0 made +0.0 as abs makes it."""
+    if len(x) and x.min() >= 0.0:  # (False for NaN)
+        return float(x.sum()) + 0.0
+    return float(np.abs(x).sum())
 
 
 def _file_ids(mesh, f) -> np.ndarray:
@@ -187,7 +197,7 @@ def to_dict(res: AuditResult, cost: bool = True) -> dict:
         "refine": [_cluster(c, scale, m) for c in res.refine_clusters],
         "coarsen": [_cluster(c, scale, m) for c in res.coarsen_clusters],
         "topology": {"edges": len(topo.edges), "faces": len(topo.faces),
-                     "boundary_faces": int(topo.faces.boundary.sum()),
+                     "boundary_faces": int(np.count_nonzero(topo.faces.boundary)),
                      "components": [{"volume_m3": float(v), "extent_m": float(e)} for v, e in
                                     zip(topo.component_volume, topo.component_extent)],
                      "edge_length_min": float(np.nanmin(topo.edges.length) / scale),

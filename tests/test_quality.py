@@ -611,15 +611,18 @@ def test_narrowed_metrics_are_the_float32_roundings_and_broadcasts_stay_broadcas
     assert got["a"].base is got["c"].base  # one (2, n) block for the metrics with values
 
 
-def test_packed_flags_equal_direct_comparisons():
+@pytest.mark.parametrize("piece", [1 << 16, 7])
+def test_packed_flags_equal_direct_comparisons(piece, monkeypatch):
     """The one-bit-per-metric flags unpack to the comparisons with the family bounds
     made directly on the float64 metrics (the documented rule: NaN never flagged, a
     1e-9 relative tolerance at a bound), on a distorted mesh with many flagged cells."""
     from dataclasses import replace
 
+    from meshcheck import quality as quality_module
     from meshcheck.quality import CellFlags, family_of
     from tests.meshes import tet_box
 
+    monkeypatch.setattr(quality_module, "COUNT_PIECE", piece)  # counted in one or many
     mesh = tet_box((5, 4, 3))
     rng = np.random.default_rng(11)
     mesh = replace(mesh, points=mesh.points + rng.uniform(-0.08, 0.08, mesh.points.shape))
@@ -637,6 +640,8 @@ def test_packed_flags_equal_direct_comparisons():
         assert flags.count(k) == int(want.sum())
         some += int(want.sum())
     assert some > 0
+    assert flags.counts() == {k: int(flags[k].sum()) for k in q.names}
+    assert "no_such_metric" not in flags and all(k in flags for k in q.names)
     with pytest.raises(KeyError):
         flags["no_such_metric"]
     wide = CellFlags.empty(tuple(f"m{i}" for i in range(9)), 4)

@@ -7,6 +7,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
+from meshcheck import advice as advice_module
 from meshcheck.advice import Advice, AdviceSettings, region_runs
 from meshcheck.pipeline import AuditSettings, audit
 from meshcheck.quality import metric_stats as _metric_stats
@@ -119,10 +120,12 @@ def test_region_limits_cells_and_volumes_equal_the_masked_reference(layout, shar
         assert v == float(np.abs(vol[sel]).sum())  # the same sum, to the bit
 
 
+@pytest.mark.parametrize("piece", [1 << 16, 64])
 @pytest.mark.parametrize("shared", [False, True])
-def test_lowest_cell_is_numpys_argmin_of_the_per_cell_limits(shared):
+def test_lowest_cell_is_numpys_argmin_of_the_per_cell_limits(shared, piece, monkeypatch):
     """The report's limiting cell: np.argmin over the cells' limits (first of tied
-    minima; the first NaN where one is NaN), found on shared rows without them."""
+    minima; the first NaN where one is NaN), found on shared rows without them (the
+    cells looked at in pieces: one, or many)."""
     rng = np.random.default_rng(8)
     n = 2000
     rows = np.round(np.maximum.accumulate(rng.uniform(10.0, 1e3, (n // 4, 5)), axis=1), -1)
@@ -133,9 +136,12 @@ def test_lowest_cell_is_numpys_argmin_of_the_per_cell_limits(shared):
     lim = rows[index]
     adv = (SimpleNamespace(limit_rows=rows, limit_row=index) if shared else
            SimpleNamespace(limit_rows=lim, limit_row=None))
+    adv.mesh_limit = rows.min(axis=0).astype(np.float64)  # as Advice's (NaN propagates)
+    monkeypatch.setattr(advice_module, "LOWEST_PIECE", piece)
     for p in range(1, 6):
         assert Advice.lowest_cell(adv, p) == int(np.argmin(lim[:, p - 1])), p
     assert np.isnan(lim[Advice.lowest_cell(adv, 4), 3])
+    assert max(int(np.argmin(lim[:, p])) for p in range(5)) > 64  # past the first piece
     assert np.sum(lim[:, 0] == lim[:, 0].min()) > 1  # ties: the first one is meant
     assert np.sum(rows[:, 0] == rows[:, 0].min()) in (2, 3, 4)  # a few tied rows
     assert np.sum(rows[:, 4] == 5.0) == 7  # and more than a few
@@ -311,3 +317,18 @@ def test_vtu_never_started_is_written_when_asked_for(tmp_path):
     res = audit(mesh, settings)
     early.finish(res)
     assert early.result().read_bytes() == write_vtu(res, tmp_path / "ref.vtu").read_bytes()
+
+
+def test_abs_sum_is_numpys_sum_of_abs_to_the_bit():
+    # the regions' volumes: the sum of |volume| without the copy when none is negative
+    from meshcheck.report import _abs_sum
+
+    rng = np.random.default_rng(3)
+    cases = {"positive": rng.uniform(1e-9, 1e-6, 100_003), "mixed": rng.normal(size=5001),
+             "negative zeros": np.full(10, -0.0), "with zeros": np.r_[0.0, -0.0, 1.5, 2.25],
+             "nan": np.r_[1.0, np.nan, 2.0], "empty": np.zeros(0)}
+    for name, x in cases.items():
+        want = float(np.abs(x).sum())
+        got = _abs_sum(x)
+        assert (got == want or (np.isnan(got) and np.isnan(want))), name
+        assert np.signbit(got) == np.signbit(want), name
