@@ -300,10 +300,18 @@ def region_runs(region: np.ndarray, max_runs: int = 256) -> dict[int, list] | No
     return dict(sorted(out.items()))
 
 
+def _uniform(x: np.ndarray) -> bool:
+    """Whether every value of the non-empty (n,) array x equals the first (NaN: never),
+    without a pass for a broadcast of one value."""
+    if x.strides == (0,):
+        return bool(x[0] == x[0])
+    return bool(np.all(x == x[0]))
+
+
 def _edge_values(topo: Topology, cell_values: np.ndarray, reduce) -> np.ndarray:
     """(n_e,) reduction of a cell quantity over the cells of every edge; one value on all
     cells gives a read-only broadcast of it (no (n_e,) array)."""
-    if len(cell_values) and np.all(cell_values == cell_values[0]):
+    if len(cell_values) and _uniform(cell_values):
         return np.broadcast_to(cell_values[:1], (len(topo.edges),))
     return topo.edges.from_cells(cell_values, reduce)
 
@@ -683,7 +691,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     # cell and edge ids in 4 bytes when they fit (gov and owner are scratch arrays)
     id_type = np.int32 if max(n_cells, n_e) < 2 ** 31 - 1 else np.int64
     odd = np.zeros(n_cells, bool)
-    uniform = (np.ptp(c) == 0 if n_e else True) and (np.ptp(L) == 0 if n_e else True)
+    uniform = not n_e or (_uniform(c) and _uniform(L))
     par = n_e > 100_000
     if gov is None:
         gov = _longest_edges(mesh, topo)
@@ -737,8 +745,8 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
         raise SettingsError("L/h ratios must be > 0")  # as UsableKh.max_kh
     # every cell's row, longest edge and size factor
     limit_row = np.empty(n_cells, id_type if n_rows < 2 ** 31 - 1 else np.int64)
-    one_size = flow is None and n_cells and np.all(cell_speed == cell_speed[0]) and \
-        np.all(cell_L == cell_L[0])  # one wavenumber and one distance: one model size
+    one_size = flow is None and n_cells and _uniform(cell_speed) and \
+        _uniform(cell_L)  # one wavenumber and one distance: one model size
     if one_size and not len(corr.mixed):
         # the sizes, targets and coarsening decided in the same pass, in float64, and
         # kept in float32 (no (n_cells,) float64 array)

@@ -80,10 +80,13 @@ class AuditSettings:
 
 
 def cell_speeds(mesh: Mesh, settings: AuditSettings) -> np.ndarray:
-    """(n_cells,) sound speed of every cell, m/s (see :func:`meshcheck.job.resolve_media`
-    for the precedence of job file, file-stated speeds and overrides)."""
+    """(n_cells,) sound speed of every cell, m/s, read-only (see
+    :func:`meshcheck.job.resolve_media` for the precedence of job file, file-stated
+    speeds and overrides)."""
     if settings.job is not None or mesh.material_speeds:
         return media_of(mesh, settings).cell_speed
+    if not settings.region_speeds:  # one speed: a read-only broadcast (no (n_cells,) array)
+        return np.broadcast_to(np.float64(settings.default_speed), (mesh.n_cells,))
     c = np.full(mesh.n_cells, settings.default_speed)
     by_name = {v.lower(): k for k, v in mesh.region_names.items()}
     tags = set(mesh.region_tags.tolist())
@@ -96,6 +99,14 @@ def cell_speeds(mesh: Mesh, settings: AuditSettings) -> np.ndarray:
             raise SettingsError(f"{mesh.source}: no region '{key}' in the mesh; regions: {known}")
         c[mesh.region == tag] = float(value)
     return c
+
+
+def _same_values(a: np.ndarray, b: np.ndarray) -> bool:
+    """``np.array_equal(a, b)`` of (n,) arrays, without a pass when both are broadcasts
+    of one value."""
+    if a.shape == b.shape and a.strides == b.strides == (0,):
+        return not len(a) or bool(a[0] == b[0])
+    return np.array_equal(a, b)
 
 
 def media_of(mesh: Mesh, settings: AuditSettings) -> Media:
@@ -266,7 +277,7 @@ def audit(mesh: Mesh, settings: AuditSettings,
         t["quality"] += t_q
         stage("advice")
         speeds = cell_speeds(mesh, settings)
-        if speeds is not media.cell_speed and np.array_equal(speeds, media.cell_speed):
+        if speeds is not media.cell_speed and _same_values(speeds, media.cell_speed):
             speeds = media.cell_speed  # one array of the same speeds, not two
         adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
                      cell_mach=media.cell_mach if media.has_flow else None, edge_limits=False)

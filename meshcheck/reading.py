@@ -121,6 +121,17 @@ def _typical_edge(points: np.ndarray, blocks: list[RawBlock]) -> float:
     return float(np.median(all_l)) if all_l.size else 0.0
 
 
+def _joined_regions(bs: list) -> np.ndarray:
+    """The region tags of blocks read separately, joined: one broadcast when every block
+    holds one tag as a broadcast and the tags are equal (no (m,) array)."""
+    if len(bs) == 1:
+        return bs[0].region
+    r0 = bs[0].region
+    if all(b.region.strides == (0,) and len(b.region) and b.region[0] == r0[0] for b in bs):
+        return np.broadcast_to(r0[:1], (sum(len(b.region) for b in bs),))
+    return np.concatenate([b.region for b in bs])
+
+
 def mesh_from_raw(raw: RawMesh, source: str = "", units: str | None = None,
                   fmax_hint: float | None = None) -> Mesh:
     """Cross-check a RawMesh, settle its unit and return the Mesh in metres.
@@ -186,9 +197,8 @@ def mesh_from_raw(raw: RawMesh, source: str = "", units: str | None = None,
     for b in keep:
         merged.setdefault(b.type, []).append(b)
     blocks = tuple(CellBlock(t, bs[0].cells if len(bs) == 1 else
-                             np.concatenate([b.cells for b in bs]),
-                             bs[0].region if len(bs) == 1 else
-                             np.concatenate([b.region for b in bs])) for t, bs in merged.items())
+                             np.concatenate([b.cells for b in bs]), _joined_regions(bs))
+                   for t, bs in merged.items())
     if units is not None:
         unit = units.strip().lower() if isinstance(units, str) else units
     elif raw.unit is not None:

@@ -120,3 +120,31 @@ def test_hexahedra_geometry_checks_beside_the_advice_equal_the_serial_audit(monk
     assert par.gradation.count == ser.gradation.count > 0
     assert np.array_equal(par.gradation.pairs, ser.gradation.pairs)
     assert par.sweep.dofs.tolist() == ser.sweep.dofs.tolist()
+
+
+def test_cell_speeds_and_their_comparison_without_a_pass():
+    # one speed: a read-only broadcast equal to the full array; region speeds: a full
+    # array; _same_values equals np.array_equal on broadcasts and arrays alike
+    mesh = tet_box((3, 3, 3))
+    s = AuditSettings(frequencies=(100.0,))
+    c = pipeline.cell_speeds(mesh, s)
+    assert c.strides == (0,) and not c.flags.writeable
+    assert np.array_equal(c, np.full(mesh.n_cells, s.default_speed))
+    tag = int(mesh.region_tags[0])
+    full = pipeline.cell_speeds(mesh, AuditSettings(frequencies=(100.0,),
+                                                    region_speeds={tag: 500.0}))
+    assert full.strides != (0,) and np.all(full[mesh.region == tag] == 500.0)
+    n = mesh.n_cells
+    one, other = (np.broadcast_to(np.float64(v), (n,)) for v in (343.0, 340.0))
+    nan = np.broadcast_to(np.float64(np.nan), (n,))
+    for a, b in [(c, c), (one, one.copy()), (one, other), (one, nan), (nan, nan), (c, full),
+                 (one[:0], other[:0]), (one, one[:-1])]:
+        assert pipeline._same_values(a, b) == np.array_equal(a, b)
+
+
+def test_uniform_equals_the_comparison_with_the_first_value():
+    from meshcheck.advice import _uniform
+
+    for x in [np.full(5, 2.0), np.broadcast_to(np.float64(2.0), (5,)), np.r_[2.0, 2.0, 3.0],
+              np.broadcast_to(np.float64(np.nan), (4,)), np.r_[np.nan, np.nan], np.r_[7.0]]:
+        assert _uniform(x) == bool(np.all(x == x[0])), x

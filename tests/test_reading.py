@@ -279,3 +279,23 @@ def test_cell_indices_are_checked_once(tmp_path):
     with pytest.raises(MeshReadError, match="refer to nodes that do not exist"):
         mesh_from_raw(unchecked, units="m")
     assert not dataclasses.replace(unchecked.blocks[0]).in_range
+
+
+def test_joined_regions_equal_their_concatenation():
+    # blocks of one type read separately (e.g. one per gmsh entity): one tag held as
+    # broadcasts stays one broadcast; otherwise the tags concatenated
+    from types import SimpleNamespace
+
+    from meshcheck.reading import _joined_regions
+
+    def blk(r):
+        return SimpleNamespace(region=r)
+
+    one = lambda t, m: np.broadcast_to(np.int64(t), (m,))  # noqa: E731
+    cases = [[one(3, 4), one(3, 5)], [one(3, 4), one(2, 5)], [one(3, 4), np.full(2, 3)],
+             [np.array([1, 2]), one(1, 3)], [one(3, 0), one(3, 2)], [one(7, 6)]]
+    for bs in cases:
+        got = _joined_regions([blk(r) for r in bs])
+        assert np.array_equal(got, np.concatenate(bs)), bs
+    assert _joined_regions([blk(one(3, 4)), blk(one(3, 5))]).strides == (0,)
+    assert _joined_regions([blk(one(3, 4)), blk(one(2, 5))]).strides != (0,)

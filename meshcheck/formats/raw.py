@@ -22,7 +22,8 @@ class RawBlock:
     type : meshio cell type name (``tetra``, ``hexahedron20``, ...).
     cells : (m, k) int32 or int64 0-based indices into ``RawMesh.points``, meshio/VTK node
         order.
-    region : (m,) int64 region tag of each cell (0 = none).
+    region : (m,) int64 region tag of each cell (0 = none); one tag for the block may be
+        a read-only broadcast.
     ids : (m,) int64 element numbers of the file (for messages), or None.
     in_range : the reader checked that every index is a row of ``RawMesh.points`` (the
         cross-checks then skip their pass over the cells).
