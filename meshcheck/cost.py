@@ -192,14 +192,36 @@ def _limit_bins(cell_limits: np.ndarray, f: np.ndarray, ncol: int,
     if limit_row is not None:  # cells per row (np.bincount would copy int32 rows to int64)
         _ka.count_labels(np.ascontiguousarray(limit_row), weight)
 
+    grid = _bin_grid(fs)
+
     def run(r):
         part = np.zeros_like(hist)
-        _ka.order_hist(lim, weight, fs, r[0], r[1], part, B, ncol)
+        _ka.order_hist(lim, weight, fs, r[0], r[1], part, B, ncol, *grid)
         return part
 
     for part in thread_map(run, chunks, parallel=par):
         hist += part
     return order, hist, B
+
+
+#: cells of :func:`_bin_grid` per frequency
+BIN_GRID = 4
+
+
+def _bin_grid(fs: np.ndarray) -> tuple[float, float, np.ndarray]:
+    """(g0, gs, gidx) of :func:`meshcheck.kernels.advice.order_hist` for the sorted
+    finite frequencies fs (Hz, n_f >= 1): :data:`BIN_GRID` x n_f equal cells over
+    [fs[0], fs[-1]], x in cell int((x - g0) * gs); gidx[g] the number of frequencies at
+    or below the start of the cell before g (a cell's margin against rounding), so that
+    at most a few frequencies lie between it and x's bin when they are about evenly
+    spread (any spread stays exact: the kernel steps up from it)."""
+    G = BIN_GRID * len(fs)
+    span = float(fs[-1] - fs[0])
+    if not span > 0.0:  # one frequency (or all equal): every x starts from 0
+        return float(fs[0]), 0.0, np.zeros(1, np.int64)
+    gs = (G - 1) / span
+    starts = fs[0] + (np.arange(G) - 1.0) / gs
+    return float(fs[0]), gs, np.searchsorted(fs, starts, side="right").astype(np.int64)
 
 
 def _dofs_from_bins(mesh: Mesh, topo: Topology, B: np.ndarray, order: np.ndarray,

@@ -229,6 +229,34 @@ def test_limit_bins_take_the_smallest_unsigned_type(n_f, dtype):
     assert np.array_equal(hist.sum(axis=1), [3, 3])
 
 
+@pytest.mark.parametrize("spread", ["even", "uneven", "clustered", "repeated", "one"])
+def test_limit_bins_count_frequencies_as_searchsorted(spread):
+    # the kernel's bins from its grid over the frequencies: for every limit, the number
+    # of frequencies at or below it (np.searchsorted, side "right"), whatever their
+    # spread; limits on frequencies, between, below the first, above the last, NaN, inf
+    from meshcheck.cost import _limit_bins
+
+    rng = np.random.default_rng(9)
+    f = {"even": np.arange(50.0, 2000.01, 9.798995), "uneven": np.sort(rng.uniform(10, 5e3, 300)),
+         "clustered": np.r_[np.linspace(100, 101, 50), np.linspace(4000, 9000, 7), 1e5],
+         "repeated": np.repeat([20.0, 31.5, 40.0, 63.0], [3, 1, 5, 2]),
+         "one": np.array([500.0])}[spread]
+    n = 20_000
+    lim = rng.uniform(0.5 * f[0], 1.2 * f[-1], (n, 6))
+    lim[::7, 0] = rng.choice(f, len(lim[::7]))  # exactly on a frequency
+    lim[::11, 1] = np.nextafter(rng.choice(f, len(lim[::11])), -np.inf)
+    lim[::13, 2] = np.nan
+    lim[::17, 3] = np.inf
+    lim[::19, 4] = -np.inf
+    order, hist, B = _limit_bins(lim, f, 6)
+    fs = f[order]
+    want = np.searchsorted(fs, lim, side="right")
+    want[np.isnan(lim)] = len(f)
+    assert np.array_equal(B[:, :6].astype(np.int64) - 1, np.where(np.isnan(lim), -1, want))
+    for p in range(6):
+        assert np.array_equal(hist[p], np.bincount(want[:, p], minlength=len(f) + 1)), p
+
+
 def _clusters_equal(a, b):
     assert len(a) == len(b)
     for x, y in zip(a, b):

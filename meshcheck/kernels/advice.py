@@ -469,23 +469,6 @@ def per_cell_max(ce, values, out, start):
 
 
 @njit
-def _bin(x, fs, lo):
-    """Number of the sorted finite frequencies fs that are <= x (NaN -> len(fs)); the
-    caller knows the answer is at least lo."""
-    n = fs.shape[0]
-    if not x < fs[n - 1]:
-        return n
-    hi = n - 1
-    while lo < hi:
-        mid = (lo + hi) >> 1
-        if fs[mid] > x:
-            hi = mid
-        else:
-            lo = mid + 1
-    return lo
-
-
-@njit
 def row_min(rows, index, lo, hi, out):
     """out[p] = minimum (np.minimum semantics: NaN propagates) of out[p] and
     rows[index[i], p] over lo <= i < hi."""
@@ -500,7 +483,7 @@ def row_min(rows, index, lo, hi, out):
 
 
 @njit
-def order_hist(lim, weight, fs, lo, hi, hist, B, ncol):
+def order_hist(lim, weight, fs, lo, hi, hist, B, ncol, g0, gs, gidx):
     """hist[p, b] += 1 for every cell lo <= i < hi whose limit at order p + 1 has b sweep
     frequencies at or below it: cumsum(hist[p])[k] = #cells with limit < fs[k];
     B[i, q] = b + 1 for the first ncol orders (0 for a NaN limit, see
@@ -509,18 +492,32 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol):
 
     lim : (n_cells, pmax) float64, Hz; fs : (n_f,) sorted finite Hz;
     hist : (pmax, n_f + 1) int64, accumulated; B : (n_cells, W) unsigned integers
-    holding n_f + 1 (uint8 up to 254 frequencies), W >= ncol.
+    holding n_f + 1 (uint8 up to 254 frequencies), W >= ncol.  The bins are counted
+    from a grid over the frequencies: x in cell g = int((x - g0) * gs) (clamped to
+    0..len(gidx) - 1) has at least gidx[g] frequencies at or below it
+    (``cost._bin_grid`` makes it).
     """
     pmax = lim.shape[1]
     weighted = weight.shape[0] > 0
+    n = fs.shape[0]
+    last = fs[n - 1]
+    top = gidx.shape[0] - 1
     for i in range(lo, hi):
         w = weight[i] if weighted else 1
-        b = 0
-        px = -np.inf
         for p in range(pmax):
             x = lim[i, p]
-            b = _bin(x, fs, b if x >= px else 0)
-            px = x
+            # b = number of frequencies <= x (NaN: n): from the grid's start, a few steps
+            # up (a binary search's unpredictable branches cost about twice as much; in
+            # the loop itself, not a helper: numba would reference-count fs and gidx at
+            # every call of a helper that reads them on one branch only)
+            if not x < last:
+                b = n
+            else:
+                u = (x - g0) * gs
+                g = min(np.int64(u), top) if u > 0.0 else 0
+                b = gidx[g]
+                while fs[b] <= x:
+                    b += 1
             hist[p, b] += w
             if p < ncol:
                 B[i, p] = b + 1 if x == x else 0
