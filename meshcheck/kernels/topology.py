@@ -513,9 +513,10 @@ def count_distinct_range(ptr, packed, shift, n_values, b0, b1):
     for b in range(b0, b1):
         for i in range(ptr[b], ptr[b + 1]):
             h = packed[i] >> shift
-            if seen[h] != b:
-                seen[h] = b
-                total += 1
+            # counted and marked without a branch on whether h was seen (unpredictable:
+            # 4.77M tets 0.080 -> 0.048 s)
+            total += seen[h] != b
+            seen[h] = b
     return total
 
 
@@ -543,10 +544,11 @@ def edge_emit_rows_range(ptr, packed, shift, n_values, nodes, inverse, bounds, w
         d = 0
         for i in range(s, s + k):
             h = packed[i] >> shift
-            if slot[h] < 0:
-                slot[h] = 0
-                vals[d] = h
-                d += 1
+            # the distinct values gathered without a branch on whether h was seen
+            # (unpredictable: 4.77M tets 0.201 -> 0.172 s); d <= i - s, so vals[d] fits
+            vals[d] = h
+            d += slot[h] < 0
+            slot[h] = 0
         _sort_head(vals, d)
         for j in range(d):
             slot[vals[j]] = e0 + j
