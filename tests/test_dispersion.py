@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import logging
 import math
-import re
 from fractions import Fraction
 from functools import lru_cache
 from pathlib import Path
