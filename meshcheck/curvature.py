@@ -212,7 +212,13 @@ def _surface_geometry(points: np.ndarray, triangles: np.ndarray, compiled: bool 
     del key
     adj = (order[np.column_stack([start[two], start[two] + 1])] // 3).astype(np.int64)
     del order, start, two
-    adj = np.sort(adj[adj[:, 0] != adj[:, 1]], axis=1)
+    pairs = adj[adj[:, 0] != adj[:, 1]]
+    # each pair in order (np.sort along axis 1) by elementwise minimum and maximum: a
+    # sort of rows of two took 6-10 ms for 284k pairs, these 0.4 ms
+    adj = np.empty_like(pairs)
+    np.minimum(pairs[:, 0], pairs[:, 1], out=adj[:, 0])
+    np.maximum(pairs[:, 0], pairs[:, 1], out=adj[:, 1])
+    del pairs
     # the angles a chunk of pairs at a time (no (n_a, 2, 3) array of their normals)
     ang = np.empty(len(adj))
     if compiled:
