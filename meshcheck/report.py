@@ -14,7 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from . import __version__, kernels
 from .advice import region_runs
 from .pipeline import AuditResult
 from .quality import METRIC_BAD, summarise
@@ -481,6 +481,9 @@ def write_vtu(res: "AuditResult | EarlyVTU", path: str | Path,
             "coarsen_ratio": parts(lambda lo, hi: adv().target_size[lo:hi] /
                                    adv().cell_size[lo:hi], f32)}
     column: dict = {}  # the limit column being written (one at a time)
+    compiled = kernels.use_compiled(n)
+    if compiled:
+        from .kernels import advice as _ka
 
     def limits(p, lo, hi):  # Advice.limit_at(p, float32)[lo:hi]
         a = adv()
@@ -489,7 +492,12 @@ def write_vtu(res: "AuditResult | EarlyVTU", path: str | Path,
         if p not in column:  # cast first (the same values): half the bytes gathered
             column.clear()
             column[p] = np.ascontiguousarray(a.limit_rows[:, p - 1], dtype=f32)
-        return np.take(column[p], a.limit_row[lo:hi])  # 2x fancy indexing's speed
+        rows = a.limit_row[lo:hi]
+        if compiled:  # a compiled gather: no intp copy of the int32 rows (4.77M cells:
+            out = np.empty(hi - lo, f32)  # 7-11 -> 3.3 ms per order)
+            _ka.lookup(column[p], np.ascontiguousarray(rows), out)
+            return out
+        return np.take(column[p], rows)  # 2x fancy indexing's speed
 
     for p in range(1, res.settings.advice.max_order + 1):
         data[f"limit_hz_p{p}"] = parts(lambda lo, hi, p=p: limits(p, lo, hi), f32)

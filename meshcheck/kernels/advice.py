@@ -373,8 +373,8 @@ def gov_sizes(gov, owner, lo, hi, limit_row, h, code, a_col, size, factor, finis
 
 @njit
 def lookup(table, index, out):
-    """out[i] = table[index[i]] (a small table, e.g. the size factors by code): np.take
-    would cast the index to intp first."""
+    """out[i] = table[index[i]] (e.g. the size factors by code, or a column of the limit
+    rows by the cells' rows): np.take would cast the index to intp first."""
     for i in range(index.shape[0]):
         out[i] = table[index[i]]
 
