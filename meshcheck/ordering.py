@@ -256,7 +256,9 @@ def locality(mesh: Mesh) -> tuple[float, float]:
     m = len(b)
     if m < 2:
         return 0.0, 0.0
-    rows = np.unique(np.linspace(0, m - 2, min(LOCALITY_SAMPLE, m - 1)).astype(np.int64))
+    rows = np.linspace(0, m - 2, min(LOCALITY_SAMPLE, m - 1)).astype(np.int64)
+    rows = rows[np.r_[True, rows[1:] != rows[:-1]]]  # (ascending: np.unique's, whose
+    # first call in a process takes 7 ms, on the audit's serial path)
     c = b.cells[:, :b.info.n_corners]
     here, after = c[rows].astype(np.int64), c[rows + 1].astype(np.int64)
     span = np.median(here.max(axis=1) - here.min(axis=1))

@@ -492,7 +492,8 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol, g0, gs, gidx):
 
     lim : (n_cells, pmax) float64, Hz; fs : (n_f,) sorted finite Hz;
     hist : (pmax, n_f + 1) int64, accumulated; B : (n_cells, W) unsigned integers
-    holding n_f + 1 (uint8 up to 254 frequencies), W >= ncol.  The bins are counted
+    holding n_f + 1 (uint8 up to 254 frequencies), W >= ncol, its columns from min(ncol, pmax) on
+    set to n_f + 1 here (rows lo..hi - 1).  The bins are counted
     from a grid over the frequencies: x in cell g = int((x - g0) * gs) (clamped to
     0..len(gidx) - 1) has at least gidx[g] frequencies at or below it
     (``cost._bin_grid`` makes it).
@@ -502,6 +503,7 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol, g0, gs, gidx):
     n = fs.shape[0]
     last = fs[n - 1]
     top = gidx.shape[0] - 1
+    pad = n + 1  # B's padding columns (the caller need not fill B first)
     for i in range(lo, hi):
         w = weight[i] if weighted else 1
         for p in range(pmax):
@@ -521,6 +523,8 @@ def order_hist(lim, weight, fs, lo, hi, hist, B, ncol, g0, gs, gidx):
             hist[p, b] += w
             if p < ncol:
                 B[i, p] = b + 1 if x == x else 0
+        for q in range(min(ncol, pmax), B.shape[1]):
+            B[i, q] = pad
 
 
 @njit
