@@ -148,3 +148,12 @@ def test_uniform_equals_the_comparison_with_the_first_value():
     for x in [np.full(5, 2.0), np.broadcast_to(np.float64(2.0), (5,)), np.r_[2.0, 2.0, 3.0],
               np.broadcast_to(np.float64(np.nan), (4,)), np.r_[np.nan, np.nan], np.r_[7.0]]:
         assert _uniform(x) == bool(np.all(x == x[0])), x
+
+
+@pytest.mark.parametrize("given", [(500.0, 100.0, 100.0, 250.0), (80.0,), [[40.0, 40.0], [20.0, 1e4]],
+                                   tuple(np.random.default_rng(3).integers(1, 9, 50) * 12.5)])
+def test_settings_keep_the_distinct_frequencies_sorted(given):
+    # the sweep's frequencies as np.unique gives them (sorted, repeats dropped), floats
+    got = AuditSettings(frequencies=given).frequencies
+    assert got == tuple(np.unique(np.asarray(given, float)).tolist())
+    assert all(type(f) is float for f in got)
