@@ -96,14 +96,14 @@ def node_min(mesh: Mesh, topo: Topology, cell_values: np.ndarray) -> np.ndarray:
     return _node_mins(mesh, [cell_values])[0]
 
 
-#: cells whose fields :func:`_node_mins` stacks at a time (compiled path)
+#: cells whose fields :func:`_node_mins` makes at a time (compiled path)
 _NODE_MIN_CHUNK = 1 << 16
 
 
 def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
-    """:func:`node_min` of several (n_cells,) fields (compiled: one pass over the cells);
-    a field may also be a function (lo, hi) -> its values of cells lo..hi-1, made a
-    chunk at a time on the compiled path."""
+    """:func:`node_min` of several (n_cells,) fields (compiled: one pass over the cells
+    per two fields); a field may also be a function (lo, hi) -> its values of cells
+    lo..hi-1, made a chunk at a time on the compiled path."""
     n = mesh.n_cells
     compiled = kernels.use_compiled(n)
 
@@ -114,14 +114,19 @@ def _node_mins(mesh: Mesh, fields: list) -> list[np.ndarray]:
 
     vs = [field(v) for v in fields]
     outs = np.full((len(vs), mesh.n_points), np.inf)
-    if compiled:
+    if compiled and vs:
         from .kernels import sizefield as _ks
         for b, off in zip(mesh.blocks, mesh.block_offsets[:-1]):
-            for s in range(0, len(b), _NODE_MIN_CHUNK):  # the fields stacked a chunk at a time
+            for s in range(0, len(b), _NODE_MIN_CHUNK):
                 e = min(s + _NODE_MIN_CHUNK, len(b))
-                v2 = (np.stack([v(off + s, off + e) if callable(v) else v[off + s:off + e]
-                                for v in vs]) if vs else np.zeros((0, e - s)))
-                _ks.node_min_block(outs, b.cells[s:e], b.info.n_corners, v2)
+                # contiguous float64 (one kernel signature; float32 fields and broadcasts
+                # made so a chunk at a time, exactly)
+                vals = [np.ascontiguousarray(v(off + s, off + e) if callable(v) else
+                                             v[off + s:off + e], dtype=np.float64) for v in vs]
+                for i in range(0, len(vals), 2):  # in pairs (an odd last one twice)
+                    j = min(i + 1, len(vals) - 1)
+                    _ks.node_min_pair(outs[i], outs[j], b.cells[s:e], b.info.n_corners,
+                                      vals[i], vals[j])
     else:
         for out, v in zip(outs, vs):
             for (b, c), off in zip(_corners(mesh), mesh.block_offsets[:-1]):

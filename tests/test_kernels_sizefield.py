@@ -226,7 +226,7 @@ def test_size_field_matches(monkeypatch, name):
 def test_the_kernels_are_taken(monkeypatch):
     # the comparisons above mean something only if "numba" runs the kernels
     calls = []
-    for name in ("node_min_block", "gradation_distances", "corner_nanmean"):
+    for name in ("node_min_pair", "gradation_distances", "corner_nanmean"):
         fn = getattr(KS, name)
         monkeypatch.setattr(KS, name, lambda *a, _f=fn, _n=name: calls.append(_n) or _f(*a))
     mesh = tet_box((3, 3, 3))
@@ -235,7 +235,7 @@ def test_the_kernels_are_taken(monkeypatch):
     _run(monkeypatch, "numpy", lambda: size_field(mesh, topo, adv).cells_estimate)
     assert calls == []
     _run(monkeypatch, "numba", lambda: size_field(mesh, topo, adv).cells_estimate)
-    assert {"node_min_block", "gradation_distances", "corner_nanmean"} <= set(calls)
+    assert {"node_min_pair", "gradation_distances", "corner_nanmean"} <= set(calls)
 
 
 def test_mid_nodes_read_the_values_before_any_is_set(monkeypatch):

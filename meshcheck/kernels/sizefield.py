@@ -1,7 +1,7 @@
 """Compiled kernels of :mod:`meshcheck.sizefield` (same results as its numpy code).
 
-* :func:`node_min_block`: smallest cell value per corner node (``np.minimum.at``),
-  several fields in one pass;
+* :func:`node_min_pair`: smallest cell value per corner node (``np.minimum.at``),
+  two fields in one pass;
 * :func:`mid_mean_block`: mid-nodes of quadratic cells the mean of their edge's ends
   (the numpy code's fancy-indexed gathers and assignment, without their (cells x
   edges) index arrays);
@@ -22,25 +22,30 @@ import numpy as np
 
 from . import njit
 
-__all__ = ["node_min_block", "mid_mean_block", "mids_are_corners", "gradation_distances",
+__all__ = ["node_min_pair", "mid_mean_block", "mids_are_corners", "gradation_distances",
            "corner_nanmean", "pos_lines"]
 
 
 @njit
-def node_min_block(out, cells, n_corners, values):
-    """out[r, cells[i, k]] = min(out[r, ...], values[r, i]) for k < n_corners and every
-    row r, in place (one pass over the cells for several fields); a nan value makes the
-    node nan (as ``np.minimum``).
+def node_min_pair(oa, ob, cells, n_corners, va, vb):
+    """oa[j] = min(oa[j], va[i]) and ob[j] = min(ob[j], vb[i]) for every corner
+    j = cells[i, k], k < n_corners, in place: two fields in one pass over the cells (give
+    the same output and values twice for one field); a nan value makes the node nan (as
+    ``np.minimum``).
 
-    out : (r, n_points) float64; cells : (m, >= n_corners) int; values : (r, m) float64."""
-    nr = values.shape[0]
+    oa, ob : (n_points,) float64; cells : (m, >= n_corners) int; va, vb : (m,) float64.
+    Two named fields instead of a loop over the rows of a stacked (r, m) array: 4.77M
+    tets 0.056 -> 0.022 s."""
     for i in range(cells.shape[0]):
+        x = va[i]
+        y = vb[i]
         for k in range(n_corners):
             j = cells[i, k]
-            for r in range(nr):  # branch-free (a select): the outcomes are unpredictable
-                x = values[r, i]
-                o = out[r, j]
-                out[r, j] = x if (x < o or x != x) else o
+            # branch-free (selects): the outcomes are unpredictable
+            o = oa[j]
+            oa[j] = x if (x < o or x != x) else o
+            o = ob[j]
+            ob[j] = y if (y < o or y != y) else o
 
 
 @njit
