@@ -240,7 +240,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
         pass  # read_mesh reports the file
     from .advice import AdviceSettings
     from .job import load_job
-    from .pipeline import OVERLAP_CELLS, AuditSettings, audit
+    from .pipeline import OVERLAP_CELLS, TRIM_CELLS, AuditSettings, audit
+    from .threads import release_free_heap
     from .report import (EARLY_VTU_CELLS, EarlyVTU, to_dict, write_json, write_markdown,
                          write_vtu)
     from .units import UNIT_FACTORS
@@ -291,6 +292,11 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
             raise
         if vtu is not None:
             vtu.finish(res)
+        if mesh.n_cells >= TRIM_CELLS and (cost or kinds - {"json", "vtu"}):
+            # the scratch freed at the heap's top (held since main) given back before the
+            # heavier reports and the quote; the JSON and VTU alone reuse it instead
+            # (4.77M tets: 11k fewer page faults, peak unchanged)
+            release_free_heap()
         if t_renumber is not None:
             res.timings["renumber"] = t_renumber
         step("reports")

@@ -305,8 +305,6 @@ def audit(mesh: Mesh, settings: AuditSettings,
     done("geometry")
     t["geometry"] += sum(spent.values())  # (large meshes: beside the advice's last jobs)
     t["analysis"] = time.perf_counter() - t0  # wall time; stages may overlap
-    if mesh.n_cells >= TRIM_CELLS:  # the scratch freed at the heap's top, if held
-        release_free_heap()  # (threads.hold_heap_top), before the reports
     return AuditResult(mesh, settings, topo, sj, findings, q, flags, adv, sw, ref, coa, t,
                        media=media, quality_summary=summary, **extra)
 
