@@ -27,7 +27,7 @@ from .ordering import renumbered_for_audit
 from .quality import (MIN_SJ_TYPES, CellFlags, CellQuality, QualityLimits,
                       checked_quality)
 from .reading import read_mesh
-from .threads import MAX_WORKERS, release_free_heap, thread_map
+from .threads import MAX_WORKERS, thread_map
 from .topology import Topology, build_topology
 from .validity import (BLOCKING, NOTE, Finding, ValiditySettings, check_validity,
                        min_scaled_jacobian)
@@ -187,11 +187,14 @@ OVERLAP_CELLS = 100_000
 #: fragmented by the two threads' allocations), above the 300 MiB aimed at
 EARLY_GEOMETRY_CELLS = 2_000_000
 
-#: meshes with at least this many cells give the heap's free pages back before the advice
-#: stage's side-by-side jobs (:func:`meshcheck.threads.release_free_heap`), the peak of a
-#: large audit: 4.77M tetrahedra (5 alternating runs each, 2026-12-04) peak 960-982 ->
-#: 957-973 MiB, wall median 3.58 -> 3.44 s. At 1M cells the peak is elsewhere and the
-#: pages given back cost new faults later: 1M tetra10 wall median 2.07 -> 2.21 s
+#: meshes from this many cells keep the heap's freed top through the audit (the CLI holds
+#: it, :func:`meshcheck.threads.hold_heap_top`, and gives it back before heavier reports).
+#: The audit gave the heap's free pages back before the advice stage's side-by-side jobs
+#: from 2026-12-04 (then 4.77M tets: peak 960-982 -> 957-973 MiB, wall median 3.58 ->
+#: 3.44 s) to 2026-12-05, when keeping them measured better (8 alternating runs: page
+#: faults 320k -> 300k, system CPU 0.75 -> 0.67 s, wall median 2.385 -> 2.345 s, peak
+#: 907 -> 908 MiB): the sweep and cluster searches reuse the pages instead of faulting
+#: them anew
 TRIM_CELLS = 2_000_000
 
 
@@ -284,8 +287,6 @@ def audit(mesh: Mesh, settings: AuditSettings,
             speeds = media.cell_speed  # one array of the same speeds, not two
         adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
                      cell_mach=media.cell_mach if media.has_flow else None, edge_limits=False)
-        if mesh.n_cells >= TRIM_CELLS:  # the earlier stages' freed scratch, before the peak
-            release_free_heap()
         # the sweep and the two cluster searches are independent once the advice is known:
         # on two threads (large meshes), beside the geometry checks' end or with them (the
         # size jumps after the sweep: their scratch is then never held beside its)

@@ -147,8 +147,8 @@ def release_free_heap() -> bool:
 
     Blocks below :data:`MMAP_THRESHOLD` freed by earlier stages stay resident in the
     heap's holes (115 MiB of them after the advice of a 4.77M-tet audit); the pages
-    given back are faulted in afresh when used again (see
-    :data:`meshcheck.pipeline.TRIM_CELLS` for when the audit calls it)."""
+    given back are faulted in afresh when used again (the CLI calls it after a large
+    audit when heavier reports follow, see :data:`meshcheck.pipeline.TRIM_CELLS`)."""
     libc = _libc()
     try:
         trim = libc.malloc_trim
