@@ -282,7 +282,8 @@ def _run(mesh_path: Path, units, fmin, fmax, step, bands, freqs, target, order, 
 
         try:
             res = audit(mesh, settings, progress=step,
-                        cells_checked=vtu.start if vtu is not None else None)
+                        cells_checked=vtu.start if vtu is not None else None,
+                        advised=vtu.advised if vtu is not None else None)
         except BaseException:
             if vtu is not None:
                 vtu.abort()

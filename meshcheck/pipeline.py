@@ -200,13 +200,17 @@ TRIM_CELLS = 2_000_000
 
 def audit(mesh: Mesh, settings: AuditSettings,
           progress: Callable[[str], None] | None = None,
-          cells_checked: Callable[[CellQuality], None] | None = None) -> AuditResult:
+          cells_checked: Callable[[CellQuality], None] | None = None,
+          advised: Callable[[Advice, np.ndarray], None] | None = None) -> AuditResult:
     """Audit a mesh already in memory (SI units); the result's arrays index ``mesh`` (for
     speed on large meshes, audit :func:`meshcheck.ordering.renumbered` ``(mesh)``).
 
     cells_checked : called with the cells' quality metrics (the result's ``quality``) as
         soon as they are known, on the thread that computed them, while the audit goes
-        on (e.g. :class:`meshcheck.report.EarlyVTU` starts writing its file)."""
+        on (e.g. :class:`meshcheck.report.EarlyVTU` starts writing its file).
+    advised : called with the advice and the cells' minimum scaled Jacobians (float32) as
+        soon as both are known, before the sweep and the cluster searches (e.g. the early
+        VTU writes their arrays while those run)."""
     say = progress or (lambda stage: None)
     t: dict[str, float] = {}
 
@@ -287,6 +291,8 @@ def audit(mesh: Mesh, settings: AuditSettings,
             speeds = media.cell_speed  # one array of the same speeds, not two
         adv = advise(mesh, topo, speeds, settings.fmax, settings.advice,
                      cell_mach=media.cell_mach if media.has_flow else None, edge_limits=False)
+        if advised is not None:
+            advised(adv, sj)
         # the sweep and the two cluster searches are independent once the advice is known:
         # on two threads (large meshes), beside the geometry checks' end or with them (the
         # size jumps after the sweep: their scratch is then never held beside its)

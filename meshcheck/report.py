@@ -9,7 +9,7 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import threading
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import FIRST_COMPLETED, Future, ThreadPoolExecutor, wait
 from pathlib import Path
 
 import numpy as np
@@ -452,9 +452,13 @@ def write_vtu(res: "AuditResult | EarlyVTU", path: str | Path,
 
     ``res`` may be an :class:`EarlyVTU` of an audit still running: the arrays known
     before the advice (the cells, points, ids and quality metrics, first in the file) are
-    then written at once, the others when the result is handed over."""
+    then written at once, the advice's when it is handed over (during the sweep), the
+    size field's point data when the result is."""
     m = res.mesh
-    done = res.final if isinstance(res, EarlyVTU) else (lambda: res)  # (waits)
+    early = isinstance(res, EarlyVTU)
+    done = res.final if early else (lambda: res)  # (waits)
+    # the advice and the scaled Jacobians: an early VTU gets them before the audit ends
+    known = res.advised_result if early else (lambda: (res.advice, res.min_scaled_jacobian))
     scale = UNIT_FACTORS.get(m.unit, 1.0)
     cells = [(b.type, b.cells) for b in m.blocks]
 
@@ -467,12 +471,11 @@ def write_vtu(res: "AuditResult | EarlyVTU", path: str | Path,
                               dtype, n)
 
     def adv():
-        return done().advice
+        return known()[0]
 
-    # the arrays are written in the reverse of this order: those of the finished audit
-    # first here, those known before the advice last
-    data = {"min_scaled_jacobian": lazy(lambda: done().min_scaled_jacobian.astype(
-                f32, copy=False), f32),
+    # the arrays are written in the reverse of this order: those of the advice first here,
+    # those known before the advice last
+    data = {"min_scaled_jacobian": lazy(lambda: known()[1].astype(f32, copy=False), f32),
             "order_needed": lazy(lambda: adv().cell_order.astype(i8, copy=False), i8),
             "refine": parts(lambda lo, hi: adv().refine[lo:hi], i8),
             "coarsen": parts(lambda lo, hi: adv().coarsen[lo:hi], i8),
@@ -541,8 +544,10 @@ class EarlyVTU:
     Give :meth:`start` to :func:`meshcheck.pipeline.audit` as ``cells_checked``: with
     the cells' quality metrics known it writes, on a thread of its own, the arrays that
     need nothing more (cells, points, ids, metrics: about half the file at 4.77M
-    tetrahedra) while the audit goes on, then waits for :meth:`finish` to hand over the
-    result for the rest. The file is written under a hidden temporary name beside
+    tetrahedra) while the audit goes on; give :meth:`advised` as ``advised``: the
+    advice's arrays (about 40 %) are written while the sweep and the cluster searches
+    run; then it waits for :meth:`finish` to hand over the result for the rest (the size
+    field's point data). The file is written under a hidden temporary name beside
     ``path`` and renamed to ``path`` when complete; :meth:`abort` (the audit failed)
     stops the writer and removes the temporary file, so that a failed audit leaves an
     earlier report at ``path`` as it was.
@@ -552,6 +557,7 @@ class EarlyVTU:
         self.mesh, self.settings, self.path = mesh, settings, Path(path)
         self.quality = None
         self._result: Future = Future()
+        self._advice: Future = Future()
         self._written: Future = Future()
         self._temp = self.path.with_name(f".{self.path.name}.part")
         self._thread: threading.Thread | None = None
@@ -576,6 +582,20 @@ class EarlyVTU:
     def final(self) -> AuditResult:
         """The finished audit's result (waits for :meth:`finish`)."""
         return self._result.result()
+
+    def advised(self, advice, min_sj: np.ndarray) -> None:
+        """Hand over the advice and the cells' minimum scaled Jacobians (returns at
+        once)."""
+        self._advice.set_result((advice, min_sj))
+
+    def advised_result(self) -> tuple:
+        """(advice, minimum scaled Jacobians), from :meth:`advised` or else from the
+        finished result (waits)."""
+        done = wait([self._advice, self._result], return_when=FIRST_COMPLETED).done
+        if self._advice in done:
+            return self._advice.result()
+        res = self._result.result()
+        return res.advice, res.min_scaled_jacobian
 
     def finish(self, res: AuditResult) -> None:
         """Hand over the finished result (returns at once; :meth:`result` waits)."""

@@ -1,6 +1,7 @@
 """The JSON and Markdown reports state whether the 3D correction of the 1D model is applied;
 the report's statistics equal their numpy references."""
 import json
+import threading
 import time
 from types import SimpleNamespace
 
@@ -235,13 +236,15 @@ def test_vtu_cell_arrays_are_the_audit_arrays(tmp_path, monkeypatch, kernel_mode
 
 
 # ------------------------------------------------------------------ the VTU written early
-def _early_audit(mesh, settings, path):
-    """(result, path written) of an audit whose VTU an EarlyVTU writes beside it."""
+def _early_audit(mesh, settings, path, advised=True):
+    """(result, path written) of an audit whose VTU an EarlyVTU writes beside it (given
+    the advice before the sweep when ``advised``, as the CLI does)."""
     from meshcheck.report import EarlyVTU
 
     early = EarlyVTU(mesh, settings, path)
     try:
-        res = audit(mesh, settings, cells_checked=early.start)
+        res = audit(mesh, settings, cells_checked=early.start,
+                    advised=early.advised if advised else None)
     except BaseException:
         early.abort()
         raise
@@ -249,9 +252,10 @@ def _early_audit(mesh, settings, path):
     return res, early.result()
 
 
+@pytest.mark.parametrize("advised", [True, False], ids=["advised", "at the end"])
 @pytest.mark.parametrize("stored", [False, True], ids=["compressed", "stored"])
 def test_vtu_written_during_the_audit_is_the_vtu_of_the_result(tmp_path, monkeypatch,
-                                                               kernel_mode, stored):
+                                                               kernel_mode, stored, advised):
     # the cells, points and metrics written while the topology and advice are worked out,
     # the rest once the audit is over: the same bytes as the finished result's VTU
     from meshcheck import pipeline, report, vtkxml
@@ -263,7 +267,7 @@ def test_vtu_written_during_the_audit_is_the_vtu_of_the_result(tmp_path, monkeyp
         monkeypatch.setattr(report, "VTU_COMPRESS_CELLS", 0)
     mesh = tet_box((6, 5, 4))
     settings = AuditSettings((300.0, 900.0))
-    res, got = _early_audit(mesh, settings, tmp_path / "early.vtu")
+    res, got = _early_audit(mesh, settings, tmp_path / "early.vtu", advised)
     assert got == tmp_path / "early.vtu"
     want = write_vtu(res, tmp_path / "after.vtu")
     assert got.read_bytes() == want.read_bytes()
@@ -294,6 +298,47 @@ def test_vtu_of_a_failed_audit_leaves_no_file_and_an_earlier_one_as_it_was(tmp_p
         _early_audit(mesh, settings, path)
     assert path.read_bytes() == b"an earlier report"
     assert [p.name for p in tmp_path.iterdir()] == ["box.audit.vtu"]
+
+
+def test_vtu_writes_the_advice_arrays_while_the_sweep_runs(tmp_path, monkeypatch):
+    # handed the advice before the sweep, the writer gets through every cell array and
+    # waits for the finished result (the size field's point data) while the sweep has
+    # not even started: here the sweep waits for that moment (it would wait in vain if
+    # the advice's arrays needed the finished result)
+    from meshcheck import pipeline, report
+    from meshcheck.report import EarlyVTU, write_vtu
+
+    monkeypatch.setattr(report, "VTU_COMPRESS_CELLS", 0)
+    waiting, final = threading.Event(), EarlyVTU.final
+
+    def final_(self):
+        waiting.set()
+        return final(self)
+
+    def sweep_(*args, _sweep=pipeline.sweep):
+        assert waiting.wait(20), "the writer did not reach the point data before the sweep"
+        return _sweep(*args)
+
+    monkeypatch.setattr(EarlyVTU, "final", final_)
+    monkeypatch.setattr(pipeline, "sweep", sweep_)
+    mesh, settings = tet_box((4, 3, 3)), AuditSettings((300.0, 600.0))
+    res, got = _early_audit(mesh, settings, tmp_path / "early.vtu")
+    assert got.read_bytes() == write_vtu(res, tmp_path / "after.vtu").read_bytes()
+
+
+def test_advised_result_falls_back_to_the_result_or_its_failure(tmp_path):
+    from meshcheck.report import EarlyVTU, _Aborted
+
+    mesh, settings = tet_box((2, 2, 2)), AuditSettings((300.0,))
+    res = audit(mesh, settings)
+    early = EarlyVTU(mesh, settings, tmp_path / "x.vtu")
+    early.finish(res)  # never advised: the result's own
+    got = early.advised_result()
+    assert got[0] is res.advice and got[1] is res.min_scaled_jacobian
+    early = EarlyVTU(mesh, settings, tmp_path / "y.vtu")
+    early.abort()  # the audit failed before the advice: the writer's wait ends in an error
+    with pytest.raises(_Aborted):
+        early.advised_result()
 
 
 def test_vtu_writer_error_is_raised_by_its_result(tmp_path):
