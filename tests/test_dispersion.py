@@ -467,6 +467,31 @@ def test_max_kh_is_interp(p):
     assert np.all(U.max_kh(p, x) <= ref * (1 + 1e-13))
 
 
+def test_segments_jumps_as_a_median_of_seven_gives_them():
+    # the jump test takes the median of 7 drops as the 4th smallest (no np.median):
+    # the same segments as np.median's, on the tables' rows and on rows with NaN
+    def reference(row):
+        drop = np.append(row[:-1] - row[1:], 0.0)
+        window = np.lib.stride_tricks.sliding_window_view(np.pad(drop, 3, mode="edge"), 7)
+        jump = drop > 2.0 * np.median(window, axis=1) + 1e-12 * row
+        base, step = row.copy(), -drop
+        base[jump] = row[np.flatnonzero(jump) + 1]
+        step[jump] = 0.0
+        return base, step
+
+    U = d.usable_kh(1e-2, 12)
+    rng = np.random.default_rng(5)
+    rows = list(U.t_max) + [np.sort(rng.uniform(0, 3, 40))[::-1].copy() for _ in range(5)]
+    holed = rows[-1].copy()
+    holed[[4, 17]] = np.nan
+    rows.append(holed)
+    for row in rows:
+        got, want = d._segments(row), reference(row)
+        for g, w in zip(got, want):
+            assert np.array_equal(g, w, equal_nan=True)
+    assert any((reference(r)[1] == 0).any() for r in U.t_max)  # jumps are exercised
+
+
 def _first_crossing(p: int, tau: float, r: float) -> float:
     """The largest kh whose predicted error stays <= tau below it, found directly: a dense
     scan of kh (1e-3 relative steps, plus points across every stop band) and brentq."""
