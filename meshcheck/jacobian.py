@@ -37,6 +37,7 @@ the interior.
 """
 from __future__ import annotations
 
+import math
 import weakref
 from functools import lru_cache
 
@@ -267,9 +268,26 @@ def shape_gradients(cell_type: str, ref_points: np.ndarray) -> np.ndarray:
 
 @lru_cache(maxsize=None)
 def _gauss_01(n: int, alpha: float = 0.0):
-    """Gauss-Jacobi rule on [0, 1] for the weight (1 - x)^alpha, n points."""
-    from scipy.special import roots_jacobi
-    x, w = roots_jacobi(n, alpha, 0.0)
+    """Gauss-Jacobi rule on [0, 1] for the weight (1 - x)^alpha, n points.
+
+    The Golub-Welsch algorithm (Golub & Welsch 1969, "Calculation of Gauss quadrature
+    rules", Math. Comp. 23: nodes the eigenvalues of the Jacobi matrix of the monic
+    recurrence, weights mu_0 times the squared first components of its eigenvectors)
+    for the Jacobi weight (1 - x)^alpha (1 + x)^beta on [-1, 1], beta = 0, in numpy:
+    scipy.special's import (0.12 s, holding the GIL) stalled the audit of quadratic
+    cells on the quality metrics' thread."""
+    a, b = float(alpha), 0.0
+    k = np.arange(n, dtype=float)
+    s = 2.0 * k + a + b
+    diag = np.empty(n)
+    diag[0] = (b - a) / (a + b + 2.0)
+    diag[1:] = (b * b - a * a) / (s[1:] * (s[1:] + 2.0))
+    k1, s1 = k[1:], s[1:]
+    off = np.sqrt(4.0 * k1 * (k1 + a) * (k1 + b) * (k1 + a + b)
+                  / (s1 * s1 * (s1 + 1.0) * (s1 - 1.0)))
+    x, v = np.linalg.eigh(np.diag(diag) + np.diag(off, 1) + np.diag(off, -1))
+    mu0 = 2.0 ** (a + b + 1.0) * math.gamma(a + 1.0) * math.gamma(b + 1.0) / math.gamma(a + b + 2.0)
+    w = mu0 * v[0] ** 2
     return 0.5 * (x + 1.0), w * 0.5 ** (alpha + 1.0)
 
 

@@ -163,6 +163,25 @@ def test_quadrature_weights_sum_to_parametric_measure(cell_type):
     assert np.all(w > 0)
 
 
+@pytest.mark.parametrize("alpha", [0.0, 1.0, 2.0])
+@pytest.mark.parametrize("n", [1, 2, 3, 5])
+def test_gauss_jacobi_rule_is_scipys_and_exact(n, alpha):
+    # the 1D rules of the collapsed cells (Golub-Welsch in numpy) against scipy's
+    # roots_jacobi, and exact for the weight (1 - x)^alpha times x^m, m <= 2n - 1:
+    # the integral over [0, 1] is the Beta function B(m + 1, alpha + 1)
+    from math import gamma
+
+    from scipy.special import roots_jacobi
+
+    x, w = jb._gauss_01(n, alpha)
+    xr, wr = roots_jacobi(n, alpha, 0.0)
+    np.testing.assert_allclose(x, 0.5 * (xr + 1.0), rtol=0, atol=1e-15)
+    np.testing.assert_allclose(w, wr * 0.5 ** (alpha + 1.0), rtol=1e-14)
+    for m in range(2 * n):
+        exact = gamma(m + 1) * gamma(alpha + 1) / gamma(m + alpha + 2)
+        assert abs((w * x ** m).sum() - exact) <= 1e-14 * exact
+
+
 @pytest.mark.parametrize("cell_type", LINEAR)
 def test_quadrature_volume_of_affine_cell(cell_type):
     """Closed form: an affine image A x + b of the reference cell has measure det(A) |K|."""
