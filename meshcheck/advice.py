@@ -22,6 +22,7 @@ from .cost import condensed_dofs, lagrange_dofs, variable_order_dofs
 from .dispersion import _segments, usable_kh
 from .errors import SettingsError
 from .mesh import Mesh
+from .arrays import sorted_distinct
 from .threads import pieces, ranges as _chunks, thread_map
 from .topology import Topology
 
@@ -698,9 +699,7 @@ def _advise_compiled(mesh, topo, settings, fmax, pmax, table, cell_speed, cell_L
     for ce, off in zip(blocks, offs):
         if not uniform:
             _ka.odd_cells(ce, h, c, L, odd, int(off))
-    # np.union1d (whose first call in a process imports numpy.ma: 7 ms on the main thread)
-    exact = np.sort(np.concatenate((np.flatnonzero(odd), corr.mixed)))
-    exact = exact[np.concatenate(([True], exact[1:] != exact[:-1]))] if len(exact) else exact
+    exact = sorted_distinct(np.concatenate((np.flatnonzero(odd), corr.mixed)))  # union1d
     # size factors: code = bit 0 plain, bit j + 1 class j; A[code] = their maximum
     code = corr.touched_plain.astype(np.uint8)  # (at most 3 classes: 4 bits)
     A = np.zeros((1 << (1 + len(corr.classes)), pmax))

@@ -279,15 +279,3 @@ def test_summary_of_rounded_raises_on_too_many_ties():
     assert got["min"] == got["max"] == 0.731 and list(got["worst"]) == list(range(10))
     with pytest.raises(TypeError):
         KS.summary_of_rounded(x.astype(np.float16), lambda ids: x[ids], "high", 10)
-
-
-def test_sorted_distinct_is_numpys_unique():
-    # the small sets of ranks, values and ids the summary takes apart (np.unique's first
-    # call imports numpy.ma, kept off the audit's path)
-    rng = np.random.default_rng(11)
-    cases = [np.zeros(0, np.int64), np.array([3], np.int64), rng.integers(0, 9, 40),
-             rng.integers(-5, 5, 7).astype(np.float64), rng.normal(size=30),
-             np.array([2.0, 2.0, 1.0, 0.0, 0.0])]
-    for a in cases:
-        got = KS._sorted_distinct(a)
-        assert got.dtype == a.dtype and np.array_equal(got, np.unique(a))

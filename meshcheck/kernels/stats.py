@@ -31,6 +31,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import njit
+from ..arrays import sorted_distinct
 
 __all__ = ["metric_summary", "summary_of_rounded", "TooManyTies", "histogram",
            "refine_pass", "worst_cut"]
@@ -421,13 +422,6 @@ def _select(bits, n, tab, hist1, ranks, k, low, nb2, gather_max, worst_max, info
     return (keys, worst, tied) if ties else (keys, worst)
 
 
-def _sorted_distinct(a: np.ndarray) -> np.ndarray:
-    """np.unique(a) of a small array without NaN (np.unique's first call imports numpy.ma:
-    7 ms holding the GIL, on the quality metrics' thread beside the topology)."""
-    a = np.sort(a)
-    return a[np.concatenate(([True], a[1:] != a[:-1]))] if len(a) else a
-
-
 def _values(keys: np.ndarray) -> np.ndarray:
     """float64 values of uint64 keys (the zero key gives +0.0)."""
     keys = np.asarray(keys, np.uint64)
@@ -488,7 +482,7 @@ class _Plan:
         ranks = [0, n - 1] + [int(r) % n for r in (*self.prev, *self.nxt)] + self.med
         if self.kk:
             ranks.append(self.kk_rank)
-        self.ranks = _sorted_distinct(np.asarray(ranks, np.int64))
+        self.ranks = sorted_distinct(np.asarray(ranks, np.int64))
 
     @property
     def kk_rank(self) -> int:
@@ -553,7 +547,7 @@ def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
     keys, worst_w, tied = _select(bits, n, tab, hist1, plan.ranks, plan.kk, low, nb2,
                                   gather_max, worst_max, info, tie_max)
     at_w = dict(zip(plan.ranks.tolist(), _values(keys)))
-    vals = _sorted_distinct(np.fromiter(at_w.values(), np.float64))
+    vals = sorted_distinct(np.fromiter(at_w.values(), np.float64))
     # per value of w at a needed rank: the number of values below it, the ids equal to it
     below = np.zeros(len(vals), np.int64)
     equal = [np.zeros(0, np.int64)] * len(vals)
@@ -567,7 +561,7 @@ def summary_of_rounded(w: np.ndarray, exact, bad: str, n_worst: int, *,
         if plan.kk else np.zeros(0, np.int64)
     if sum(len(e) for e in equal) > tie_max - len(worse):
         raise TooManyTies
-    ids = _sorted_distinct(np.concatenate([np.concatenate(equal), worse]))
+    ids = sorted_distinct(np.concatenate([np.concatenate(equal), worse]))
     x = np.asarray(exact(ids), np.float64)
     xw = w[ids]
     at = {}
